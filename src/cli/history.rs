@@ -1,0 +1,25 @@
+//! `probity history`: one line per stored run.
+
+use super::{Global, open_existing, out, out_json};
+use crate::error::Result;
+
+/// List the runs in the ledger, oldest first
+#[derive(clap::Args, Debug)]
+pub struct Args {
+    /// Print JSON instead of a table
+    #[arg(long)]
+    pub json: bool,
+}
+
+pub fn run(g: &Global, a: Args) -> Result<i32> {
+    let ledger = open_existing(g)?;
+    let runs = ledger.history()?;
+    if a.json {
+        out_json(&crate::report::json::history(&runs))?;
+    } else if runs.is_empty() {
+        out("no runs yet\n")?;
+    } else {
+        out(&crate::report::table::history(&runs))?;
+    }
+    Ok(0)
+}

@@ -1,0 +1,158 @@
+//! Command-line interface: clap types, one file per subcommand. The only code that reads the
+//! clock or the environment, prints, or writes report files. No statistics here.
+
+mod check;
+mod history;
+mod predict;
+mod run;
+mod show;
+
+use crate::error::{Error, Result};
+use clap::{Parser, Subcommand};
+use std::io::Write;
+use std::path::{Path, PathBuf};
+
+const EXIT_CODES: &str = "Exit codes: 0 ok, 1 internal error, 2 bad input or usage, 3 test budget exceeded, \
+4 ledger integrity failure, 5 replay differs.";
+
+/// Deterministic, audited model selection on tabular data.
+#[derive(Parser, Debug)]
+#[command(name = "probity", version, about, after_help = EXIT_CODES)]
+pub struct Cli {
+    #[command(flatten)]
+    pub global: Global,
+    #[command(subcommand)]
+    pub command: Command,
+}
+
+/// Options every subcommand takes.
+#[derive(clap::Args, Debug, Clone)]
+pub struct Global {
+    /// Ledger file [default: .probity/ledger.sqlite in this folder or the nearest parent that has
+    /// a .probity folder; created here on first run]
+    #[arg(long, global = true, env = "PROBITY_LEDGER", value_name = "PATH")]
+    pub ledger: Option<PathBuf>,
+}
+
+#[derive(Subcommand, Debug)]
+pub enum Command {
+    Check(check::Args),
+    Run(run::Args),
+    History(history::Args),
+    Show(show::Args),
+    Predict(predict::Args),
+}
+
+/// Parse the process arguments, run, print any error; returns the exit code.
+pub fn main() -> i32 {
+    let cli = match Cli::try_parse() {
+        Ok(c) => c,
+        Err(e) => {
+            let code = if e.use_stderr() { 2 } else { 0 };
+            let _ = e.print();
+            return code;
+        }
+    };
+    let result = match cli.command {
+        Command::Check(a) => check::run(&cli.global, a),
+        Command::Run(a) => run::run(&cli.global, a),
+        Command::History(a) => history::run(&cli.global, a),
+        Command::Show(a) => show::run(&cli.global, a),
+        Command::Predict(a) => predict::run(&cli.global, a),
+    };
+    match result {
+        Ok(code) => code,
+        Err(Error::Io { source, .. }) if source.kind() == std::io::ErrorKind::BrokenPipe => 0,
+        Err(e) => {
+            eprintln!("probity: {e}");
+            e.exit_code()
+        }
+    }
+}
+
+/// Write to stdout; a closed pipe ends quietly.
+pub(crate) fn out(text: &str) -> Result<()> {
+    let mut o = std::io::stdout().lock();
+    o.write_all(text.as_bytes())
+        .and_then(|_| o.flush())
+        .map_err(|e| Error::Io {
+            action: "cannot write to",
+            path: PathBuf::from("stdout"),
+            source: e,
+        })
+}
+
+pub(crate) fn out_json(v: &serde_json::Value) -> Result<()> {
+    let s = serde_json::to_string_pretty(v).map_err(|e| Error::Internal(e.to_string()))?;
+    out(&format!("{s}\n"))
+}
+
+pub(crate) fn warn(msg: &str) {
+    eprintln!("warning: {msg}");
+}
+
+pub(crate) fn cwd() -> Result<PathBuf> {
+    std::env::current_dir().map_err(|e| Error::Io {
+        action: "cannot read the working folder",
+        path: PathBuf::from("."),
+        source: e,
+    })
+}
+
+/// Open the ledger for reading (it must exist).
+pub(crate) fn open_existing(g: &Global) -> Result<crate::ledger::Ledger> {
+    let (path, found) = crate::ledger::locate(g.ledger.as_deref(), &cwd()?);
+    if !found {
+        return Err(Error::Input(format!(
+            "no ledger found (looked for a .probity folder here and above); run an experiment first (probity run SPEC) or pass --ledger. Default would be {}",
+            path.display()
+        )));
+    }
+    crate::ledger::Ledger::open(&path, false)
+}
+
+/// Open the ledger for writing, creating `.probity/` on first use.
+pub(crate) fn open_for_write(g: &Global) -> Result<crate::ledger::Ledger> {
+    let (path, found) = crate::ledger::locate(g.ledger.as_deref(), &cwd()?);
+    if !found {
+        if let Some(dir) = path.parent() {
+            std::fs::create_dir_all(dir).map_err(|e| Error::Io {
+                action: "cannot create ledger folder",
+                path: dir.to_path_buf(),
+                source: e,
+            })?;
+        }
+    }
+    crate::ledger::Ledger::open(&path, true)
+}
+
+/// A path as absolute text, for the ledger's records.
+pub(crate) fn absolute(p: &Path) -> String {
+    std::fs::canonicalize(p)
+        .unwrap_or_else(|_| p.to_path_buf())
+        .display()
+        .to_string()
+}
+
+/// Load the spec and its data file.
+pub(crate) fn load_inputs(spec_path: &Path) -> Result<(crate::spec::Spec, crate::data::Table)> {
+    let spec = crate::spec::load(spec_path)?;
+    let text: Vec<&str> = spec
+        .data
+        .categorical
+        .iter()
+        .map(|n| n.name.as_str())
+        .collect();
+    if !spec.data.path.exists() {
+        return Err(Error::Spec {
+            file: spec.file.clone(),
+            loc: None,
+            msg: format!(
+                "data file {} does not exist (path is relative to the spec file's folder)",
+                spec.data.path.display()
+            ),
+        });
+    }
+    let table = crate::data::load(&spec.data.path, &text)?;
+    Ok((spec, table))
+}

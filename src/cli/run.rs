@@ -1,0 +1,79 @@
+//! `probity run SPEC`: fit the grid with cross-validation, store everything, print the
+//! leaderboard and the run id.
+
+use super::{Global, absolute, load_inputs, open_for_write, out, out_json, warn};
+use crate::error::Result;
+use crate::ledger::RunMeta;
+use std::path::PathBuf;
+
+/// Run an experiment: every candidate on every fold, stored in the ledger
+#[derive(clap::Args, Debug)]
+pub struct Args {
+    /// The experiment spec (TOML)
+    pub spec: PathBuf,
+    /// A note stored with the run
+    #[arg(long, value_name = "TEXT")]
+    pub note: Option<String>,
+    /// Worker threads (results are identical for any number) [default: all cores]
+    #[arg(long, value_name = "N")]
+    pub threads: Option<usize>,
+    /// Print JSON instead of a table
+    #[arg(long)]
+    pub json: bool,
+}
+
+pub fn run(g: &Global, a: Args) -> Result<i32> {
+    let started = chrono::Utc::now();
+    let (spec, table) = load_inputs(&a.spec)?;
+    let threads = a
+        .threads
+        .unwrap_or_else(|| std::thread::available_parallelism().map_or(1, |n| n.get()))
+        .max(1);
+    // Open (and migrate) the ledger before the long work, so a bad ledger fails fast.
+    let mut ledger = open_for_write(g)?;
+    let outcome = crate::runner::run(&spec, &table, threads)?;
+    let finished = chrono::Utc::now();
+    let meta = RunMeta {
+        started_at: started.to_rfc3339_opts(chrono::SecondsFormat::Millis, true),
+        finished_at: finished.to_rfc3339_opts(chrono::SecondsFormat::Millis, true),
+        tool_version: env!("CARGO_PKG_VERSION").to_string(),
+        user: std::env::var("USER")
+            .or_else(|_| std::env::var("USERNAME"))
+            .unwrap_or_else(|_| "unknown".into()),
+        host: host(),
+        threads,
+        spec_path: absolute(&a.spec),
+        data_path: absolute(&spec.data.path),
+        note: a.note.clone(),
+    };
+    let id = ledger.write_run(&spec, &table, &outcome, &meta)?;
+    let detail = ledger
+        .run(id)?
+        .ok_or_else(|| crate::error::Error::Internal(format!("run {id} vanished after commit")))?;
+    for w in &detail.warnings {
+        warn(w);
+    }
+    if a.json {
+        out_json(&crate::report::json::run(&detail))?;
+        return Ok(0);
+    }
+    let mut t = crate::report::table::run_header(&detail);
+    t.push('\n');
+    t.push_str(&crate::report::table::leaderboard(&detail, Some(20)));
+    t.push_str(&format!(
+        "\nrun {id} stored in {}\n",
+        ledger.path().display()
+    ));
+    out(&t)?;
+    Ok(0)
+}
+
+fn host() -> String {
+    std::fs::read_to_string("/proc/sys/kernel/hostname")
+        .or_else(|_| std::fs::read_to_string("/etc/hostname"))
+        .map(|s| s.trim().to_string())
+        .ok()
+        .filter(|s| !s.is_empty())
+        .or_else(|| std::env::var("HOSTNAME").ok())
+        .unwrap_or_else(|| "unknown".into())
+}

@@ -1,0 +1,57 @@
+//! `probity show RUN`: one stored run in full.
+
+use super::{Global, open_existing, out, out_json};
+use crate::error::{Error, Result};
+
+/// Show one run: provenance, partition, every candidate's scores, warnings
+#[derive(clap::Args, Debug)]
+pub struct Args {
+    /// Run id (as `history` lists)
+    pub run: i64,
+    /// List every candidate (the table otherwise stops after 50)
+    #[arg(long)]
+    pub all: bool,
+    /// Print JSON instead of a table
+    #[arg(long)]
+    pub json: bool,
+}
+
+pub fn run(g: &Global, a: Args) -> Result<i32> {
+    let ledger = open_existing(g)?;
+    let d = ledger.run(a.run)?.ok_or_else(|| {
+        Error::Input(format!(
+            "no run {} in {}; `probity history` lists the runs",
+            a.run,
+            ledger.path().display()
+        ))
+    })?;
+    if a.json {
+        out_json(&crate::report::json::show(&d))?;
+        return Ok(0);
+    }
+    let mut t = crate::report::table::run_header(&d);
+    t.push_str(&format!(
+        "spec       {}  canonical sha256 {}\n",
+        d.spec_path, d.spec_hash
+    ));
+    t.push_str(&format!(
+        "tool       probity {}, {} threads, finished {}\n",
+        d.tool_version, d.threads, d.finished_at
+    ));
+    if let Some(n) = &d.summary.note {
+        t.push_str(&format!("note       {n}\n"));
+    }
+    t.push('\n');
+    t.push_str(&crate::report::table::leaderboard(
+        &d,
+        if a.all { None } else { Some(50) },
+    ));
+    if !d.warnings.is_empty() {
+        t.push_str("\nwarnings raised by this run:\n");
+        for w in &d.warnings {
+            t.push_str(&format!("  - {w}\n"));
+        }
+    }
+    out(&t)?;
+    Ok(0)
+}

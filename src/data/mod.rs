@@ -1,0 +1,316 @@
+//! CSV loading into typed columns, and the SHA-256 fingerprint of the file.
+//!
+//! A column is numeric when its non-empty cells are numbers, text (categorical) otherwise or
+//! when the caller forces it. An empty cell is missing. Errors name the CSV line and column.
+
+use crate::error::{Error, Result, did_you_mean};
+use sha2::{Digest, Sha256};
+use std::path::{Path, PathBuf};
+
+/// Marker for a missing text cell.
+pub const MISSING_CODE: u32 = u32::MAX;
+
+/// The values of one column.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Values {
+    /// Numbers; NaN marks a missing cell (NaN text in the file is refused, so no clash).
+    Numeric(Vec<f64>),
+    /// Codes into `levels` (sorted by byte order); `MISSING_CODE` marks a missing cell.
+    Text {
+        codes: Vec<u32>,
+        levels: Vec<String>,
+    },
+}
+
+#[derive(Debug, Clone, PartialEq)]
+pub struct Column {
+    pub name: String,
+    pub values: Values,
+}
+
+impl Column {
+    pub fn is_missing(&self, row: usize) -> bool {
+        match &self.values {
+            Values::Numeric(v) => v[row].is_nan(),
+            Values::Text { codes, .. } => codes[row] == MISSING_CODE,
+        }
+    }
+    /// The cell as text (numbers in shortest round-trip form), or "" when missing.
+    pub fn text(&self, row: usize) -> String {
+        match &self.values {
+            Values::Numeric(v) if v[row].is_nan() => String::new(),
+            Values::Numeric(v) => format!("{}", v[row]),
+            Values::Text { codes, levels } => {
+                levels.get(codes[row] as usize).cloned().unwrap_or_default()
+            }
+        }
+    }
+}
+
+/// A loaded CSV file.
+#[derive(Debug, Clone)]
+pub struct Table {
+    pub path: PathBuf,
+    /// SHA-256 of the file's bytes, hex.
+    pub sha256: String,
+    pub columns: Vec<Column>,
+    /// CSV line number of each data row (header = 1), for error messages.
+    pub lines: Vec<u64>,
+}
+
+impl Table {
+    pub fn n_rows(&self) -> usize {
+        self.lines.len()
+    }
+
+    pub fn column(&self, name: &str) -> Option<&Column> {
+        self.columns.iter().find(|c| c.name == name)
+    }
+
+    pub fn index_of(&self, name: &str) -> Option<usize> {
+        self.columns.iter().position(|c| c.name == name)
+    }
+
+    /// " (did you mean 'x'?)" for a column name that is not in the file.
+    pub fn suggest(&self, name: &str) -> String {
+        did_you_mean(name, self.columns.iter().map(|c| c.name.as_str()))
+    }
+}
+
+/// SHA-256 of a file's bytes, hex.
+pub fn file_sha256(path: &Path) -> Result<String> {
+    let bytes = read(path)?;
+    Ok(crate::spec::hex(&Sha256::digest(&bytes)))
+}
+
+fn read(path: &Path) -> Result<Vec<u8>> {
+    if path.is_dir() {
+        return Err(Error::data(path, None, None, "is a folder, not a CSV file"));
+    }
+    std::fs::read(path).map_err(|e| Error::Io {
+        action: "cannot read data file",
+        path: path.to_path_buf(),
+        source: e,
+    })
+}
+
+/// Load a CSV file. Columns named in `text_columns` are read as text even when numeric.
+pub fn load(path: &Path, text_columns: &[&str]) -> Result<Table> {
+    let bytes = read(path)?;
+    let sha256 = crate::spec::hex(&Sha256::digest(&bytes));
+    parse(&bytes, path, sha256, text_columns)
+}
+
+/// Parse CSV bytes (a UTF-8 BOM and CRLF line ends are accepted; quoted fields may hold commas
+/// and newlines).
+pub fn parse(bytes: &[u8], path: &Path, sha256: String, text_columns: &[&str]) -> Result<Table> {
+    let body = bytes.strip_prefix(b"\xEF\xBB\xBF").unwrap_or(bytes);
+    if body.iter().all(|b| b.is_ascii_whitespace()) {
+        return Err(Error::data(
+            path,
+            None,
+            None,
+            "the file is empty; it needs a header line and at least one data row",
+        ));
+    }
+    let mut rdr = csv::ReaderBuilder::new()
+        .has_headers(true)
+        .flexible(false)
+        .from_reader(body);
+    let csv_err = |e: csv::Error| -> Error {
+        let line = e.position().map(|p| p.line());
+        let msg = match e.kind() {
+            csv::ErrorKind::UnequalLengths {
+                expected_len, len, ..
+            } => {
+                format!(
+                    "this row has {len} fields but the header has {expected_len}; every row needs the same number of fields"
+                )
+            }
+            csv::ErrorKind::Utf8 { .. } => {
+                "the file is not valid UTF-8 text; save it as UTF-8".to_string()
+            }
+            _ => format!("cannot parse CSV: {e}"),
+        };
+        Error::data(path, line, None, msg)
+    };
+    let headers: Vec<String> = rdr
+        .headers()
+        .map_err(csv_err)?
+        .iter()
+        .map(|h| h.trim().to_string())
+        .collect();
+    for (i, h) in headers.iter().enumerate() {
+        if h.is_empty() {
+            return Err(Error::data(
+                path,
+                Some(1),
+                None,
+                format!("header field {} is empty; every column needs a name", i + 1),
+            ));
+        }
+        if headers[..i].contains(h) {
+            return Err(Error::data(
+                path,
+                Some(1),
+                Some(h),
+                "this column name appears twice in the header; rename one",
+            ));
+        }
+    }
+    let mut cells: Vec<Vec<String>> = vec![Vec::new(); headers.len()];
+    let mut lines = Vec::new();
+    for rec in rdr.records() {
+        let rec = rec.map_err(csv_err)?;
+        lines.push(rec.position().map_or(0, |p| p.line()));
+        for (c, f) in rec.iter().enumerate() {
+            cells[c].push(f.trim().to_string());
+        }
+    }
+    if lines.is_empty() {
+        return Err(Error::data(
+            path,
+            Some(1),
+            None,
+            "the file has a header but no data rows",
+        ));
+    }
+    let mut columns = Vec::with_capacity(headers.len());
+    for (name, col) in headers.into_iter().zip(cells) {
+        let forced = text_columns.contains(&name.as_str());
+        let values = typed(&col, forced)
+            .map_err(|(row, msg)| Error::data(path, Some(lines[row]), Some(&name), msg))?;
+        columns.push(Column { name, values });
+    }
+    Ok(Table {
+        path: path.to_path_buf(),
+        sha256,
+        columns,
+        lines,
+    })
+}
+
+/// A finite number, or the reason it is not one.
+fn number(s: &str) -> Option<std::result::Result<f64, ()>> {
+    match s.parse::<f64>() {
+        Ok(v) if v.is_finite() => Some(Ok(v)),
+        Ok(_) => Some(Err(())),
+        Err(_) => None,
+    }
+}
+
+fn typed(col: &[String], forced_text: bool) -> std::result::Result<Values, (usize, String)> {
+    let (mut nums, mut texts) = (0usize, 0usize);
+    if !forced_text {
+        for s in col.iter().filter(|s| !s.is_empty()) {
+            match number(s) {
+                Some(_) => nums += 1,
+                None => texts += 1,
+            }
+        }
+    }
+    if !forced_text && nums > 0 && nums >= texts {
+        let mut out = Vec::with_capacity(col.len());
+        for (row, s) in col.iter().enumerate() {
+            if s.is_empty() {
+                out.push(f64::NAN);
+                continue;
+            }
+            match number(s) {
+                Some(Ok(v)) => out.push(v),
+                Some(Err(())) => {
+                    return Err((
+                        row,
+                        format!(
+                            "'{s}' is not a finite number; leave the cell empty for a missing value"
+                        ),
+                    ));
+                }
+                None => {
+                    return Err((
+                        row,
+                        format!(
+                            "'{s}' is not a number in a numeric column; fix the value, leave the cell empty for a missing value, or list the column in [data] categorical"
+                        ),
+                    ));
+                }
+            }
+        }
+        return Ok(Values::Numeric(out));
+    }
+    let mut levels: Vec<String> = col.iter().filter(|s| !s.is_empty()).cloned().collect();
+    levels.sort();
+    levels.dedup();
+    let codes = col
+        .iter()
+        .map(|s| {
+            if s.is_empty() {
+                MISSING_CODE
+            } else {
+                levels.binary_search(s).map_or(MISSING_CODE, |i| i as u32)
+            }
+        })
+        .collect();
+    Ok(Values::Text { codes, levels })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn p(text: &str) -> Result<Table> {
+        parse(text.as_bytes(), Path::new("t.csv"), String::new(), &[])
+    }
+
+    #[test]
+    fn types_columns_and_marks_missing() {
+        let t = p("a,b,c\n1,x,\n2.5,y,3\n").unwrap();
+        assert_eq!(t.columns[0].values, Values::Numeric(vec![1.0, 2.5]));
+        assert_eq!(
+            t.columns[1].values,
+            Values::Text {
+                codes: vec![0, 1],
+                levels: vec!["x".into(), "y".into()]
+            }
+        );
+        assert!(t.columns[2].is_missing(0));
+        assert_eq!(t.lines, vec![2, 3]);
+    }
+
+    #[test]
+    fn bom_crlf_and_quoted_fields_work() {
+        let t = p("\u{feff}a,b\r\n1,\"x, with comma\nand newline\"\r\n2,y\r\n").unwrap();
+        assert_eq!(t.columns[0].name, "a");
+        assert_eq!(t.columns[1].text(0), "x, with comma\nand newline");
+        assert_eq!(t.lines, vec![2, 4]);
+    }
+
+    #[test]
+    fn refuses_bad_files_with_place() {
+        let e = p("a,b\n1,2\n3\n").unwrap_err().to_string();
+        assert!(e.contains("t.csv:3") && e.contains("fields"), "{e}");
+        let e = p("a,a\n1,2\n").unwrap_err().to_string();
+        assert!(e.contains("twice"), "{e}");
+        let e = p("a,b\n1,2\n2,3\nzz,4\n").unwrap_err().to_string();
+        assert!(
+            e.contains("t.csv:4 (column 'a')") && e.contains("'zz'"),
+            "{e}"
+        );
+        let e = p("a\n1\nNaN\n").unwrap_err().to_string();
+        assert!(e.contains("finite"), "{e}");
+        assert!(p("").unwrap_err().to_string().contains("empty"));
+        assert!(p("a,b\n").unwrap_err().to_string().contains("no data rows"));
+    }
+
+    #[test]
+    fn forced_text_keeps_numbers_as_levels() {
+        let t = parse(b"bay\n10\n9\n", Path::new("t.csv"), String::new(), &["bay"]).unwrap();
+        assert_eq!(
+            t.columns[0].values,
+            Values::Text {
+                codes: vec![0, 1],
+                levels: vec!["10".into(), "9".into()]
+            }
+        );
+    }
+}

@@ -1,0 +1,129 @@
+//! Numbered schema migrations, compiled in, applied in order in one transaction; the schema
+//! version lives in `PRAGMA user_version`.
+
+use crate::error::{Error, Result};
+use rusqlite::Connection;
+use std::path::Path;
+
+/// Every migration in order: (file name, SQL). Append only; never edit a merged file.
+pub const MIGRATIONS: &[(&str, &str)] = &[(
+    "0001_create_ledger.sql",
+    include_str!("../../migrations/0001_create_ledger.sql"),
+)];
+
+/// The schema version this binary writes.
+pub fn latest() -> i64 {
+    MIGRATIONS.len() as i64
+}
+
+/// Bring the ledger up to `latest()`; refuse a ledger from a newer probity.
+pub fn migrate(conn: &mut Connection, path: &Path) -> Result<()> {
+    let version: i64 = conn
+        .query_row("PRAGMA user_version", [], |r| r.get(0))
+        .map_err(|e| refuse_or_fail(path, e, "read schema version"))?;
+    if version > latest() {
+        return Err(Error::LedgerRefused {
+            path: path.to_path_buf(),
+            msg: format!(
+                "schema version {version} is newer than this probity understands ({}); upgrade probity to use it",
+                latest()
+            ),
+        });
+    }
+    if version == latest() {
+        return Ok(());
+    }
+    let tx = conn
+        .transaction()
+        .map_err(|e| refuse_or_fail(path, e, "begin migration"))?;
+    for (name, sql) in &MIGRATIONS[version as usize..] {
+        tx.execute_batch(sql).map_err(|e| Error::Ledger {
+            context: format!("apply migration {name}"),
+            source: e,
+        })?;
+    }
+    tx.pragma_update(None, "user_version", latest())
+        .map_err(|e| Error::Ledger {
+            context: "set schema version".into(),
+            source: e,
+        })?;
+    tx.commit()
+        .map_err(|e| refuse_or_fail(path, e, "commit migration"))?;
+    Ok(())
+}
+
+/// A file that is not SQLite, or a read-only or full disk, is the user's to fix (exit 2).
+pub(super) fn refuse_or_fail(path: &Path, e: rusqlite::Error, context: &str) -> Error {
+    use rusqlite::ErrorCode as C;
+    let user = match e.sqlite_error_code() {
+        Some(C::NotADatabase) => {
+            Some("is not a probity ledger (not an SQLite database); pass another --ledger path")
+        }
+        Some(C::ReadOnly) => Some("is read-only; make it writable or pass another --ledger path"),
+        Some(C::DiskFull) => Some("cannot be written: the disk is full; nothing was recorded"),
+        Some(C::CannotOpen) => Some("cannot be opened; check the folder exists and is writable"),
+        Some(C::PermissionDenied) => Some("permission denied"),
+        _ => None,
+    };
+    match user {
+        Some(msg) => Error::LedgerRefused {
+            path: path.to_path_buf(),
+            msg: msg.into(),
+        },
+        None => Error::Ledger {
+            context: context.into(),
+            source: e,
+        },
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn migration_list_matches_the_folder() {
+        let dir = Path::new(env!("CARGO_MANIFEST_DIR")).join("migrations");
+        let mut files: Vec<String> = std::fs::read_dir(dir)
+            .unwrap()
+            .map(|e| e.unwrap().file_name().to_string_lossy().into_owned())
+            .filter(|n| n.ends_with(".sql"))
+            .collect();
+        files.sort();
+        let listed: Vec<String> = MIGRATIONS.iter().map(|m| m.0.to_string()).collect();
+        assert_eq!(
+            files, listed,
+            "every file in migrations/ must be listed in MIGRATIONS, in order"
+        );
+        for (i, name) in listed.iter().enumerate() {
+            assert!(
+                name.starts_with(&format!("{:04}_", i + 1)),
+                "{name} breaks the contiguous numbering"
+            );
+        }
+    }
+
+    #[test]
+    fn applies_to_memory_and_is_idempotent() {
+        let mut c = Connection::open_in_memory().unwrap();
+        migrate(&mut c, Path::new(":memory:")).unwrap();
+        let v: i64 = c
+            .query_row("PRAGMA user_version", [], |r| r.get(0))
+            .unwrap();
+        assert_eq!(v, latest());
+        migrate(&mut c, Path::new(":memory:")).unwrap();
+        let v2: i64 = c
+            .query_row("PRAGMA user_version", [], |r| r.get(0))
+            .unwrap();
+        assert_eq!(v2, latest());
+    }
+
+    #[test]
+    fn refuses_a_newer_schema() {
+        let mut c = Connection::open_in_memory().unwrap();
+        c.pragma_update(None, "user_version", latest() + 1).unwrap();
+        let e = migrate(&mut c, Path::new("x.sqlite")).unwrap_err();
+        assert_eq!(e.exit_code(), 2);
+        assert!(e.to_string().contains("newer"), "{e}");
+    }
+}

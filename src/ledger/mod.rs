@@ -1,0 +1,510 @@
+//! The SQLite ledger: the only code that speaks SQL. Opens (WAL, foreign keys, busy timeout),
+//! migrates, writes one run per transaction, and answers typed read queries.
+
+pub mod migrate;
+
+use crate::error::{Error, Result};
+use crate::metrics::Metric;
+use crate::runner::{RunOutcome, Scores};
+use crate::split::Part;
+use rusqlite::{Connection, OptionalExtension, params};
+use serde_json::Value;
+use std::collections::BTreeMap;
+use std::path::{Path, PathBuf};
+
+/// An open ledger.
+pub struct Ledger {
+    conn: Connection,
+    path: PathBuf,
+}
+
+/// Facts about a run that come from outside the runner (the CLI reads clock and environment).
+#[derive(Debug, Clone)]
+pub struct RunMeta {
+    pub started_at: String,
+    pub finished_at: String,
+    pub tool_version: String,
+    pub user: String,
+    pub host: String,
+    pub threads: usize,
+    pub spec_path: String,
+    pub data_path: String,
+    pub note: Option<String>,
+}
+
+/// One line of `history`.
+#[derive(Debug, Clone)]
+pub struct RunSummary {
+    pub id: i64,
+    pub experiment: String,
+    pub started_at: String,
+    pub status: String,
+    pub data_sha256: String,
+    pub partition_id: String,
+    pub candidates: i64,
+    pub metric: String,
+    pub selected: i64,
+    pub selected_family: String,
+    pub selected_params: Value,
+    pub selected_score: Option<f64>,
+    pub note: Option<String>,
+}
+
+/// A stored score: mean over folds and its standard error.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Stat {
+    pub mean: Option<f64>,
+    pub se: Option<f64>,
+}
+
+#[derive(Debug, Clone)]
+pub struct CandidateRow {
+    pub id: i64,
+    pub family: String,
+    pub params: Value,
+    pub standardize: bool,
+    pub seed: String,
+    /// metric name -> stat, for "train" and "validation".
+    pub train: BTreeMap<String, Stat>,
+    pub validation: BTreeMap<String, Stat>,
+}
+
+#[derive(Debug, Clone)]
+pub struct FoldRow {
+    pub repeat: i64,
+    pub fold: i64,
+    pub n_fit: i64,
+    pub n_score: i64,
+}
+
+/// Everything stored about one run.
+#[derive(Debug, Clone)]
+pub struct RunDetail {
+    pub summary: RunSummary,
+    pub finished_at: String,
+    pub tool_version: String,
+    pub user: String,
+    pub host: String,
+    pub threads: i64,
+    pub seed: String,
+    pub spec_path: String,
+    pub spec_text: String,
+    pub spec_hash: String,
+    pub data_path: String,
+    pub data_rows: i64,
+    pub data_columns: i64,
+    pub rows_used: i64,
+    pub n_train: i64,
+    pub n_validation: i64,
+    pub n_test: i64,
+    pub holdout: bool,
+    pub rule: String,
+    pub best: i64,
+    pub model_json: String,
+    pub folds: Vec<FoldRow>,
+    pub candidates: Vec<CandidateRow>,
+    pub warnings: Vec<String>,
+}
+
+fn sql_err(context: &str) -> impl FnOnce(rusqlite::Error) -> Error + '_ {
+    move |e| Error::Ledger {
+        context: context.to_string(),
+        source: e,
+    }
+}
+
+impl Ledger {
+    /// Open (creating the file when `create`) and migrate.
+    pub fn open(path: &Path, create: bool) -> Result<Ledger> {
+        if let Some(dir) = path.parent().filter(|d| !d.as_os_str().is_empty()) {
+            if !dir.is_dir() {
+                return Err(Error::LedgerRefused {
+                    path: path.to_path_buf(),
+                    msg: format!(
+                        "the folder {} does not exist; create it or pass another --ledger path",
+                        dir.display()
+                    ),
+                });
+            }
+        }
+        if path.is_dir() {
+            return Err(Error::LedgerRefused {
+                path: path.to_path_buf(),
+                msg: "is a folder; pass the path of a ledger file".into(),
+            });
+        }
+        if !create && !path.exists() {
+            return Err(Error::LedgerRefused {
+                path: path.to_path_buf(),
+                msg: "does not exist; run an experiment first (probity run SPEC) or pass --ledger"
+                    .into(),
+            });
+        }
+        let mut conn =
+            Connection::open(path).map_err(|e| migrate::refuse_or_fail(path, e, "open"))?;
+        conn.busy_timeout(std::time::Duration::from_secs(10))
+            .map_err(sql_err("set busy timeout"))?;
+        // journal_mode answers with a row; a non-database file fails here first.
+        let _mode: String = conn
+            .query_row("PRAGMA journal_mode = WAL", [], |r| r.get(0))
+            .map_err(|e| migrate::refuse_or_fail(path, e, "set WAL mode"))?;
+        conn.pragma_update(None, "foreign_keys", "ON")
+            .map_err(sql_err("enable foreign keys"))?;
+        migrate::migrate(&mut conn, path)?;
+        Ok(Ledger {
+            conn,
+            path: path.to_path_buf(),
+        })
+    }
+
+    pub fn path(&self) -> &Path {
+        &self.path
+    }
+
+    /// Store a whole run in one transaction; returns the run id.
+    pub fn write_run(
+        &mut self,
+        spec: &crate::spec::Spec,
+        table: &crate::data::Table,
+        out: &RunOutcome,
+        meta: &RunMeta,
+    ) -> Result<i64> {
+        let path = self.path.clone();
+        let fail = |e: rusqlite::Error| migrate::refuse_or_fail(&path, e, "write run");
+        let tx = self.conn.transaction().map_err(fail)?;
+        let prep = &out.prepared;
+        let s = &prep.sealed;
+        tx.execute(
+            "INSERT OR IGNORE INTO partitions (id, data_sha256, settings, assignment, n_train, n_validation, n_test) VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7)",
+            params![
+                prep.partition_id,
+                table.sha256,
+                spec.split_canonical(),
+                prep.assignment,
+                s.count(Part::Train) as i64,
+                s.count(Part::Validation) as i64,
+                s.count(Part::Test) as i64
+            ],
+        )
+        .map_err(fail)?;
+        let model_json = serde_json::to_string(&out.refit)
+            .map_err(|e| Error::Internal(format!("serialise model: {e}")))?;
+        tx.execute(
+            "INSERT INTO runs (experiment, status, started_at, finished_at, tool_version, user, host, threads, seed, spec_path, spec_text, spec_hash,
+                data_path, data_sha256, data_rows, data_columns, rows_used, partition_id, holdout, metric, rule, best, selected, model_json, note)
+             VALUES (?1, 'complete', ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17, ?18, ?19, ?20, ?21, ?22, ?23, ?24)",
+            params![
+                spec.name,
+                meta.started_at,
+                meta.finished_at,
+                meta.tool_version,
+                meta.user,
+                meta.host,
+                meta.threads as i64,
+                spec.split.seed.to_string(),
+                meta.spec_path,
+                spec.text,
+                spec.canonical_hash(),
+                meta.data_path,
+                table.sha256,
+                table.n_rows() as i64,
+                table.columns.len() as i64,
+                prep.rows.len() as i64,
+                prep.partition_id,
+                s.holdout(),
+                out.metric.name(),
+                match out.rule {
+                    crate::spec::Rule::Min => "min",
+                    crate::spec::Rule::OneSe => "one-se",
+                },
+                out.best as i64,
+                out.selected as i64,
+                model_json,
+                meta.note
+            ],
+        )
+        .map_err(fail)?;
+        let run = tx.last_insert_rowid();
+        {
+            let mut fold_stmt = tx.prepare("INSERT INTO folds (run_id, repeat, fold, n_fit, n_score) VALUES (?1, ?2, ?3, ?4, ?5)").map_err(fail)?;
+            for f in s.folds() {
+                fold_stmt
+                    .execute(params![
+                        run,
+                        f.repeat as i64,
+                        f.index as i64,
+                        f.fit.len() as i64,
+                        f.score.len() as i64
+                    ])
+                    .map_err(fail)?;
+            }
+            let mut cand = tx.prepare("INSERT INTO candidates (run_id, id, family, params, standardize, seed) VALUES (?1, ?2, ?3, ?4, ?5, ?6)").map_err(fail)?;
+            let mut fold_score = tx
+                .prepare("INSERT INTO fold_scores (run_id, candidate, repeat, fold, part, metric, value) VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7)")
+                .map_err(fail)?;
+            let mut agg = tx.prepare("INSERT INTO scores (run_id, candidate, part, metric, mean, se) VALUES (?1, ?2, ?3, ?4, ?5, ?6)").map_err(fail)?;
+            for c in &out.candidates {
+                let p: serde_json::Map<String, Value> = c
+                    .params
+                    .iter()
+                    .map(|(k, v)| (k.clone(), v.to_json()))
+                    .collect();
+                cand.execute(params![
+                    run,
+                    c.id as i64,
+                    c.family.name(),
+                    Value::Object(p).to_string(),
+                    c.standardize,
+                    c.seed.to_string()
+                ])
+                .map_err(fail)?;
+                for f in &c.folds {
+                    for (part, sc) in [("train", &f.train), ("validation", &f.validation)] {
+                        for (k, m) in Metric::ALL.iter().enumerate() {
+                            fold_score
+                                .execute(params![
+                                    run,
+                                    c.id as i64,
+                                    f.repeat as i64,
+                                    f.fold as i64,
+                                    part,
+                                    m.name(),
+                                    sc[k]
+                                ])
+                                .map_err(fail)?;
+                        }
+                    }
+                }
+                let sets: [(&str, &Scores, &Scores); 2] = [
+                    ("train", &c.train, &c.train_se),
+                    ("validation", &c.validation, &c.validation_se),
+                ];
+                for (part, mean, se) in sets {
+                    for (k, m) in Metric::ALL.iter().enumerate() {
+                        agg.execute(params![run, c.id as i64, part, m.name(), mean[k], se[k]])
+                            .map_err(fail)?;
+                    }
+                }
+            }
+            let mut warn = tx
+                .prepare("INSERT INTO warnings (run_id, seq, message) VALUES (?1, ?2, ?3)")
+                .map_err(fail)?;
+            for (i, w) in out.warnings.iter().enumerate() {
+                warn.execute(params![run, i as i64, w]).map_err(fail)?;
+            }
+        }
+        tx.commit().map_err(fail)?;
+        Ok(run)
+    }
+
+    /// Every run, oldest first.
+    pub fn history(&self) -> Result<Vec<RunSummary>> {
+        let mut stmt = self
+            .conn
+            .prepare(&format!("{SUMMARY_SQL} ORDER BY r.id"))
+            .map_err(sql_err("list runs"))?;
+        let rows = stmt
+            .query_map([], summary_row)
+            .map_err(sql_err("list runs"))?;
+        rows.collect::<rusqlite::Result<Vec<_>>>()
+            .map_err(sql_err("list runs"))
+    }
+
+    /// One run in full, or `None` when there is no such run.
+    pub fn run(&self, id: i64) -> Result<Option<RunDetail>> {
+        let summary = self
+            .conn
+            .query_row(&format!("{SUMMARY_SQL} WHERE r.id = ?1"), [id], summary_row)
+            .optional()
+            .map_err(sql_err("read run"))?;
+        let Some(summary) = summary else {
+            return Ok(None);
+        };
+        let detail = self
+            .conn
+            .query_row(
+                "SELECT r.finished_at, r.tool_version, r.user, r.host, r.threads, r.seed, r.spec_path, r.spec_text, r.spec_hash, r.data_path,
+                        r.data_rows, r.data_columns, r.rows_used, p.n_train, p.n_validation, p.n_test, r.holdout, r.rule, r.best, r.model_json
+                 FROM runs r JOIN partitions p ON p.id = r.partition_id WHERE r.id = ?1",
+                [id],
+                |r| {
+                    Ok(RunDetail {
+                        summary: summary.clone(),
+                        finished_at: r.get(0)?,
+                        tool_version: r.get(1)?,
+                        user: r.get(2)?,
+                        host: r.get(3)?,
+                        threads: r.get(4)?,
+                        seed: r.get(5)?,
+                        spec_path: r.get(6)?,
+                        spec_text: r.get(7)?,
+                        spec_hash: r.get(8)?,
+                        data_path: r.get(9)?,
+                        data_rows: r.get(10)?,
+                        data_columns: r.get(11)?,
+                        rows_used: r.get(12)?,
+                        n_train: r.get(13)?,
+                        n_validation: r.get(14)?,
+                        n_test: r.get(15)?,
+                        holdout: r.get(16)?,
+                        rule: r.get(17)?,
+                        best: r.get(18)?,
+                        model_json: r.get(19)?,
+                        folds: Vec::new(),
+                        candidates: Vec::new(),
+                        warnings: Vec::new(),
+                    })
+                },
+            )
+            .map_err(sql_err("read run"))?;
+        let mut d = detail;
+        let mut st = self.conn.prepare("SELECT repeat, fold, n_fit, n_score FROM folds WHERE run_id = ?1 ORDER BY repeat, fold").map_err(sql_err("read folds"))?;
+        d.folds = st
+            .query_map([id], |r| {
+                Ok(FoldRow {
+                    repeat: r.get(0)?,
+                    fold: r.get(1)?,
+                    n_fit: r.get(2)?,
+                    n_score: r.get(3)?,
+                })
+            })
+            .and_then(|rows| rows.collect())
+            .map_err(sql_err("read folds"))?;
+        let mut st = self.conn.prepare("SELECT id, family, params, standardize, seed FROM candidates WHERE run_id = ?1 ORDER BY id").map_err(sql_err("read candidates"))?;
+        let cands: Vec<(i64, String, String, bool, String)> = st
+            .query_map([id], |r| {
+                Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?, r.get(4)?))
+            })
+            .and_then(|rows| rows.collect())
+            .map_err(sql_err("read candidates"))?;
+        let mut st = self.conn.prepare("SELECT candidate, part, metric, mean, se FROM scores WHERE run_id = ?1 ORDER BY candidate, part, metric").map_err(sql_err("read scores"))?;
+        let mut stats: BTreeMap<(i64, String), BTreeMap<String, Stat>> = BTreeMap::new();
+        let rows = st
+            .query_map([id], |r| {
+                Ok((
+                    r.get::<_, i64>(0)?,
+                    r.get::<_, String>(1)?,
+                    r.get::<_, String>(2)?,
+                    r.get::<_, Option<f64>>(3)?,
+                    r.get::<_, Option<f64>>(4)?,
+                ))
+            })
+            .map_err(sql_err("read scores"))?;
+        for row in rows {
+            let (c, part, metric, mean, se) = row.map_err(sql_err("read scores"))?;
+            stats
+                .entry((c, part))
+                .or_default()
+                .insert(metric, Stat { mean, se });
+        }
+        for (cid, family, params, standardize, seed) in cands {
+            d.candidates.push(CandidateRow {
+                id: cid,
+                family,
+                params: serde_json::from_str(&params).unwrap_or(Value::Null),
+                standardize,
+                seed,
+                train: stats
+                    .remove(&(cid, "train".to_string()))
+                    .unwrap_or_default(),
+                validation: stats
+                    .remove(&(cid, "validation".to_string()))
+                    .unwrap_or_default(),
+            });
+        }
+        let mut st = self
+            .conn
+            .prepare("SELECT message FROM warnings WHERE run_id = ?1 ORDER BY seq")
+            .map_err(sql_err("read warnings"))?;
+        d.warnings = st
+            .query_map([id], |r| r.get(0))
+            .and_then(|rows| rows.collect())
+            .map_err(sql_err("read warnings"))?;
+        Ok(Some(d))
+    }
+
+    /// Row counts of every table, to show that a failed command changed nothing.
+    pub fn counts(&self) -> Result<BTreeMap<String, i64>> {
+        let mut out = BTreeMap::new();
+        for t in [
+            "partitions",
+            "runs",
+            "folds",
+            "candidates",
+            "fold_scores",
+            "scores",
+            "warnings",
+        ] {
+            let n: i64 = self
+                .conn
+                .query_row(&format!("SELECT count(*) FROM {t}"), [], |r| r.get(0))
+                .map_err(sql_err("count rows"))?;
+            out.insert(t.to_string(), n);
+        }
+        Ok(out)
+    }
+
+    /// Per-fold scores of one candidate: (repeat, fold, part, metric, value).
+    pub fn fold_scores(
+        &self,
+        run: i64,
+        candidate: i64,
+    ) -> Result<Vec<(i64, i64, String, String, Option<f64>)>> {
+        let mut st = self
+            .conn
+            .prepare("SELECT repeat, fold, part, metric, value FROM fold_scores WHERE run_id = ?1 AND candidate = ?2 ORDER BY repeat, fold, part, metric")
+            .map_err(sql_err("read fold scores"))?;
+        st.query_map([run, candidate], |r| {
+            Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?, r.get(4)?))
+        })
+        .and_then(|rows| rows.collect())
+        .map_err(sql_err("read fold scores"))
+    }
+}
+
+const SUMMARY_SQL: &str = "SELECT r.id, r.experiment, r.started_at, r.status, r.data_sha256, r.partition_id,
+        (SELECT count(*) FROM candidates c WHERE c.run_id = r.id), r.metric, r.selected,
+        (SELECT family FROM candidates c WHERE c.run_id = r.id AND c.id = r.selected),
+        (SELECT params FROM candidates c WHERE c.run_id = r.id AND c.id = r.selected),
+        (SELECT mean FROM scores s WHERE s.run_id = r.id AND s.candidate = r.selected AND s.part = 'validation' AND s.metric = r.metric),
+        r.note
+    FROM runs r";
+
+fn summary_row(r: &rusqlite::Row) -> rusqlite::Result<RunSummary> {
+    let params: Option<String> = r.get(10)?;
+    Ok(RunSummary {
+        id: r.get(0)?,
+        experiment: r.get(1)?,
+        started_at: r.get(2)?,
+        status: r.get(3)?,
+        data_sha256: r.get(4)?,
+        partition_id: r.get(5)?,
+        candidates: r.get(6)?,
+        metric: r.get(7)?,
+        selected: r.get(8)?,
+        selected_family: r.get::<_, Option<String>>(9)?.unwrap_or_default(),
+        selected_params: params
+            .and_then(|p| serde_json::from_str(&p).ok())
+            .unwrap_or(Value::Null),
+        selected_score: r.get(11)?,
+        note: r.get(12)?,
+    })
+}
+
+/// Where the ledger is: an explicit path, else `.probity/ledger.sqlite` in the nearest folder
+/// at or above `cwd` that has a `.probity` folder, else (to create) `cwd/.probity/ledger.sqlite`.
+/// Returns the path and whether it was found rather than defaulted.
+pub fn locate(explicit: Option<&Path>, cwd: &Path) -> (PathBuf, bool) {
+    if let Some(p) = explicit {
+        return (p.to_path_buf(), true);
+    }
+    let mut dir = Some(cwd);
+    while let Some(d) = dir {
+        let cand = d.join(".probity");
+        if cand.is_dir() {
+            return (cand.join("ledger.sqlite"), true);
+        }
+        dir = d.parent();
+    }
+    (cwd.join(".probity").join("ledger.sqlite"), false)
+}

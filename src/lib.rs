@@ -1,0 +1,20 @@
+//! probity: a ledger for predictive-modelling experiments on tabular data.
+//!
+//! An experiment is a TOML spec (data, split, model grid). The runner fits the grid with
+//! cross-validation on the development rows only, every score goes into an SQLite ledger, and
+//! the test partition stays sealed. Data flows one way through the modules, in reading order:
+//! spec -> data -> split -> guard -> models/metrics -> runner -> ledger -> report -> cli.
+
+pub mod cli;
+pub mod data;
+pub mod error;
+pub mod guard;
+pub mod ledger;
+pub mod metrics;
+pub mod models;
+pub mod report;
+pub mod runner;
+pub mod spec;
+pub mod split;
+
+pub use error::{Error, Result};

@@ -1,0 +1,103 @@
+//! The `--json` documents. Their shapes are documented in the README and kept stable: fields
+//! may be added, never renamed or removed.
+
+use crate::ledger::{CandidateRow, RunDetail, RunSummary, Stat};
+use serde_json::{Map, Value, json};
+use std::collections::BTreeMap;
+
+fn means(m: &BTreeMap<String, Stat>) -> Value {
+    Value::Object(
+        m.iter()
+            .map(|(k, s)| (k.clone(), json!(s.mean)))
+            .collect::<Map<_, _>>(),
+    )
+}
+
+fn ses(m: &BTreeMap<String, Stat>) -> Value {
+    Value::Object(
+        m.iter()
+            .map(|(k, s)| (k.clone(), json!(s.se)))
+            .collect::<Map<_, _>>(),
+    )
+}
+
+fn candidate(c: &CandidateRow) -> Value {
+    json!({
+        "id": c.id,
+        "model": c.family,
+        "params": c.params,
+        "standardize": c.standardize,
+        "seed": c.seed,
+        "train": means(&c.train),
+        "train_se": ses(&c.train),
+        "validation": means(&c.validation),
+        "validation_se": ses(&c.validation),
+    })
+}
+
+/// `run --json`.
+pub fn run(d: &RunDetail) -> Value {
+    let s = &d.summary;
+    json!({
+        "run": s.id,
+        "experiment": s.experiment,
+        "data": {"path": d.data_path, "sha256": s.data_sha256, "rows": d.data_rows, "rows_used": d.rows_used, "columns": d.data_columns},
+        "partition": {
+            "id": s.partition_id,
+            "train": d.n_train,
+            "validation": d.n_validation,
+            "test": d.n_test,
+            "folds": if d.holdout { 0 } else { d.folds.len() },
+            "holdout": d.holdout,
+        },
+        "seed": d.seed,
+        "metric": s.metric,
+        "rule": d.rule,
+        "selected": s.selected,
+        "best": d.best,
+        "candidates": d.candidates.iter().map(candidate).collect::<Vec<_>>(),
+        "warnings": d.warnings,
+    })
+}
+
+/// `show --json`: everything of `run --json`, plus provenance and the stored spec.
+pub fn show(d: &RunDetail) -> Value {
+    let mut v = run(d);
+    let extra = json!({
+        "status": d.summary.status,
+        "started_at": d.summary.started_at,
+        "finished_at": d.finished_at,
+        "tool_version": d.tool_version,
+        "user": d.user,
+        "host": d.host,
+        "threads": d.threads,
+        "spec": {"path": d.spec_path, "sha256": d.spec_hash, "text": d.spec_text},
+        "folds": d.folds.iter().map(|f| json!({"repeat": f.repeat, "fold": f.fold, "fit": f.n_fit, "score": f.n_score})).collect::<Vec<_>>(),
+        "note": d.summary.note,
+    });
+    if let (Some(o), Value::Object(e)) = (v.as_object_mut(), extra) {
+        o.extend(e);
+    }
+    v
+}
+
+/// `history --json`.
+pub fn history(runs: &[RunSummary]) -> Value {
+    json!({
+        "runs": runs.iter().map(|r| json!({
+            "run": r.id,
+            "experiment": r.experiment,
+            "started_at": r.started_at,
+            "status": r.status,
+            "data_sha256": r.data_sha256,
+            "partition": r.partition_id,
+            "candidates": r.candidates,
+            "metric": r.metric,
+            "selected": r.selected,
+            "selected_model": r.selected_family,
+            "selected_params": r.selected_params,
+            "selected_validation": r.selected_score,
+            "note": r.note,
+        })).collect::<Vec<_>>()
+    })
+}

@@ -1,0 +1,47 @@
+//! Rendering of stored runs: comfy-table text and the `--json` documents. Everything here is
+//! built from ledger rows, so what `run` prints is what the ledger holds.
+
+pub mod json;
+pub mod table;
+
+/// A number with 6 significant digits for tables (JSON always carries the exact value).
+pub fn num(v: Option<f64>) -> String {
+    match v {
+        None => "-".to_string(),
+        Some(x) if x == 0.0 => "0".to_string(),
+        Some(x) if x.abs() >= 1e-4 && x.abs() < 1e9 => {
+            let digits = (6 - 1 - x.abs().log10().floor() as i32).max(0) as usize;
+            format!("{x:.digits$}")
+        }
+        Some(x) => format!("{x:.5e}"),
+    }
+}
+
+/// `name=value` pairs of a params JSON object.
+pub fn params_text(p: &serde_json::Value) -> String {
+    match p.as_object() {
+        Some(m) if !m.is_empty() => m
+            .iter()
+            .map(|(k, v)| match v {
+                serde_json::Value::String(s) => format!("{k}={s}"),
+                other => format!("{k}={other}"),
+            })
+            .collect::<Vec<_>>()
+            .join(" "),
+        _ => String::new(),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn numbers_keep_six_significant_digits() {
+        assert_eq!(num(Some(1.23456789)), "1.23457");
+        assert_eq!(num(Some(1234.56789)), "1234.57");
+        assert_eq!(num(Some(0.000123456789)), "0.000123457");
+        assert_eq!(num(Some(1e-9)), "1.00000e-9");
+        assert_eq!(num(None), "-");
+    }
+}

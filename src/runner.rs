@@ -1,0 +1,749 @@
+//! The experiment runner: spec + table -> resolved columns -> partition -> every candidate on
+//! every fold -> aggregate scores -> selection -> refit on all development rows.
+//!
+//! Work is split into (fold, model entry) tasks that run on any number of threads; each task's
+//! result lands in its own slot and everything is reduced in task order, so one thread and many
+//! give the same bits. No clock, no environment, no printing here.
+
+use crate::data::{Table, Values};
+use crate::error::{Error, Result};
+use crate::guard::Sealed;
+use crate::metrics::{Metric, mean_se, score_all};
+use crate::models::encode::{Encoder, Notes};
+use crate::models::{Design, Fitted, Params, model_for};
+use crate::spec::{Family, Missing, ModelSpec, Named, Rule, Spec, SplitMethod, hex};
+use crate::split::rng::{Domain, derive_seed};
+use crate::split::{Method, Part, SplitInput, split};
+use serde::{Deserialize, Serialize};
+use sha2::{Digest, Sha256};
+use std::collections::BTreeMap;
+use std::sync::Mutex;
+use std::sync::atomic::{AtomicUsize, Ordering};
+
+/// Scores in `Metric::ALL` order; `None` where a metric is undefined.
+pub type Scores = [Option<f64>; 4];
+
+/// The experiment's columns resolved against the data, and its partition.
+#[derive(Debug, Clone)]
+pub struct Prepared {
+    /// Table rows kept (after `missing = "drop-rows"`), in file order.
+    pub rows: Vec<usize>,
+    /// Target per kept row.
+    pub target: Vec<f64>,
+    /// Table column indices of the features.
+    pub features: Vec<usize>,
+    pub feature_names: Vec<String>,
+    pub sealed: Sealed,
+    /// Stable partition id: data hash + split settings + assignment.
+    pub partition_id: String,
+    /// One byte per table row: r(train) v(alidation) t(est) -(dropped).
+    pub assignment: Vec<u8>,
+    pub dropped: usize,
+    pub warnings: Vec<String>,
+}
+
+/// One fold's scores for one candidate.
+#[derive(Debug, Clone, PartialEq)]
+pub struct FoldScores {
+    pub repeat: usize,
+    pub fold: usize,
+    pub n_fit: usize,
+    pub n_score: usize,
+    pub train: Scores,
+    pub validation: Scores,
+}
+
+/// One grid point of one model entry, with all its scores.
+#[derive(Debug, Clone)]
+pub struct CandidateResult {
+    /// 1-based, stable: baseline first, then entries in spec order, grid in expansion order.
+    pub id: usize,
+    pub family: Family,
+    pub entry: usize,
+    pub standardize: bool,
+    pub params: Params,
+    pub seed: u64,
+    pub folds: Vec<FoldScores>,
+    pub train: Scores,
+    pub train_se: Scores,
+    pub validation: Scores,
+    pub validation_se: Scores,
+}
+
+/// What `predict` needs: the encoder and the fitted model, stored as JSON in the ledger.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct StoredModel {
+    pub candidate: usize,
+    pub target: String,
+    pub key: Option<String>,
+    pub encoder: Encoder,
+    pub fitted: Fitted,
+}
+
+#[derive(Debug, Clone)]
+pub struct RunOutcome {
+    pub prepared: Prepared,
+    pub candidates: Vec<CandidateResult>,
+    /// Candidate chosen by `[select]`.
+    pub selected: usize,
+    /// Candidate with the best mean validation score (equals `selected` under rule "min").
+    pub best: usize,
+    pub metric: Metric,
+    pub rule: Rule,
+    pub refit: StoredModel,
+    pub warnings: Vec<String>,
+}
+
+fn named_col(spec: &Spec, table: &Table, n: &Named, role: &str) -> Result<usize> {
+    table.index_of(&n.name).ok_or_else(|| {
+        Error::spec(
+            &spec.file,
+            Some(n.loc),
+            format!(
+                "{role} column '{}' is not in {}{}",
+                n.name,
+                table.path.display(),
+                table.suggest(&n.name)
+            ),
+        )
+    })
+}
+
+/// Resolve the spec's columns against the table, handle missing values and split.
+pub fn prepare(spec: &Spec, table: &Table) -> Result<Prepared> {
+    let d = &spec.data;
+    if let Some((want, loc)) = &d.sha256 {
+        if *want != table.sha256 {
+            return Err(Error::spec(
+                &spec.file,
+                Some(*loc),
+                format!(
+                    "{} has SHA-256 {}, but the spec pins {}; the data changed: check it, then update sha256",
+                    table.path.display(),
+                    table.sha256,
+                    want
+                ),
+            ));
+        }
+    }
+    let target = named_col(spec, table, &d.target, "target")?;
+    let key = d
+        .key
+        .as_ref()
+        .map(|k| named_col(spec, table, k, "key"))
+        .transpose()?;
+    for n in d.ignore.iter().chain(&d.categorical) {
+        named_col(spec, table, n, "listed")?;
+    }
+    let split_col = match &spec.split.method {
+        SplitMethod::Group { column } | SplitMethod::Column { column } => {
+            Some(named_col(spec, table, column, "split")?)
+        }
+        SplitMethod::Time { order } => Some(named_col(spec, table, order, "order")?),
+        _ => None,
+    };
+    if matches!(spec.split.method, SplitMethod::Hash) && key.is_none() {
+        return Err(Error::spec(
+            &spec.file,
+            Some(spec.split.loc),
+            "method = \"hash\" needs [data] key = \"<row id column>\" so test membership follows each row",
+        ));
+    }
+    let features: Vec<usize> = match &d.features {
+        Some(list) => {
+            let mut out = Vec::new();
+            for f in list {
+                let c = named_col(spec, table, f, "feature")?;
+                if Some(c) == key || Some(c) == split_col {
+                    return Err(Error::spec(
+                        &spec.file,
+                        Some(f.loc),
+                        format!(
+                            "'{}' is the key or split column and cannot also be a feature",
+                            f.name
+                        ),
+                    ));
+                }
+                out.push(c);
+            }
+            out
+        }
+        None => (0..table.columns.len())
+            .filter(|&c| {
+                c != target
+                    && Some(c) != key
+                    && Some(c) != split_col
+                    && !d.ignore.iter().any(|i| i.name == table.columns[c].name)
+            })
+            .collect(),
+    };
+    if features.is_empty() {
+        return Err(Error::spec(
+            &spec.file,
+            Some(d.target.loc),
+            "no feature columns are left after target, key, split and ignore; list features",
+        ));
+    }
+    let tcol = &table.columns[target];
+    let yall = match &tcol.values {
+        Values::Numeric(v) => v.clone(),
+        Values::Text { codes, levels } => {
+            let row = codes
+                .iter()
+                .position(|&c| {
+                    c != crate::data::MISSING_CODE && levels[c as usize].parse::<f64>().is_err()
+                })
+                .unwrap_or(0);
+            return Err(Error::data(
+                &table.path,
+                Some(table.lines[row]),
+                Some(&tcol.name),
+                format!(
+                    "the regression target holds text ('{}'); a regression target must be numeric",
+                    tcol.text(row)
+                ),
+            ));
+        }
+    };
+    // Missing values in the columns the run reads.
+    let mut used: Vec<usize> = features.clone();
+    used.push(target);
+    used.extend(key);
+    used.extend(split_col);
+    let mut rows = Vec::with_capacity(table.n_rows());
+    let mut dropped = 0;
+    for r in 0..table.n_rows() {
+        let missing_col = used
+            .iter()
+            .copied()
+            .find(|&c| table.columns[c].is_missing(r));
+        match (missing_col, d.missing) {
+            (None, _) => rows.push(r),
+            (Some(_), Missing::DropRows) => dropped += 1,
+            (Some(c), Missing::Mean) if features.contains(&c) => rows.push(r),
+            (Some(c), mode) => {
+                let name = &table.columns[c].name;
+                let how = if mode == Missing::Mean {
+                    "the target, key and split columns cannot be imputed; fill the cell or use missing = \"drop-rows\""
+                } else {
+                    "fill the cell, or set [data] missing = \"drop-rows\" or \"mean\""
+                };
+                return Err(Error::data(
+                    &table.path,
+                    Some(table.lines[r]),
+                    Some(name),
+                    format!("missing value; {how}"),
+                ));
+            }
+        }
+    }
+    if rows.is_empty() {
+        return Err(Error::Input(format!(
+            "{}: every row has a missing value in a used column; nothing is left to fit",
+            table.path.display()
+        )));
+    }
+    let y: Vec<f64> = rows.iter().map(|&r| yall[r]).collect();
+    if y.iter().all(|v| *v == y[0]) {
+        return Err(Error::data(
+            &table.path,
+            None,
+            Some(&tcol.name),
+            format!(
+                "the target has the same value ({}) in every row; there is nothing to predict",
+                y[0]
+            ),
+        ));
+    }
+    let mut keys: Option<Vec<String>> = None;
+    if let Some(k) = key {
+        let col = &table.columns[k];
+        let ks: Vec<String> = rows.iter().map(|&r| col.text(r)).collect();
+        let mut seen: BTreeMap<&str, usize> = BTreeMap::new();
+        for (i, kv) in ks.iter().enumerate() {
+            if let Some(prev) = seen.insert(kv.as_str(), i) {
+                return Err(Error::data(
+                    &table.path,
+                    Some(table.lines[rows[i]]),
+                    Some(&col.name),
+                    format!(
+                        "key '{kv}' repeats the key of line {}; a key must identify one row",
+                        table.lines[rows[prev]]
+                    ),
+                ));
+            }
+        }
+        keys = Some(ks);
+    }
+    let method = match &spec.split.method {
+        SplitMethod::Random => Method::Random,
+        SplitMethod::Stratified { bins } => Method::Stratified { bins: *bins },
+        SplitMethod::Hash => Method::Hash {
+            keys: keys.clone().unwrap_or_default(),
+        },
+        SplitMethod::Group { .. } => Method::Group {
+            groups: codes_of(table, split_col.unwrap_or(0), &rows),
+        },
+        SplitMethod::Time { .. } => {
+            let c = split_col.unwrap_or(0);
+            let order = match &table.columns[c].values {
+                Values::Numeric(v) => rows.iter().map(|&r| v[r]).collect(),
+                // Text (ISO dates, for example) orders by byte order, which the level codes follow.
+                Values::Text { codes, .. } => rows.iter().map(|&r| f64::from(codes[r])).collect(),
+            };
+            Method::Time { order }
+        }
+        SplitMethod::Column { column } => {
+            let c = split_col.unwrap_or(0);
+            let col = &table.columns[c];
+            let mut parts = Vec::with_capacity(rows.len());
+            for &r in &rows {
+                parts.push(match col.text(r).as_str() {
+                    "train" => Part::Train,
+                    "validation" => Part::Validation,
+                    "test" => Part::Test,
+                    other => {
+                        return Err(Error::data(&table.path, Some(table.lines[r]), Some(&column.name), format!(
+                            "'{other}' is not a partition; the split column holds train, validation or test"
+                        )));
+                    }
+                });
+            }
+            Method::Column { parts }
+        }
+    };
+    let s = &spec.split;
+    let partition = split(&SplitInput {
+        method,
+        seed: s.seed,
+        test: s.test,
+        validation: s.validation,
+        folds: s.folds,
+        repeats: s.repeats,
+        target: &y,
+    })?;
+    if partition.holdout && spec.select.rule == Rule::OneSe {
+        return Err(Error::spec(
+            &spec.file,
+            None,
+            "rule = \"one-se\" needs cross-validation folds, but this split has a fixed validation partition; use rule = \"min\"",
+        ));
+    }
+    let mut assignment = vec![b'-'; table.n_rows()];
+    for (i, &r) in rows.iter().enumerate() {
+        assignment[r] = partition.parts[i].code();
+    }
+    let mut h = Sha256::new();
+    h.update(b"probity-partition-v1\n");
+    h.update(table.sha256.as_bytes());
+    h.update(b"\n");
+    h.update(spec.split_canonical().as_bytes());
+    h.update(b"\n");
+    h.update(&assignment);
+    let partition_id = hex(&h.finalize())[..16].to_string();
+    let mut warnings = Vec::new();
+    if dropped > 0 {
+        warnings.push(format!(
+            "{dropped} of {} rows dropped for missing values (missing = \"drop-rows\")",
+            table.n_rows()
+        ));
+    }
+    Ok(Prepared {
+        rows,
+        target: y,
+        feature_names: features
+            .iter()
+            .map(|&c| table.columns[c].name.clone())
+            .collect(),
+        features,
+        sealed: Sealed::new(partition),
+        partition_id,
+        assignment,
+        dropped,
+        warnings,
+    })
+}
+
+/// Codes of a column's values among `rows`, by sorted distinct text.
+fn codes_of(table: &Table, c: usize, rows: &[usize]) -> Vec<u32> {
+    let col = &table.columns[c];
+    let texts: Vec<String> = rows.iter().map(|&r| col.text(r)).collect();
+    let mut distinct = texts.clone();
+    distinct.sort();
+    distinct.dedup();
+    texts
+        .iter()
+        .map(|t| distinct.binary_search(t).unwrap_or(0) as u32)
+        .collect()
+}
+
+/// The model entries of a run: the `mean` baseline first (unless listed), then the spec's.
+pub fn entries(spec: &Spec) -> Vec<ModelSpec> {
+    let mut out = Vec::new();
+    if !spec.models.iter().any(|m| m.family == Family::Mean) {
+        out.push(ModelSpec {
+            family: Family::Mean,
+            standardize: true,
+            grid: Vec::new(),
+            loc: Default::default(),
+        });
+    }
+    out.extend(spec.models.iter().cloned());
+    out
+}
+
+/// Check the grid against the data before any fitting (poly features must be numeric features).
+fn check_grid(spec: &Spec, table: &Table, prep: &Prepared, entries: &[ModelSpec]) -> Result<()> {
+    for e in entries.iter().filter(|e| e.family == Family::Poly) {
+        for params in e.expand() {
+            let f = crate::models::param(&params, "feature")
+                .map(|v| v.as_text().to_string())
+                .unwrap_or_default();
+            let ok = prep.features.iter().any(|&c| {
+                table.columns[c].name == f && matches!(table.columns[c].values, Values::Numeric(_))
+            });
+            if !ok {
+                let names: Vec<&str> = prep.feature_names.iter().map(String::as_str).collect();
+                return Err(Error::spec(
+                    &spec.file,
+                    Some(e.loc),
+                    format!(
+                        "poly feature '{f}' is not a numeric feature of this experiment{}",
+                        crate::error::did_you_mean(&f, names)
+                    ),
+                ));
+            }
+        }
+    }
+    Ok(())
+}
+
+struct TaskOut {
+    /// (grid index, train scores, validation scores)
+    scores: Vec<(Scores, Scores)>,
+    notes: Notes,
+}
+
+fn design(table: &Table, enc: &Encoder, rows: &[usize], notes: &mut Notes) -> Result<Design> {
+    Ok(Design {
+        x: enc.transform(table, rows, notes)?,
+        names: enc.names(),
+    })
+}
+
+fn run_task(
+    table: &Table,
+    prep: &Prepared,
+    entry: &ModelSpec,
+    grid: &[Params],
+    fold: &crate::split::Fold,
+    impute: bool,
+) -> Result<TaskOut> {
+    let model = model_for(entry);
+    let fit_rows: Vec<usize> = fold.fit.iter().map(|&i| prep.rows[i]).collect();
+    let score_rows: Vec<usize> = fold.score.iter().map(|&i| prep.rows[i]).collect();
+    let enc = Encoder::fit(
+        table,
+        &prep.features,
+        &fit_rows,
+        model.drops_first_level(),
+        impute,
+    );
+    let mut notes = Notes::new();
+    let xf = design(table, &enc, &fit_rows, &mut notes)?;
+    let xs = design(table, &enc, &score_rows, &mut notes)?;
+    let yf: Vec<f64> = fold.fit.iter().map(|&i| prep.target[i]).collect();
+    let ys: Vec<f64> = fold.score.iter().map(|&i| prep.target[i]).collect();
+    let preds = model.fit_predict_grid(&xf, &yf, grid, &[&xf.x, &xs.x], &mut notes)?;
+    let mut scores = Vec::with_capacity(grid.len());
+    for (g, p) in preds.iter().enumerate() {
+        if p.iter().flatten().any(|v| !v.is_finite()) {
+            return Err(Error::Input(format!(
+                "{} {}: predictions are not finite (overflow); rescale the features or the target",
+                entry.family.name(),
+                fmt_params(&grid[g])
+            )));
+        }
+        scores.push((score_all(&yf, &p[0]), score_all(&ys, &p[1])));
+    }
+    Ok(TaskOut { scores, notes })
+}
+
+/// `name=value` pairs for messages and tables.
+pub fn fmt_params(p: &Params) -> String {
+    p.iter()
+        .map(|(k, v)| format!("{k}={v}"))
+        .collect::<Vec<_>>()
+        .join(" ")
+}
+
+/// Run `f` over `0..n` on `threads` threads; results come back in index order.
+fn parallel<T: Send>(n: usize, threads: usize, f: impl Fn(usize) -> T + Sync) -> Vec<T> {
+    let slots: Mutex<Vec<Option<T>>> = Mutex::new((0..n).map(|_| None).collect());
+    let next = AtomicUsize::new(0);
+    let workers = threads.clamp(1, n.max(1));
+    std::thread::scope(|s| {
+        for _ in 0..workers {
+            s.spawn(|| {
+                loop {
+                    let i = next.fetch_add(1, Ordering::Relaxed);
+                    if i >= n {
+                        break;
+                    }
+                    let out = f(i);
+                    if let Ok(mut g) = slots.lock() {
+                        g[i] = Some(out);
+                    }
+                }
+            });
+        }
+    });
+    slots
+        .into_inner()
+        .unwrap_or_default()
+        .into_iter()
+        .flatten()
+        .collect()
+}
+
+/// Run the experiment. `threads` only changes speed, never a result.
+pub fn run(spec: &Spec, table: &Table, threads: usize) -> Result<RunOutcome> {
+    let prep = prepare(spec, table)?;
+    let entries = entries(spec);
+    check_grid(spec, table, &prep, &entries)?;
+    let grids: Vec<Vec<Params>> = entries.iter().map(ModelSpec::expand).collect();
+    let folds = prep.sealed.folds().to_vec();
+    let impute = spec.data.missing == Missing::Mean;
+    let tasks: Vec<(usize, usize)> = (0..folds.len())
+        .flat_map(|f| (0..entries.len()).map(move |e| (f, e)))
+        .collect();
+    let outs = parallel(tasks.len(), threads, |t| {
+        let (f, e) = tasks[t];
+        run_task(table, &prep, &entries[e], &grids[e], &folds[f], impute)
+    });
+    if outs.len() != tasks.len() {
+        return Err(Error::Internal("a worker thread panicked".into()));
+    }
+    // Reduce in task order: the first error by task, the notes merged in a sorted map.
+    let mut notes = Notes::new();
+    let mut by_task = Vec::with_capacity(outs.len());
+    for (t, o) in outs.into_iter().enumerate() {
+        let o = o.map_err(|e| match e {
+            Error::Input(m) => {
+                let f = &folds[tasks[t].0];
+                Error::Input(format!(
+                    "fold {} (repeat {}): {m}",
+                    f.index + 1,
+                    f.repeat + 1
+                ))
+            }
+            other => other,
+        })?;
+        for (k, v) in &o.notes {
+            *notes.entry(k.clone()).or_insert(0) += v;
+        }
+        by_task.push(o);
+    }
+    let mut candidates = Vec::new();
+    for (e, entry) in entries.iter().enumerate() {
+        for (g, params) in grids[e].iter().enumerate() {
+            let id = candidates.len() + 1;
+            let mut fs = Vec::with_capacity(folds.len());
+            for (f, fold) in folds.iter().enumerate() {
+                let (train, validation) = by_task[f * entries.len() + e].scores[g];
+                fs.push(FoldScores {
+                    repeat: fold.repeat,
+                    fold: fold.index,
+                    n_fit: fold.fit.len(),
+                    n_score: fold.score.len(),
+                    train,
+                    validation,
+                });
+            }
+            let agg = |pick: fn(&FoldScores) -> Scores| -> (Scores, Scores) {
+                let mut m = [None; 4];
+                let mut se = [None; 4];
+                for k in 0..4 {
+                    let vals: Vec<Option<f64>> = fs.iter().map(|f| pick(f)[k]).collect();
+                    (m[k], se[k]) = mean_se(&vals);
+                }
+                (m, se)
+            };
+            let (train, train_se) = agg(|f| f.train);
+            let (validation, validation_se) = agg(|f| f.validation);
+            candidates.push(CandidateResult {
+                id,
+                family: entry.family,
+                entry: e,
+                standardize: entry.standardize,
+                params: params.clone(),
+                seed: derive_seed(spec.split.seed, Domain::Candidate, id as u32),
+                folds: fs,
+                train,
+                train_se,
+                validation,
+                validation_se,
+            });
+        }
+    }
+    let metric = spec.select.metric;
+    let (best, selected) = select(&candidates, metric, spec.select.rule, &entries)?;
+    let chosen = &candidates[selected - 1];
+    // Refit the selected candidate on every development row.
+    let dev: Vec<usize> = prep.sealed.development();
+    let dev_rows: Vec<usize> = dev.iter().map(|&i| prep.rows[i]).collect();
+    let ydev: Vec<f64> = dev.iter().map(|&i| prep.target[i]).collect();
+    let entry = &entries[chosen.entry];
+    let model = model_for(entry);
+    let encoder = Encoder::fit(
+        table,
+        &prep.features,
+        &dev_rows,
+        model.drops_first_level(),
+        impute,
+    );
+    let xdev = design(table, &encoder, &dev_rows, &mut notes)?;
+    let fitted = model.fit(&xdev, &ydev, &chosen.params, &mut notes)?;
+    let refit = StoredModel {
+        candidate: chosen.id,
+        target: spec.data.target.name.clone(),
+        key: spec.data.key.as_ref().map(|k| k.name.clone()),
+        encoder,
+        fitted,
+    };
+    let mut warnings = prep.warnings.clone();
+    for (msg, count) in notes {
+        warnings.push(if count > 1 {
+            format!("{msg} ({count} fits)")
+        } else {
+            msg
+        });
+    }
+    Ok(RunOutcome {
+        prepared: prep,
+        candidates,
+        selected,
+        best,
+        metric,
+        rule: spec.select.rule,
+        refit,
+        warnings,
+    })
+}
+
+/// (best id, selected id). Ties go to the lower id.
+fn select(
+    cands: &[CandidateResult],
+    metric: Metric,
+    rule: Rule,
+    entries: &[ModelSpec],
+) -> Result<(usize, usize)> {
+    let k = Metric::ALL.iter().position(|m| *m == metric).unwrap_or(0);
+    let mut best: Option<&CandidateResult> = None;
+    for c in cands {
+        if let Some(v) = c.validation[k] {
+            if best.is_none_or(|b| metric.better(v, b.validation[k].unwrap_or(f64::NAN))) {
+                best = Some(c);
+            }
+        }
+    }
+    let best = best.ok_or_else(|| {
+        Error::Input(format!("{} is undefined on every fold (for example r2 on single-row folds); select by rmse, mse or mae", metric.name()))
+    })?;
+    if rule == Rule::Min {
+        return Ok((best.id, best.id));
+    }
+    // One-standard-error rule (Hastie, Tibshirani & Friedman, ESL 2nd ed., sec. 7.10): the
+    // simplest candidate of the best one's model entry within one SE of the best score.
+    let bv = best.validation[k].unwrap_or(f64::NAN);
+    let se = best.validation_se[k].unwrap_or(0.0);
+    let limit = if metric.higher_is_better() {
+        bv - se
+    } else {
+        bv + se
+    };
+    let model = model_for(&entries[best.entry]);
+    let mut pick = best;
+    for c in cands.iter().filter(|c| c.entry == best.entry) {
+        let Some(v) = c.validation[k] else { continue };
+        let within = if metric.higher_is_better() {
+            v >= limit
+        } else {
+            v <= limit
+        };
+        if within && model.complexity(&c.params) < model.complexity(&pick.params) {
+            pick = c;
+        }
+    }
+    Ok((best.id, pick.id))
+}
+
+/// Refit one candidate of a stored run on all development rows (for `predict --candidate`).
+/// The spec and data must be the run's own; the caller checks the data hash.
+pub fn refit(spec: &Spec, table: &Table, candidate: usize) -> Result<StoredModel> {
+    let prep = prepare(spec, table)?;
+    let entries = entries(spec);
+    let mut id = 0;
+    for entry in &entries {
+        for params in entry.expand() {
+            id += 1;
+            if id != candidate {
+                continue;
+            }
+            let dev = prep.sealed.development();
+            let rows: Vec<usize> = dev.iter().map(|&i| prep.rows[i]).collect();
+            let y: Vec<f64> = dev.iter().map(|&i| prep.target[i]).collect();
+            let model = model_for(entry);
+            let impute = spec.data.missing == Missing::Mean;
+            let encoder = Encoder::fit(
+                table,
+                &prep.features,
+                &rows,
+                model.drops_first_level(),
+                impute,
+            );
+            let mut notes = Notes::new();
+            let x = design(table, &encoder, &rows, &mut notes)?;
+            let fitted = model.fit(&x, &y, &params, &mut notes)?;
+            return Ok(StoredModel {
+                candidate,
+                target: spec.data.target.name.clone(),
+                key: spec.data.key.as_ref().map(|k| k.name.clone()),
+                encoder,
+                fitted,
+            });
+        }
+    }
+    Err(Error::Input(format!(
+        "the run has no candidate {candidate}; `probity show RUN` lists them"
+    )))
+}
+
+impl StoredModel {
+    /// Predictions for every row of `table`, and notes (unseen levels).
+    pub fn predict(&self, table: &Table) -> Result<(Vec<f64>, Vec<String>)> {
+        let rows: Vec<usize> = (0..table.n_rows()).collect();
+        let mut notes = Notes::new();
+        let x = self.encoder.transform(table, &rows, &mut notes)?;
+        let p = self.fitted.predict(&x);
+        Ok((
+            p,
+            notes
+                .into_iter()
+                .map(|(m, n)| if n > 1 { format!("{m} ({n} times)") } else { m })
+                .collect(),
+        ))
+    }
+
+    /// Text columns the encoder expects, so a file's numeric-looking levels stay text.
+    pub fn text_columns(&self) -> Vec<String> {
+        self.encoder
+            .features
+            .iter()
+            .filter_map(|f| match f {
+                crate::models::encode::Feature::Categorical { name, .. } => Some(name.clone()),
+                _ => None,
+            })
+            .collect()
+    }
+}

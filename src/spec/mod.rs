@@ -1,0 +1,984 @@
+//! Experiment specs: the TOML schema, validation into `Spec`, and the canonical hash.
+//!
+//! A `Spec` only exists once every key has been checked, so later stages never re-validate.
+//! Errors name the spec file, line and column, and suggest the nearest valid key or value.
+
+mod raw;
+
+use crate::error::{Error, Loc, Result, did_you_mean};
+use raw::{RawData, RawModel, RawSelect, RawSpec, RawSplit};
+use serde_json::{Value, json};
+use sha2::{Digest, Sha256};
+use std::path::{Path, PathBuf};
+use toml::Spanned;
+
+/// A column name as written in the spec, with where it was written.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Named {
+    pub name: String,
+    pub loc: Loc,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Missing {
+    Error,
+    DropRows,
+    Mean,
+}
+
+impl Missing {
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Missing::Error => "error",
+            Missing::DropRows => "drop-rows",
+            Missing::Mean => "mean",
+        }
+    }
+}
+
+#[derive(Debug, Clone)]
+pub struct DataSpec {
+    /// Resolved against the spec file's folder.
+    pub path: PathBuf,
+    /// As written in the spec.
+    pub path_text: String,
+    pub target: Named,
+    pub features: Option<Vec<Named>>,
+    pub ignore: Vec<Named>,
+    pub key: Option<Named>,
+    pub categorical: Vec<Named>,
+    pub sha256: Option<(String, Loc)>,
+    pub missing: Missing,
+}
+
+#[derive(Debug, Clone, PartialEq)]
+pub enum SplitMethod {
+    Random,
+    Stratified { bins: usize },
+    Group { column: Named },
+    Time { order: Named },
+    Hash,
+    Column { column: Named },
+}
+
+impl SplitMethod {
+    pub fn name(&self) -> &'static str {
+        match self {
+            SplitMethod::Random => "random",
+            SplitMethod::Stratified { .. } => "stratified",
+            SplitMethod::Group { .. } => "group",
+            SplitMethod::Time { .. } => "time",
+            SplitMethod::Hash => "hash",
+            SplitMethod::Column { .. } => "column",
+        }
+    }
+}
+
+#[derive(Debug, Clone)]
+pub struct SplitSpec {
+    pub method: SplitMethod,
+    pub seed: u64,
+    pub test: f64,
+    pub validation: f64,
+    pub folds: crate::split::Folds,
+    pub repeats: usize,
+    pub loc: Loc,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord)]
+pub enum Rule {
+    Min,
+    OneSe,
+}
+
+#[derive(Debug, Clone)]
+pub struct SelectSpec {
+    pub metric: crate::metrics::Metric,
+    pub rule: Rule,
+}
+
+/// The built-in model families.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord)]
+pub enum Family {
+    Mean,
+    Ols,
+    Ridge,
+    Lasso,
+    Poly,
+    Knn,
+}
+
+impl Family {
+    pub const ALL: [Family; 6] = [
+        Family::Mean,
+        Family::Ols,
+        Family::Ridge,
+        Family::Lasso,
+        Family::Poly,
+        Family::Knn,
+    ];
+
+    pub fn name(self) -> &'static str {
+        match self {
+            Family::Mean => "mean",
+            Family::Ols => "ols",
+            Family::Ridge => "ridge",
+            Family::Lasso => "lasso",
+            Family::Poly => "poly",
+            Family::Knn => "knn",
+        }
+    }
+
+    /// The grid parameters the family takes (each must be given).
+    pub fn params(self) -> &'static [&'static str] {
+        match self {
+            Family::Mean | Family::Ols => &[],
+            Family::Ridge | Family::Lasso => &["lambda"],
+            Family::Poly => &["degree", "feature"],
+            Family::Knn => &["k"],
+        }
+    }
+
+    /// Whether `standardize` means anything for the family.
+    pub fn standardizes(self) -> bool {
+        matches!(self, Family::Ridge | Family::Lasso | Family::Knn)
+    }
+}
+
+/// One value of a grid parameter.
+#[derive(Debug, Clone, PartialEq)]
+pub enum ParamValue {
+    Float(f64),
+    Int(u64),
+    Text(String),
+}
+
+impl ParamValue {
+    pub fn to_json(&self) -> Value {
+        match self {
+            ParamValue::Float(f) => json!(f),
+            ParamValue::Int(i) => json!(i),
+            ParamValue::Text(s) => json!(s),
+        }
+    }
+    pub fn as_f64(&self) -> f64 {
+        match self {
+            ParamValue::Float(f) => *f,
+            ParamValue::Int(i) => *i as f64,
+            ParamValue::Text(_) => f64::NAN,
+        }
+    }
+    pub fn as_usize(&self) -> usize {
+        match self {
+            ParamValue::Int(i) => *i as usize,
+            ParamValue::Float(f) => *f as usize,
+            ParamValue::Text(_) => 0,
+        }
+    }
+    pub fn as_text(&self) -> &str {
+        match self {
+            ParamValue::Text(s) => s,
+            _ => "",
+        }
+    }
+}
+
+impl std::fmt::Display for ParamValue {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        match self {
+            ParamValue::Float(x) => write!(f, "{x}"),
+            ParamValue::Int(i) => write!(f, "{i}"),
+            ParamValue::Text(s) => write!(f, "{s}"),
+        }
+    }
+}
+
+/// One `[[model]]` table: a family and its grid (parameter name -> values, names sorted).
+#[derive(Debug, Clone)]
+pub struct ModelSpec {
+    pub family: Family,
+    pub standardize: bool,
+    pub grid: Vec<(String, Vec<ParamValue>)>,
+    pub loc: Loc,
+}
+
+impl ModelSpec {
+    /// The grid's product in a stable order: parameters by name, the last varying fastest,
+    /// values in the order written.
+    pub fn expand(&self) -> Vec<Vec<(String, ParamValue)>> {
+        let mut out: Vec<Vec<(String, ParamValue)>> = vec![Vec::new()];
+        for (name, values) in &self.grid {
+            let mut next = Vec::with_capacity(out.len() * values.len());
+            for prefix in &out {
+                for v in values {
+                    let mut p = prefix.clone();
+                    p.push((name.clone(), v.clone()));
+                    next.push(p);
+                }
+            }
+            out = next;
+        }
+        out
+    }
+}
+
+#[derive(Debug, Clone)]
+pub struct Spec {
+    pub name: String,
+    pub description: Option<String>,
+    pub data: DataSpec,
+    pub split: SplitSpec,
+    pub select: SelectSpec,
+    pub models: Vec<ModelSpec>,
+    /// The spec file, for error messages.
+    pub file: PathBuf,
+    /// The spec text verbatim, as stored in the ledger.
+    pub text: String,
+}
+
+/// Read and validate a spec file.
+pub fn load(path: &Path) -> Result<Spec> {
+    if path.is_dir() {
+        return Err(Error::spec(
+            path,
+            None,
+            "is a folder, not a spec file; pass the path of a .toml spec",
+        ));
+    }
+    let text = std::fs::read_to_string(path).map_err(|e| Error::Io {
+        action: "cannot read spec",
+        path: path.to_path_buf(),
+        source: e,
+    })?;
+    let base = path.parent().map(Path::to_path_buf).unwrap_or_default();
+    parse(&text, path, &base)
+}
+
+/// Validate spec text. `file` names it in errors; `base` resolves the data path.
+pub fn parse(text: &str, file: &Path, base: &Path) -> Result<Spec> {
+    let raw: RawSpec = toml::from_str(text).map_err(|e| toml_error(text, file, &e))?;
+    Check { text, file }.spec(raw, base)
+}
+
+fn toml_error(text: &str, file: &Path, e: &toml::de::Error) -> Error {
+    let loc = e.span().map(|s| Loc::of_offset(text, s.start));
+    let msg = e.message().trim().to_string();
+    let mut out = msg.clone();
+    // serde lists the valid keys as `a`, `b`; suggest the nearest to the unknown one.
+    if let Some(rest) = msg.strip_prefix("unknown field `") {
+        if let Some(end) = rest.find('`') {
+            let bad = &rest[..end];
+            let expected: Vec<&str> = rest[end..].split('`').skip(1).step_by(2).collect();
+            out = format!(
+                "unknown key '{bad}'{}; valid keys here: {}",
+                did_you_mean(bad, expected.iter().copied()),
+                expected.join(", ")
+            );
+        }
+    }
+    Error::spec(file, loc, out)
+}
+
+struct Check<'a> {
+    text: &'a str,
+    file: &'a Path,
+}
+
+const METRICS: [&str; 4] = ["rmse", "mse", "mae", "r2"];
+
+impl Check<'_> {
+    fn loc<T>(&self, s: &Spanned<T>) -> Loc {
+        Loc::of_offset(self.text, s.span().start)
+    }
+    fn err<T>(&self, at: &Spanned<T>, msg: impl Into<String>) -> Error {
+        Error::spec(self.file, Some(self.loc(at)), msg)
+    }
+    fn top(&self, msg: impl Into<String>) -> Error {
+        Error::spec(self.file, Some(Loc { line: 1, col: 1 }), msg)
+    }
+    fn named(&self, s: &Spanned<String>) -> Result<Named> {
+        if s.get_ref().trim().is_empty() {
+            return Err(self.err(s, "a column name must not be empty"));
+        }
+        Ok(Named {
+            name: s.get_ref().clone(),
+            loc: self.loc(s),
+        })
+    }
+    fn names(&self, v: &Option<Vec<Spanned<String>>>, key: &str) -> Result<Vec<Named>> {
+        let mut out: Vec<Named> = Vec::new();
+        for s in v.iter().flatten() {
+            let n = self.named(s)?;
+            if out.iter().any(|o| o.name == n.name) {
+                return Err(self.err(s, format!("column '{}' is listed twice in {key}", n.name)));
+            }
+            out.push(n);
+        }
+        Ok(out)
+    }
+
+    fn spec(&self, raw: RawSpec, base: &Path) -> Result<Spec> {
+        let name = raw.name.ok_or_else(|| {
+            self.top("missing required key 'name' (for example name = \"bay-yield\")")
+        })?;
+        let ok = !name.get_ref().is_empty()
+            && name
+                .get_ref()
+                .chars()
+                .all(|c| c.is_ascii_lowercase() || c.is_ascii_digit() || c == '-')
+            && !name.get_ref().starts_with('-');
+        if !ok {
+            return Err(self.err(&name, format!("name '{}' must use lowercase letters, digits and dashes only, and not start with a dash", name.get_ref())));
+        }
+        match raw.task.as_ref().map(|t| t.get_ref().as_str()) {
+            None => return Err(self.top("missing required key 'task' (task = \"regression\")")),
+            Some("regression") => {}
+            Some("classification") => {
+                let t = raw.task.as_ref().unwrap_or_else(|| unreachable!());
+                return Err(self.err(t, "task = \"classification\" is not supported by this version yet; only \"regression\" runs"));
+            }
+            Some(other) => {
+                let t = raw.task.as_ref().unwrap_or_else(|| unreachable!());
+                return Err(self.err(
+                    t,
+                    format!(
+                        "unknown task '{other}'; use \"regression\"{}",
+                        did_you_mean(other, ["regression", "classification"])
+                    ),
+                ));
+            }
+        }
+        let data_raw = raw
+            .data
+            .ok_or_else(|| self.top("missing [data] table (with at least path and target)"))?;
+        let data = self.data(&data_raw, base)?;
+        let split =
+            match &raw.split {
+                Some(s) => self.split(s)?,
+                None => return Err(self.top(
+                    "missing [split] table (for example method = \"random\", seed = 1, test = 0.2)",
+                )),
+            };
+        let select = self.select(raw.select.as_ref())?;
+        if raw.model.is_empty() {
+            return Err(self.top("no [[model]] table: add at least one, for example [[model]] kind = \"ridge\" lambda = [0.1, 1, 10]"));
+        }
+        let mut models: Vec<ModelSpec> = Vec::new();
+        for m in &raw.model {
+            let ms = self.model(m)?;
+            if let Some(prev) = models.iter().find(|p| {
+                p.family == ms.family && p.grid == ms.grid && p.standardize == ms.standardize
+            }) {
+                return Err(self.err(
+                    m,
+                    format!(
+                        "this [[model]] repeats the {} entry at line {}; remove one",
+                        ms.family.name(),
+                        prev.loc.line
+                    ),
+                ));
+            }
+            models.push(ms);
+        }
+        if select.rule == Rule::OneSe
+            && (split.validation > 0.0 || matches!(split.method, SplitMethod::Column { .. }))
+        {
+            if split.validation > 0.0 {
+                let s = raw.select.as_ref().and_then(|s| s.get_ref().rule.as_ref());
+                let msg = "rule = \"one-se\" needs the standard error across cross-validation folds; set [split] validation = 0 or use rule = \"min\"";
+                return Err(match s {
+                    Some(s) => self.err(s, msg),
+                    None => self.top(msg),
+                });
+            }
+        }
+        Ok(Spec {
+            name: name.into_inner(),
+            description: raw.description,
+            data,
+            split,
+            select,
+            models,
+            file: self.file.to_path_buf(),
+            text: self.text.to_string(),
+        })
+    }
+
+    fn data(&self, d: &Spanned<RawData>, base: &Path) -> Result<DataSpec> {
+        let r = d.get_ref();
+        let path = r.path.as_ref().ok_or_else(|| {
+            self.err(
+                d,
+                "[data] needs path = \"...\" (relative to this spec file)",
+            )
+        })?;
+        if path.get_ref().trim().is_empty() {
+            return Err(self.err(path, "data path is empty"));
+        }
+        let target = r
+            .target
+            .as_ref()
+            .ok_or_else(|| self.err(d, "[data] needs target = \"<column to predict>\""))?;
+        let missing = match r.missing.as_ref() {
+            None => Missing::Error,
+            Some(m) => match m.get_ref().as_str() {
+                "error" => Missing::Error,
+                "drop-rows" => Missing::DropRows,
+                "mean" => Missing::Mean,
+                other => {
+                    return Err(self.err(m, format!("missing = '{other}' is not one of \"error\", \"drop-rows\", \"mean\"{}", did_you_mean(other, ["error", "drop-rows", "mean"]))));
+                }
+            },
+        };
+        let sha256 = match &r.sha256 {
+            None => None,
+            Some(s) => {
+                let h = s.get_ref().to_ascii_lowercase();
+                if h.len() != 64 || !h.chars().all(|c| c.is_ascii_hexdigit()) {
+                    return Err(self.err(
+                        s,
+                        "sha256 must be 64 hexadecimal characters (as `probity check` prints)",
+                    ));
+                }
+                Some((h, self.loc(s)))
+            }
+        };
+        let features = match &r.features {
+            None => None,
+            Some(v) => {
+                if v.is_empty() {
+                    return Err(self.err(
+                        d,
+                        "features = [] selects no column; remove the key to use every column",
+                    ));
+                }
+                Some(self.names(&r.features, "features")?)
+            }
+        };
+        let target = self.named(target)?;
+        if let Some(f) = features
+            .as_ref()
+            .and_then(|f| f.iter().find(|f| f.name == target.name))
+        {
+            return Err(Error::spec(
+                self.file,
+                Some(f.loc),
+                format!("the target '{}' cannot also be a feature", f.name),
+            ));
+        }
+        Ok(DataSpec {
+            path: base.join(path.get_ref()),
+            path_text: path.get_ref().clone(),
+            target,
+            features,
+            ignore: self.names(&r.ignore, "ignore")?,
+            key: r.key.as_ref().map(|k| self.named(k)).transpose()?,
+            categorical: self.names(&r.categorical, "categorical")?,
+            sha256,
+            missing,
+        })
+    }
+
+    fn fraction(&self, v: &Option<Spanned<f64>>, key: &str) -> Result<f64> {
+        match v {
+            None => Ok(0.0),
+            Some(s) => {
+                let x = *s.get_ref();
+                if !(0.0..1.0).contains(&x) {
+                    return Err(self.err(s, format!("{key} = {x} must be a fraction in [0, 1)")));
+                }
+                Ok(x)
+            }
+        }
+    }
+
+    fn split(&self, s: &Spanned<RawSplit>) -> Result<SplitSpec> {
+        let r = s.get_ref();
+        let need = |v: &Option<Spanned<String>>, key: &str, method: &str| -> Result<Named> {
+            match v {
+                Some(c) => self.named(c),
+                None => Err(self.err(
+                    s,
+                    format!("method = \"{method}\" needs {key} = \"<column>\" in [split]"),
+                )),
+            }
+        };
+        let method_name = r
+            .method
+            .as_ref()
+            .map(|m| m.get_ref().as_str())
+            .unwrap_or("random");
+        let method = match method_name {
+            "random" => SplitMethod::Random,
+            "stratified" => {
+                let bins = match &r.bins {
+                    None => 5,
+                    Some(b) if *b.get_ref() >= 2 && *b.get_ref() <= 1000 => *b.get_ref() as usize,
+                    Some(b) => return Err(self.err(b, "bins must be an integer from 2 to 1000")),
+                };
+                SplitMethod::Stratified { bins }
+            }
+            "group" => SplitMethod::Group {
+                column: need(&r.group, "group", "group")?,
+            },
+            "time" => SplitMethod::Time {
+                order: need(&r.order, "order", "time")?,
+            },
+            "hash" => SplitMethod::Hash,
+            "column" => SplitMethod::Column {
+                column: need(&r.column, "column", "column")?,
+            },
+            other => {
+                let m = r.method.as_ref().unwrap_or_else(|| unreachable!());
+                let all = ["random", "stratified", "group", "time", "hash", "column"];
+                return Err(self.err(
+                    m,
+                    format!(
+                        "unknown split method '{other}'{}; use one of {}",
+                        did_you_mean(other, all),
+                        all.join(", ")
+                    ),
+                ));
+            }
+        };
+        // Keys that only one method reads are errors elsewhere: a silently ignored key misleads.
+        let stray: [(&Option<Spanned<String>>, &str, &str); 3] = [
+            (&r.group, "group", "group"),
+            (&r.order, "order", "time"),
+            (&r.column, "column", "column"),
+        ];
+        for (v, key, m) in stray {
+            if let Some(v) = v {
+                if method_name != m {
+                    return Err(self.err(v, format!("'{key}' is only read by method = \"{m}\"; remove it or change the method")));
+                }
+            }
+        }
+        if let Some(b) = &r.bins {
+            if method_name != "stratified" {
+                return Err(self.err(b, "'bins' is only read by method = \"stratified\""));
+            }
+        }
+        let seeded = !matches!(
+            method,
+            SplitMethod::Time { .. } | SplitMethod::Column { .. }
+        );
+        let seed = match &r.seed {
+            Some(v) if *v.get_ref() < 0 => return Err(self.err(v, "seed must be a non-negative integer")),
+            Some(v) => *v.get_ref() as u64,
+            None if seeded => return Err(self.err(s, format!("method = \"{method_name}\" draws at random: add seed = <integer> to [split] so the run can be repeated"))),
+            None => 0,
+        };
+        let test = self.fraction(&r.test, "test")?;
+        let validation = self.fraction(&r.validation, "validation")?;
+        if test + validation >= 1.0 {
+            let at = r
+                .validation
+                .as_ref()
+                .or(r.test.as_ref())
+                .unwrap_or_else(|| unreachable!());
+            return Err(self.err(
+                at,
+                format!(
+                    "test + validation = {} leaves no training rows; keep the sum below 1",
+                    test + validation
+                ),
+            ));
+        }
+        if matches!(method, SplitMethod::Column { .. }) {
+            for (v, key) in [(&r.test, "test"), (&r.validation, "validation")] {
+                if let Some(v) = v {
+                    return Err(self.err(v, format!("'{key}' is not read by method = \"column\": the column says which rows are test and validation")));
+                }
+            }
+        }
+        let folds = match &r.folds {
+            None => crate::split::Folds::K(5),
+            Some(f) => match f.get_ref() {
+                toml::Value::Integer(k) if *k >= 2 => crate::split::Folds::K(*k as usize),
+                toml::Value::String(s) if s == "loo" => crate::split::Folds::LeaveOneOut,
+                _ => {
+                    return Err(self.err(
+                        f,
+                        "folds must be an integer of at least 2, or \"loo\" for leave-one-out",
+                    ));
+                }
+            },
+        };
+        let repeats = match &r.repeats {
+            None => 1,
+            Some(v) if *v.get_ref() >= 1 && *v.get_ref() <= 1000 => *v.get_ref() as usize,
+            Some(v) => return Err(self.err(v, "repeats must be an integer from 1 to 1000")),
+        };
+        if repeats > 1 {
+            let v = r.repeats.as_ref().unwrap_or_else(|| unreachable!());
+            if matches!(method, SplitMethod::Time { .. }) {
+                return Err(self.err(v, "forward-chaining folds of method = \"time\" are the same every repeat; set repeats = 1"));
+            }
+            if folds == crate::split::Folds::LeaveOneOut {
+                return Err(self.err(
+                    v,
+                    "leave-one-out folds are the same every repeat; set repeats = 1",
+                ));
+            }
+            if validation > 0.0 {
+                return Err(self.err(v, "repeats applies to k-fold cross-validation; with a validation fraction set repeats = 1"));
+            }
+        }
+        if folds == crate::split::Folds::LeaveOneOut && matches!(method, SplitMethod::Time { .. }) {
+            let f = r.folds.as_ref().unwrap_or_else(|| unreachable!());
+            return Err(self.err(
+                f,
+                "method = \"time\" chains folds forward; give folds as an integer",
+            ));
+        }
+        Ok(SplitSpec {
+            method,
+            seed,
+            test,
+            validation,
+            folds,
+            repeats,
+            loc: self.loc(s),
+        })
+    }
+
+    fn select(&self, s: Option<&Spanned<RawSelect>>) -> Result<SelectSpec> {
+        let r = s.map(|s| s.get_ref());
+        let metric = match r.and_then(|r| r.metric.as_ref()) {
+            None => crate::metrics::Metric::Rmse,
+            Some(m) => crate::metrics::Metric::parse(m.get_ref()).ok_or_else(|| {
+                self.err(
+                    m,
+                    format!(
+                        "unknown metric '{}'{}; use one of {}",
+                        m.get_ref(),
+                        did_you_mean(m.get_ref(), METRICS),
+                        METRICS.join(", ")
+                    ),
+                )
+            })?,
+        };
+        let rule = match r.and_then(|r| r.rule.as_ref()) {
+            None => Rule::Min,
+            Some(v) => match v.get_ref().as_str() {
+                "min" => Rule::Min,
+                "one-se" => Rule::OneSe,
+                other => {
+                    return Err(self.err(
+                        v,
+                        format!(
+                            "unknown rule '{other}'; use \"min\" or \"one-se\"{}",
+                            did_you_mean(other, ["min", "one-se"])
+                        ),
+                    ));
+                }
+            },
+        };
+        Ok(SelectSpec { metric, rule })
+    }
+
+    fn model(&self, m: &Spanned<RawModel>) -> Result<ModelSpec> {
+        let r = m.get_ref();
+        let kind = r.kind.as_ref().ok_or_else(|| {
+            self.err(
+                m,
+                "[[model]] needs kind = \"...\" (mean, ols, ridge, lasso, poly, knn)",
+            )
+        })?;
+        let family = Family::ALL
+            .iter()
+            .copied()
+            .find(|f| f.name() == kind.get_ref())
+            .ok_or_else(|| {
+                let names: Vec<&str> = Family::ALL.iter().map(|f| f.name()).collect();
+                self.err(
+                    kind,
+                    format!(
+                        "unknown model kind '{}'{}; built-in kinds: {}",
+                        kind.get_ref(),
+                        did_you_mean(kind.get_ref(), names.iter().copied()),
+                        names.join(", ")
+                    ),
+                )
+            })?;
+        let given: [(&str, &Option<Spanned<toml::Value>>); 4] = [
+            ("degree", &r.degree),
+            ("feature", &r.feature),
+            ("k", &r.k),
+            ("lambda", &r.lambda),
+        ];
+        let mut grid = Vec::new();
+        for (name, v) in given {
+            let takes = family.params().contains(&name);
+            match (v, takes) {
+                (Some(v), false) => {
+                    let list = if family.params().is_empty() {
+                        "no parameters".to_string()
+                    } else {
+                        family.params().join(", ")
+                    };
+                    return Err(self.err(
+                        v,
+                        format!(
+                            "'{name}' is not a parameter of {}; it takes {list}",
+                            family.name()
+                        ),
+                    ));
+                }
+                (None, true) => {
+                    return Err(self.err(
+                        m,
+                        format!(
+                            "{} needs '{name}' (a value, a list, or {{ from, to, steps, scale }})",
+                            family.name()
+                        ),
+                    ));
+                }
+                (Some(v), true) => grid.push((name.to_string(), self.values(family, name, v)?)),
+                (None, false) => {}
+            }
+        }
+        if let Some(s) = &r.standardize {
+            if !family.standardizes() {
+                return Err(self.err(s, format!("'standardize' does not apply to {}; its predictions do not depend on feature scale", family.name())));
+            }
+        }
+        Ok(ModelSpec {
+            family,
+            standardize: r.standardize.as_ref().is_none_or(|s| *s.get_ref()),
+            grid,
+            loc: self.loc(m),
+        })
+    }
+
+    /// A parameter's values: one value, a list, or a `{ from, to, steps, scale }` range.
+    fn values(
+        &self,
+        family: Family,
+        name: &str,
+        v: &Spanned<toml::Value>,
+    ) -> Result<Vec<ParamValue>> {
+        let items: Vec<toml::Value> = match v.get_ref() {
+            toml::Value::Array(a) => a.clone(),
+            toml::Value::Table(t) => self.range(name, v, t)?,
+            other => vec![other.clone()],
+        };
+        if items.is_empty() {
+            return Err(self.err(
+                v,
+                format!("'{name}' has no values; the grid would be empty"),
+            ));
+        }
+        let mut out: Vec<ParamValue> = Vec::new();
+        for it in &items {
+            let pv = match (name, it) {
+                ("lambda", toml::Value::Float(x)) if x.is_finite() && *x >= 0.0 => {
+                    ParamValue::Float(*x)
+                }
+                ("lambda", toml::Value::Integer(i)) if *i >= 0 => ParamValue::Float(*i as f64),
+                ("lambda", _) => {
+                    return Err(self.err(
+                        v,
+                        format!(
+                            "{} lambda values must be finite numbers >= 0; got {it}",
+                            family.name()
+                        ),
+                    ));
+                }
+                ("k", toml::Value::Integer(i)) if *i >= 1 => ParamValue::Int(*i as u64),
+                ("k", toml::Value::Float(x)) if x.fract() == 0.0 && *x >= 1.0 => {
+                    ParamValue::Int(*x as u64)
+                }
+                ("k", _) => {
+                    return Err(self.err(v, format!("k values must be integers >= 1; got {it}")));
+                }
+                ("degree", toml::Value::Integer(i)) if (1..=20).contains(i) => {
+                    ParamValue::Int(*i as u64)
+                }
+                ("degree", toml::Value::Float(x))
+                    if x.fract() == 0.0 && (1.0..=20.0).contains(x) =>
+                {
+                    ParamValue::Int(*x as u64)
+                }
+                ("degree", _) => {
+                    return Err(self.err(
+                        v,
+                        format!("degree values must be integers from 1 to 20; got {it}"),
+                    ));
+                }
+                ("feature", toml::Value::String(s)) if !s.is_empty() => ParamValue::Text(s.clone()),
+                ("feature", _) => {
+                    return Err(
+                        self.err(v, format!("feature values must be column names; got {it}"))
+                    );
+                }
+                _ => {
+                    return Err(Error::Internal(format!(
+                        "no value rule for parameter {name}"
+                    )));
+                }
+            };
+            if out.contains(&pv) {
+                return Err(self.err(
+                    v,
+                    format!("'{name}' lists {pv} twice; each grid value must be distinct"),
+                ));
+            }
+            out.push(pv);
+        }
+        Ok(out)
+    }
+
+    fn range(
+        &self,
+        name: &str,
+        v: &Spanned<toml::Value>,
+        t: &toml::Table,
+    ) -> Result<Vec<toml::Value>> {
+        for k in t.keys() {
+            if !["from", "to", "steps", "scale"].contains(&k.as_str()) {
+                return Err(self.err(v, format!("unknown key '{k}' in the range for '{name}'{}; a range has from, to, steps, scale", did_you_mean(k, ["from", "to", "steps", "scale"]))));
+            }
+        }
+        let num = |k: &str| -> Result<f64> {
+            match t.get(k) {
+                Some(toml::Value::Float(x)) => Ok(*x),
+                Some(toml::Value::Integer(i)) => Ok(*i as f64),
+                _ => Err(self.err(v, format!("the range for '{name}' needs a number '{k}'"))),
+            }
+        };
+        let (from, to) = (num("from")?, num("to")?);
+        let steps = match t.get("steps") {
+            Some(toml::Value::Integer(s)) if (1..=10_000).contains(s) => *s as usize,
+            _ => {
+                return Err(self.err(
+                    v,
+                    format!("the range for '{name}' needs steps = an integer from 1 to 10000"),
+                ));
+            }
+        };
+        let log = match t.get("scale") {
+            None => false,
+            Some(toml::Value::String(s)) if s == "linear" => false,
+            Some(toml::Value::String(s)) if s == "log" => true,
+            _ => return Err(self.err(v, "scale must be \"log\" or \"linear\"")),
+        };
+        if log && (from <= 0.0 || to <= 0.0) {
+            return Err(self.err(v, "a log-scale range needs from > 0 and to > 0"));
+        }
+        if steps == 1 && from != to {
+            return Err(self.err(v, "steps = 1 needs from = to"));
+        }
+        let integer = name != "lambda";
+        let mut out: Vec<toml::Value> = Vec::new();
+        for i in 0..steps {
+            let x = if i == 0 {
+                from
+            } else if i + 1 == steps {
+                to
+            } else {
+                let f = i as f64 / (steps - 1) as f64;
+                if log {
+                    (from.ln() + f * (to.ln() - from.ln())).exp()
+                } else {
+                    from + f * (to - from)
+                }
+            };
+            if integer {
+                let r = toml::Value::Integer(x.round() as i64);
+                // Rounding can merge neighbouring values on a narrow integer range.
+                if !out.contains(&r) {
+                    out.push(r);
+                }
+            } else {
+                out.push(toml::Value::Float(x));
+            }
+        }
+        Ok(out)
+    }
+}
+
+impl Spec {
+    /// The spec's meaning as canonical JSON (defaults filled in, keys sorted, description
+    /// left out): two specs that run the same experiment have the same text here.
+    pub fn canonical(&self) -> String {
+        let names = |v: &[Named]| v.iter().map(|n| n.name.clone()).collect::<Vec<_>>();
+        let d = &self.data;
+        let s = &self.split;
+        let mut split = json!({
+            "method": s.method.name(),
+            "seed": s.seed,
+            "test": s.test,
+            "validation": s.validation,
+            "folds": match s.folds { crate::split::Folds::K(k) => json!(k), crate::split::Folds::LeaveOneOut => json!("loo") },
+            "repeats": s.repeats,
+        });
+        match &s.method {
+            SplitMethod::Stratified { bins } => split["bins"] = json!(bins),
+            SplitMethod::Group { column } | SplitMethod::Column { column } => {
+                split["column"] = json!(column.name)
+            }
+            SplitMethod::Time { order } => split["order"] = json!(order.name),
+            SplitMethod::Random | SplitMethod::Hash => {}
+        }
+        let models: Vec<Value> = self
+            .models
+            .iter()
+            .map(|m| {
+                let grid: serde_json::Map<String, Value> = m
+                    .grid
+                    .iter()
+                    .map(|(k, v)| {
+                        (
+                            k.clone(),
+                            Value::Array(v.iter().map(ParamValue::to_json).collect()),
+                        )
+                    })
+                    .collect();
+                json!({"kind": m.family.name(), "standardize": m.standardize, "params": grid})
+            })
+            .collect();
+        let v = json!({
+            "format": 1,
+            "name": self.name,
+            "task": "regression",
+            "data": {
+                "path": d.path_text,
+                "target": d.target.name,
+                "features": d.features.as_ref().map(|f| names(f)),
+                "ignore": names(&d.ignore),
+                "key": d.key.as_ref().map(|k| k.name.clone()),
+                "categorical": names(&d.categorical),
+                "sha256": d.sha256.as_ref().map(|s| s.0.clone()),
+                "missing": d.missing.as_str(),
+            },
+            "split": split,
+            "select": {"metric": self.select.metric.name(), "rule": match self.select.rule { Rule::Min => "min", Rule::OneSe => "one-se" }},
+            "models": models,
+        });
+        v.to_string()
+    }
+
+    /// SHA-256 of the canonical JSON, hex.
+    pub fn canonical_hash(&self) -> String {
+        hex(&Sha256::digest(self.canonical().as_bytes()))
+    }
+
+    /// The canonical split settings alone, as they enter the partition identity.
+    pub fn split_canonical(&self) -> String {
+        let v: Value = serde_json::from_str(&self.canonical()).unwrap_or(Value::Null);
+        let mut s = v["split"].clone();
+        s["key"] = v["data"]["key"].clone();
+        s["missing"] = v["data"]["missing"].clone();
+        s.to_string()
+    }
+}
+
+/// Lowercase hex of bytes.
+pub fn hex(bytes: &[u8]) -> String {
+    bytes.iter().map(|b| format!("{b:02x}")).collect()
+}
+
+#[cfg(test)]
+mod tests;

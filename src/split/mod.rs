@@ -1,0 +1,483 @@
+//! Partition assignment (train, validation, test) and fold generation.
+//!
+//! Everything here is a pure function of (rows, split settings, seed): no data values other
+//! than the columns the method needs, no clock, no global randomness. Row indices refer to the
+//! rows kept after missing-value handling, in file order.
+
+pub mod rng;
+
+use crate::error::{Error, Result};
+use rng::{Domain, shuffle, stream};
+use sha2::{Digest, Sha256};
+
+/// Which partition a row belongs to.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord)]
+pub enum Part {
+    Train,
+    Validation,
+    Test,
+}
+
+impl Part {
+    /// One byte per row in the ledger's compact assignment.
+    pub fn code(self) -> u8 {
+        match self {
+            Part::Train => b'r',
+            Part::Validation => b'v',
+            Part::Test => b't',
+        }
+    }
+}
+
+/// How many folds of the development rows.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Folds {
+    K(usize),
+    LeaveOneOut,
+}
+
+/// The split method, with the columns it needs already resolved to per-row values.
+#[derive(Debug, Clone)]
+pub enum Method {
+    Random,
+    /// Target binned into `bins` quantile bins (regression) and kept in proportion.
+    Stratified {
+        bins: usize,
+    },
+    /// Per-row group codes; a group never straddles partitions or folds.
+    Group {
+        groups: Vec<u32>,
+    },
+    /// Per-row order values; the last rows are test, folds chain forward.
+    Time {
+        order: Vec<f64>,
+    },
+    /// Per-row keys; test membership by a keyed hash, stable when rows are appended.
+    Hash {
+        keys: Vec<String>,
+    },
+    /// Per-row assignment read from a column.
+    Column {
+        parts: Vec<Part>,
+    },
+}
+
+/// Everything the split needs.
+#[derive(Debug, Clone)]
+pub struct SplitInput<'a> {
+    pub method: Method,
+    pub seed: u64,
+    pub test: f64,
+    pub validation: f64,
+    pub folds: Folds,
+    pub repeats: usize,
+    /// Target values (used by `stratified` only).
+    pub target: &'a [f64],
+}
+
+/// One fitting/scoring pair of row sets.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct Fold {
+    /// 0-based repeat.
+    pub repeat: usize,
+    /// 0-based fold within the repeat.
+    pub index: usize,
+    pub fit: Vec<usize>,
+    pub score: Vec<usize>,
+}
+
+/// The result of a split.
+#[derive(Debug, Clone)]
+pub struct Partition {
+    pub parts: Vec<Part>,
+    pub folds: Vec<Fold>,
+    /// True when a fixed validation partition is scored (no averaging over folds).
+    pub holdout: bool,
+}
+
+impl Partition {
+    pub fn rows_in(&self, p: Part) -> Vec<usize> {
+        (0..self.parts.len())
+            .filter(|&i| self.parts[i] == p)
+            .collect()
+    }
+    pub fn count(&self, p: Part) -> usize {
+        self.parts.iter().filter(|&&q| q == p).count()
+    }
+    /// Development rows: train and validation, in row order.
+    pub fn development(&self) -> Vec<usize> {
+        (0..self.parts.len())
+            .filter(|&i| self.parts[i] != Part::Test)
+            .collect()
+    }
+}
+
+/// Assign partitions and build folds.
+pub fn split(input: &SplitInput) -> Result<Partition> {
+    let n = input.target.len();
+    if n == 0 {
+        return Err(Error::Input("the data has no rows to split".into()));
+    }
+    let parts = assign(input, n)?;
+    let test_n = parts.iter().filter(|&&p| p == Part::Test).count();
+    if input.test > 0.0 && test_n == 0 {
+        return Err(Error::Input(format!(
+            "split: test = {} of {n} rows leaves no test row; raise test or set test = 0 to work without a sealed partition",
+            input.test
+        )));
+    }
+    let val: Vec<usize> = (0..n).filter(|&i| parts[i] == Part::Validation).collect();
+    let train: Vec<usize> = (0..n).filter(|&i| parts[i] == Part::Train).collect();
+    if train.is_empty() {
+        return Err(Error::Input(
+            "split: no training rows are left; lower test or validation".into(),
+        ));
+    }
+    if !val.is_empty() {
+        let folds = vec![Fold {
+            repeat: 0,
+            index: 0,
+            fit: train,
+            score: val,
+        }];
+        return Ok(Partition {
+            parts,
+            folds,
+            holdout: true,
+        });
+    }
+    if input.validation > 0.0 {
+        return Err(Error::Input(format!(
+            "split: validation = {} of {n} rows leaves no validation row; raise validation or set validation = 0 for k-fold cross-validation",
+            input.validation
+        )));
+    }
+    let folds = make_folds(input, &train)?;
+    Ok(Partition {
+        parts,
+        folds,
+        holdout: false,
+    })
+}
+
+/// Exactly `c` of `n` positions, spread evenly (systematic selection): position `i` is taken when
+/// `floor((i+1)c/n) > floor(ic/n)`. Any run of consecutive positions gets its share within one.
+fn systematic(n: usize, c: usize) -> Vec<bool> {
+    (0..n).map(|i| (i + 1) * c / n > i * c / n).collect()
+}
+
+fn count_of(frac: f64, n: usize) -> usize {
+    ((frac * n as f64).round() as usize).min(n)
+}
+
+fn assign(input: &SplitInput, n: usize) -> Result<Vec<Part>> {
+    let n_test = count_of(input.test, n);
+    let n_val = count_of(input.validation, n).min(n - n_test);
+    let mut parts = vec![Part::Train; n];
+    match &input.method {
+        Method::Random => {
+            let mut order: Vec<usize> = (0..n).collect();
+            shuffle(&mut stream(input.seed, Domain::Partition, 0), &mut order);
+            for (pos, &row) in order.iter().enumerate() {
+                parts[row] = if pos < n_test {
+                    Part::Test
+                } else if pos < n_test + n_val {
+                    Part::Validation
+                } else {
+                    Part::Train
+                };
+            }
+        }
+        Method::Stratified { bins } => {
+            let order = strata_order(
+                input.target,
+                *bins,
+                input.seed,
+                Domain::Partition,
+                0,
+                &(0..n).collect::<Vec<_>>(),
+            );
+            let take_test = systematic(n, n_test);
+            let rest: Vec<usize> = order
+                .iter()
+                .zip(&take_test)
+                .filter(|(_, t)| !**t)
+                .map(|(r, _)| *r)
+                .collect();
+            for (row, t) in order.iter().zip(&take_test) {
+                if *t {
+                    parts[*row] = Part::Test;
+                }
+            }
+            for (row, v) in rest.iter().zip(systematic(rest.len(), n_val)) {
+                if v {
+                    parts[*row] = Part::Validation;
+                }
+            }
+        }
+        Method::Group { groups } => {
+            let order = shuffled_groups(
+                groups,
+                input.seed,
+                Domain::Partition,
+                0,
+                &(0..n).collect::<Vec<_>>(),
+            );
+            let sizes = group_sizes(groups);
+            let mut to_test = Vec::new();
+            let mut to_val = Vec::new();
+            let (mut t, mut v) = (0usize, 0usize);
+            for &g in &order {
+                let s = sizes[g as usize];
+                // Take a group when that brings the count closer to the target, never further.
+                if 2 * (t + s) <= 2 * n_test + s && n_test > 0 {
+                    t += s;
+                    to_test.push(g);
+                } else if 2 * (v + s) <= 2 * n_val + s && n_val > 0 {
+                    v += s;
+                    to_val.push(g);
+                }
+            }
+            let mut which = vec![Part::Train; sizes.len()];
+            for g in to_test {
+                which[g as usize] = Part::Test;
+            }
+            for g in to_val {
+                which[g as usize] = Part::Validation;
+            }
+            for i in 0..n {
+                parts[i] = which[groups[i] as usize];
+            }
+        }
+        Method::Time { order } => {
+            let sorted = time_order(order, &(0..n).collect::<Vec<_>>());
+            for (pos, &row) in sorted.iter().enumerate() {
+                parts[row] = if pos >= n - n_test {
+                    Part::Test
+                } else if pos >= n - n_test - n_val {
+                    Part::Validation
+                } else {
+                    Part::Train
+                };
+            }
+        }
+        Method::Hash { keys } => {
+            for (i, key) in keys.iter().enumerate() {
+                let u = key_unit(input.seed, key);
+                parts[i] = if u < input.test {
+                    Part::Test
+                } else if u < input.test + input.validation {
+                    Part::Validation
+                } else {
+                    Part::Train
+                };
+            }
+        }
+        Method::Column { parts: given } => parts.clone_from(given),
+    }
+    Ok(parts)
+}
+
+/// A keyed hash of (seed, key) as a number in [0, 1): the first 8 bytes of
+/// SHA-256("probity-hash-split" || seed (8 bytes LE) || key), over 2^64.
+pub fn key_unit(seed: u64, key: &str) -> f64 {
+    let mut h = Sha256::new();
+    h.update(b"probity-hash-split");
+    h.update(seed.to_le_bytes());
+    h.update(key.as_bytes());
+    let d = h.finalize();
+    let mut b = [0u8; 8];
+    b.copy_from_slice(&d[..8]);
+    // 53 high bits give an exactly representable value in [0, 1).
+    (u64::from_be_bytes(b) >> 11) as f64 / (1u64 << 53) as f64
+}
+
+/// Rows ordered by (quantile bin of target, shuffled position): the order that systematic
+/// selection and round-robin dealing turn into stratified sets.
+fn strata_order(
+    target: &[f64],
+    bins: usize,
+    seed: u64,
+    domain: Domain,
+    index: u32,
+    rows: &[usize],
+) -> Vec<usize> {
+    let mut shuffled = rows.to_vec();
+    shuffle(&mut stream(seed, domain, index), &mut shuffled);
+    let mut by_value = rows.to_vec();
+    by_value.sort_by(|&a, &b| target[a].total_cmp(&target[b]).then(a.cmp(&b)));
+    let m = rows.len();
+    let mut bin_of = std::collections::BTreeMap::new();
+    for (rank, &row) in by_value.iter().enumerate() {
+        bin_of.insert(row, rank * bins / m.max(1));
+    }
+    let mut keyed: Vec<(usize, usize, usize)> = shuffled
+        .iter()
+        .enumerate()
+        .map(|(pos, &row)| (bin_of[&row], pos, row))
+        .collect();
+    keyed.sort_unstable();
+    keyed.into_iter().map(|(_, _, row)| row).collect()
+}
+
+fn group_sizes(groups: &[u32]) -> Vec<usize> {
+    let max = groups.iter().copied().max().map_or(0, |g| g as usize + 1);
+    let mut sizes = vec![0usize; max];
+    for &g in groups {
+        sizes[g as usize] += 1;
+    }
+    sizes
+}
+
+/// The distinct groups present among `rows`, in a seeded random order.
+fn shuffled_groups(
+    groups: &[u32],
+    seed: u64,
+    domain: Domain,
+    index: u32,
+    rows: &[usize],
+) -> Vec<u32> {
+    let mut present: Vec<u32> = rows.iter().map(|&r| groups[r]).collect();
+    present.sort_unstable();
+    present.dedup();
+    shuffle(&mut stream(seed, domain, index), &mut present);
+    present
+}
+
+/// Rows sorted by order value, ties by row index.
+fn time_order(order: &[f64], rows: &[usize]) -> Vec<usize> {
+    let mut sorted = rows.to_vec();
+    sorted.sort_by(|&a, &b| order[a].total_cmp(&order[b]).then(a.cmp(&b)));
+    sorted
+}
+
+/// Sizes of `k` near-equal contiguous chunks of `m` items (the first `m % k` get one more).
+fn chunk_sizes(m: usize, k: usize) -> Vec<usize> {
+    (0..k).map(|i| m / k + usize::from(i < m % k)).collect()
+}
+
+fn make_folds(input: &SplitInput, dev: &[usize]) -> Result<Vec<Fold>> {
+    let m = dev.len();
+    let k = match input.folds {
+        Folds::K(k) => k,
+        Folds::LeaveOneOut => m,
+    };
+    if k < 2 {
+        return Err(Error::Input(format!(
+            "split: folds = {k}; cross-validation needs at least 2 folds"
+        )));
+    }
+    if m < k {
+        return Err(Error::Input(format!(
+            "split: {m} development rows are fewer than the {k} folds; lower folds (or use folds = \"loo\")"
+        )));
+    }
+    let loo = k == m;
+    let repeats = if loo { 1 } else { input.repeats };
+    let mut folds = Vec::new();
+    for r in 0..repeats {
+        let ridx = r as u32;
+        // fold_of[pos in dev] for the exchangeable methods; time builds its own.
+        let fold_of: Vec<usize> = match &input.method {
+            Method::Time { order } => {
+                let sorted = time_order(order, dev);
+                let sizes = chunk_sizes(m, k + 1);
+                let mut start = 0;
+                let mut blocks = Vec::new();
+                for s in sizes {
+                    blocks.push(sorted[start..start + s].to_vec());
+                    start += s;
+                }
+                for i in 1..=k {
+                    let mut fit: Vec<usize> = blocks[..i].concat();
+                    fit.sort_unstable();
+                    let mut score = blocks[i].clone();
+                    score.sort_unstable();
+                    folds.push(Fold {
+                        repeat: r,
+                        index: i - 1,
+                        fit,
+                        score,
+                    });
+                }
+                continue;
+            }
+            Method::Stratified { bins } => {
+                let order = strata_order(input.target, *bins, input.seed, Domain::Folds, ridx, dev);
+                let mut f = std::collections::BTreeMap::new();
+                for (pos, row) in order.into_iter().enumerate() {
+                    f.insert(row, pos % k);
+                }
+                dev.iter().map(|r| f[r]).collect()
+            }
+            Method::Group { groups } => {
+                let order = shuffled_groups(groups, input.seed, Domain::Folds, ridx, dev);
+                if order.len() < k {
+                    return Err(Error::Input(format!(
+                        "split: the development rows hold {} groups, fewer than the {k} folds; lower folds or use another method",
+                        order.len()
+                    )));
+                }
+                let sizes = group_sizes(groups);
+                let mut by_size = order.clone();
+                // Largest groups first (stable, so ties keep the seeded order), each to the
+                // lightest fold so far, ties to the lower fold.
+                by_size.sort_by(|a, b| sizes[*b as usize].cmp(&sizes[*a as usize]));
+                let mut load = vec![0usize; k];
+                let mut fold_of_group = vec![usize::MAX; sizes.len()];
+                for g in by_size {
+                    let f = (0..k).min_by_key(|&f| (load[f], f)).unwrap_or(0);
+                    load[f] += sizes[g as usize];
+                    fold_of_group[g as usize] = f;
+                }
+                dev.iter()
+                    .map(|&r| fold_of_group[groups[r] as usize])
+                    .collect()
+            }
+            _ => {
+                let mut perm: Vec<usize> = (0..m).collect();
+                let mut rng = stream(input.seed, Domain::Folds, ridx);
+                if !loo {
+                    shuffle(&mut rng, &mut perm);
+                }
+                let mut f = vec![0usize; m];
+                let mut pos = 0;
+                for (fold, size) in chunk_sizes(m, k).into_iter().enumerate() {
+                    for &p in &perm[pos..pos + size] {
+                        f[p] = fold;
+                    }
+                    pos += size;
+                }
+                f
+            }
+        };
+        for fold in 0..k {
+            let mut fit = Vec::new();
+            let mut score = Vec::new();
+            for (pos, &row) in dev.iter().enumerate() {
+                if fold_of[pos] == fold {
+                    score.push(row);
+                } else {
+                    fit.push(row);
+                }
+            }
+            if score.is_empty() {
+                return Err(Error::Input(format!(
+                    "split: fold {} of repeat {} has no rows; lower folds",
+                    fold + 1,
+                    r + 1
+                )));
+            }
+            folds.push(Fold {
+                repeat: r,
+                index: fold,
+                fit,
+                score,
+            });
+        }
+    }
+    Ok(folds)
+}
+
+#[cfg(test)]
+mod tests;
