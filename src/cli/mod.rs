@@ -146,7 +146,7 @@ pub(crate) fn load_inputs(spec_path: &Path) -> Result<(crate::spec::Spec, crate:
     if !spec.data.path.exists() {
         return Err(Error::Spec {
             file: spec.file.clone(),
-            loc: None,
+            loc: Some(spec.data.path_loc),
             msg: format!(
                 "data file {} does not exist (path is relative to the spec file's folder)",
                 spec.data.path.display()

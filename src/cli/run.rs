@@ -37,9 +37,7 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
         started_at: started.to_rfc3339_opts(chrono::SecondsFormat::Millis, true),
         finished_at: finished.to_rfc3339_opts(chrono::SecondsFormat::Millis, true),
         tool_version: env!("CARGO_PKG_VERSION").to_string(),
-        user: std::env::var("USER")
-            .or_else(|_| std::env::var("USERNAME"))
-            .unwrap_or_else(|_| "unknown".into()),
+        user: user(),
         host: host(),
         threads,
         spec_path: absolute(&a.spec),
@@ -75,5 +73,20 @@ fn host() -> String {
         .ok()
         .filter(|s| !s.is_empty())
         .or_else(|| std::env::var("HOSTNAME").ok())
+        .unwrap_or_else(|| "unknown".into())
+}
+
+fn user() -> String {
+    for var in ["USER", "LOGNAME", "USERNAME"] {
+        if let Ok(u) = std::env::var(var) {
+            if !u.is_empty() {
+                return u;
+            }
+        }
+    }
+    // No login variable (a service or CI job): fall back to the numeric uid.
+    std::fs::read_to_string("/proc/self/status")
+        .ok()
+        .and_then(|s| s.lines().find(|l| l.starts_with("Uid:")).and_then(|l| l.split_whitespace().nth(1)).map(|u| format!("uid {u}")))
         .unwrap_or_else(|| "unknown".into())
 }

@@ -42,6 +42,8 @@ pub struct DataSpec {
     pub path: PathBuf,
     /// As written in the spec.
     pub path_text: String,
+    /// Where `path` is written, for "file not found".
+    pub path_loc: Loc,
     pub target: Named,
     pub features: Option<Vec<Named>>,
     pub ignore: Vec<Named>,
@@ -469,6 +471,7 @@ impl Check<'_> {
         Ok(DataSpec {
             path: base.join(path.get_ref()),
             path_text: path.get_ref().clone(),
+            path_loc: self.loc(path),
             target,
             features,
             ignore: self.names(&r.ignore, "ignore")?,

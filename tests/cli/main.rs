@@ -1,0 +1,8 @@
+//! The one integration-test binary: drives `probity` end to end and runs the reference checks.
+
+mod bad_input;
+mod fixtures;
+mod reference;
+mod run;
+mod tidy;
+mod util;

@@ -1,0 +1,91 @@
+//! Helpers for driving the binary: fresh temp folders, running commands, reading the ledger.
+
+use std::path::{Path, PathBuf};
+use std::process::Output;
+use std::sync::atomic::{AtomicUsize, Ordering};
+
+static COUNTER: AtomicUsize = AtomicUsize::new(0);
+
+/// A path under tests/reference/.
+pub fn reference(name: &str) -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR")).join("tests").join("reference").join(name)
+}
+
+/// A fresh, empty working folder for one test.
+pub struct Dir {
+    pub path: PathBuf,
+    _tmp: tempfile::TempDir,
+}
+
+impl Dir {
+    pub fn new(name: &str) -> Dir {
+        let n = COUNTER.fetch_add(1, Ordering::SeqCst);
+        let tmp = tempfile::Builder::new().prefix(&format!("probity-{name}-{n}-")).tempdir().unwrap();
+        Dir { path: tmp.path().to_path_buf(), _tmp: tmp }
+    }
+
+    pub fn write(&self, name: &str, text: &str) -> PathBuf {
+        let p = self.path.join(name);
+        if let Some(d) = p.parent() {
+            std::fs::create_dir_all(d).unwrap();
+        }
+        std::fs::write(&p, text).unwrap();
+        p
+    }
+
+    pub fn copy(&self, from: &Path, name: &str) -> PathBuf {
+        let p = self.path.join(name);
+        std::fs::copy(from, &p).unwrap();
+        p
+    }
+
+    /// Run probity here with the ledger at .probity/ledger.sqlite (the default).
+    pub fn probity(&self, args: &[&str]) -> Run {
+        let mut cmd = std::process::Command::new(env!("CARGO_BIN_EXE_probity"));
+        cmd.current_dir(&self.path).args(args).env_remove("PROBITY_LEDGER");
+        let out = cmd.output().unwrap();
+        Run { args: args.iter().map(|s| s.to_string()).collect(), cwd: self.path.clone(), out }
+    }
+
+    pub fn ledger(&self) -> PathBuf {
+        self.path.join(".probity").join("ledger.sqlite")
+    }
+
+    /// Row counts of every ledger table (empty when there is no ledger yet).
+    pub fn counts(&self) -> Vec<(String, i64)> {
+        if !self.ledger().exists() {
+            return Vec::new();
+        }
+        let l = probity::ledger::Ledger::open(&self.ledger(), false).unwrap();
+        l.counts().unwrap().into_iter().collect()
+    }
+}
+
+pub struct Run {
+    pub args: Vec<String>,
+    pub cwd: PathBuf,
+    pub out: Output,
+}
+
+impl Run {
+    pub fn code(&self) -> i32 {
+        self.out.status.code().unwrap_or(-1)
+    }
+    pub fn stdout(&self) -> String {
+        String::from_utf8_lossy(&self.out.stdout).into_owned()
+    }
+    pub fn stderr(&self) -> String {
+        String::from_utf8_lossy(&self.out.stderr).into_owned()
+    }
+    fn describe(&self) -> String {
+        format!("probity {:?} in {}\nstatus {}\nstdout:\n{}\nstderr:\n{}", self.args, self.cwd.display(), self.code(), self.stdout(), self.stderr())
+    }
+    /// Assert the exit code and return self.
+    pub fn expect(self, code: i32) -> Run {
+        assert_eq!(self.code(), code, "{}", self.describe());
+        self
+    }
+    pub fn json(&self) -> serde_json::Value {
+        serde_json::from_str(&self.stdout()).unwrap_or_else(|e| panic!("not JSON ({e}): {}", self.describe()))
+    }
+}
