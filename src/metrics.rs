@@ -128,7 +128,7 @@ mod tests {
         let (m, se) = mean_se(&[Some(1.0), Some(2.0), Some(3.0), None]);
         assert_eq!(m, Some(2.0));
         // sd = 1, n = 3
-        assert_eq!(se, Some(1.0 / 3f64.sqrt()));
+        assert_eq!(se, Some((1.0f64 / 3.0).sqrt()));
         assert_eq!(mean_se(&[Some(5.0)]), (Some(5.0), None));
     }
 }

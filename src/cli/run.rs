@@ -87,6 +87,11 @@ fn user() -> String {
     // No login variable (a service or CI job): fall back to the numeric uid.
     std::fs::read_to_string("/proc/self/status")
         .ok()
-        .and_then(|s| s.lines().find(|l| l.starts_with("Uid:")).and_then(|l| l.split_whitespace().nth(1)).map(|u| format!("uid {u}")))
+        .and_then(|s| {
+            s.lines()
+                .find(|l| l.starts_with("Uid:"))
+                .and_then(|l| l.split_whitespace().nth(1))
+                .map(|u| format!("uid {u}"))
+        })
         .unwrap_or_else(|| "unknown".into())
 }

@@ -118,7 +118,7 @@ pub fn parse(bytes: &[u8], path: &Path, sha256: String, text_columns: &[&str]) -
         .flexible(false)
         .from_reader(body);
     let csv_err = |e: csv::Error| -> Error {
-        let line = e.position().map(|p| p.line());
+        let line = e.position().map(|p| line_at(body, p.byte() as usize));
         let msg = match e.kind() {
             csv::ErrorKind::UnequalLengths {
                 expected_len, len, ..
@@ -160,9 +160,25 @@ pub fn parse(bytes: &[u8], path: &Path, sha256: String, text_columns: &[&str]) -
     }
     let mut cells: Vec<Vec<String>> = vec![Vec::new(); headers.len()];
     let mut lines = Vec::new();
+    // Line numbers are counted here from byte offsets: the reader's own count lags by one after
+    // a CRLF line end, and users look rows up by line.
+    let (mut counted_to, mut line) = (0usize, 1u64);
+    let mut line_of = |offset: usize| -> u64 {
+        let mut at = offset.min(body.len());
+        line += body[counted_to..at].iter().filter(|&&b| b == b'\n').count() as u64;
+        counted_to = at;
+        while at < body.len() && (body[at] == b'\r' || body[at] == b'\n') {
+            if body[at] == b'\n' {
+                line += 1;
+            }
+            at += 1;
+        }
+        counted_to = counted_to.max(at);
+        line
+    };
     for rec in rdr.records() {
         let rec = rec.map_err(csv_err)?;
-        lines.push(rec.position().map_or(0, |p| p.line()));
+        lines.push(rec.position().map_or(0, |p| line_of(p.byte() as usize)));
         for (c, f) in rec.iter().enumerate() {
             cells[c].push(f.trim().to_string());
         }
@@ -188,6 +204,19 @@ pub fn parse(bytes: &[u8], path: &Path, sha256: String, text_columns: &[&str]) -
         columns,
         lines,
     })
+}
+
+/// The 1-based line of the record starting at `offset` (line ends before it are skipped).
+fn line_at(body: &[u8], offset: usize) -> u64 {
+    let mut at = offset.min(body.len());
+    let mut line = 1 + body[..at].iter().filter(|&&b| b == b'\n').count() as u64;
+    while at < body.len() && (body[at] == b'\r' || body[at] == b'\n') {
+        if body[at] == b'\n' {
+            line += 1;
+        }
+        at += 1;
+    }
+    line
 }
 
 /// A finite number, or the reason it is not one.
@@ -289,6 +318,8 @@ mod tests {
     fn refuses_bad_files_with_place() {
         let e = p("a,b\n1,2\n3\n").unwrap_err().to_string();
         assert!(e.contains("t.csv:3") && e.contains("fields"), "{e}");
+        let e = p("a,b\r\n1,2\r\n3,4\r\n5\r\n").unwrap_err().to_string();
+        assert!(e.contains("t.csv:4") && e.contains("fields"), "{e}");
         let e = p("a,a\n1,2\n").unwrap_err().to_string();
         assert!(e.contains("twice"), "{e}");
         let e = p("a,b\n1,2\n2,3\nzz,4\n").unwrap_err().to_string();

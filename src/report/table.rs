@@ -94,7 +94,7 @@ pub fn leaderboard(d: &RunDetail, limit: Option<usize>) -> String {
         d.rule
     ));
     if d.best != d.summary.selected {
-        out.push_str("; best = lowest mean error");
+        out.push_str("; best = best mean score");
     }
     out.push('\n');
     if shown < rows.len() {

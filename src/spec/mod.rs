@@ -270,7 +270,7 @@ fn toml_error(text: &str, file: &Path, e: &toml::de::Error) -> Error {
     if let Some(rest) = msg.strip_prefix("unknown field `") {
         if let Some(end) = rest.find('`') {
             let bad = &rest[..end];
-            let expected: Vec<&str> = rest[end..].split('`').skip(1).step_by(2).collect();
+            let expected: Vec<&str> = rest[end..].split('`').skip(2).step_by(2).collect();
             out = format!(
                 "unknown key '{bad}'{}; valid keys here: {}",
                 did_you_mean(bad, expected.iter().copied()),
@@ -711,25 +711,29 @@ impl Check<'_> {
             ("k", &r.k),
             ("lambda", &r.lambda),
         ];
+        // Keys the family does not take are reported before keys it lacks: a misplaced key is
+        // the likelier mistake.
+        for (name, v) in given {
+            if let (Some(v), false) = (v, family.params().contains(&name)) {
+                let list = if family.params().is_empty() {
+                    "no parameters".to_string()
+                } else {
+                    family.params().join(", ")
+                };
+                return Err(self.err(
+                    v,
+                    format!(
+                        "'{name}' is not a parameter of {}; it takes {list}",
+                        family.name()
+                    ),
+                ));
+            }
+        }
         let mut grid = Vec::new();
         for (name, v) in given {
-            let takes = family.params().contains(&name);
-            match (v, takes) {
-                (Some(v), false) => {
-                    let list = if family.params().is_empty() {
-                        "no parameters".to_string()
-                    } else {
-                        family.params().join(", ")
-                    };
-                    return Err(self.err(
-                        v,
-                        format!(
-                            "'{name}' is not a parameter of {}; it takes {list}",
-                            family.name()
-                        ),
-                    ));
-                }
-                (None, true) => {
+            match v {
+                Some(v) => grid.push((name.to_string(), self.values(family, name, v)?)),
+                None if family.params().contains(&name) => {
                     return Err(self.err(
                         m,
                         format!(
@@ -738,8 +742,7 @@ impl Check<'_> {
                         ),
                     ));
                 }
-                (Some(v), true) => grid.push((name.to_string(), self.values(family, name, v)?)),
-                (None, false) => {}
+                None => {}
             }
         }
         if let Some(s) = &r.standardize {
@@ -882,11 +885,14 @@ impl Check<'_> {
                 to
             } else {
                 let f = i as f64 / (steps - 1) as f64;
-                if log {
-                    (from.ln() + f * (to.ln() - from.ln())).exp()
+                let x = if log {
+                    10f64.powf(from.log10() + f * (to.log10() - from.log10()))
                 } else {
                     from + f * (to - from)
-                }
+                };
+                // 15 significant digits drop the last-bit noise of pow and interpolation, so a
+                // decade grid reads 0.01, 0.1, 1 and the stored values are what the user sees.
+                format!("{x:.14e}").parse::<f64>().unwrap_or(x)
             };
             if integer {
                 let r = toml::Value::Integer(x.round() as i64);

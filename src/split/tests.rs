@@ -1,1 +1,413 @@
+//! Split tests: exact pinned partitions for fixed seeds (a change in the stream, the bounded
+//! draw or the shuffle fails here), and properties checked over many seeds and sizes.
 
+use super::*;
+
+fn input(
+    method: Method,
+    y: &[f64],
+    test: f64,
+    validation: f64,
+    folds: Folds,
+    repeats: usize,
+    seed: u64,
+) -> SplitInput<'_> {
+    SplitInput {
+        method,
+        seed,
+        test,
+        validation,
+        folds,
+        repeats,
+        target: y,
+    }
+}
+
+fn ys(n: usize) -> Vec<f64> {
+    // A deterministic, unsorted target.
+    (0..n).map(|i| ((i * 37) % 101) as f64).collect()
+}
+
+fn codes(p: &Partition) -> String {
+    p.parts.iter().map(|q| q.code() as char).collect()
+}
+
+/// Small deterministic generator for property-test inputs (splitmix64; not used by the tool).
+struct Gen(u64);
+impl Gen {
+    fn next(&mut self) -> u64 {
+        self.0 = self.0.wrapping_add(0x9E3779B97F4A7C15);
+        let mut z = self.0;
+        z = (z ^ (z >> 30)).wrapping_mul(0xBF58476D1CE4E5B9);
+        z = (z ^ (z >> 27)).wrapping_mul(0x94D049BB133111EB);
+        z ^ (z >> 31)
+    }
+    fn below(&mut self, n: u64) -> u64 {
+        self.next() % n
+    }
+}
+
+#[test]
+fn pinned_random_partition_and_folds() {
+    let y = ys(20);
+    let p = split(&input(Method::Random, &y, 0.25, 0.0, Folds::K(3), 1, 2026)).unwrap();
+    assert_eq!(codes(&p), PINNED_RANDOM);
+    let f0: Vec<usize> = p.folds[0].score.clone();
+    assert_eq!(f0, PINNED_RANDOM_FOLD0);
+}
+
+const PINNED_RANDOM: &str = "rrtrttrrrrrrrrttrrrr";
+const PINNED_RANDOM_FOLD0: [usize; 5] = [0, 6, 8, 16, 17];
+
+#[test]
+fn pinned_stratified_group_time_hash() {
+    let y = ys(24);
+    let s = split(&input(
+        Method::Stratified { bins: 4 },
+        &y,
+        0.25,
+        0.0,
+        Folds::K(3),
+        1,
+        5,
+    ))
+    .unwrap();
+    let groups: Vec<u32> = (0..24).map(|i| (i % 6) as u32).collect();
+    let g = split(&input(
+        Method::Group { groups },
+        &y,
+        0.34,
+        0.0,
+        Folds::K(2),
+        1,
+        5,
+    ))
+    .unwrap();
+    let order: Vec<f64> = (0..24).map(|i| ((i * 7) % 24) as f64).collect();
+    let t = split(&input(
+        Method::Time { order },
+        &y,
+        0.25,
+        0.0,
+        Folds::K(3),
+        1,
+        0,
+    ))
+    .unwrap();
+    let keys: Vec<String> = (0..24).map(|i| format!("row-{i}")).collect();
+    let h = split(&input(
+        Method::Hash { keys },
+        &y,
+        0.25,
+        0.0,
+        Folds::K(3),
+        1,
+        5,
+    ))
+    .unwrap();
+    assert_eq!([codes(&s), codes(&g), codes(&t), codes(&h)], PINNED_OTHERS);
+}
+
+const PINNED_OTHERS: [&str; 4] = [
+    "rrrtrrrtrrrrttrrttrrrrrr",
+    "rtrrtrrtrrtrrtrrtrrtrrtr",
+    "rrrtrrtrrrtrrtrrrtrrtrrr",
+    "rrrrtrrttrrrrrtrrrtrttrr",
+];
+
+#[test]
+fn the_hash_unit_is_pinned() {
+    // SHA-256("probity-hash-split" || 7u64 LE || "abc"), top 53 bits of the first 8 bytes.
+    assert_eq!(key_unit(7, "abc"), PINNED_UNIT);
+}
+
+/// Checked independently with Python hashlib.
+const PINNED_UNIT: f64 = 0.07996718331733887;
+
+/// Every repeat's score sets partition the development rows; fit and score never meet; no
+/// test row is in any fold.
+fn check_folds(p: &Partition) {
+    let dev: Vec<usize> = p.development();
+    let repeats = p.folds.iter().map(|f| f.repeat).max().unwrap_or(0) + 1;
+    for r in 0..repeats {
+        let mut seen: Vec<usize> = Vec::new();
+        for f in p.folds.iter().filter(|f| f.repeat == r) {
+            assert!(!f.score.is_empty());
+            for i in &f.fit {
+                assert!(!f.score.contains(i));
+                assert_ne!(p.parts[*i], Part::Test);
+            }
+            for i in &f.score {
+                assert_ne!(p.parts[*i], Part::Test);
+            }
+            if !p.holdout {
+                let mut all: Vec<usize> = f.fit.iter().chain(&f.score).copied().collect();
+                all.sort_unstable();
+                assert!(all.iter().all(|i| dev.contains(i)));
+            }
+            seen.extend(&f.score);
+        }
+        seen.sort_unstable();
+        if !p.holdout {
+            assert_eq!(
+                seen, dev,
+                "score sets of repeat {r} cover the development rows once"
+            );
+        }
+    }
+}
+
+#[test]
+fn property_random_counts_and_folds() {
+    let mut g = Gen(1);
+    for _ in 0..200 {
+        let n = 10 + g.below(300) as usize;
+        let test = g.below(40) as f64 / 100.0;
+        let k = 2 + g.below(8) as usize;
+        let y = ys(n);
+        let seed = g.next();
+        let r = split(&input(Method::Random, &y, test, 0.0, Folds::K(k), 2, seed));
+        let Ok(p) = r else { continue };
+        assert_eq!(p.count(Part::Test), ((test * n as f64).round()) as usize);
+        check_folds(&p);
+        let sizes: Vec<usize> = p
+            .folds
+            .iter()
+            .filter(|f| f.repeat == 0)
+            .map(|f| f.score.len())
+            .collect();
+        assert!(
+            sizes.iter().max().unwrap() - sizes.iter().min().unwrap() <= 1,
+            "{sizes:?}"
+        );
+        // Same inputs, same result.
+        let again = split(&input(Method::Random, &y, test, 0.0, Folds::K(k), 2, seed)).unwrap();
+        assert_eq!(p.parts, again.parts);
+        assert_eq!(p.folds, again.folds);
+    }
+}
+
+#[test]
+fn property_group_never_straddles() {
+    let mut g = Gen(2);
+    for _ in 0..200 {
+        let n = 20 + g.below(200) as usize;
+        let ng = 3 + g.below(40) as u64;
+        let groups: Vec<u32> = (0..n).map(|_| g.below(ng) as u32).collect();
+        let y = ys(n);
+        let k = 2 + g.below(4) as usize;
+        let Ok(p) = split(&input(
+            Method::Group {
+                groups: groups.clone(),
+            },
+            &y,
+            0.2,
+            0.0,
+            Folds::K(k),
+            1,
+            g.next(),
+        )) else {
+            continue;
+        };
+        for a in 0..n {
+            for b in 0..n {
+                if groups[a] == groups[b] {
+                    assert_eq!(
+                        p.parts[a], p.parts[b],
+                        "group {} straddles partitions",
+                        groups[a]
+                    );
+                }
+            }
+        }
+        for f in &p.folds {
+            for i in &f.fit {
+                assert!(
+                    f.score.iter().all(|j| groups[*j] != groups[*i]),
+                    "a group straddles a fold"
+                );
+            }
+        }
+        check_folds(&p);
+    }
+}
+
+#[test]
+fn property_time_never_fits_on_the_future() {
+    let mut g = Gen(3);
+    for _ in 0..200 {
+        let n = 20 + g.below(200) as usize;
+        let order: Vec<f64> = (0..n).map(|_| g.below(50) as f64).collect();
+        let y = ys(n);
+        let k = 2 + g.below(5) as usize;
+        let Ok(p) = split(&input(
+            Method::Time {
+                order: order.clone(),
+            },
+            &y,
+            0.2,
+            0.0,
+            Folds::K(k),
+            1,
+            0,
+        )) else {
+            continue;
+        };
+        let dev_max = p
+            .development()
+            .iter()
+            .map(|&i| order[i])
+            .fold(f64::MIN, f64::max);
+        for i in p.rows_in(Part::Test) {
+            assert!(
+                order[i] >= dev_max,
+                "a test row is earlier than a development row"
+            );
+        }
+        for f in &p.folds {
+            let fit_max = f.fit.iter().map(|&i| order[i]).fold(f64::MIN, f64::max);
+            let score_min = f.score.iter().map(|&i| order[i]).fold(f64::MAX, f64::min);
+            assert!(
+                fit_max <= score_min,
+                "fold {} fits on rows later than it scores",
+                f.index
+            );
+        }
+    }
+}
+
+#[test]
+fn property_hash_membership_is_stable_when_rows_are_appended() {
+    let mut g = Gen(4);
+    for _ in 0..50 {
+        let n = 50 + g.below(200) as usize;
+        let extra = 1 + g.below(100) as usize;
+        let seed = g.next();
+        let keys: Vec<String> = (0..n + extra)
+            .map(|i| format!("bay-{}-{}", i, g.below(1000)))
+            .collect();
+        let y = ys(n + extra);
+        let small = split(&input(
+            Method::Hash {
+                keys: keys[..n].to_vec(),
+            },
+            &y[..n],
+            0.2,
+            0.1,
+            Folds::K(3),
+            1,
+            seed,
+        ))
+        .unwrap();
+        let big = split(&input(
+            Method::Hash { keys: keys.clone() },
+            &y,
+            0.2,
+            0.1,
+            Folds::K(3),
+            1,
+            seed,
+        ))
+        .unwrap();
+        for i in 0..n {
+            assert_eq!(
+                small.parts[i], big.parts[i],
+                "row {i} changed partition when rows were appended"
+            );
+        }
+    }
+}
+
+#[test]
+fn property_stratified_keeps_bins_balanced() {
+    let mut g = Gen(5);
+    for _ in 0..100 {
+        let n = 40 + g.below(300) as usize;
+        let y: Vec<f64> = (0..n).map(|_| g.below(10_000) as f64).collect();
+        let bins = 2 + g.below(6) as usize;
+        let k = 2 + g.below(6) as usize;
+        let p = split(&input(
+            Method::Stratified { bins },
+            &y,
+            0.2,
+            0.0,
+            Folds::K(k),
+            1,
+            g.next(),
+        ))
+        .unwrap();
+        check_folds(&p);
+        // Bin of each row among all rows, as the split computes it.
+        let mut by: Vec<usize> = (0..n).collect();
+        by.sort_by(|&a, &b| y[a].total_cmp(&y[b]).then(a.cmp(&b)));
+        let mut bin = vec![0; n];
+        for (rank, &r) in by.iter().enumerate() {
+            bin[r] = rank * bins / n;
+        }
+        for b in 0..bins {
+            let in_bin = (0..n).filter(|&r| bin[r] == b).count() as f64;
+            let in_test = (0..n)
+                .filter(|&r| bin[r] == b && p.parts[r] == Part::Test)
+                .count() as f64;
+            assert!(
+                (in_test - in_bin * p.count(Part::Test) as f64 / n as f64).abs() <= 1.0 + 1e-9,
+                "bin {b}: {in_test} of {in_bin} in test"
+            );
+        }
+    }
+}
+
+#[test]
+fn validation_fraction_gives_one_holdout_fold() {
+    let y = ys(100);
+    let p = split(&input(Method::Random, &y, 0.2, 0.2, Folds::K(5), 1, 9)).unwrap();
+    assert!(p.holdout);
+    assert_eq!(p.folds.len(), 1);
+    assert_eq!(
+        (
+            p.count(Part::Train),
+            p.count(Part::Validation),
+            p.count(Part::Test)
+        ),
+        (60, 20, 20)
+    );
+    check_folds(&p);
+}
+
+#[test]
+fn leave_one_out_and_impossible_splits() {
+    let y = ys(7);
+    let p = split(&input(
+        Method::Random,
+        &y,
+        0.0,
+        0.0,
+        Folds::LeaveOneOut,
+        1,
+        1,
+    ))
+    .unwrap();
+    assert_eq!(p.folds.len(), 7);
+    assert!(
+        p.folds
+            .iter()
+            .all(|f| f.score.len() == 1 && f.fit.len() == 6)
+    );
+    let e = split(&input(Method::Random, &y, 0.0, 0.0, Folds::K(10), 1, 1)).unwrap_err();
+    assert!(e.to_string().contains("fewer than the 10 folds"), "{e}");
+    let groups = vec![0, 0, 1, 1, 1, 0, 1];
+    let e = split(&input(
+        Method::Group { groups },
+        &y,
+        0.0,
+        0.0,
+        Folds::K(3),
+        1,
+        1,
+    ))
+    .unwrap_err();
+    assert!(
+        e.to_string().contains("groups, fewer than the 3 folds"),
+        "{e}"
+    );
+}

@@ -26,7 +26,11 @@ fn json(name: &str) -> Value {
 }
 
 fn rel(a: f64, b: f64) -> f64 {
-    if b == 0.0 { a.abs() } else { ((a - b) / b).abs() }
+    if b == 0.0 {
+        a.abs()
+    } else {
+        ((a - b) / b).abs()
+    }
 }
 
 fn assert_rel(what: &str, got: f64, want: f64, tol: f64) {
@@ -36,7 +40,11 @@ fn assert_rel(what: &str, got: f64, want: f64, tol: f64) {
         let e = w.entry(key).or_insert(0.0);
         *e = e.max(rel(got, want));
     });
-    assert!(rel(got, want) <= tol, "{what}: got {got:e}, want {want:e} (relative error {:e} > {tol:e})", rel(got, want));
+    assert!(
+        rel(got, want) <= tol,
+        "{what}: got {got:e}, want {want:e} (relative error {:e} > {tol:e})",
+        rel(got, want)
+    );
 }
 
 /// Log relative error, NIST's measure of agreement in significant digits.
@@ -45,12 +53,27 @@ fn lre(est: f64, cert: f64) -> f64 {
     if r == 0.0 { 16.0 } else { -r.log10() }
 }
 
-fn fit(table: &Table, features: &[usize], rows: &[usize], y: &[f64], family: Family, params: Vec<(String, ParamValue)>) -> (Fitted, Encoder) {
-    let spec = ModelSpec { family, standardize: true, grid: Vec::new(), loc: Default::default() };
+fn fit(
+    table: &Table,
+    features: &[usize],
+    rows: &[usize],
+    y: &[f64],
+    family: Family,
+    params: Vec<(String, ParamValue)>,
+) -> (Fitted, Encoder) {
+    let spec = ModelSpec {
+        family,
+        standardize: true,
+        grid: Vec::new(),
+        loc: Default::default(),
+    };
     let model = model_for(&spec);
     let enc = Encoder::fit(table, features, rows, model.drops_first_level(), false);
     let mut notes = Notes::new();
-    let x = Design { x: enc.transform(table, rows, &mut notes).unwrap(), names: enc.names() };
+    let x = Design {
+        x: enc.transform(table, rows, &mut notes).unwrap(),
+        names: enc.names(),
+    };
     (model.fit(&x, y, &params, &mut notes).unwrap(), enc)
 }
 
@@ -70,14 +93,25 @@ fn longley_ols_matches_nist_certified_values() {
     let rows: Vec<usize> = (0..table.n_rows()).collect();
     let features: Vec<usize> = (1..=6).collect();
     let (f, enc) = fit(&table, &features, &rows, &y, Family::Ols, vec![]);
-    let Fitted::Linear { intercept, weights, .. } = &f else { panic!("ols gives a linear model") };
+    let Fitted::Linear {
+        intercept, weights, ..
+    } = &f
+    else {
+        panic!("ols gives a linear model")
+    };
     let mut worst = lre(*intercept, cert["intercept"].as_f64().unwrap());
     for (j, name) in ["x1", "x2", "x3", "x4", "x5", "x6"].iter().enumerate() {
-        worst = worst.min(lre(weights[j], cert["coefficients"][name].as_f64().unwrap()));
+        worst = worst.min(lre(
+            weights[j],
+            cert["coefficients"][name].as_f64().unwrap(),
+        ));
     }
     // The issue asks for 7 significant digits; QR + Jacobi SVD on scaled columns gives more.
     eprintln!("longley: smallest log relative error over the 7 coefficients = {worst:.2}");
-    assert!(worst >= 9.0, "smallest log relative error over the 7 coefficients is {worst:.2}");
+    assert!(
+        worst >= 9.0,
+        "smallest log relative error over the 7 coefficients is {worst:.2}"
+    );
     let mut notes = Notes::new();
     let pred = f.predict(&enc.transform(&table, &rows, &mut notes).unwrap());
     let ssr: f64 = y.iter().zip(&pred).map(|(a, b)| (a - b) * (a - b)).sum();
@@ -85,8 +119,14 @@ fn longley_ols_matches_nist_certified_values() {
     let sst: f64 = y.iter().map(|v| (v - mean) * (v - mean)).sum();
     let resid_sd = (ssr / 9.0).sqrt();
     let r2 = 1.0 - ssr / sst;
-    assert!(lre(resid_sd, cert["residual_sd"].as_f64().unwrap()) >= 9.0, "residual sd {resid_sd}");
-    assert!(lre(r2, cert["r_squared"].as_f64().unwrap()) >= 12.0, "r2 {r2}");
+    assert!(
+        lre(resid_sd, cert["residual_sd"].as_f64().unwrap()) >= 9.0,
+        "residual sd {resid_sd}"
+    );
+    assert!(
+        lre(r2, cert["r_squared"].as_f64().unwrap()) >= 12.0,
+        "r2 {r2}"
+    );
 }
 
 /// Every diabetes case: fit on part == train, score part == validation.
@@ -95,14 +135,23 @@ fn diabetes_cases_match_reference_values() {
     let table = load(&reference("diabetes.csv"), &[]).unwrap();
     let exp = json("diabetes.expected.json");
     let part = table.column("part").unwrap();
-    let train: Vec<usize> = (0..table.n_rows()).filter(|&r| part.text(r) == "train").collect();
-    let valid: Vec<usize> = (0..table.n_rows()).filter(|&r| part.text(r) == "validation").collect();
+    let train: Vec<usize> = (0..table.n_rows())
+        .filter(|&r| part.text(r) == "train")
+        .collect();
+    let valid: Vec<usize> = (0..table.n_rows())
+        .filter(|&r| part.text(r) == "validation")
+        .collect();
     assert_eq!(train.len() as u64, exp["n_fit"].as_u64().unwrap());
     assert_eq!(valid.len() as u64, exp["n_scored"].as_u64().unwrap());
     let yall = column(&table, "y");
     let y: Vec<f64> = train.iter().map(|&r| yall[r]).collect();
     let yv: Vec<f64> = valid.iter().map(|&r| yall[r]).collect();
-    let names: Vec<String> = exp["features"].as_array().unwrap().iter().map(|v| v.as_str().unwrap().to_string()).collect();
+    let names: Vec<String> = exp["features"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|v| v.as_str().unwrap().to_string())
+        .collect();
     let features: Vec<usize> = names.iter().map(|n| table.index_of(n).unwrap()).collect();
     let mut checked = 0;
     for case in exp["cases"].as_array().unwrap() {
@@ -110,14 +159,35 @@ fn diabetes_cases_match_reference_values() {
         let (family, params) = match case["model"].as_str().unwrap() {
             "mean" => (Family::Mean, vec![]),
             "ols" => (Family::Ols, vec![]),
-            "ridge" => (Family::Ridge, vec![("lambda".into(), ParamValue::Float(case["lambda"].as_f64().unwrap()))]),
-            "lasso" => (Family::Lasso, vec![("lambda".into(), ParamValue::Float(case["lambda"].as_f64().unwrap()))]),
-            "knn" => (Family::Knn, vec![("k".into(), ParamValue::Int(case["k"].as_u64().unwrap()))]),
+            "ridge" => (
+                Family::Ridge,
+                vec![(
+                    "lambda".into(),
+                    ParamValue::Float(case["lambda"].as_f64().unwrap()),
+                )],
+            ),
+            "lasso" => (
+                Family::Lasso,
+                vec![(
+                    "lambda".into(),
+                    ParamValue::Float(case["lambda"].as_f64().unwrap()),
+                )],
+            ),
+            "knn" => (
+                Family::Knn,
+                vec![("k".into(), ParamValue::Int(case["k"].as_u64().unwrap()))],
+            ),
             "poly" => (
                 Family::Poly,
                 vec![
-                    ("degree".into(), ParamValue::Int(case["degree"].as_u64().unwrap())),
-                    ("feature".into(), ParamValue::Text(case["feature"].as_str().unwrap().into())),
+                    (
+                        "degree".into(),
+                        ParamValue::Int(case["degree"].as_u64().unwrap()),
+                    ),
+                    (
+                        "feature".into(),
+                        ParamValue::Text(case["feature"].as_str().unwrap().into()),
+                    ),
                 ],
             ),
             other => panic!("unknown case model {other}"),
@@ -127,12 +197,31 @@ fn diabetes_cases_match_reference_values() {
         let (f, enc) = fit(&table, &features, &train, &y, family, params);
         let mut notes = Notes::new();
         let pred = f.predict(&enc.transform(&table, &valid, &mut notes).unwrap());
-        for (i, want) in case["first_10_predictions"].as_array().unwrap().iter().enumerate() {
-            assert_rel(&format!("{id} prediction {i}"), pred[i], want.as_f64().unwrap(), tol);
+        for (i, want) in case["first_10_predictions"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .enumerate()
+        {
+            assert_rel(
+                &format!("{id} prediction {i}"),
+                pred[i],
+                want.as_f64().unwrap(),
+                tol,
+            );
         }
-        for (m, metric) in [("rmse", probity::metrics::Metric::Rmse), ("mae", probity::metrics::Metric::Mae), ("r2", probity::metrics::Metric::R2)] {
+        for (m, metric) in [
+            ("rmse", probity::metrics::Metric::Rmse),
+            ("mae", probity::metrics::Metric::Mae),
+            ("r2", probity::metrics::Metric::R2),
+        ] {
             let got = metric.score(&yv, &pred).unwrap();
-            assert_rel(&format!("{id} {m}"), got, case["metrics"][m].as_f64().unwrap(), tol);
+            assert_rel(
+                &format!("{id} {m}"),
+                got,
+                case["metrics"][m].as_f64().unwrap(),
+                tol,
+            );
         }
         // Coefficients in original units (linear families), degree-6 raw-power coefficients
         // included: they are ill-determined on the raw powers (condition number ~2e12, reference
@@ -142,7 +231,11 @@ fn diabetes_cases_match_reference_values() {
             let ctol = tol;
             assert_rel(&format!("{id} intercept"), intercept, b, ctol);
             for (name, want) in case["coefficients"].as_object().unwrap() {
-                let got = coefs.iter().find(|(n, _)| n == name).map(|(_, v)| *v).unwrap_or_else(|| panic!("{id}: no coefficient {name}"));
+                let got = coefs
+                    .iter()
+                    .find(|(n, _)| n == name)
+                    .map(|(_, v)| *v)
+                    .unwrap_or_else(|| panic!("{id}: no coefficient {name}"));
                 let want = want.as_f64().unwrap();
                 // An exact zero (lasso) must come out as zero.
                 if want == 0.0 {
@@ -166,15 +259,33 @@ fn diabetes_cases_match_reference_values() {
 fn original_coefficients(f: &Fitted, names: &[String], case: &Value) -> (f64, Vec<(String, f64)>) {
     match f {
         Fitted::Mean { value } => (*value, vec![]),
-        Fitted::Linear { intercept, weights, poly: None } => (*intercept, names.iter().cloned().zip(weights.iter().copied()).collect()),
-        Fitted::Linear { weights, poly: Some(t), .. } => {
+        Fitted::Linear {
+            intercept,
+            weights,
+            poly: None,
+        } => (
+            *intercept,
+            names.iter().cloned().zip(weights.iter().copied()).collect(),
+        ),
+        Fitted::Linear {
+            weights,
+            poly: Some(t),
+            ..
+        } => {
             let (b, powers) = probity::models::poly::original_coefficients(f).unwrap();
             let feature = case["feature"].as_str().unwrap();
             let mut out = Vec::new();
             for (j, n) in names.iter().enumerate() {
                 if j == t.column {
                     for (d, c) in powers.iter().enumerate() {
-                        out.push((if d == 0 { feature.to_string() } else { format!("{feature}^{}", d + 1) }, *c));
+                        out.push((
+                            if d == 0 {
+                                feature.to_string()
+                            } else {
+                                format!("{feature}^{}", d + 1)
+                            },
+                            *c,
+                        ));
                     }
                 } else {
                     let idx = if j < t.column { j } else { j + t.degree - 1 };
@@ -192,14 +303,37 @@ fn standardisation_uses_fitting_rows_population_sd() {
     let table = load(&reference("diabetes.csv"), &[]).unwrap();
     let exp = json("diabetes.expected.json");
     let part = table.column("part").unwrap();
-    let train: Vec<usize> = (0..table.n_rows()).filter(|&r| part.text(r) == "train").collect();
-    let names: Vec<String> = exp["features"].as_array().unwrap().iter().map(|v| v.as_str().unwrap().to_string()).collect();
-    let cols: Vec<Vec<f64>> = names.iter().map(|n| { let c = column(&table, n); train.iter().map(|&r| c[r]).collect() }).collect();
+    let train: Vec<usize> = (0..table.n_rows())
+        .filter(|&r| part.text(r) == "train")
+        .collect();
+    let names: Vec<String> = exp["features"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|v| v.as_str().unwrap().to_string())
+        .collect();
+    let cols: Vec<Vec<f64>> = names
+        .iter()
+        .map(|n| {
+            let c = column(&table, n);
+            train.iter().map(|&r| c[r]).collect()
+        })
+        .collect();
     let x = probity::models::linalg::Matrix::from_cols(train.len(), &cols);
     let (mean, sd) = probity::models::linalg::mean_sd(&x);
     let s = &exp["standardization_on_fit_rows"];
     for (j, n) in names.iter().enumerate() {
-        assert_rel(&format!("mean {n}"), mean[j], s["mean"][n].as_f64().unwrap(), 1e-14);
-        assert_rel(&format!("sd {n}"), sd[j], s["population_sd"][n].as_f64().unwrap(), 1e-13);
+        assert_rel(
+            &format!("mean {n}"),
+            mean[j],
+            s["mean"][n].as_f64().unwrap(),
+            1e-14,
+        );
+        assert_rel(
+            &format!("sd {n}"),
+            sd[j],
+            s["population_sd"][n].as_f64().unwrap(),
+            1e-13,
+        );
     }
 }

@@ -8,7 +8,10 @@ static COUNTER: AtomicUsize = AtomicUsize::new(0);
 
 /// A path under tests/reference/.
 pub fn reference(name: &str) -> PathBuf {
-    Path::new(env!("CARGO_MANIFEST_DIR")).join("tests").join("reference").join(name)
+    Path::new(env!("CARGO_MANIFEST_DIR"))
+        .join("tests")
+        .join("reference")
+        .join(name)
 }
 
 /// A fresh, empty working folder for one test.
@@ -20,8 +23,14 @@ pub struct Dir {
 impl Dir {
     pub fn new(name: &str) -> Dir {
         let n = COUNTER.fetch_add(1, Ordering::SeqCst);
-        let tmp = tempfile::Builder::new().prefix(&format!("probity-{name}-{n}-")).tempdir().unwrap();
-        Dir { path: tmp.path().to_path_buf(), _tmp: tmp }
+        let tmp = tempfile::Builder::new()
+            .prefix(&format!("probity-{name}-{n}-"))
+            .tempdir()
+            .unwrap();
+        Dir {
+            path: tmp.path().to_path_buf(),
+            _tmp: tmp,
+        }
     }
 
     pub fn write(&self, name: &str, text: &str) -> PathBuf {
@@ -42,9 +51,15 @@ impl Dir {
     /// Run probity here with the ledger at .probity/ledger.sqlite (the default).
     pub fn probity(&self, args: &[&str]) -> Run {
         let mut cmd = std::process::Command::new(env!("CARGO_BIN_EXE_probity"));
-        cmd.current_dir(&self.path).args(args).env_remove("PROBITY_LEDGER");
+        cmd.current_dir(&self.path)
+            .args(args)
+            .env_remove("PROBITY_LEDGER");
         let out = cmd.output().unwrap();
-        Run { args: args.iter().map(|s| s.to_string()).collect(), cwd: self.path.clone(), out }
+        Run {
+            args: args.iter().map(|s| s.to_string()).collect(),
+            cwd: self.path.clone(),
+            out,
+        }
     }
 
     pub fn ledger(&self) -> PathBuf {
@@ -78,7 +93,14 @@ impl Run {
         String::from_utf8_lossy(&self.out.stderr).into_owned()
     }
     fn describe(&self) -> String {
-        format!("probity {:?} in {}\nstatus {}\nstdout:\n{}\nstderr:\n{}", self.args, self.cwd.display(), self.code(), self.stdout(), self.stderr())
+        format!(
+            "probity {:?} in {}\nstatus {}\nstdout:\n{}\nstderr:\n{}",
+            self.args,
+            self.cwd.display(),
+            self.code(),
+            self.stdout(),
+            self.stderr()
+        )
     }
     /// Assert the exit code and return self.
     pub fn expect(self, code: i32) -> Run {
@@ -86,6 +108,7 @@ impl Run {
         self
     }
     pub fn json(&self) -> serde_json::Value {
-        serde_json::from_str(&self.stdout()).unwrap_or_else(|e| panic!("not JSON ({e}): {}", self.describe()))
+        serde_json::from_str(&self.stdout())
+            .unwrap_or_else(|e| panic!("not JSON ({e}): {}", self.describe()))
     }
 }
