@@ -112,19 +112,19 @@ fn named_col(spec: &Spec, table: &Table, n: &Named, role: &str) -> Result<usize>
 /// Resolve the spec's columns against the table, handle missing values and split.
 pub fn prepare(spec: &Spec, table: &Table) -> Result<Prepared> {
     let d = &spec.data;
-    if let Some((want, loc)) = &d.sha256 {
-        if *want != table.sha256 {
-            return Err(Error::spec(
-                &spec.file,
-                Some(*loc),
-                format!(
-                    "{} has SHA-256 {}, but the spec pins {}; the data changed: check it, then update sha256",
-                    table.path.display(),
-                    table.sha256,
-                    want
-                ),
-            ));
-        }
+    if let Some((want, loc)) = &d.sha256
+        && *want != table.sha256
+    {
+        return Err(Error::spec(
+            &spec.file,
+            Some(*loc),
+            format!(
+                "{} has SHA-256 {}, but the spec pins {}; the data changed: check it, then update sha256",
+                table.path.display(),
+                table.sha256,
+                want
+            ),
+        ));
     }
     let target = named_col(spec, table, &d.target, "target")?;
     let key = d
@@ -641,10 +641,10 @@ fn select(
     let k = Metric::ALL.iter().position(|m| *m == metric).unwrap_or(0);
     let mut best: Option<&CandidateResult> = None;
     for c in cands {
-        if let Some(v) = c.validation[k] {
-            if best.is_none_or(|b| metric.better(v, b.validation[k].unwrap_or(f64::NAN))) {
-                best = Some(c);
-            }
+        if let Some(v) = c.validation[k]
+            && best.is_none_or(|b| metric.better(v, b.validation[k].unwrap_or(f64::NAN)))
+        {
+            best = Some(c);
         }
     }
     let best = best.ok_or_else(|| {

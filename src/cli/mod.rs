@@ -114,14 +114,12 @@ pub(crate) fn open_existing(g: &Global) -> Result<crate::ledger::Ledger> {
 /// Open the ledger for writing, creating `.probity/` on first use.
 pub(crate) fn open_for_write(g: &Global) -> Result<crate::ledger::Ledger> {
     let (path, found) = crate::ledger::locate(g.ledger.as_deref(), &cwd()?);
-    if !found {
-        if let Some(dir) = path.parent() {
-            std::fs::create_dir_all(dir).map_err(|e| Error::Io {
-                action: "cannot create ledger folder",
-                path: dir.to_path_buf(),
-                source: e,
-            })?;
-        }
+    if !found && let Some(dir) = path.parent() {
+        std::fs::create_dir_all(dir).map_err(|e| Error::Io {
+            action: "cannot create ledger folder",
+            path: dir.to_path_buf(),
+            source: e,
+        })?;
     }
     crate::ledger::Ledger::open(&path, true)
 }

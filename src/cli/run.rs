@@ -78,10 +78,10 @@ fn host() -> String {
 
 fn user() -> String {
     for var in ["USER", "LOGNAME", "USERNAME"] {
-        if let Ok(u) = std::env::var(var) {
-            if !u.is_empty() {
-                return u;
-            }
+        if let Ok(u) = std::env::var(var)
+            && !u.is_empty()
+        {
+            return u;
         }
     }
     // No login variable (a service or CI job): fall back to the numeric uid.

@@ -77,6 +77,9 @@ pub struct FoldRow {
     pub n_score: i64,
 }
 
+/// One stored fold score: (repeat, fold, part, metric, value).
+pub type FoldScore = (i64, i64, String, String, Option<f64>);
+
 /// Everything stored about one run.
 #[derive(Debug, Clone)]
 pub struct RunDetail {
@@ -116,16 +119,16 @@ fn sql_err(context: &str) -> impl FnOnce(rusqlite::Error) -> Error + '_ {
 impl Ledger {
     /// Open (creating the file when `create`) and migrate.
     pub fn open(path: &Path, create: bool) -> Result<Ledger> {
-        if let Some(dir) = path.parent().filter(|d| !d.as_os_str().is_empty()) {
-            if !dir.is_dir() {
-                return Err(Error::LedgerRefused {
-                    path: path.to_path_buf(),
-                    msg: format!(
-                        "the folder {} does not exist; create it or pass another --ledger path",
-                        dir.display()
-                    ),
-                });
-            }
+        if let Some(dir) = path.parent().filter(|d| !d.as_os_str().is_empty())
+            && !dir.is_dir()
+        {
+            return Err(Error::LedgerRefused {
+                path: path.to_path_buf(),
+                msg: format!(
+                    "the folder {} does not exist; create it or pass another --ledger path",
+                    dir.display()
+                ),
+            });
         }
         if path.is_dir() {
             return Err(Error::LedgerRefused {
@@ -444,12 +447,8 @@ impl Ledger {
         Ok(out)
     }
 
-    /// Per-fold scores of one candidate: (repeat, fold, part, metric, value).
-    pub fn fold_scores(
-        &self,
-        run: i64,
-        candidate: i64,
-    ) -> Result<Vec<(i64, i64, String, String, Option<f64>)>> {
+    /// Per-fold scores of one candidate, in (repeat, fold, part, metric) order.
+    pub fn fold_scores(&self, run: i64, candidate: i64) -> Result<Vec<FoldScore>> {
         let mut st = self
             .conn
             .prepare("SELECT repeat, fold, part, metric, value FROM fold_scores WHERE run_id = ?1 AND candidate = ?2 ORDER BY repeat, fold, part, metric")

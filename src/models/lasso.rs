@@ -102,8 +102,9 @@ impl Gram {
                 if new != old {
                     let d = new - old;
                     v[j] = new;
-                    for i in 0..p {
-                        rho[i] -= self.g[i * p + j] * d;
+                    // G is symmetric: column j is row j.
+                    for (r, g) in rho.iter_mut().zip(&self.g[j * p..(j + 1) * p]) {
+                        *r -= g * d;
                     }
                     moved = moved.max(d.abs() * gjj.sqrt());
                 }

@@ -80,8 +80,8 @@ pub fn original_coefficients(f: &Fitted) -> Option<(f64, Vec<f64>)> {
     for d in 1..=t.degree {
         let ad = a[d - 1] / t.scale.powi(d as i32);
         let mut binom = 1.0;
-        for i in 0..=d {
-            coef[i] += ad * binom * (-t.center).powi((d - i) as i32);
+        for (i, c) in coef.iter_mut().enumerate().take(d + 1) {
+            *c += ad * binom * (-t.center).powi((d - i) as i32);
             binom = binom * (d - i) as f64 / (i + 1) as f64;
         }
     }

@@ -8,7 +8,7 @@ pub mod table;
 pub fn num(v: Option<f64>) -> String {
     match v {
         None => "-".to_string(),
-        Some(x) if x == 0.0 => "0".to_string(),
+        Some(0.0) => "0".to_string(),
         Some(x) if x.abs() >= 1e-4 && x.abs() < 1e9 => {
             let digits = (6 - 1 - x.abs().log10().floor() as i32).max(0) as usize;
             format!("{x:.digits$}")

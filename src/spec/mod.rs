@@ -267,16 +267,16 @@ fn toml_error(text: &str, file: &Path, e: &toml::de::Error) -> Error {
     let msg = e.message().trim().to_string();
     let mut out = msg.clone();
     // serde lists the valid keys as `a`, `b`; suggest the nearest to the unknown one.
-    if let Some(rest) = msg.strip_prefix("unknown field `") {
-        if let Some(end) = rest.find('`') {
-            let bad = &rest[..end];
-            let expected: Vec<&str> = rest[end..].split('`').skip(2).step_by(2).collect();
-            out = format!(
-                "unknown key '{bad}'{}; valid keys here: {}",
-                did_you_mean(bad, expected.iter().copied()),
-                expected.join(", ")
-            );
-        }
+    if let Some(rest) = msg.strip_prefix("unknown field `")
+        && let Some(end) = rest.find('`')
+    {
+        let bad = &rest[..end];
+        let expected: Vec<&str> = rest[end..].split('`').skip(2).step_by(2).collect();
+        out = format!(
+            "unknown key '{bad}'{}; valid keys here: {}",
+            did_you_mean(bad, expected.iter().copied()),
+            expected.join(", ")
+        );
     }
     Error::spec(file, loc, out)
 }
@@ -382,17 +382,14 @@ impl Check<'_> {
             }
             models.push(ms);
         }
-        if select.rule == Rule::OneSe
-            && (split.validation > 0.0 || matches!(split.method, SplitMethod::Column { .. }))
-        {
-            if split.validation > 0.0 {
-                let s = raw.select.as_ref().and_then(|s| s.get_ref().rule.as_ref());
-                let msg = "rule = \"one-se\" needs the standard error across cross-validation folds; set [split] validation = 0 or use rule = \"min\"";
-                return Err(match s {
-                    Some(s) => self.err(s, msg),
-                    None => self.top(msg),
-                });
-            }
+        // (A column split with validation rows is caught once the data is read.)
+        if select.rule == Rule::OneSe && split.validation > 0.0 {
+            let s = raw.select.as_ref().and_then(|s| s.get_ref().rule.as_ref());
+            let msg = "rule = \"one-se\" needs the standard error across cross-validation folds; set [split] validation = 0 or use rule = \"min\"";
+            return Err(match s {
+                Some(s) => self.err(s, msg),
+                None => self.top(msg),
+            });
         }
         Ok(Spec {
             name: name.into_inner(),
@@ -551,16 +548,21 @@ impl Check<'_> {
             (&r.column, "column", "column"),
         ];
         for (v, key, m) in stray {
-            if let Some(v) = v {
-                if method_name != m {
-                    return Err(self.err(v, format!("'{key}' is only read by method = \"{m}\"; remove it or change the method")));
-                }
+            if let Some(v) = v
+                && method_name != m
+            {
+                return Err(self.err(
+                    v,
+                    format!(
+                        "'{key}' is only read by method = \"{m}\"; remove it or change the method"
+                    ),
+                ));
             }
         }
-        if let Some(b) = &r.bins {
-            if method_name != "stratified" {
-                return Err(self.err(b, "'bins' is only read by method = \"stratified\""));
-            }
+        if let Some(b) = &r.bins
+            && method_name != "stratified"
+        {
+            return Err(self.err(b, "'bins' is only read by method = \"stratified\""));
         }
         let seeded = !matches!(
             method,
@@ -745,10 +747,10 @@ impl Check<'_> {
                 None => {}
             }
         }
-        if let Some(s) = &r.standardize {
-            if !family.standardizes() {
-                return Err(self.err(s, format!("'standardize' does not apply to {}; its predictions do not depend on feature scale", family.name())));
-            }
+        if let Some(s) = &r.standardize
+            && !family.standardizes()
+        {
+            return Err(self.err(s, format!("'standardize' does not apply to {}; its predictions do not depend on feature scale", family.name())));
         }
         Ok(ModelSpec {
             family,

@@ -192,7 +192,7 @@ fn property_group_never_straddles() {
     let mut g = Gen(2);
     for _ in 0..200 {
         let n = 20 + g.below(200) as usize;
-        let ng = 3 + g.below(40) as u64;
+        let ng = 3 + g.below(40);
         let groups: Vec<u32> = (0..n).map(|_| g.below(ng) as u32).collect();
         let y = ys(n);
         let k = 2 + g.below(4) as usize;

@@ -1,1 +1,358 @@
+//! Every user mistake ends with exit code 2, one message naming the place and the fix, and an
+//! unchanged ledger.
 
+use crate::fixtures::{SMALL_SPEC, small_csv, small_dir};
+use crate::util::Dir;
+
+/// A folder with a ledger holding one good run, so "unchanged" is a real comparison.
+fn with_ledger(name: &str) -> Dir {
+    let d = small_dir(name);
+    d.probity(&["run", "small.toml"]).expect(0);
+    d
+}
+
+/// Run `args`, expect exit 2 and every fragment in stderr, and an unchanged ledger.
+fn refused(d: &Dir, args: &[&str], fragments: &[&str]) {
+    let before = d.counts();
+    let r = d.probity(args).expect(2);
+    let err = r.stderr();
+    assert!(err.starts_with("probity: "), "{err}");
+    assert_eq!(
+        err.trim_end().lines().count(),
+        1,
+        "one message, one line: {err}"
+    );
+    for f in fragments {
+        assert!(err.contains(f), "expected {f:?} in: {err}");
+    }
+    assert_eq!(
+        d.counts(),
+        before,
+        "the ledger changed after a refused command"
+    );
+}
+
+fn spec_case(name: &str, from: &str, to: &str, fragments: &[&str]) {
+    let d = with_ledger(name);
+    assert!(SMALL_SPEC.contains(from), "fixture lacks {from:?}");
+    d.write("bad.toml", &SMALL_SPEC.replace(from, to));
+    refused(&d, &["run", "bad.toml"], fragments);
+}
+
+fn data_case(name: &str, csv: &str, fragments: &[&str]) {
+    let d = with_ledger(name);
+    d.write("bad.csv", csv);
+    d.write(
+        "bad.toml",
+        &SMALL_SPEC.replace("path = \"small.csv\"", "path = \"bad.csv\""),
+    );
+    refused(&d, &["run", "bad.toml"], fragments);
+}
+
+#[test]
+fn toml_syntax_error_has_line_and_column() {
+    spec_case("syntax", "seed = 5", "seed = = 5", &["bad.toml:12:"]);
+}
+
+#[test]
+fn unknown_key_suggests_the_nearest() {
+    spec_case(
+        "unknown",
+        "seed = 5",
+        "seeed = 5",
+        &[
+            "bad.toml:12:1",
+            "unknown key 'seeed'",
+            "did you mean 'seed'?",
+        ],
+    );
+}
+
+#[test]
+fn wrong_type_is_located() {
+    spec_case(
+        "type",
+        "folds = 4",
+        "folds = [4]",
+        &["bad.toml:14:9", "folds must be an integer"],
+    );
+}
+
+#[test]
+fn empty_grid_and_duplicate_models() {
+    spec_case(
+        "emptygrid",
+        "k = [1, 3]",
+        "k = []",
+        &["bad.toml:22:5", "no values"],
+    );
+    let dup = format!("{SMALL_SPEC}\n[[model]]\nkind = \"knn\"\nk = [1, 3]\n");
+    let d = with_ledger("dupmodel");
+    d.write("bad.toml", &dup);
+    refused(
+        &d,
+        &["run", "bad.toml"],
+        &["repeats the knn entry at line 20"],
+    );
+}
+
+#[test]
+fn classification_is_refused_for_now() {
+    spec_case(
+        "classif",
+        "task = \"regression\"",
+        "task = \"classification\"",
+        &["bad.toml:2:8", "not supported by this version yet"],
+    );
+}
+
+#[test]
+fn missing_data_file() {
+    spec_case(
+        "nofile",
+        "path = \"small.csv\"",
+        "path = \"nowhere.csv\"",
+        &["bad.toml:5:8", "nowhere.csv does not exist"],
+    );
+}
+
+#[test]
+fn missing_spec_file_and_folder_as_spec() {
+    let d = with_ledger("nospec");
+    refused(
+        &d,
+        &["run", "absent.toml"],
+        &["cannot read spec", "absent.toml"],
+    );
+    std::fs::create_dir(d.path.join("folder.toml")).unwrap();
+    refused(&d, &["run", "folder.toml"], &["is a folder"]);
+}
+
+#[test]
+fn missing_target_column_suggests_a_name() {
+    spec_case(
+        "notarget",
+        "target = \"y\"",
+        "target = \"yy\"",
+        &[
+            "bad.toml:6:10",
+            "target column 'yy' is not in",
+            "did you mean 'y'?",
+        ],
+    );
+}
+
+#[test]
+fn non_numeric_value_names_line_and_column() {
+    let csv = small_csv().replacen("r6,3,", "r6,three,", 1);
+    data_case(
+        "nonnum",
+        &csv,
+        &["bad.csv:8 (column 'x1')", "'three' is not a number"],
+    );
+}
+
+#[test]
+fn non_finite_value_is_refused() {
+    let csv = small_csv().replacen("r6,3,", "r6,NaN,", 1);
+    data_case(
+        "nan",
+        &csv,
+        &["bad.csv:8 (column 'x1')", "not a finite number"],
+    );
+    let csv = small_csv().replacen("r6,3,", "r6,inf,", 1);
+    data_case("inf", &csv, &["bad.csv:8", "not a finite number"]);
+}
+
+#[test]
+fn empty_header_only_duplicate_columns_and_ragged_rows() {
+    data_case("empty", "", &["bad.csv", "empty"]);
+    data_case(
+        "header",
+        "id,x1,x2,shade,bay,week,y\n",
+        &["bad.csv:1", "no data rows"],
+    );
+    data_case(
+        "dupcol",
+        &small_csv().replacen("x2", "x1", 1),
+        &["bad.csv:1 (column 'x1')", "appears twice"],
+    );
+    let mut lines: Vec<String> = small_csv().lines().map(String::from).collect();
+    lines[5].push_str(",extra");
+    data_case(
+        "ragged",
+        &(lines.join("\n") + "\n"),
+        &["bad.csv:6", "8 fields but the header has 7"],
+    );
+}
+
+#[test]
+fn constant_target_is_refused() {
+    let csv: String = small_csv()
+        .lines()
+        .enumerate()
+        .map(|(i, l)| {
+            if i == 0 {
+                format!("{l}\n")
+            } else {
+                format!("{},5\n", l.rsplit_once(',').unwrap().0)
+            }
+        })
+        .collect();
+    data_case(
+        "constant",
+        &csv,
+        &["column 'y'", "same value (5) in every row"],
+    );
+}
+
+#[test]
+fn fewer_development_rows_than_folds() {
+    spec_case(
+        "folds",
+        "folds = 4",
+        "folds = 31",
+        &["30 development rows are fewer than the 31 folds"],
+    );
+}
+
+#[test]
+fn k_larger_than_the_fitting_rows() {
+    spec_case(
+        "bigk",
+        "k = [1, 3]",
+        "k = [1, 25]",
+        &["k = 25 is larger than the 22 fitting rows"],
+    );
+}
+
+#[test]
+fn group_split_with_too_few_groups() {
+    let d = with_ledger("groups");
+    d.write(
+        "bad.toml",
+        &SMALL_SPEC
+            .replace("ignore = [\"bay\", \"week\"]", "ignore = [\"week\"]")
+            .replace("method = \"random\"", "method = \"group\"\ngroup = \"bay\"")
+            .replace("folds = 4", "folds = 7"),
+    );
+    refused(
+        &d,
+        &["run", "bad.toml"],
+        &["groups, fewer than the 7 folds"],
+    );
+}
+
+#[test]
+fn sha256_pin_mismatch_prints_both_hashes() {
+    let d = with_ledger("pin");
+    let wrong = "0".repeat(64);
+    d.write(
+        "bad.toml",
+        &SMALL_SPEC.replace(
+            "key = \"id\"",
+            &format!("key = \"id\"\nsha256 = \"{wrong}\""),
+        ),
+    );
+    let actual = probity::data::file_sha256(&d.path.join("small.csv")).unwrap();
+    refused(
+        &d,
+        &["run", "bad.toml"],
+        &[&wrong, &actual, "bad.toml:8:10"],
+    );
+}
+
+#[test]
+fn duplicate_keys_are_refused() {
+    let csv = small_csv().replacen("r1,", "r0,", 1);
+    data_case(
+        "dupkey",
+        &csv,
+        &[
+            "bad.csv:3 (column 'id')",
+            "key 'r0' repeats the key of line 2",
+        ],
+    );
+}
+
+#[test]
+fn time_split_without_order_and_hash_without_key() {
+    spec_case(
+        "timeorder",
+        "method = \"random\"",
+        "method = \"time\"",
+        &["method = \"time\" needs order"],
+    );
+    let d = with_ledger("hashkey");
+    d.write(
+        "bad.toml",
+        &SMALL_SPEC
+            .replace("key = \"id\"\n", "")
+            .replace("method = \"random\"", "method = \"hash\""),
+    );
+    refused(
+        &d,
+        &["run", "bad.toml"],
+        &["bad.toml:9:1", "method = \"hash\" needs [data] key"],
+    );
+}
+
+#[test]
+fn poly_feature_must_be_a_numeric_feature() {
+    let d = with_ledger("polyfeat");
+    d.write(
+        "bad.toml",
+        &format!("{SMALL_SPEC}\n[[model]]\nkind = \"poly\"\nfeature = \"shade\"\ndegree = [2]\n"),
+    );
+    refused(
+        &d,
+        &["run", "bad.toml"],
+        &["poly feature 'shade' is not a numeric feature"],
+    );
+}
+
+#[test]
+fn bad_ledgers_are_refused() {
+    let d = small_dir("ledgers");
+    let r = d
+        .probity(&["run", "small.toml", "--ledger", "missing/dir/ledger.sqlite"])
+        .expect(2);
+    assert!(r.stderr().contains("does not exist"), "{}", r.stderr());
+    d.write(
+        "notsqlite.sqlite",
+        "this is a text file, not a database\n".repeat(200).as_str(),
+    );
+    let r = d
+        .probity(&["run", "small.toml", "--ledger", "notsqlite.sqlite"])
+        .expect(2);
+    assert!(
+        r.stderr().contains("not an SQLite database"),
+        "{}",
+        r.stderr()
+    );
+    // A ledger from a newer schema.
+    let p = d.path.join("newer.sqlite");
+    let c = rusqlite::Connection::open(&p).unwrap();
+    c.pragma_update(None, "user_version", 999).unwrap();
+    drop(c);
+    let r = d
+        .probity(&["run", "small.toml", "--ledger", "newer.sqlite"])
+        .expect(2);
+    assert!(
+        r.stderr().contains("schema version 999 is newer"),
+        "{}",
+        r.stderr()
+    );
+}
+
+#[test]
+fn usage_errors_exit_2() {
+    let d = Dir::new("usage");
+    let r = d.probity(&["run"]);
+    assert_eq!(r.code(), 2);
+    let r = d.probity(&["frobnicate"]);
+    assert_eq!(r.code(), 2);
+    let r = d.probity(&["--help"]);
+    assert_eq!(r.code(), 0);
+    assert!(r.stdout().contains("Exit codes"), "{}", r.stdout());
+}
