@@ -25,7 +25,7 @@ pub fn run(_g: &Global, a: Args) -> Result<i32> {
     let n_cands: usize = entries.iter().map(|e| e.expand().len()).sum();
     let s = &prep.sealed;
     let folds: Vec<serde_json::Value> =
-        s.folds().iter().map(|f| json!({"repeat": f.repeat + 1, "fold": f.index + 1, "fit": f.fit.len(), "score": f.score.len()})).collect();
+        s.folds().iter().map(|f| json!({"repeat": f.repeat, "fold": f.index, "fit": f.fit.len(), "score": f.score.len()})).collect();
     let kinds: Vec<(String, &str)> = prep
         .features
         .iter()
