@@ -158,7 +158,16 @@ pub fn parse(bytes: &[u8], path: &Path, sha256: String, text_columns: &[&str]) -
             ));
         }
     }
-    let mut cells: Vec<Vec<String>> = vec![Vec::new(); headers.len()];
+    let ncol = headers.len();
+    let forced: Vec<bool> = headers
+        .iter()
+        .map(|h| text_columns.contains(&h.as_str()))
+        .collect();
+    // Pass 1: numbers straight into f64 columns, counting what does not parse, so a large
+    // numeric file never holds its cells as strings.
+    let mut nums: Vec<Vec<f64>> = vec![Vec::new(); ncol];
+    let mut counts = vec![(0usize, 0usize); ncol]; // (numbers, texts)
+    let mut first_bad: Vec<Option<(usize, String, bool)>> = vec![None; ncol]; // (row, text, non-finite)
     let mut lines = Vec::new();
     // Line numbers are counted here from byte offsets: the reader's own count lags by one after
     // a CRLF line end, and users look rows up by line.
@@ -176,11 +185,38 @@ pub fn parse(bytes: &[u8], path: &Path, sha256: String, text_columns: &[&str]) -
         counted_to = counted_to.max(at);
         line
     };
-    for rec in rdr.records() {
-        let rec = rec.map_err(csv_err)?;
+    let mut rec = csv::StringRecord::new();
+    while rdr.read_record(&mut rec).map_err(csv_err)? {
+        let row = lines.len();
         lines.push(rec.position().map_or(0, |p| line_of(p.byte() as usize)));
         for (c, f) in rec.iter().enumerate() {
-            cells[c].push(f.trim().to_string());
+            if forced[c] {
+                continue;
+            }
+            let f = f.trim();
+            let v = if f.is_empty() {
+                f64::NAN
+            } else {
+                match number(f) {
+                    Some(Ok(v)) => {
+                        counts[c].0 += 1;
+                        v
+                    }
+                    other => {
+                        let nonfinite = other.is_some();
+                        if nonfinite {
+                            counts[c].0 += 1;
+                        } else {
+                            counts[c].1 += 1;
+                        }
+                        if first_bad[c].is_none() {
+                            first_bad[c] = Some((row, f.to_string(), nonfinite));
+                        }
+                        f64::NAN
+                    }
+                }
+            };
+            nums[c].push(v);
         }
     }
     if lines.is_empty() {
@@ -191,11 +227,77 @@ pub fn parse(bytes: &[u8], path: &Path, sha256: String, text_columns: &[&str]) -
             "the file has a header but no data rows",
         ));
     }
-    let mut columns = Vec::with_capacity(headers.len());
-    for (name, col) in headers.into_iter().zip(cells) {
-        let forced = text_columns.contains(&name.as_str());
-        let values = typed(&col, forced)
-            .map_err(|(row, msg)| Error::data(path, Some(lines[row]), Some(&name), msg))?;
+    let is_text: Vec<bool> = (0..ncol)
+        .map(|c| forced[c] || counts[c].0 == 0 || counts[c].1 > counts[c].0)
+        .collect();
+    for c in (0..ncol).filter(|&c| !is_text[c]) {
+        if let Some((row, text, nonfinite)) = &first_bad[c] {
+            let msg = if *nonfinite {
+                format!("'{text}' is not a finite number; leave the cell empty for a missing value")
+            } else {
+                format!(
+                    "'{text}' is not a number in a numeric column; fix the value, leave the cell empty for a missing value, or list the column in [data] categorical"
+                )
+            };
+            return Err(Error::data(path, Some(lines[*row]), Some(&headers[c]), msg));
+        }
+    }
+    // Pass 2, only when some column is text: intern its cells, then sort the levels.
+    let mut texts: Vec<Option<(Vec<u32>, std::collections::BTreeMap<String, u32>)>> = is_text
+        .iter()
+        .map(|&t| {
+            t.then(|| {
+                (
+                    Vec::with_capacity(lines.len()),
+                    std::collections::BTreeMap::new(),
+                )
+            })
+        })
+        .collect();
+    if is_text.iter().any(|&t| t) {
+        let mut rdr = csv::ReaderBuilder::new()
+            .has_headers(true)
+            .flexible(false)
+            .from_reader(body);
+        while rdr.read_record(&mut rec).map_err(csv_err)? {
+            for (c, f) in rec.iter().enumerate() {
+                if let Some((codes, seen)) = texts[c].as_mut() {
+                    let f = f.trim();
+                    if f.is_empty() {
+                        codes.push(MISSING_CODE);
+                    } else {
+                        let next = seen.len() as u32;
+                        codes.push(*seen.entry(f.to_string()).or_insert(next));
+                    }
+                }
+            }
+        }
+    }
+    let mut columns = Vec::with_capacity(ncol);
+    for ((name, num), text) in headers.into_iter().zip(nums).zip(texts) {
+        let values = match text {
+            None => Values::Numeric(num),
+            Some((codes, seen)) => {
+                // BTreeMap iterates in byte order: that is the level order.
+                let mut remap = vec![0u32; seen.len()];
+                let mut levels = Vec::with_capacity(seen.len());
+                for (i, (level, first)) in seen.into_iter().enumerate() {
+                    remap[first as usize] = i as u32;
+                    levels.push(level);
+                }
+                let codes = codes
+                    .into_iter()
+                    .map(|c| {
+                        if c == MISSING_CODE {
+                            c
+                        } else {
+                            remap[c as usize]
+                        }
+                    })
+                    .collect();
+                Values::Text { codes, levels }
+            }
+        };
         columns.push(Column { name, values });
     }
     Ok(Table {
@@ -226,61 +328,6 @@ fn number(s: &str) -> Option<std::result::Result<f64, ()>> {
         Ok(_) => Some(Err(())),
         Err(_) => None,
     }
-}
-
-fn typed(col: &[String], forced_text: bool) -> std::result::Result<Values, (usize, String)> {
-    let (mut nums, mut texts) = (0usize, 0usize);
-    if !forced_text {
-        for s in col.iter().filter(|s| !s.is_empty()) {
-            match number(s) {
-                Some(_) => nums += 1,
-                None => texts += 1,
-            }
-        }
-    }
-    if !forced_text && nums > 0 && nums >= texts {
-        let mut out = Vec::with_capacity(col.len());
-        for (row, s) in col.iter().enumerate() {
-            if s.is_empty() {
-                out.push(f64::NAN);
-                continue;
-            }
-            match number(s) {
-                Some(Ok(v)) => out.push(v),
-                Some(Err(())) => {
-                    return Err((
-                        row,
-                        format!(
-                            "'{s}' is not a finite number; leave the cell empty for a missing value"
-                        ),
-                    ));
-                }
-                None => {
-                    return Err((
-                        row,
-                        format!(
-                            "'{s}' is not a number in a numeric column; fix the value, leave the cell empty for a missing value, or list the column in [data] categorical"
-                        ),
-                    ));
-                }
-            }
-        }
-        return Ok(Values::Numeric(out));
-    }
-    let mut levels: Vec<String> = col.iter().filter(|s| !s.is_empty()).cloned().collect();
-    levels.sort();
-    levels.dedup();
-    let codes = col
-        .iter()
-        .map(|s| {
-            if s.is_empty() {
-                MISSING_CODE
-            } else {
-                levels.binary_search(s).map_or(MISSING_CODE, |i| i as u32)
-            }
-        })
-        .collect();
-    Ok(Values::Text { codes, levels })
 }
 
 #[cfg(test)]

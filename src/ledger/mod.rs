@@ -174,7 +174,12 @@ impl Ledger {
     ) -> Result<i64> {
         let path = self.path.clone();
         let fail = |e: rusqlite::Error| migrate::refuse_or_fail(&path, e, "write run");
-        let tx = self.conn.transaction().map_err(fail)?;
+        // IMMEDIATE takes the write lock up front, so a concurrent writer waits on the busy
+        // timeout instead of failing on a stale read snapshot.
+        let tx = self
+            .conn
+            .transaction_with_behavior(rusqlite::TransactionBehavior::Immediate)
+            .map_err(fail)?;
         let prep = &out.prepared;
         let s = &prep.sealed;
         tx.execute(
