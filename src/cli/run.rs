@@ -29,9 +29,20 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
         .threads
         .unwrap_or_else(|| std::thread::available_parallelism().map_or(1, |n| n.get()))
         .max(1);
-    // Open (and migrate) the ledger before the long work, so a bad ledger fails fast.
-    let mut ledger = open_for_write(g)?;
+    // An existing ledger is opened (and migrated) before the long work, so a bad ledger fails
+    // fast; a new one is created only once the run has succeeded, so a refused spec leaves no
+    // trace on disk.
+    let (path, _) = crate::ledger::locate(g.ledger.as_deref(), &super::cwd()?);
+    let early = if path.exists() {
+        Some(open_for_write(g)?)
+    } else {
+        None
+    };
     let outcome = crate::runner::run(&spec, &table, threads)?;
+    let mut ledger = match early {
+        Some(l) => l,
+        None => open_for_write(g)?,
+    };
     let finished = chrono::Utc::now();
     let meta = RunMeta {
         started_at: started.to_rfc3339_opts(chrono::SecondsFormat::Millis, true),

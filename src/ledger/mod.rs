@@ -101,6 +101,8 @@ pub struct RunDetail {
     pub n_validation: i64,
     pub n_test: i64,
     pub holdout: bool,
+    /// Canonical JSON of the split settings (method, seed, fractions, folds, columns).
+    pub split_settings: String,
     pub rule: String,
     pub best: i64,
     pub model_json: String,
@@ -332,7 +334,7 @@ impl Ledger {
             .conn
             .query_row(
                 "SELECT r.finished_at, r.tool_version, r.user, r.host, r.threads, r.seed, r.spec_path, r.spec_text, r.spec_hash, r.data_path,
-                        r.data_rows, r.data_columns, r.rows_used, p.n_train, p.n_validation, p.n_test, r.holdout, r.rule, r.best, r.model_json
+                        r.data_rows, r.data_columns, r.rows_used, p.n_train, p.n_validation, p.n_test, r.holdout, r.rule, r.best, r.model_json, p.settings
                  FROM runs r JOIN partitions p ON p.id = r.partition_id WHERE r.id = ?1",
                 [id],
                 |r| {
@@ -358,6 +360,7 @@ impl Ledger {
                         rule: r.get(17)?,
                         best: r.get(18)?,
                         model_json: r.get(19)?,
+                        split_settings: r.get(20)?,
                         folds: Vec::new(),
                         candidates: Vec::new(),
                         warnings: Vec::new(),

@@ -165,20 +165,27 @@ pub fn run_header(d: &RunDetail) -> String {
         "rows       {} in file, {} used: {} development ({} train, {} validation), {} test (sealed)\n",
         d.data_rows, d.rows_used, dev, d.n_train, d.n_validation, d.n_test
     ));
+    let settings: serde_json::Value = serde_json::from_str(&d.split_settings).unwrap_or_default();
+    let method = settings["method"].as_str().unwrap_or("?");
+    let repeats = d.folds.iter().map(|f| f.repeat).max().map_or(1, |r| r + 1);
+    let k = d.folds.len() as i64 / repeats.max(1);
     let scheme = if d.holdout {
         "fixed validation partition".to_string()
+    } else if method == "time" {
+        format!("{k} forward-chaining folds")
+    } else if repeats > 1 {
+        format!("{k}-fold cross-validation x {repeats} repeats")
     } else {
-        let repeats = d.folds.iter().map(|f| f.repeat).max().map_or(1, |r| r + 1);
-        let k = d.folds.len() as i64 / repeats.max(1);
-        if repeats > 1 {
-            format!("{k}-fold cross-validation x {repeats} repeats")
-        } else {
-            format!("{k}-fold cross-validation")
-        }
+        format!("{k}-fold cross-validation")
+    };
+    let seed = if matches!(method, "time" | "column") {
+        "not used".to_string()
+    } else {
+        d.seed.clone()
     };
     out.push_str(&format!(
-        "partition  {}  seed {}  {}\n",
-        s.partition_id, d.seed, scheme
+        "partition  {}  split {method}, seed {seed}, {scheme}\n",
+        s.partition_id
     ));
     out
 }

@@ -251,10 +251,25 @@ fn assign(input: &SplitInput, n: usize) -> Result<Vec<Part>> {
         }
         Method::Time { order } => {
             let sorted = time_order(order, &(0..n).collect::<Vec<_>>());
+            let test_start = if n_test == 0 {
+                n
+            } else {
+                snap(order, &sorted, n - n_test, "test")?
+            };
+            let val_start = if n_val == 0 {
+                test_start
+            } else {
+                snap(
+                    order,
+                    &sorted,
+                    test_start.saturating_sub(n_val),
+                    "validation",
+                )?
+            };
             for (pos, &row) in sorted.iter().enumerate() {
-                parts[row] = if pos >= n - n_test {
+                parts[row] = if pos >= test_start {
                     Part::Test
-                } else if pos >= n - n_test - n_val {
+                } else if pos >= val_start {
                     Part::Validation
                 } else {
                     Part::Train
@@ -351,6 +366,27 @@ fn time_order(order: &[f64], rows: &[usize]) -> Vec<usize> {
     sorted
 }
 
+/// Move a cut in time-sorted rows to the nearest boundary between distinct order values, so rows
+/// that share a time stay on one side (ties go to the later side when equally near).
+fn snap(order: &[f64], sorted: &[usize], cut: usize, what: &str) -> Result<usize> {
+    let n = sorted.len();
+    let boundary = |c: usize| c > 0 && c < n && order[sorted[c - 1]] != order[sorted[c]];
+    if cut == 0 || cut >= n || boundary(cut) {
+        return Ok(cut);
+    }
+    for d in 1..n {
+        if cut + d < n && boundary(cut + d) {
+            return Ok(cut + d);
+        }
+        if cut >= d && boundary(cut - d) {
+            return Ok(cut - d);
+        }
+    }
+    Err(Error::Input(format!(
+        "split: every row has the same order value, so {what} cannot be cut in time; use another method or order column"
+    )))
+}
+
 /// Sizes of `k` near-equal contiguous chunks of `m` items (the first `m % k` get one more).
 fn chunk_sizes(m: usize, k: usize) -> Vec<usize> {
     (0..k).map(|i| m / k + usize::from(i < m % k)).collect()
@@ -381,13 +417,24 @@ fn make_folds(input: &SplitInput, dev: &[usize]) -> Result<Vec<Fold>> {
         let fold_of: Vec<usize> = match &input.method {
             Method::Time { order } => {
                 let sorted = time_order(order, dev);
-                let sizes = chunk_sizes(m, k + 1);
-                let mut start = 0;
-                let mut blocks = Vec::new();
-                for s in sizes {
-                    blocks.push(sorted[start..start + s].to_vec());
-                    start += s;
+                let mut bounds = vec![0];
+                let mut at = 0;
+                for s in chunk_sizes(m, k + 1) {
+                    at += s;
+                    bounds.push(at);
                 }
+                for b in bounds.iter_mut().take(k + 1).skip(1) {
+                    *b = snap(order, &sorted, *b, "a fold")?;
+                }
+                if bounds.windows(2).any(|w| w[0] >= w[1]) {
+                    return Err(Error::Input(format!(
+                        "split: the development rows have too few distinct order values for {k} forward-chaining folds; lower folds"
+                    )));
+                }
+                let blocks: Vec<Vec<usize>> = bounds
+                    .windows(2)
+                    .map(|w| sorted[w[0]..w[1]].to_vec())
+                    .collect();
                 for i in 1..=k {
                     let mut fit: Vec<usize> = blocks[..i].concat();
                     fit.sort_unstable();

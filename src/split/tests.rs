@@ -160,6 +160,7 @@ fn check_folds(p: &Partition) {
 #[test]
 fn property_random_counts_and_folds() {
     let mut g = Gen(1);
+    let mut checked = 0;
     for _ in 0..200 {
         let n = 10 + g.below(300) as usize;
         let test = g.below(40) as f64 / 100.0;
@@ -184,12 +185,18 @@ fn property_random_counts_and_folds() {
         let again = split(&input(Method::Random, &y, test, 0.0, Folds::K(k), 2, seed)).unwrap();
         assert_eq!(p.parts, again.parts);
         assert_eq!(p.folds, again.folds);
+        checked += 1;
     }
+    assert!(
+        checked >= 150,
+        "only {checked} of 200 generated cases could be split"
+    );
 }
 
 #[test]
 fn property_group_never_straddles() {
     let mut g = Gen(2);
+    let mut checked = 0;
     for _ in 0..200 {
         let n = 20 + g.below(200) as usize;
         let ng = 3 + g.below(40);
@@ -229,12 +236,18 @@ fn property_group_never_straddles() {
             }
         }
         check_folds(&p);
+        checked += 1;
     }
+    assert!(
+        checked >= 150,
+        "only {checked} of 200 generated cases could be split"
+    );
 }
 
 #[test]
 fn property_time_never_fits_on_the_future() {
     let mut g = Gen(3);
+    let mut checked = 0;
     for _ in 0..200 {
         let n = 20 + g.below(200) as usize;
         let order: Vec<f64> = (0..n).map(|_| g.below(50) as f64).collect();
@@ -260,20 +273,25 @@ fn property_time_never_fits_on_the_future() {
             .fold(f64::MIN, f64::max);
         for i in p.rows_in(Part::Test) {
             assert!(
-                order[i] >= dev_max,
-                "a test row is earlier than a development row"
+                order[i] > dev_max,
+                "a test row is not later than every development row (ties never straddle the cut)"
             );
         }
         for f in &p.folds {
             let fit_max = f.fit.iter().map(|&i| order[i]).fold(f64::MIN, f64::max);
             let score_min = f.score.iter().map(|&i| order[i]).fold(f64::MAX, f64::min);
             assert!(
-                fit_max <= score_min,
-                "fold {} fits on rows later than it scores",
+                fit_max < score_min,
+                "fold {} fits on rows not earlier than it scores",
                 f.index
             );
         }
+        checked += 1;
     }
+    assert!(
+        checked >= 150,
+        "only {checked} of 200 generated cases could be split"
+    );
 }
 
 #[test]
