@@ -38,6 +38,18 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
     } else {
         None
     };
+    if let Some(dir) = path
+        .parent()
+        .filter(|d| g.ledger.is_some() && !d.as_os_str().is_empty() && !d.is_dir())
+    {
+        return Err(crate::error::Error::LedgerRefused {
+            path: path.clone(),
+            msg: format!(
+                "the folder {} does not exist; create it or pass another --ledger path",
+                dir.display()
+            ),
+        });
+    }
     let outcome = crate::runner::run(&spec, &table, threads)?;
     let mut ledger = match early {
         Some(l) => l,

@@ -356,3 +356,14 @@ fn usage_errors_exit_2() {
     assert_eq!(r.code(), 0);
     assert!(r.stdout().contains("Exit codes"), "{}", r.stdout());
 }
+
+#[test]
+fn a_refused_run_in_a_fresh_folder_leaves_no_ledger() {
+    let d = small_dir("fresh");
+    d.write("bad.toml", &SMALL_SPEC.replace("k = [1, 3]", "k = [1, 25]"));
+    d.probity(&["run", "bad.toml"]).expect(2);
+    assert!(
+        !d.path.join(".probity").exists(),
+        "a refused run must not create a ledger"
+    );
+}
