@@ -129,18 +129,27 @@ fn longley_ols_matches_nist_certified_values() {
     );
 }
 
+fn diabetes() -> (Table, Value) {
+    (
+        load(&reference("diabetes.csv"), &[]).unwrap(),
+        json("diabetes.expected.json"),
+    )
+}
+
+/// Rows whose `part` column equals `which`, in file order.
+fn rows_of(table: &Table, which: &str) -> Vec<usize> {
+    let part = table.column("part").unwrap();
+    (0..table.n_rows())
+        .filter(|&r| part.text(r) == which)
+        .collect()
+}
+
 /// Every diabetes case: fit on part == train, score part == validation.
 #[test]
 fn diabetes_cases_match_reference_values() {
-    let table = load(&reference("diabetes.csv"), &[]).unwrap();
-    let exp = json("diabetes.expected.json");
-    let part = table.column("part").unwrap();
-    let train: Vec<usize> = (0..table.n_rows())
-        .filter(|&r| part.text(r) == "train")
-        .collect();
-    let valid: Vec<usize> = (0..table.n_rows())
-        .filter(|&r| part.text(r) == "validation")
-        .collect();
+    let (table, exp) = diabetes();
+    let train = rows_of(&table, "train");
+    let valid = rows_of(&table, "validation");
     assert_eq!(train.len() as u64, exp["n_fit"].as_u64().unwrap());
     assert_eq!(valid.len() as u64, exp["n_scored"].as_u64().unwrap());
     let yall = column(&table, "y");
@@ -300,12 +309,8 @@ fn original_coefficients(f: &Fitted, names: &[String], case: &Value) -> (f64, Ve
 
 #[test]
 fn standardisation_uses_fitting_rows_population_sd() {
-    let table = load(&reference("diabetes.csv"), &[]).unwrap();
-    let exp = json("diabetes.expected.json");
-    let part = table.column("part").unwrap();
-    let train: Vec<usize> = (0..table.n_rows())
-        .filter(|&r| part.text(r) == "train")
-        .collect();
+    let (table, exp) = diabetes();
+    let train = rows_of(&table, "train");
     let names: Vec<String> = exp["features"]
         .as_array()
         .unwrap()

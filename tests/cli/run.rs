@@ -517,3 +517,19 @@ fn csv_with_bom_crlf_and_quoted_fields_runs() {
     d.write("small.csv", &format!("\u{feff}{csv}"));
     d.probity(&["run", "small.toml"]).expect(0);
 }
+
+/// The leaderboard a user reads, pinned as text: a change in formatting, ranking or any score's
+/// printed digits shows up as a diff.
+#[test]
+fn leaderboard_matches_golden() {
+    let d = Dir::new("golden");
+    demo(&d, "heating-trial");
+    d.probity(&["run", "heating-trial.toml"]).expect(0);
+    let out = d.probity(&["show", "1", "--all"]).expect(0).stdout();
+    let table: String = out
+        .lines()
+        .skip_while(|l| !l.starts_with('┌'))
+        .map(|l| format!("{l}\n"))
+        .collect();
+    crate::util::check_golden("heating-trial-leaderboard.txt", &table);
+}

@@ -50,7 +50,7 @@ impl Dir {
 
     /// Run probity here with the ledger at .probity/ledger.sqlite (the default).
     pub fn probity(&self, args: &[&str]) -> Run {
-        let mut cmd = std::process::Command::new(env!("CARGO_BIN_EXE_probity"));
+        let mut cmd = assert_cmd::Command::cargo_bin("probity").unwrap();
         cmd.current_dir(&self.path)
             .args(args)
             .env_remove("PROBITY_LEDGER");
@@ -111,4 +111,28 @@ impl Run {
         serde_json::from_str(&self.stdout())
             .unwrap_or_else(|e| panic!("not JSON ({e}): {}", self.describe()))
     }
+}
+
+/// Compare `actual` with tests/golden/NAME; with BLESS=1 in the environment, rewrite the file.
+pub fn check_golden(name: &str, actual: &str) {
+    let path = Path::new(env!("CARGO_MANIFEST_DIR"))
+        .join("tests")
+        .join("golden")
+        .join(name);
+    if std::env::var_os("BLESS").is_some() {
+        std::fs::write(&path, actual).unwrap();
+        return;
+    }
+    let expected = std::fs::read_to_string(&path).unwrap_or_else(|_| {
+        panic!(
+            "no golden file {}; run with BLESS=1 to create it",
+            path.display()
+        )
+    });
+    assert_eq!(
+        actual,
+        expected,
+        "output differs from {} (BLESS=1 rewrites it after review)",
+        path.display()
+    );
 }
