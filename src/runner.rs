@@ -164,6 +164,16 @@ pub fn prepare(spec: &Spec, table: &Table) -> Result<Prepared> {
                         ),
                     ));
                 }
+                if d.ignore.iter().any(|i| i.name == f.name) {
+                    return Err(Error::spec(
+                        &spec.file,
+                        Some(f.loc),
+                        format!(
+                            "'{}' is listed in both features and ignore; keep one",
+                            f.name
+                        ),
+                    ));
+                }
                 out.push(c);
             }
             out

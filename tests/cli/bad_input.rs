@@ -367,3 +367,19 @@ fn a_refused_run_in_a_fresh_folder_leaves_no_ledger() {
         "a refused run must not create a ledger"
     );
 }
+
+#[test]
+fn contradictory_column_roles_are_refused() {
+    spec_case(
+        "roles",
+        "ignore = [\"bay\", \"week\"]",
+        "ignore = [\"bay\", \"week\"]\nfeatures = [\"x1\", \"bay\"]",
+        &["bad.toml:9:19", "listed in both features and ignore"],
+    );
+    spec_case(
+        "keyfeature",
+        "ignore = [\"bay\", \"week\"]",
+        "features = [\"x1\", \"id\"]",
+        &["bad.toml:8:19", "key or split column"],
+    );
+}

@@ -533,3 +533,37 @@ fn leaderboard_matches_golden() {
         .collect();
     crate::util::check_golden("heating-trial-leaderboard.txt", &table);
 }
+
+#[test]
+fn default_features_leave_out_target_key_split_and_ignored_columns() {
+    let d = small_dir("features");
+    d.write(
+        "g.toml",
+        &SMALL_SPEC
+            .replace("ignore = [\"bay\", \"week\"]", "ignore = [\"week\"]")
+            .replace("method = \"random\"", "method = \"group\"\ngroup = \"bay\""),
+    );
+    let j = d.probity(&["check", "g.toml", "--json"]).expect(0).json();
+    let names: Vec<&str> = j["features"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|f| f["name"].as_str().unwrap())
+        .collect();
+    assert_eq!(names, ["x1", "x2", "shade"]);
+    d.write(
+        "f.toml",
+        &SMALL_SPEC.replace(
+            "ignore = [\"bay\", \"week\"]",
+            "features = [\"x2\", \"week\"]",
+        ),
+    );
+    let j = d.probity(&["check", "f.toml", "--json"]).expect(0).json();
+    let names: Vec<&str> = j["features"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|f| f["name"].as_str().unwrap())
+        .collect();
+    assert_eq!(names, ["x2", "week"]);
+}
