@@ -1,6 +1,7 @@
 //! Model tests on small hand-made data: exact answers where one exists, and the contracts
 //! (grid fits equal one-at-a-time fits, ties, rank deficiency).
 
+use super::encode::Encoder;
 use super::*;
 use crate::spec::{Family, ModelSpec, ParamValue};
 
@@ -240,4 +241,36 @@ fn huge_values_do_not_overflow() {
         let pred = f.predict(&Matrix::from_cols(10, std::slice::from_ref(&x)));
         assert!(pred.iter().all(|v| v.is_finite()), "{family:?}: {pred:?}");
     }
+}
+
+#[test]
+fn encoder_learns_only_from_its_fitting_rows() {
+    use crate::data::parse;
+    let t = parse(
+        b"shade,x\nlow,1\nmid,3\nhigh,\nviolet,1000\n",
+        std::path::Path::new("t.csv"),
+        String::new(),
+        &[],
+    )
+    .unwrap();
+    // Fit on rows 0..3: 'violet' and 1000 are outside the fitting rows and must not be seen.
+    let enc = Encoder::fit(&t, &[0, 1], &[0, 1, 2], false, true);
+    assert_eq!(enc.names(), ["shade=high", "shade=low", "shade=mid", "x"]);
+    let mut notes = Notes::new();
+    let m = enc.transform(&t, &[2, 3], &mut notes).unwrap();
+    // Row 2's missing x takes the fitting rows' mean (1 + 3) / 2, not a mean that includes 1000.
+    assert_eq!(m.get(0, 3), 2.0);
+    // 'violet' was never seen: an all-zero row and one note.
+    assert_eq!(
+        (0..3).map(|j| m.get(1, j)).collect::<Vec<_>>(),
+        [0.0, 0.0, 0.0]
+    );
+    assert_eq!(notes.len(), 1);
+    // Linear models drop the first level, which then encodes as zeros without a note.
+    let lin = Encoder::fit(&t, &[0], &[0, 1, 2], true, true);
+    assert_eq!(lin.names(), ["shade=low", "shade=mid"]);
+    let mut notes = Notes::new();
+    let m = lin.transform(&t, &[2], &mut notes).unwrap();
+    assert_eq!((m.get(0, 0), m.get(0, 1)), (0.0, 0.0));
+    assert!(notes.is_empty());
 }

@@ -567,3 +567,52 @@ fn default_features_leave_out_target_key_split_and_ignored_columns() {
         .collect();
     assert_eq!(names, ["x2", "week"]);
 }
+
+/// Test rows never reach a fit or a score in `run`: two files that differ only in the test rows'
+/// targets (and features) give bit-identical candidates, selection and refitted model.
+#[test]
+fn test_rows_never_enter_a_run() {
+    let d = Dir::new("isolation");
+    let original = std::fs::read_to_string(reference("diabetes.csv")).unwrap();
+    let scrambled: String = original
+        .lines()
+        .map(|l| {
+            if l.ends_with(",test") {
+                // Wild values in every numeric field of a test row, target included.
+                let fields: Vec<String> = l
+                    .split(',')
+                    .map(|f| {
+                        if f == "test" {
+                            f.to_string()
+                        } else {
+                            "99999".to_string()
+                        }
+                    })
+                    .collect();
+                format!("{}\n", fields.join(","))
+            } else {
+                format!("{l}\n")
+            }
+        })
+        .collect();
+    assert_ne!(original, scrambled);
+    let spec = |file: &str| {
+        format!(
+            "name = \"iso\"\ntask = \"regression\"\n[data]\npath = \"{file}\"\ntarget = \"y\"\n[split]\nmethod = \"column\"\ncolumn = \"part\"\n[[model]]\nkind = \"ridge\"\nlambda = [1.0, 10.0]\n[[model]]\nkind = \"knn\"\nk = [3]\n[[model]]\nkind = \"poly\"\nfeature = \"bmi\"\ndegree = [2]\n"
+        )
+    };
+    d.write("a.csv", &original);
+    d.write("b.csv", &scrambled);
+    d.write("a.toml", &spec("a.csv"));
+    d.write("b.toml", &spec("b.csv"));
+    let a = d.probity(&["run", "a.toml", "--json"]).expect(0).json();
+    let b = d.probity(&["run", "b.toml", "--json"]).expect(0).json();
+    assert_ne!(a["data"]["sha256"], b["data"]["sha256"]);
+    assert_eq!(a["candidates"], b["candidates"]);
+    assert_eq!(a["selected"], b["selected"]);
+    let l = probity::ledger::Ledger::open(&d.ledger(), false).unwrap();
+    assert_eq!(
+        l.run(1).unwrap().unwrap().model_json,
+        l.run(2).unwrap().unwrap().model_json
+    );
+}
