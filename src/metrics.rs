@@ -33,6 +33,12 @@ impl Metric {
         matches!(self, Metric::R2)
     }
 
+    /// True when the metric is a mean of per-row values in [0, 1] (what Thresholdout and the
+    /// Hoeffding bound need). No regression metric is.
+    pub fn bounded_unit(self) -> bool {
+        false
+    }
+
     /// True when `a` is strictly better than `b`.
     pub fn better(self, a: f64, b: f64) -> bool {
         if self.higher_is_better() {

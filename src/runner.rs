@@ -40,6 +40,23 @@ pub struct Prepared {
     pub assignment: Vec<u8>,
     pub dropped: usize,
     pub warnings: Vec<String>,
+    /// The key column, if any (row identities use it).
+    pub key: Option<usize>,
+    /// Identities of the test rows, for exposure accounting.
+    pub test_keys: Vec<crate::data::RowKey>,
+}
+
+impl Prepared {
+    /// Identities of the development rows (computed on demand: hashing every row costs time).
+    pub fn development_keys(&self, table: &Table) -> Vec<crate::data::RowKey> {
+        let rows: Vec<usize> = self
+            .sealed
+            .development()
+            .iter()
+            .map(|&i| self.rows[i])
+            .collect();
+        crate::data::row_keys(table, self.key, &rows)
+    }
 }
 
 /// One fold's scores for one candidate.
@@ -351,6 +368,12 @@ pub fn prepare(spec: &Spec, table: &Table) -> Result<Prepared> {
     h.update(b"\n");
     h.update(&assignment);
     let partition_id = hex(&h.finalize())[..16].to_string();
+    let test_rows: Vec<usize> = partition
+        .rows_in(Part::Test)
+        .iter()
+        .map(|&i| rows[i])
+        .collect();
+    let test_keys = crate::data::row_keys(table, key, &test_rows);
     let mut warnings = Vec::new();
     if dropped > 0 {
         warnings.push(format!(
@@ -371,6 +394,8 @@ pub fn prepare(spec: &Spec, table: &Table) -> Result<Prepared> {
         assignment,
         dropped,
         warnings,
+        key,
+        test_keys,
     })
 }
 
@@ -692,6 +717,16 @@ fn select(
 /// The spec and data must be the run's own; the caller checks the data hash.
 pub fn refit(spec: &Spec, table: &Table, candidate: usize) -> Result<StoredModel> {
     let prep = prepare(spec, table)?;
+    refit_prepared(spec, table, &prep, candidate)
+}
+
+/// Refit candidate `candidate` (1-based, in the run's order) on the development rows.
+pub fn refit_prepared(
+    spec: &Spec,
+    table: &Table,
+    prep: &Prepared,
+    candidate: usize,
+) -> Result<StoredModel> {
     let entries = entries(spec);
     let mut id = 0;
     for entry in &entries {
@@ -727,6 +762,67 @@ pub fn refit(spec: &Spec, table: &Table, candidate: usize) -> Result<StoredModel
     Err(Error::Input(format!(
         "the run has no candidate {candidate}; `probity show RUN` lists them"
     )))
+}
+
+/// One candidate scored once on the test rows, with bootstrap intervals.
+#[derive(Debug, Clone)]
+pub struct TestOutcome {
+    pub candidate: usize,
+    pub n: usize,
+    pub scores: Scores,
+    /// Per metric: (low, high, bootstrap standard error) at the requested confidence.
+    pub intervals: [Option<(f64, f64, f64)>; 4],
+    pub resamples: usize,
+    /// Seed of the bootstrap stream (derived from the run seed and the candidate).
+    pub seed: u64,
+}
+
+/// Bootstrap resamples of every reveal (Efron & Tibshirani 1993 advise 1000 or more for
+/// percentile intervals; 2000 as the issue asks).
+pub const RESAMPLES: usize = 2000;
+
+/// Refit `candidate` on the development rows and score it on the test rows: the only place test
+/// rows reach a model, and only with a permit.
+pub fn score_test(
+    spec: &Spec,
+    table: &Table,
+    prep: &Prepared,
+    candidate: usize,
+    permit: &crate::guard::RevealPermit,
+    confidence: f64,
+) -> Result<TestOutcome> {
+    let model = refit_prepared(spec, table, prep, candidate)?;
+    let test = prep.sealed.test_rows(permit);
+    if test.is_empty() {
+        return Err(Error::Input(
+            "this run has no test partition (test = 0): there is nothing to reveal".into(),
+        ));
+    }
+    let rows: Vec<usize> = test.iter().map(|&i| prep.rows[i]).collect();
+    let y: Vec<f64> = test.iter().map(|&i| prep.target[i]).collect();
+    let mut notes = Notes::new();
+    let x = model.encoder.transform(table, &rows, &mut notes)?;
+    let pred = model.fitted.predict(&x);
+    let scores = score_all(&y, &pred);
+    let seed = derive_seed(spec.split.seed, Domain::Bootstrap, candidate as u32);
+    let mut rng = crate::split::rng::stream(seed, Domain::Bootstrap, 0);
+    let reps = crate::guard::stats::bootstrap(y.len(), RESAMPLES, &mut rng, 4, |idx| {
+        let ys: Vec<f64> = idx.iter().map(|&i| y[i]).collect();
+        let ps: Vec<f64> = idx.iter().map(|&i| pred[i]).collect();
+        score_all(&ys, &ps).to_vec()
+    });
+    let mut intervals = [None; 4];
+    for (k, r) in reps.into_iter().enumerate() {
+        intervals[k] = crate::guard::stats::percentile_interval(r, confidence);
+    }
+    Ok(TestOutcome {
+        candidate,
+        n: y.len(),
+        scores,
+        intervals,
+        resamples: RESAMPLES,
+        seed,
+    })
 }
 
 impl StoredModel {

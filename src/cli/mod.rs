@@ -1,9 +1,11 @@
 //! Command-line interface: clap types, one file per subcommand. The only code that reads the
 //! clock or the environment, prints, or writes report files. No statistics here.
 
+mod audit;
 mod check;
 mod history;
 mod predict;
+mod reveal;
 mod run;
 mod show;
 
@@ -37,10 +39,12 @@ pub struct Global {
 #[derive(Subcommand, Debug)]
 pub enum Command {
     Check(check::Args),
+    Audit(audit::Args),
     Run(run::Args),
     History(history::Args),
     Show(show::Args),
     Predict(predict::Args),
+    Reveal(reveal::Args),
 }
 
 /// Parse the process arguments, run, print any error; returns the exit code.
@@ -55,10 +59,12 @@ pub fn main() -> i32 {
     };
     let result = match cli.command {
         Command::Check(a) => check::run(&cli.global, a),
+        Command::Audit(a) => audit::run(&cli.global, a),
         Command::Run(a) => run::run(&cli.global, a),
         Command::History(a) => history::run(&cli.global, a),
         Command::Show(a) => show::run(&cli.global, a),
         Command::Predict(a) => predict::run(&cli.global, a),
+        Command::Reveal(a) => reveal::run(&cli.global, a),
     };
     match result {
         Ok(code) => code,
@@ -153,4 +159,34 @@ pub(crate) fn load_inputs(spec_path: &Path) -> Result<(crate::spec::Spec, crate:
     }
     let table = crate::data::load(&spec.data.path, &text)?;
     Ok((spec, table))
+}
+
+pub(crate) fn host() -> String {
+    std::fs::read_to_string("/proc/sys/kernel/hostname")
+        .or_else(|_| std::fs::read_to_string("/etc/hostname"))
+        .map(|s| s.trim().to_string())
+        .ok()
+        .filter(|s| !s.is_empty())
+        .or_else(|| std::env::var("HOSTNAME").ok())
+        .unwrap_or_else(|| "unknown".into())
+}
+
+pub(crate) fn user() -> String {
+    for var in ["USER", "LOGNAME", "USERNAME"] {
+        if let Ok(u) = std::env::var(var)
+            && !u.is_empty()
+        {
+            return u;
+        }
+    }
+    // No login variable (a service or CI job): fall back to the numeric uid.
+    std::fs::read_to_string("/proc/self/status")
+        .ok()
+        .and_then(|s| {
+            s.lines()
+                .find(|l| l.starts_with("Uid:"))
+                .and_then(|l| l.split_whitespace().nth(1))
+                .map(|u| format!("uid {u}"))
+        })
+        .unwrap_or_else(|| "unknown".into())
 }

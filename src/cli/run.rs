@@ -50,18 +50,19 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
             ),
         });
     }
-    let outcome = crate::runner::run(&spec, &table, threads)?;
+    let mut outcome = crate::runner::run(&spec, &table, threads)?;
     let mut ledger = match early {
         Some(l) => l,
         None => open_for_write(g)?,
     };
+    exposure_warnings(&ledger, &table, &mut outcome)?;
     let finished = chrono::Utc::now();
     let meta = RunMeta {
         started_at: started.to_rfc3339_opts(chrono::SecondsFormat::Millis, true),
         finished_at: finished.to_rfc3339_opts(chrono::SecondsFormat::Millis, true),
         tool_version: env!("CARGO_PKG_VERSION").to_string(),
-        user: user(),
-        host: host(),
+        user: super::user(),
+        host: super::host(),
         threads,
         spec_path: absolute(&a.spec),
         data_path: absolute(&spec.data.path),
@@ -89,32 +90,43 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
     Ok(0)
 }
 
-fn host() -> String {
-    std::fs::read_to_string("/proc/sys/kernel/hostname")
-        .or_else(|_| std::fs::read_to_string("/etc/hostname"))
-        .map(|s| s.trim().to_string())
-        .ok()
-        .filter(|s| !s.is_empty())
-        .or_else(|| std::env::var("HOSTNAME").ok())
-        .unwrap_or_else(|| "unknown".into())
-}
-
-fn user() -> String {
-    for var in ["USER", "LOGNAME", "USERNAME"] {
-        if let Ok(u) = std::env::var(var)
-            && !u.is_empty()
-        {
-            return u;
-        }
+/// Warn (and store the warning) when rows of this run were test rows of a revealed partition:
+/// development rows that were revealed leak the test scores' information into the selection,
+/// and a test partition with revealed rows is not fresh.
+fn exposure_warnings(
+    ledger: &crate::ledger::Ledger,
+    table: &crate::data::Table,
+    outcome: &mut crate::runner::RunOutcome,
+) -> Result<()> {
+    if !ledger.has_reveals()? {
+        return Ok(());
     }
-    // No login variable (a service or CI job): fall back to the numeric uid.
-    std::fs::read_to_string("/proc/self/status")
-        .ok()
-        .and_then(|s| {
-            s.lines()
-                .find(|l| l.starts_with("Uid:"))
-                .and_then(|l| l.split_whitespace().nth(1))
-                .map(|u| format!("uid {u}"))
-        })
-        .unwrap_or_else(|| "unknown".into())
+    let prep = &outcome.prepared;
+    let dev = prep.development_keys(table);
+    let (n, most, last) = super::reveal::exposed(ledger, &dev, None)?;
+    if n > 0 {
+        outcome.warnings.push(format!(
+            "{} of {} development rows were in a test partition revealed {most} time(s) (last on {last}); what those reveals showed can leak into this selection",
+            super::reveal::count(n),
+            super::reveal::count(dev.len())
+        ));
+    }
+    let own = ledger.partition_history(&prep.partition_id)?.reveals;
+    if own > 0 {
+        outcome.warnings.push(format!(
+            "this test partition ({}) has already been revealed {own} time(s); a new reveal will count on top",
+            prep.partition_id
+        ));
+    }
+    let (n, most, last) =
+        super::reveal::exposed(ledger, &prep.test_keys, Some(&prep.partition_id))?;
+    if n > 0 {
+        outcome.warnings.push(format!(
+            "{} of {} test rows were already revealed in another partition (up to {most} time(s), last on {last}); their effective reveal count is {}, so this test partition is not fresh",
+            super::reveal::count(n),
+            super::reveal::count(prep.test_keys.len()),
+            most.max(own as i64)
+        ));
+    }
+    Ok(())
 }

@@ -77,6 +77,42 @@ impl Table {
     }
 }
 
+/// A row's identity for exposure accounting: 16 bytes of SHA-256 of the key column's name and
+/// value when there is a key, else of every cell with its column name, columns in name order (so
+/// reordering columns keeps the identity; adding or changing a column changes it).
+pub type RowKey = [u8; 16];
+
+pub fn row_keys(table: &Table, key: Option<usize>, rows: &[usize]) -> Vec<RowKey> {
+    let mut order: Vec<usize> = (0..table.columns.len()).collect();
+    order.sort_by(|&a, &b| table.columns[a].name.cmp(&table.columns[b].name));
+    rows.iter()
+        .map(|&r| {
+            let mut h = Sha256::new();
+            match key {
+                Some(k) => {
+                    h.update(b"probity-row-key\0");
+                    h.update(table.columns[k].name.as_bytes());
+                    h.update(b"\0");
+                    h.update(table.columns[k].text(r).as_bytes());
+                }
+                None => {
+                    h.update(b"probity-row\0");
+                    for &c in &order {
+                        h.update(table.columns[c].name.as_bytes());
+                        h.update(b"\0");
+                        h.update(table.columns[c].text(r).as_bytes());
+                        h.update(b"\x1f");
+                    }
+                }
+            }
+            let d = h.finalize();
+            let mut out = [0u8; 16];
+            out.copy_from_slice(&d[..16]);
+            out
+        })
+        .collect()
+}
+
 /// SHA-256 of a file's bytes, hex.
 pub fn file_sha256(path: &Path) -> Result<String> {
     let bytes = read(path)?;

@@ -6,10 +6,16 @@ use rusqlite::Connection;
 use std::path::Path;
 
 /// Every migration in order: (file name, SQL). Append only; never edit a merged file.
-pub const MIGRATIONS: &[(&str, &str)] = &[(
-    "0001_create_ledger.sql",
-    include_str!("../../migrations/0001_create_ledger.sql"),
-)];
+pub const MIGRATIONS: &[(&str, &str)] = &[
+    (
+        "0001_create_ledger.sql",
+        include_str!("../../migrations/0001_create_ledger.sql"),
+    ),
+    (
+        "0002_reveals.sql",
+        include_str!("../../migrations/0002_reveals.sql"),
+    ),
+];
 
 /// The schema version this binary writes.
 pub fn latest() -> i64 {

@@ -109,6 +109,21 @@ pub struct RunDetail {
     pub folds: Vec<FoldRow>,
     pub candidates: Vec<CandidateRow>,
     pub warnings: Vec<String>,
+    /// Runs and candidates scored on this run's development partition up to this run.
+    pub partition_runs: i64,
+    pub partition_candidates: i64,
+    /// Nested cross-validation result, when the spec asked for it.
+    pub nested: Option<NestedRow>,
+}
+
+/// A stored nested cross-validation estimate.
+#[derive(Debug, Clone)]
+pub struct NestedRow {
+    pub metric: String,
+    pub estimate: Option<f64>,
+    pub se: Option<f64>,
+    pub outer_folds: i64,
+    pub selections: Value,
 }
 
 fn sql_err(context: &str) -> impl FnOnce(rusqlite::Error) -> Error + '_ {
@@ -197,6 +212,18 @@ impl Ledger {
             ],
         )
         .map_err(fail)?;
+        // A new partition brings its test rows' identities (exposure follows rows).
+        if tx.changes() == 1 {
+            let mut st = tx
+                .prepare(
+                    "INSERT OR IGNORE INTO partition_rows (partition_id, row_key) VALUES (?1, ?2)",
+                )
+                .map_err(fail)?;
+            for k in &prep.test_keys {
+                st.execute(params![prep.partition_id, &k[..]])
+                    .map_err(fail)?;
+            }
+        }
         let model_json = serde_json::to_string(&out.refit)
             .map_err(|e| Error::Internal(format!("serialise model: {e}")))?;
         tx.execute(
@@ -364,6 +391,9 @@ impl Ledger {
                         folds: Vec::new(),
                         candidates: Vec::new(),
                         warnings: Vec::new(),
+                        partition_runs: 0,
+                        partition_candidates: 0,
+                        nested: None,
                     })
                 },
             )
@@ -431,6 +461,22 @@ impl Ledger {
             .query_map([id], |r| r.get(0))
             .and_then(|rows| rows.collect())
             .map_err(sql_err("read warnings"))?;
+        let (runs, cands) = self.partition_usage(&d.summary.partition_id, id)?;
+        d.partition_runs = runs;
+        d.partition_candidates = cands;
+        d.nested = self
+            .conn
+            .query_row("SELECT metric, estimate, se, outer_folds, selections FROM nested WHERE run_id = ?1", [id], |r| {
+                Ok(NestedRow {
+                    metric: r.get(0)?,
+                    estimate: r.get(1)?,
+                    se: r.get(2)?,
+                    outer_folds: r.get(3)?,
+                    selections: serde_json::from_str(&r.get::<_, String>(4)?).unwrap_or(Value::Null),
+                })
+            })
+            .optional()
+            .map_err(sql_err("read nested"))?;
         Ok(Some(d))
     }
 
@@ -467,6 +513,328 @@ impl Ledger {
         .and_then(|rows| rows.collect())
         .map_err(sql_err("read fold scores"))
     }
+}
+
+/// A reveal to store.
+#[derive(Debug, Clone)]
+pub struct RevealRecord {
+    pub run_id: i64,
+    pub candidate: i64,
+    pub partition_id: String,
+    /// "reveal" or "predict" (`predict --allow-sealed`).
+    pub source: String,
+    pub revealed_at: String,
+    pub user: String,
+    pub host: String,
+    pub tool_version: String,
+    pub mode: String,
+    pub budget: i64,
+    pub metric: String,
+    pub n_rows: i64,
+    pub seed: String,
+    pub resamples: i64,
+    pub confidence: f64,
+    pub answer: Option<f64>,
+    pub answer_kind: String,
+    pub mechanism: String,
+    pub optimism: String,
+    /// (metric, value, low, high, se)
+    pub scores: Vec<(String, Option<f64>, Option<f64>, Option<f64>, Option<f64>)>,
+}
+
+/// One partition in `audit`.
+#[derive(Debug, Clone)]
+pub struct PartitionAudit {
+    pub id: String,
+    pub experiments: Vec<String>,
+    pub test_rows: i64,
+    pub reveals: i64,
+    pub candidates: i64,
+    pub people: Vec<String>,
+    pub first: Option<String>,
+    pub last: Option<String>,
+    pub mode: Option<String>,
+    /// The smallest budget of the runs that revealed it (the strictest applies).
+    pub budget: Option<i64>,
+    /// The optimism JSON of the last reveal.
+    pub optimism: Option<String>,
+}
+
+impl Ledger {
+    /// Earlier reveals of a partition: count, distinct candidates, mechanism state.
+    pub fn partition_history(&self, partition: &str) -> Result<crate::guard::History> {
+        let mut st = self
+            .conn
+            .prepare(
+                "SELECT r.spec_hash, v.candidate, v.mode, v.mechanism FROM reveals v JOIN runs r ON r.id = v.run_id
+                 WHERE v.partition_id = ?1 ORDER BY v.id",
+            )
+            .map_err(sql_err("read reveals"))?;
+        let rows: Vec<(String, i64, String, String)> = st
+            .query_map([partition], |r| {
+                Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?))
+            })
+            .and_then(|rows| rows.collect())
+            .map_err(sql_err("read reveals"))?;
+        let mut h = crate::guard::History::default();
+        for (spec_hash, cand, mode, mech) in rows {
+            h.reveals += 1;
+            h.candidates.insert((spec_hash, cand));
+            let m: Value = serde_json::from_str(&mech).unwrap_or(Value::Null);
+            if mode == "reusable" {
+                if let Ok(state) = serde_json::from_value(m["step"]["after"].clone()) {
+                    h.thresholdout = Some(state);
+                }
+            } else if mode == "ladder" {
+                h.ladder_best = m["best_units_after"].as_i64().or(h.ladder_best);
+            }
+        }
+        Ok(h)
+    }
+
+    /// Store a reveal and its scores in one transaction; returns its id.
+    pub fn write_reveal(&mut self, r: &RevealRecord) -> Result<i64> {
+        let path = self.path.clone();
+        let fail = |e: rusqlite::Error| migrate::refuse_or_fail(&path, e, "write reveal");
+        let tx = self
+            .conn
+            .transaction_with_behavior(rusqlite::TransactionBehavior::Immediate)
+            .map_err(fail)?;
+        tx.execute(
+            "INSERT INTO reveals (run_id, candidate, partition_id, source, revealed_at, user, host, tool_version, mode, budget, metric,
+                n_rows, seed, resamples, confidence, answer, answer_kind, mechanism, optimism)
+             VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17, ?18, ?19)",
+            params![
+                r.run_id, r.candidate, r.partition_id, r.source, r.revealed_at, r.user, r.host, r.tool_version, r.mode, r.budget, r.metric,
+                r.n_rows, r.seed, r.resamples, r.confidence, r.answer, r.answer_kind, r.mechanism, r.optimism
+            ],
+        )
+        .map_err(fail)?;
+        let id = tx.last_insert_rowid();
+        {
+            let mut st = tx.prepare("INSERT INTO reveal_scores (reveal_id, metric, value, low, high, se) VALUES (?1, ?2, ?3, ?4, ?5, ?6)").map_err(fail)?;
+            for (m, v, lo, hi, se) in &r.scores {
+                st.execute(params![id, m, v, lo, hi, se]).map_err(fail)?;
+            }
+        }
+        tx.commit().map_err(fail)?;
+        Ok(id)
+    }
+
+    /// For every row identity in a revealed partition: the most reveals of any partition holding
+    /// it, and the time of its last reveal.
+    /// Partitions other than `exclude` only (a partition's own count is its reveal count).
+    pub fn exposure(
+        &self,
+        exclude: Option<&str>,
+    ) -> Result<BTreeMap<crate::data::RowKey, (i64, String)>> {
+        let mut st = self
+            .conn
+            .prepare(
+                "SELECT pr.row_key, v.n, v.last FROM partition_rows pr
+                 JOIN (SELECT partition_id, count(*) AS n, max(revealed_at) AS last FROM reveals GROUP BY partition_id) v
+                 ON v.partition_id = pr.partition_id WHERE pr.partition_id IS NOT ?1",
+            )
+            .map_err(sql_err("read exposure"))?;
+        let mut out: BTreeMap<crate::data::RowKey, (i64, String)> = BTreeMap::new();
+        let rows = st
+            .query_map([exclude], |r| {
+                Ok((
+                    r.get::<_, Vec<u8>>(0)?,
+                    r.get::<_, i64>(1)?,
+                    r.get::<_, String>(2)?,
+                ))
+            })
+            .map_err(sql_err("read exposure"))?;
+        for row in rows {
+            let (key, n, last) = row.map_err(sql_err("read exposure"))?;
+            let Ok(k) = <crate::data::RowKey>::try_from(key.as_slice()) else {
+                continue;
+            };
+            let e = out.entry(k).or_insert((0, String::new()));
+            e.0 = e.0.max(n);
+            if last > e.1 {
+                e.1 = last;
+            }
+        }
+        Ok(out)
+    }
+
+    /// True when any reveal is stored (exposure checks are skipped otherwise).
+    pub fn has_reveals(&self) -> Result<bool> {
+        self.conn
+            .query_row("SELECT EXISTS (SELECT 1 FROM reveals)", [], |r| r.get(0))
+            .map_err(sql_err("count reveals"))
+    }
+
+    /// Partitions whose test rows include any of `keys`, with how many of them: (partition, rows).
+    pub fn sealed_partitions_holding(
+        &self,
+        keys: &[crate::data::RowKey],
+    ) -> Result<Vec<(String, i64)>> {
+        let mut st = self
+            .conn
+            .prepare(
+                "SELECT partition_id FROM partition_rows WHERE row_key = ?1 ORDER BY partition_id",
+            )
+            .map_err(sql_err("find sealed rows"))?;
+        let mut hits: BTreeMap<String, i64> = BTreeMap::new();
+        for k in keys {
+            let parts: Vec<String> = st
+                .query_map([&k[..]], |r| r.get(0))
+                .and_then(|rows| rows.collect())
+                .map_err(sql_err("find sealed rows"))?;
+            for p in parts {
+                *hits.entry(p).or_insert(0) += 1;
+            }
+        }
+        Ok(hits.into_iter().collect())
+    }
+
+    /// Runs and candidates evaluated on a development partition across the ledger, up to and
+    /// including run `up_to`.
+    pub fn partition_usage(&self, partition: &str, up_to: i64) -> Result<(i64, i64)> {
+        self.conn
+            .query_row(
+                "SELECT count(DISTINCT r.id), count(c.id) FROM runs r JOIN candidates c ON c.run_id = r.id WHERE r.partition_id = ?1 AND r.id <= ?2",
+                params![partition, up_to],
+                |r| Ok((r.get(0)?, r.get(1)?)),
+            )
+            .map_err(sql_err("count partition use"))
+    }
+
+    /// One entry per partition, oldest first.
+    pub fn audit(&self) -> Result<Vec<PartitionAudit>> {
+        let mut st = self
+            .conn
+            .prepare("SELECT id, n_test FROM partitions ORDER BY rowid")
+            .map_err(sql_err("audit"))?;
+        let parts: Vec<(String, i64)> = st
+            .query_map([], |r| Ok((r.get(0)?, r.get(1)?)))
+            .and_then(|rows| rows.collect())
+            .map_err(sql_err("audit"))?;
+        let mut out = Vec::new();
+        for (id, test_rows) in parts {
+            let q = |sql: &str| -> Result<Vec<String>> {
+                let mut st = self.conn.prepare(sql).map_err(sql_err("audit"))?;
+                st.query_map([&id], |r| r.get(0))
+                    .and_then(|rows| rows.collect())
+                    .map_err(sql_err("audit"))
+            };
+            let experiments = q(
+                "SELECT DISTINCT experiment FROM runs WHERE partition_id = ?1 ORDER BY experiment",
+            )?;
+            let people =
+                q("SELECT DISTINCT user FROM reveals WHERE partition_id = ?1 ORDER BY user")?;
+            let (reveals, candidates, first, last, budget): (i64, i64, Option<String>, Option<String>, Option<i64>) = self
+                .conn
+                .query_row(
+                    "SELECT count(*), count(DISTINCT r.spec_hash || ':' || v.candidate), min(v.revealed_at), max(v.revealed_at), min(v.budget)
+                     FROM reveals v JOIN runs r ON r.id = v.run_id WHERE v.partition_id = ?1",
+                    [&id],
+                    |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?, r.get(4)?)),
+                )
+                .map_err(sql_err("audit"))?;
+            let (mode, optimism): (Option<String>, Option<String>) = self
+                .conn
+                .query_row("SELECT mode, optimism FROM reveals WHERE partition_id = ?1 ORDER BY id DESC LIMIT 1", [&id], |r| Ok((r.get(0)?, r.get(1)?)))
+                .optional()
+                .map_err(sql_err("audit"))?
+                .unwrap_or((None, None));
+            out.push(PartitionAudit {
+                id,
+                experiments,
+                test_rows,
+                reveals,
+                candidates,
+                people,
+                first,
+                last,
+                mode,
+                budget,
+                optimism,
+            });
+        }
+        Ok(out)
+    }
+
+    /// The reveals of a run's partition, oldest first: (id, run, candidate, when, user, answer kind, answer).
+    pub fn reveals_of_partition(&self, partition: &str) -> Result<Vec<RevealSummary>> {
+        let mut st = self
+            .conn
+            .prepare("SELECT id, run_id, candidate, revealed_at, user, source, mode, metric, answer_kind, answer FROM reveals WHERE partition_id = ?1 ORDER BY id")
+            .map_err(sql_err("read reveals"))?;
+        st.query_map([partition], |r| {
+            Ok(RevealSummary {
+                id: r.get(0)?,
+                run: r.get(1)?,
+                candidate: r.get(2)?,
+                at: r.get(3)?,
+                user: r.get(4)?,
+                source: r.get(5)?,
+                mode: r.get(6)?,
+                metric: r.get(7)?,
+                answer_kind: r.get(8)?,
+                answer: r.get(9)?,
+            })
+        })
+        .and_then(|rows| rows.collect())
+        .map_err(sql_err("read reveals"))
+    }
+}
+
+impl Ledger {
+    /// Revealed rows that appear in other partitions' test sets, and runs that warned about
+    /// exposed development rows: one sentence each.
+    pub fn overlap_findings(&self) -> Result<Vec<String>> {
+        let mut st = self
+            .conn
+            .prepare(
+                "SELECT a.partition_id, b.partition_id, count(*) FROM partition_rows a
+                 JOIN partition_rows b ON a.row_key = b.row_key AND a.partition_id <> b.partition_id
+                 WHERE a.partition_id IN (SELECT partition_id FROM reveals)
+                 GROUP BY a.partition_id, b.partition_id ORDER BY a.partition_id, b.partition_id",
+            )
+            .map_err(sql_err("find overlaps"))?;
+        let mut out: Vec<String> = st
+            .query_map([], |r| {
+                let (a, b, n): (String, String, i64) = (r.get(0)?, r.get(1)?, r.get(2)?);
+                Ok(format!("{n} test rows of revealed partition {a} are also test rows of partition {b}: its test score is not fresh"))
+            })
+            .and_then(|rows| rows.collect())
+            .map_err(sql_err("find overlaps"))?;
+        let mut st = self
+            .conn
+            .prepare("SELECT run_id, message FROM warnings WHERE message LIKE '%development rows were in a test partition revealed%' ORDER BY run_id")
+            .map_err(sql_err("find overlaps"))?;
+        let dev: Vec<String> = st
+            .query_map([], |r| {
+                Ok(format!(
+                    "run {}: {}",
+                    r.get::<_, i64>(0)?,
+                    r.get::<_, String>(1)?
+                ))
+            })
+            .and_then(|rows| rows.collect())
+            .map_err(sql_err("find overlaps"))?;
+        out.extend(dev);
+        Ok(out)
+    }
+}
+
+/// A stored reveal, briefly.
+#[derive(Debug, Clone)]
+pub struct RevealSummary {
+    pub id: i64,
+    pub run: i64,
+    pub candidate: i64,
+    pub at: String,
+    pub user: String,
+    pub source: String,
+    pub mode: String,
+    pub metric: String,
+    pub answer_kind: String,
+    pub answer: Option<f64>,
 }
 
 const SUMMARY_SQL: &str = "SELECT r.id, r.experiment, r.started_at, r.status, r.data_sha256, r.partition_id,

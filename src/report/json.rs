@@ -56,6 +56,15 @@ pub fn run(d: &RunDetail) -> Value {
         "selected": s.selected,
         "best": d.best,
         "candidates": d.candidates.iter().map(candidate).collect::<Vec<_>>(),
+        "development": {
+            "runs": d.partition_runs,
+            "candidates": d.partition_candidates,
+            "expected_max": super::table::selection_optimism(d).map(|s| s.0),
+            "optimism": super::table::selection_optimism(d).and_then(|s| s.1),
+        },
+        "nested": d.nested.as_ref().map(|n| json!({
+            "metric": n.metric, "estimate": n.estimate, "se": n.se, "outer_folds": n.outer_folds, "selections": n.selections,
+        })),
         "warnings": d.warnings,
     })
 }

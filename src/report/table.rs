@@ -187,5 +187,198 @@ pub fn run_header(d: &RunDetail) -> String {
         "partition  {}  split {method}, seed {seed}, {scheme}\n",
         s.partition_id
     ));
+    if let Some(sel) = selection_optimism(d) {
+        out.push_str(&format!(
+            "selection  {} candidates in {} run(s) scored on this development partition so far; were they independent and equally good, the best CV {} would look better than the truth by about {} (its se x E[max of {} normals] = {}; correlated candidates make it less)\n",
+            d.partition_candidates,
+            d.partition_runs,
+            s.metric,
+            num(sel.1),
+            d.partition_candidates,
+            num(Some(sel.0))
+        ));
+    }
+    if let Some(n) = &d.nested {
+        out.push_str(&format!(
+            "nested     {} of the whole selection procedure, {}-fold outer cross-validation: {} ± {} (beside the best CV score above)\n",
+            n.metric,
+            n.outer_folds,
+            num(n.estimate),
+            num(n.se)
+        ));
+    }
+    out
+}
+
+/// The text shown for a reveal, from its JSON document.
+pub fn reveal(doc: &serde_json::Value, family: &str, params: &str) -> String {
+    let metric = doc["metric"].as_str().unwrap_or("");
+    let mut out = format!(
+        "reveal {}: run {} candidate {} ({family} {params}) on {} test rows of partition {}\n",
+        doc["reveal"],
+        doc["run"],
+        doc["candidate"],
+        doc["rows"],
+        doc["partition"].as_str().unwrap_or("")
+    );
+    let mode = doc["mode"].as_str().unwrap_or("count");
+    if mode == "count" {
+        let conf = doc["confidence"].as_f64().unwrap_or(0.95) * 100.0;
+        let mut t = new_table(vec![
+            "metric",
+            "test",
+            &format!("{conf}% interval"),
+            "development (CV)",
+        ]);
+        for m in ["rmse", "mse", "mae", "r2"] {
+            let iv = &doc["interval"][m];
+            let iv_text = match (iv[0].as_f64(), iv[1].as_f64()) {
+                (Some(lo), Some(hi)) => format!("[{}, {}]", num(Some(lo)), num(Some(hi))),
+                _ => "-".into(),
+            };
+            let dev = if m == metric {
+                num(doc["development"][m].as_f64())
+            } else {
+                String::new()
+            };
+            t.add_row(vec![
+                m.to_string(),
+                num(doc["test"][m].as_f64()),
+                iv_text,
+                dev,
+            ]);
+        }
+        right(&mut t, 1);
+        out.push_str(&format!("{t}\n"));
+        out.push_str(&format!(
+            "interval: {} bootstrap resamples, percentile method (Efron & Tibshirani 1993)\n",
+            doc["resamples"]
+        ));
+    } else {
+        let kind = doc["answer"]["kind"].as_str().unwrap_or("");
+        let explain = match kind {
+            "development" => {
+                "the test score agrees with the development estimate within the noisy threshold, so the development estimate is returned and no budget is spent"
+            }
+            "test+noise" => {
+                "the test score differs from the development estimate: the test score plus Laplace noise is returned and one unit of budget is spent"
+            }
+            "refused" => "the reusable holdout's budget is spent: no answer",
+            "ladder-new" => "a new best by more than the step, rounded to the step",
+            "ladder-previous" => {
+                "not better than the best so far by more than the step: the previous best is repeated"
+            }
+            _ => "",
+        };
+        out.push_str(&format!(
+            "{metric} ({mode} mode): {}  ({explain})\n",
+            num(doc["answer"]["value"].as_f64())
+        ));
+    }
+    out.push_str(&format!(
+        "reveals of this partition: {} of a budget of {}{}\n",
+        doc["reveals"],
+        doc["budget"],
+        if doc["over_budget"].as_bool() == Some(true) {
+            "  OVER BUDGET"
+        } else {
+            ""
+        }
+    ));
+    let o = &doc["optimism"];
+    out.push_str(&format!(
+        "optimism: {} distinct candidate(s) revealed on {} rows; the test {metric} may look better than the truth by about {} (estimate)\n",
+        o["k"], o["n"], num(o["estimate"].as_f64())
+    ));
+    if let (Some(h), Some(s)) = (o["hoeffding_union"].as_f64(), o["adaptive_scale"].as_f64()) {
+        out.push_str(&format!(
+            "          Hoeffding-union width {}, adaptive-reuse scale sqrt(k/n) {}\n",
+            num(Some(h)),
+            num(Some(s))
+        ));
+    }
+    out.push_str(&format!(
+        "          assumes: {}\n",
+        o["assumes"].as_str().unwrap_or("")
+    ));
+    out
+}
+
+/// (E[max of k normals], se x E[max]) for the best candidate of a run, k = candidates scored on
+/// the partition so far; `None` without a standard error.
+pub fn selection_optimism(d: &RunDetail) -> Option<(f64, Option<f64>)> {
+    let best = d.candidates.iter().find(|c| c.id == d.best)?;
+    let se = best.validation.get(&d.summary.metric).and_then(|s| s.se)?;
+    let m = crate::guard::stats::expected_max_normal(d.partition_candidates.max(1) as usize);
+    Some((m, Some(se * m)))
+}
+
+/// The `audit` table, from its JSON rows.
+pub fn audit(rows: &[serde_json::Value], warnings: &[String]) -> String {
+    let mut t = new_table(vec![
+        "partition",
+        "experiment",
+        "test rows",
+        "reveals",
+        "budget",
+        "cands",
+        "people",
+        "last reveal",
+        "mode",
+        "optimism",
+        "status",
+    ]);
+    for r in rows {
+        let s = |k: &str| {
+            r[k].as_str().map(str::to_string).unwrap_or_else(|| {
+                if r[k].is_null() {
+                    "-".into()
+                } else {
+                    r[k].to_string()
+                }
+            })
+        };
+        let people: Vec<&str> = r["people"]
+            .as_array()
+            .map(|a| a.iter().filter_map(|p| p.as_str()).collect())
+            .unwrap_or_default();
+        let opt = r["optimism"]["estimate"].as_f64();
+        t.add_row(vec![
+            s("id"),
+            s("experiment"),
+            s("test_rows"),
+            s("reveals"),
+            s("budget"),
+            s("candidates_revealed"),
+            if people.is_empty() {
+                "-".into()
+            } else {
+                people.join(", ")
+            },
+            r["last_reveal"]
+                .as_str()
+                .map(|x| x.chars().take(19).collect::<String>().replace('T', " "))
+                .unwrap_or_else(|| "-".into()),
+            s("mode"),
+            if opt.is_some() {
+                format!(
+                    "{} {}",
+                    num(opt),
+                    r["optimism"]["metric"].as_str().unwrap_or("")
+                )
+            } else {
+                "-".into()
+            },
+            s("status"),
+        ]);
+    }
+    right(&mut t, 2);
+    let mut out = format!("{t}\n");
+    if rows.is_empty() {
+        out = "no partitions yet\n".into();
+    }
+    for w in warnings {
+        out.push_str(&format!("overlap: {w}\n"));
+    }
     out
 }

@@ -6,7 +6,7 @@
 mod raw;
 
 use crate::error::{Error, Loc, Result, did_you_mean};
-use raw::{RawData, RawModel, RawSelect, RawSpec, RawSplit};
+use raw::{RawData, RawGuard, RawModel, RawSelect, RawSpec, RawSplit};
 use serde_json::{Value, json};
 use sha2::{Digest, Sha256};
 use std::path::{Path, PathBuf};
@@ -97,6 +97,38 @@ pub enum Rule {
 pub struct SelectSpec {
     pub metric: crate::metrics::Metric,
     pub rule: Rule,
+    /// Wrap the whole selection in an outer cross-validation (Varma & Simon 2006).
+    pub nested: bool,
+}
+
+/// How reveals of the test partition are answered.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub enum GuardMode {
+    /// The true test score; past the budget every reveal warns and `audit` fails.
+    Count,
+    /// Thresholdout (Dwork et al. 2015): `threshold` T and Laplace noise scale `noise`.
+    Reusable { threshold: f64, noise: f64 },
+    /// The Ladder (Blum & Hardt 2015) with a fixed `step`.
+    Ladder { step: f64 },
+}
+
+impl GuardMode {
+    pub fn name(self) -> &'static str {
+        match self {
+            GuardMode::Count => "count",
+            GuardMode::Reusable { .. } => "reusable",
+            GuardMode::Ladder { .. } => "ladder",
+        }
+    }
+}
+
+/// `[guard]`: the test partition's budget and how reveals are answered.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct GuardSpec {
+    /// Reveals allowed per partition (Thresholdout: over-threshold answers allowed).
+    pub reveals: u32,
+    pub confidence: f64,
+    pub mode: GuardMode,
 }
 
 /// The built-in model families.
@@ -231,6 +263,7 @@ pub struct Spec {
     pub data: DataSpec,
     pub split: SplitSpec,
     pub select: SelectSpec,
+    pub guard: GuardSpec,
     pub models: Vec<ModelSpec>,
     /// The spec file, for error messages.
     pub file: PathBuf,
@@ -362,6 +395,7 @@ impl Check<'_> {
                 )),
             };
         let select = self.select(raw.select.as_ref())?;
+        let guard = self.guard(raw.guard.as_ref(), select.metric)?;
         if raw.model.is_empty() {
             return Err(self.top("no [[model]] table: add at least one, for example [[model]] kind = \"ridge\" lambda = [0.1, 1, 10]"));
         }
@@ -382,6 +416,17 @@ impl Check<'_> {
             }
             models.push(ms);
         }
+        if select.nested && split.validation > 0.0 {
+            let s = raw
+                .select
+                .as_ref()
+                .and_then(|s| s.get_ref().nested.as_ref());
+            let msg = "nested = true wraps cross-validation in an outer cross-validation; set [split] validation = 0";
+            return Err(match s {
+                Some(s) => self.err(s, msg),
+                None => self.top(msg),
+            });
+        }
         // (A column split with validation rows is caught once the data is read.)
         if select.rule == Rule::OneSe && split.validation > 0.0 {
             let s = raw.select.as_ref().and_then(|s| s.get_ref().rule.as_ref());
@@ -397,6 +442,7 @@ impl Check<'_> {
             data,
             split,
             select,
+            guard,
             models,
             file: self.file.to_path_buf(),
             text: self.text.to_string(),
@@ -680,7 +726,102 @@ impl Check<'_> {
                 }
             },
         };
-        Ok(SelectSpec { metric, rule })
+        let nested = r
+            .and_then(|r| r.nested.as_ref())
+            .is_some_and(|n| *n.get_ref());
+        Ok(SelectSpec {
+            metric,
+            rule,
+            nested,
+        })
+    }
+
+    fn guard(
+        &self,
+        g: Option<&Spanned<RawGuard>>,
+        metric: crate::metrics::Metric,
+    ) -> Result<GuardSpec> {
+        let Some(g) = g else {
+            return Ok(GuardSpec {
+                reveals: 1,
+                confidence: 0.95,
+                mode: GuardMode::Count,
+            });
+        };
+        let r = g.get_ref();
+        let reveals = match &r.reveals {
+            None => 1,
+            Some(v) if (1..=1_000_000).contains(v.get_ref()) => *v.get_ref() as u32,
+            Some(v) => return Err(self.err(
+                v,
+                "reveals must be an integer of at least 1 (a test set is meant to be used once)",
+            )),
+        };
+        let confidence = match &r.confidence {
+            None => 0.95,
+            Some(v) if *v.get_ref() > 0.0 && *v.get_ref() < 1.0 => *v.get_ref(),
+            Some(v) => {
+                return Err(self.err(v, "confidence must be between 0 and 1, for example 0.95"));
+            }
+        };
+        let positive = |v: &Option<Spanned<f64>>, key: &str, default: Option<f64>| -> Result<f64> {
+            match v {
+                Some(x) if *x.get_ref() > 0.0 && x.get_ref().is_finite() => Ok(*x.get_ref()),
+                Some(x) => Err(self.err(x, format!("{key} must be a positive number"))),
+                None => default.ok_or_else(|| self.err(g, format!("mode = \"ladder\" needs {key} = <the smallest improvement worth reporting, in {} units>", metric.name()))),
+            }
+        };
+        let mode_name = r
+            .mode
+            .as_ref()
+            .map(|m| m.get_ref().as_str())
+            .unwrap_or("count");
+        let mode = match mode_name {
+            "count" => GuardMode::Count,
+            "reusable" => {
+                // Thresholdout's guarantee is for statistics that are means of per-row values in [0, 1].
+                if !metric.bounded_unit() {
+                    let at = r.mode.as_ref().unwrap_or_else(|| unreachable!());
+                    return Err(self.err(at, format!(
+                        "mode = \"reusable\" (Thresholdout) needs a metric bounded in [0, 1], such as accuracy or brier; {} is unbounded. Use mode = \"count\" or \"ladder\"",
+                        metric.name()
+                    )));
+                }
+                GuardMode::Reusable {
+                    threshold: positive(&r.threshold, "threshold", Some(0.04))?,
+                    noise: positive(&r.noise, "noise", Some(0.01))?,
+                }
+            }
+            "ladder" => GuardMode::Ladder {
+                step: positive(&r.step, "step", None)?,
+            },
+            other => {
+                let at = r.mode.as_ref().unwrap_or_else(|| unreachable!());
+                return Err(self.err(
+                    at,
+                    format!(
+                        "unknown guard mode '{other}'{}; use \"count\", \"reusable\" or \"ladder\"",
+                        did_you_mean(other, ["count", "reusable", "ladder"])
+                    ),
+                ));
+            }
+        };
+        for (v, key, m) in [
+            (&r.threshold, "threshold", "reusable"),
+            (&r.noise, "noise", "reusable"),
+            (&r.step, "step", "ladder"),
+        ] {
+            if let Some(v) = v {
+                if mode_name != m {
+                    return Err(self.err(v, format!("'{key}' is only read by mode = \"{m}\"")));
+                }
+            }
+        }
+        Ok(GuardSpec {
+            reveals,
+            confidence,
+            mode,
+        })
     }
 
     fn model(&self, m: &Spanned<RawModel>) -> Result<ModelSpec> {
@@ -965,10 +1106,26 @@ impl Spec {
                 "missing": d.missing.as_str(),
             },
             "split": split,
-            "select": {"metric": self.select.metric.name(), "rule": match self.select.rule { Rule::Min => "min", Rule::OneSe => "one-se" }},
+            "select": {"metric": self.select.metric.name(), "rule": match self.select.rule { Rule::Min => "min", Rule::OneSe => "one-se" }, "nested": self.select.nested},
+            "guard": self.guard_canonical(),
             "models": models,
         });
         v.to_string()
+    }
+
+    fn guard_canonical(&self) -> Value {
+        let g = &self.guard;
+        let mut v =
+            json!({"reveals": g.reveals, "confidence": g.confidence, "mode": g.mode.name()});
+        match g.mode {
+            GuardMode::Count => {}
+            GuardMode::Reusable { threshold, noise } => {
+                v["threshold"] = json!(threshold);
+                v["noise"] = json!(noise);
+            }
+            GuardMode::Ladder { step } => v["step"] = json!(step),
+        }
+        v
     }
 
     /// SHA-256 of the canonical JSON, hex.

@@ -13,6 +13,7 @@ pub struct RawSpec {
     pub data: Option<Spanned<RawData>>,
     pub split: Option<Spanned<RawSplit>>,
     pub select: Option<Spanned<RawSelect>>,
+    pub guard: Option<Spanned<RawGuard>>,
     #[serde(default)]
     pub model: Vec<Spanned<RawModel>>,
 }
@@ -50,6 +51,18 @@ pub struct RawSplit {
 pub struct RawSelect {
     pub metric: Option<Spanned<String>>,
     pub rule: Option<Spanned<String>>,
+    pub nested: Option<Spanned<bool>>,
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawGuard {
+    pub reveals: Option<Spanned<i64>>,
+    pub confidence: Option<Spanned<f64>>,
+    pub mode: Option<Spanned<String>>,
+    pub threshold: Option<Spanned<f64>>,
+    pub noise: Option<Spanned<f64>>,
+    pub step: Option<Spanned<f64>>,
 }
 
 /// Every key any built-in family accepts; which family takes which is checked in `spec::parse`.

@@ -16,6 +16,12 @@ pub enum Domain {
     Folds = 2,
     /// Per-candidate seeds; the index is the candidate id.
     Candidate = 3,
+    /// Bootstrap resamples of a reveal; the index is the candidate id.
+    Bootstrap = 4,
+    /// Noise of the reusable-holdout mechanism; the index is the reveal's ordinal on its partition.
+    Noise = 5,
+    /// Inner folds of nested cross-validation; the index is the outer fold.
+    NestedFolds = 6,
 }
 
 /// A ChaCha20 generator keyed by `seed` (little-endian in the first 8 key bytes) on the stream

@@ -1,0 +1,68 @@
+//! `probity audit`: every partition's reveals against its budget, and where revealed rows turn
+//! up again. Exit 3 when any partition is over budget, so a team can gate on it.
+
+use super::{Global, open_existing, out, out_json};
+use crate::error::Result;
+use serde_json::{Value, json};
+
+/// Check every partition's reveals against its budget (exit 3 when any is over)
+#[derive(clap::Args, Debug)]
+pub struct Args {
+    /// Print JSON instead of a table
+    #[arg(long)]
+    pub json: bool,
+}
+
+pub fn run(g: &Global, a: Args) -> Result<i32> {
+    let ledger = open_existing(g)?;
+    let parts = ledger.audit()?;
+    let mut rows = Vec::new();
+    let mut any_over = false;
+    for p in &parts {
+        let refused = ledger
+            .reveals_of_partition(&p.id)?
+            .iter()
+            .filter(|r| r.answer_kind == "refused")
+            .count();
+        let over = match (p.mode.as_deref(), p.budget) {
+            (Some("reusable"), _) => refused > 0,
+            (_, Some(b)) => p.reveals > b,
+            _ => false,
+        };
+        any_over |= over;
+        let status = if p.reveals == 0 {
+            "sealed"
+        } else if over {
+            "OVER BUDGET"
+        } else {
+            "within budget"
+        };
+        let optimism: Value = p
+            .optimism
+            .as_deref()
+            .and_then(|o| serde_json::from_str(o).ok())
+            .unwrap_or(Value::Null);
+        rows.push(json!({
+            "id": p.id,
+            "experiment": p.experiments.join(", "),
+            "test_rows": p.test_rows,
+            "reveals": p.reveals,
+            "candidates_revealed": p.candidates,
+            "people": p.people,
+            "first_reveal": p.first,
+            "last_reveal": p.last,
+            "mode": p.mode,
+            "budget": p.budget,
+            "over_budget": over,
+            "optimism": optimism,
+            "status": status,
+        }));
+    }
+    let warnings = ledger.overlap_findings()?;
+    if a.json {
+        out_json(&json!({"partitions": rows, "warnings": warnings}))?;
+    } else {
+        out(&crate::report::table::audit(&rows, &warnings))?;
+    }
+    Ok(if any_over { 3 } else { 0 })
+}

@@ -1,0 +1,210 @@
+//! Numbers that say how far a test score can be trusted: the percentile bootstrap, the expected
+//! maximum of k standard normals, and the Hoeffding-plus-union width. Pure functions; the
+//! bootstrap draws from the seeded ChaCha20 stream it is given.
+
+use crate::split::rng::bounded;
+use rand_chacha::ChaCha20Rng;
+
+/// Standard normal density.
+fn phi(x: f64) -> f64 {
+    (-0.5 * x * x).exp() / (2.0 * std::f64::consts::PI).sqrt()
+}
+
+/// E[max of k independent standard normals] = integral of x k phi(x) Phi(x)^(k-1) dx, by
+/// composite Simpson on [-12, 12] with Phi accumulated by Simpson on the same grid (Tippett 1925;
+/// Harter 1961 tabulates it). Exact to about 1e-10; 0 for k <= 1.
+pub fn expected_max_normal(k: usize) -> f64 {
+    if k <= 1 {
+        return 0.0;
+    }
+    const STEPS: usize = 24_000; // h = 0.001
+    let (a, b) = (-12.0f64, 12.0f64);
+    let h = (b - a) / STEPS as f64;
+    // Phi at each grid point: Phi(a) is below 1e-32, so start from 0.
+    let mut cdf = vec![0.0f64; STEPS + 1];
+    for i in 1..=STEPS {
+        let x0 = a + (i - 1) as f64 * h;
+        let x1 = x0 + h;
+        cdf[i] = cdf[i - 1] + h / 6.0 * (phi(x0) + 4.0 * phi(0.5 * (x0 + x1)) + phi(x1));
+    }
+    let km1 = (k - 1) as i32;
+    let f = |i: usize| {
+        let x = a + i as f64 * h;
+        x * k as f64 * phi(x) * cdf[i].min(1.0).powi(km1)
+    };
+    let mut sum = f(0) + f(STEPS);
+    for i in 1..STEPS {
+        sum += if i % 2 == 1 { 4.0 * f(i) } else { 2.0 * f(i) };
+    }
+    sum * h / 3.0
+}
+
+/// Simultaneous two-sided width for k fixed candidates on n rows of a metric in [0, 1] at
+/// confidence 1 - delta: sqrt(ln(2k/delta) / (2n)) (Hoeffding 1963 with a union bound).
+pub fn hoeffding_union(n: usize, k: usize, delta: f64) -> f64 {
+    ((2.0 * k.max(1) as f64 / delta).ln() / (2.0 * n as f64)).sqrt()
+}
+
+/// The scale sqrt(k/n) at which k adaptively chosen reveals can overfit n rows (Blum & Hardt
+/// 2015, the boosting attack).
+pub fn adaptive_scale(n: usize, k: usize) -> f64 {
+    (k as f64 / n as f64).sqrt()
+}
+
+/// Bootstrap replicates: `resamples` draws of n row positions with replacement (our own bounded
+/// draw over the ChaCha20 stream), each passed to `stat`, which returns one value per statistic
+/// (None where undefined). Returns `[statistic][replicate]` of the defined values.
+pub fn bootstrap(
+    n: usize,
+    resamples: usize,
+    rng: &mut ChaCha20Rng,
+    stats: usize,
+    stat: impl Fn(&[usize]) -> Vec<Option<f64>>,
+) -> Vec<Vec<f64>> {
+    let mut out = vec![Vec::with_capacity(resamples); stats];
+    let mut idx = vec![0usize; n];
+    for _ in 0..resamples {
+        for slot in idx.iter_mut() {
+            *slot = bounded(rng, n as u64) as usize;
+        }
+        for (s, v) in stat(&idx).into_iter().enumerate() {
+            if let Some(v) = v {
+                out[s].push(v);
+            }
+        }
+    }
+    out
+}
+
+/// Percentile interval at `confidence` (Efron & Tibshirani 1993, sec. 13.3): with B sorted
+/// replicates and a = (1 - confidence)/2, the ceil(B a)-th and ceil(B (1 - a))-th values
+/// (1-based); B = 2000 and 95% give the 50th and the 1950th. Also the bootstrap standard error
+/// (sd with B - 1). `None` with fewer than two replicates.
+pub fn percentile_interval(mut reps: Vec<f64>, confidence: f64) -> Option<(f64, f64, f64)> {
+    let b = reps.len();
+    if b < 2 {
+        return None;
+    }
+    reps.sort_by(f64::total_cmp);
+    let a = (1.0 - confidence) / 2.0;
+    // A small guard keeps 2000 * 0.025 = 50 from landing on 51 through rounding.
+    let lo = ((b as f64 * a) - 1e-9).ceil().max(1.0) as usize;
+    let hi = ((b as f64 * (1.0 - a)) - 1e-9).ceil().clamp(1.0, b as f64) as usize;
+    let mean = reps.iter().sum::<f64>() / b as f64;
+    let sd = (reps.iter().map(|v| (v - mean) * (v - mean)).sum::<f64>() / (b as f64 - 1.0)).sqrt();
+    Some((reps[lo - 1], reps[hi - 1], sd))
+}
+
+/// Laplace(0, scale) from a uniform u in (0, 1) by the inverse CDF:
+/// scale ln(2u) for u < 1/2, -scale ln(2(1 - u)) otherwise.
+pub fn laplace(u: f64, scale: f64) -> f64 {
+    if u < 0.5 {
+        scale * (2.0 * u).ln()
+    } else {
+        -scale * (2.0 * (1.0 - u)).ln()
+    }
+}
+
+/// A uniform in (0, 1), never 0 or 1: the top 53 bits of a draw, plus half a step.
+pub fn unit_open(rng: &mut ChaCha20Rng) -> f64 {
+    use rand_core::Rng;
+    ((rng.next_u64() >> 11) as f64 + 0.5) / (1u64 << 53) as f64
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::split::rng::{Domain, stream};
+
+    /// Check values from ../shared/METHODS.md section 3 (computed there by numerical integration;
+    /// k = 2 and 3 match the closed forms 1/sqrt(pi) and 3/(2 sqrt(pi))).
+    #[test]
+    fn expected_maximum_matches_tabulated_values() {
+        for (k, want) in [
+            (2, 0.564190),
+            (3, 0.846284),
+            (5, 1.162964),
+            (10, 1.538753),
+            (20, 1.867475),
+            (50, 2.249074),
+            (100, 2.507594),
+            (1000, 3.241436),
+        ] {
+            let got = expected_max_normal(k);
+            assert!((got - want).abs() < 5e-7, "k = {k}: {got} vs {want}");
+        }
+        assert!((expected_max_normal(2) - 1.0 / std::f64::consts::PI.sqrt()).abs() < 1e-10);
+        assert!((expected_max_normal(3) - 1.5 / std::f64::consts::PI.sqrt()).abs() < 1e-10);
+        assert_eq!(expected_max_normal(1), 0.0);
+    }
+
+    /// METHODS.md section 3 table: eps(n, k, delta) two-sided.
+    #[test]
+    fn hoeffding_union_widths() {
+        for (n, k, want) in [
+            (1000, 1, 0.042947),
+            (1000, 20, 0.057813),
+            (1000, 100, 0.064397),
+            (1000, 1000, 0.072790),
+            (5000, 20, 0.025855),
+            (10000, 20, 0.018282),
+        ] {
+            let got = hoeffding_union(n, k, 0.05);
+            assert!(
+                (got - want).abs() < 5e-7,
+                "n = {n}, k = {k}: {got} vs {want}"
+            );
+        }
+        // Independently: sqrt(ln 800 / 2000), ln 800 = 6.684612 (METHODS.md).
+        assert!((hoeffding_union(1000, 20, 0.05) - (800f64.ln() / 2000.0).sqrt()).abs() < 1e-15);
+        assert!((adaptive_scale(400, 4) - 0.1).abs() < 1e-15);
+    }
+
+    /// METHODS.md section 1: Laplace inverse-CDF check values for b = 0.01.
+    #[test]
+    fn laplace_inverse_cdf() {
+        for (u, want) in [
+            (0.25, -0.00693147),
+            (0.75, 0.00693147),
+            (0.9, 0.01609438),
+            (0.1, -0.01609438),
+            (0.5, 0.0),
+        ] {
+            assert!((laplace(u, 0.01) - want).abs() < 5e-9, "u = {u}");
+        }
+    }
+
+    /// For a 0/1 statistic the ideal bootstrap is Binomial(n, p)/n (METHODS.md section 6):
+    /// n = 100, p = 0.85 gives SE 0.035707 and 95% limits [0.780, 0.920]. A seeded run of 2000
+    /// resamples must land near them (RNG-dependent, so with a tolerance).
+    #[test]
+    fn bootstrap_of_a_proportion_matches_the_binomial() {
+        let x: Vec<f64> = (0..100).map(|i| if i < 85 { 1.0 } else { 0.0 }).collect();
+        let mut rng = stream(9, Domain::Bootstrap, 0);
+        let reps = bootstrap(100, 2000, &mut rng, 1, |idx| {
+            vec![Some(idx.iter().map(|&i| x[i]).sum::<f64>() / 100.0)]
+        });
+        let (lo, hi, se) = percentile_interval(reps[0].clone(), 0.95).unwrap();
+        assert!((se - 0.035707).abs() < 0.003, "se {se}");
+        assert!(
+            (lo - 0.78).abs() <= 0.0101 && (hi - 0.92).abs() <= 0.0101,
+            "[{lo}, {hi}]"
+        );
+        // Same seed, same replicates.
+        let mut rng2 = stream(9, Domain::Bootstrap, 0);
+        let again = bootstrap(100, 2000, &mut rng2, 1, |idx| {
+            vec![Some(idx.iter().map(|&i| x[i]).sum::<f64>() / 100.0)]
+        });
+        assert_eq!(reps, again);
+    }
+
+    #[test]
+    fn percentile_positions_follow_efron_tibshirani() {
+        let reps: Vec<f64> = (1..=2000).map(f64::from).collect();
+        let (lo, hi, _) = percentile_interval(reps, 0.95).unwrap();
+        assert_eq!((lo, hi), (50.0, 1950.0));
+        let reps: Vec<f64> = (1..=1000).rev().map(f64::from).collect();
+        let (lo, hi, _) = percentile_interval(reps, 0.95).unwrap();
+        assert_eq!((lo, hi), (25.0, 975.0));
+    }
+}
