@@ -44,10 +44,33 @@ pub struct Prepared {
     pub key: Option<usize>,
     /// Identities of the test rows, for exposure accounting.
     pub test_keys: Vec<crate::data::RowKey>,
+    /// The resolved split method (for nested cross-validation's inner folds).
+    pub method: Method,
 }
 
 impl Prepared {
     /// Identities of the development rows (computed on demand: hashing every row costs time).
+    /// Inner folds over `rows` (positions among the kept rows) for outer fold `outer`, by the
+    /// run's split method, from their own seeded stream.
+    pub fn inner_folds(
+        &self,
+        spec: &Spec,
+        rows: &[usize],
+        outer: u32,
+    ) -> Result<Vec<crate::split::Fold>> {
+        let s = &spec.split;
+        let input = SplitInput {
+            method: self.method.clone(),
+            seed: s.seed,
+            test: 0.0,
+            validation: 0.0,
+            folds: s.folds,
+            repeats: 1,
+            target: &self.target,
+        };
+        crate::split::folds_of(&input, rows, Domain::NestedFolds, outer)
+    }
+
     pub fn development_keys(&self, table: &Table) -> Vec<crate::data::RowKey> {
         let rows: Vec<usize> = self
             .sealed
@@ -108,6 +131,8 @@ pub struct RunOutcome {
     pub metric: Metric,
     pub rule: Rule,
     pub refit: StoredModel,
+    /// Present when `[select] nested = true`.
+    pub nested: Option<NestedOutcome>,
     pub warnings: Vec<String>,
 }
 
@@ -341,7 +366,7 @@ pub fn prepare(spec: &Spec, table: &Table) -> Result<Prepared> {
     };
     let s = &spec.split;
     let partition = split(&SplitInput {
-        method,
+        method: method.clone(),
         seed: s.seed,
         test: s.test,
         validation: s.validation,
@@ -396,6 +421,7 @@ pub fn prepare(spec: &Spec, table: &Table) -> Result<Prepared> {
         warnings,
         key,
         test_keys,
+        method,
     })
 }
 
@@ -548,19 +574,109 @@ pub fn run(spec: &Spec, table: &Table, threads: usize) -> Result<RunOutcome> {
     check_grid(spec, table, &prep, &entries)?;
     let grids: Vec<Vec<Params>> = entries.iter().map(ModelSpec::expand).collect();
     let folds = prep.sealed.folds().to_vec();
+    let mut notes = Notes::new();
+    let candidates = cross_validate(
+        spec, table, &prep, &entries, &grids, &folds, threads, &mut notes,
+    )?;
+    let metric = spec.select.metric;
+    let (best, selected) = select(&candidates, metric, spec.select.rule, &entries)?;
+    let chosen = &candidates[selected - 1];
+    // Refit the selected candidate on every development row.
+    let dev_rows: Vec<usize> = prep.sealed.development();
+    let (encoder, fitted) = fit_on(
+        spec,
+        table,
+        &prep,
+        &entries[chosen.entry],
+        &chosen.params,
+        &dev_rows,
+        &mut notes,
+    )?;
+    let refit = StoredModel {
+        candidate: chosen.id,
+        target: spec.data.target.name.clone(),
+        key: spec.data.key.as_ref().map(|k| k.name.clone()),
+        encoder,
+        fitted,
+    };
+    let nested = if spec.select.nested {
+        Some(nested_cv(
+            spec, table, &prep, &entries, &grids, &folds, threads, &mut notes,
+        )?)
+    } else {
+        None
+    };
+    let mut warnings = prep.warnings.clone();
+    for (msg, count) in notes {
+        warnings.push(if count > 1 {
+            format!("{msg} ({count} fits)")
+        } else {
+            msg
+        });
+    }
+    Ok(RunOutcome {
+        prepared: prep,
+        candidates,
+        selected,
+        best,
+        metric,
+        rule: spec.select.rule,
+        refit,
+        nested,
+        warnings,
+    })
+}
+
+/// Fit one grid point on `fit` (positions among the kept rows); returns the encoder and model.
+fn fit_on(
+    spec: &Spec,
+    table: &Table,
+    prep: &Prepared,
+    entry: &ModelSpec,
+    params: &Params,
+    fit: &[usize],
+    notes: &mut Notes,
+) -> Result<(Encoder, Fitted)> {
+    let rows: Vec<usize> = fit.iter().map(|&i| prep.rows[i]).collect();
+    let y: Vec<f64> = fit.iter().map(|&i| prep.target[i]).collect();
+    let model = model_for(entry);
+    let encoder = Encoder::fit(
+        table,
+        &prep.features,
+        &rows,
+        model.drops_first_level(),
+        spec.data.missing == Missing::Mean,
+    );
+    let x = design(table, &encoder, &rows, notes)?;
+    let fitted = model.fit(&x, &y, params, notes)?;
+    Ok((encoder, fitted))
+}
+
+/// Every candidate on every fold: tasks over (fold, model entry) on `threads` threads, reduced
+/// in task order into candidates with per-fold and aggregate scores.
+#[allow(clippy::too_many_arguments)]
+fn cross_validate(
+    spec: &Spec,
+    table: &Table,
+    prep: &Prepared,
+    entries: &[ModelSpec],
+    grids: &[Vec<Params>],
+    folds: &[crate::split::Fold],
+    threads: usize,
+    notes: &mut Notes,
+) -> Result<Vec<CandidateResult>> {
     let impute = spec.data.missing == Missing::Mean;
     let tasks: Vec<(usize, usize)> = (0..folds.len())
         .flat_map(|f| (0..entries.len()).map(move |e| (f, e)))
         .collect();
     let outs = parallel(tasks.len(), threads, |t| {
         let (f, e) = tasks[t];
-        run_task(table, &prep, &entries[e], &grids[e], &folds[f], impute)
+        run_task(table, prep, &entries[e], &grids[e], &folds[f], impute)
     });
     if outs.len() != tasks.len() {
         return Err(Error::Internal("a worker thread panicked".into()));
     }
     // Reduce in task order: the first error by task, the notes merged in a sorted map.
-    let mut notes = Notes::new();
     let mut by_task = Vec::with_capacity(outs.len());
     for (t, o) in outs.into_iter().enumerate() {
         let o = o.map_err(|e| match e {
@@ -621,48 +737,71 @@ pub fn run(spec: &Spec, table: &Table, threads: usize) -> Result<RunOutcome> {
             });
         }
     }
+    Ok(candidates)
+}
+
+/// The nested cross-validation estimate of the whole selection procedure.
+#[derive(Debug, Clone)]
+pub struct NestedOutcome {
+    pub metric: Metric,
+    pub estimate: Option<f64>,
+    pub se: Option<f64>,
+    /// Per outer fold: the candidate the inner selection chose, and its outer score.
+    pub selections: Vec<(usize, Option<f64>)>,
+}
+
+/// Nested cross-validation (Varma & Simon 2006, BMC Bioinformatics 7:91): the run's first-repeat
+/// folds are the outer folds; inside each, the whole selection (inner k-fold over every
+/// candidate, the `[select]` rule) runs on the outer fitting rows only, the chosen candidate is
+/// refitted there and scored on the outer held-out rows.
+#[allow(clippy::too_many_arguments)]
+fn nested_cv(
+    spec: &Spec,
+    table: &Table,
+    prep: &Prepared,
+    entries: &[ModelSpec],
+    grids: &[Vec<Params>],
+    folds: &[crate::split::Fold],
+    threads: usize,
+    notes: &mut Notes,
+) -> Result<NestedOutcome> {
     let metric = spec.select.metric;
-    let (best, selected) = select(&candidates, metric, spec.select.rule, &entries)?;
-    let chosen = &candidates[selected - 1];
-    // Refit the selected candidate on every development row.
-    let dev: Vec<usize> = prep.sealed.development();
-    let dev_rows: Vec<usize> = dev.iter().map(|&i| prep.rows[i]).collect();
-    let ydev: Vec<f64> = dev.iter().map(|&i| prep.target[i]).collect();
-    let entry = &entries[chosen.entry];
-    let model = model_for(entry);
-    let encoder = Encoder::fit(
-        table,
-        &prep.features,
-        &dev_rows,
-        model.drops_first_level(),
-        impute,
-    );
-    let xdev = design(table, &encoder, &dev_rows, &mut notes)?;
-    let fitted = model.fit(&xdev, &ydev, &chosen.params, &mut notes)?;
-    let refit = StoredModel {
-        candidate: chosen.id,
-        target: spec.data.target.name.clone(),
-        key: spec.data.key.as_ref().map(|k| k.name.clone()),
-        encoder,
-        fitted,
-    };
-    let mut warnings = prep.warnings.clone();
-    for (msg, count) in notes {
-        warnings.push(if count > 1 {
-            format!("{msg} ({count} fits)")
-        } else {
-            msg
-        });
+    let mi = Metric::ALL.iter().position(|m| *m == metric).unwrap_or(0);
+    let mut selections = Vec::new();
+    for (o, outer) in folds.iter().filter(|f| f.repeat == 0).enumerate() {
+        let wrap = |e: Error| match e {
+            Error::Input(m) => Error::Input(format!(
+                "nested cross-validation, outer fold {}: {m}",
+                o + 1
+            )),
+            other => other,
+        };
+        let inner = prep.inner_folds(spec, &outer.fit, o as u32).map_err(wrap)?;
+        let cands = cross_validate(spec, table, prep, entries, grids, &inner, threads, notes)
+            .map_err(wrap)?;
+        let (_, chosen) = select(&cands, metric, spec.select.rule, entries).map_err(wrap)?;
+        let c = &cands[chosen - 1];
+        let (enc, fitted) = fit_on(
+            spec,
+            table,
+            prep,
+            &entries[c.entry],
+            &c.params,
+            &outer.fit,
+            notes,
+        )
+        .map_err(wrap)?;
+        let rows: Vec<usize> = outer.score.iter().map(|&i| prep.rows[i]).collect();
+        let y: Vec<f64> = outer.score.iter().map(|&i| prep.target[i]).collect();
+        let pred = fitted.predict(&enc.transform(table, &rows, notes)?);
+        selections.push((chosen, score_all(&y, &pred)[mi]));
     }
-    Ok(RunOutcome {
-        prepared: prep,
-        candidates,
-        selected,
-        best,
+    let (estimate, se) = mean_se(&selections.iter().map(|s| s.1).collect::<Vec<_>>());
+    Ok(NestedOutcome {
         metric,
-        rule: spec.select.rule,
-        refit,
-        warnings,
+        estimate,
+        se,
+        selections,
     })
 }
 
@@ -732,31 +871,18 @@ pub fn refit_prepared(
     for entry in &entries {
         for params in entry.expand() {
             id += 1;
-            if id != candidate {
-                continue;
+            if id == candidate {
+                let dev = prep.sealed.development();
+                let (encoder, fitted) =
+                    fit_on(spec, table, prep, entry, &params, &dev, &mut Notes::new())?;
+                return Ok(StoredModel {
+                    candidate,
+                    target: spec.data.target.name.clone(),
+                    key: spec.data.key.as_ref().map(|k| k.name.clone()),
+                    encoder,
+                    fitted,
+                });
             }
-            let dev = prep.sealed.development();
-            let rows: Vec<usize> = dev.iter().map(|&i| prep.rows[i]).collect();
-            let y: Vec<f64> = dev.iter().map(|&i| prep.target[i]).collect();
-            let model = model_for(entry);
-            let impute = spec.data.missing == Missing::Mean;
-            let encoder = Encoder::fit(
-                table,
-                &prep.features,
-                &rows,
-                model.drops_first_level(),
-                impute,
-            );
-            let mut notes = Notes::new();
-            let x = design(table, &encoder, &rows, &mut notes)?;
-            let fitted = model.fit(&x, &y, &params, &mut notes)?;
-            return Ok(StoredModel {
-                candidate,
-                target: spec.data.target.name.clone(),
-                key: spec.data.key.as_ref().map(|k| k.name.clone()),
-                encoder,
-                fitted,
-            });
         }
     }
     Err(Error::Input(format!(

@@ -2,6 +2,7 @@
 
 use super::{Global, open_existing, warn};
 use crate::error::{Error, Result};
+use crate::metrics::Metric;
 use crate::runner::StoredModel;
 use std::path::{Path, PathBuf};
 
@@ -20,6 +21,9 @@ pub struct Args {
     /// whose SHA-256 must match the ledger)
     #[arg(long, value_name = "ID")]
     pub candidate: Option<i64>,
+    /// Score rows of a sealed test partition anyway, recording it as a reveal of that partition
+    #[arg(long)]
+    pub allow_sealed: bool,
 }
 
 pub fn run(g: &Global, a: Args) -> Result<i32> {
@@ -71,6 +75,7 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
     for n in &notes {
         warn(n);
     }
+    guard_sealed_rows(&ledger, &d, &model, &input, &pred, a.allow_sealed, &a.input)?;
     write_predictions(&a.output, &input, model.key.as_deref(), &pred)?;
     eprintln!(
         "wrote {} predictions of run {} candidate {} to {}",
@@ -117,4 +122,107 @@ fn write_predictions(
         w.flush().map_err(io)?;
     }
     std::fs::rename(&tmp, path).map_err(io)
+}
+
+/// With targets in the file, rows of a sealed test partition are a reveal by hand: refuse, or
+/// (with `--allow-sealed`) record one reveal per partition touched, scored on those rows.
+fn guard_sealed_rows(
+    ledger: &crate::ledger::Ledger,
+    d: &crate::ledger::RunDetail,
+    model: &StoredModel,
+    input: &crate::data::Table,
+    pred: &[f64],
+    allow: bool,
+    file: &Path,
+) -> Result<()> {
+    let Some(target) = input.column(&model.target) else {
+        return Ok(());
+    };
+    let rows: Vec<usize> = (0..input.n_rows())
+        .filter(|&r| !target.is_missing(r))
+        .collect();
+    if rows.is_empty() {
+        return Ok(());
+    }
+    let key = model.key.as_deref().and_then(|k| input.index_of(k));
+    let keys = crate::data::row_keys(input, key, &rows);
+    let hits = ledger.sealed_partitions_holding(&keys)?;
+    if hits.is_empty() {
+        return Ok(());
+    }
+    if !allow {
+        let (p, n) = &hits[0];
+        return Err(Error::Input(format!(
+            "{}: {n} rows are test rows of sealed partition {p} and the file holds their target '{}': scoring them is a reveal. Use `probity reveal RUN` (counted), or pass --allow-sealed to record this prediction as a reveal",
+            file.display(),
+            model.target
+        )));
+    }
+    let crate::data::Values::Numeric(y) = &target.values else {
+        return Err(Error::Input(format!(
+            "{}: the target column '{}' holds text",
+            file.display(),
+            model.target
+        )));
+    };
+    // Recording needs a writable ledger of its own.
+    let mut writer = crate::ledger::Ledger::open(ledger.path(), false)?;
+    let spec_path = Path::new(&d.spec_path);
+    let spec = crate::spec::parse(
+        &d.spec_text,
+        spec_path,
+        &spec_path
+            .parent()
+            .map(Path::to_path_buf)
+            .unwrap_or_default(),
+    )?;
+    for (partition, _) in &hits {
+        let own: std::collections::BTreeSet<crate::data::RowKey> =
+            ledger.partition_row_keys(partition)?.into_iter().collect();
+        let idx: Vec<usize> = rows
+            .iter()
+            .zip(&keys)
+            .filter(|(_, k)| own.contains(*k))
+            .map(|(r, _)| *r)
+            .collect();
+        let ys: Vec<f64> = idx.iter().map(|&r| y[r]).collect();
+        let ps: Vec<f64> = idx.iter().map(|&r| pred[r]).collect();
+        let scores = crate::metrics::score_all(&ys, &ps);
+        let history = ledger.partition_history(partition)?;
+        let metric = spec.select.metric;
+        let mi = Metric::ALL.iter().position(|m| *m == metric).unwrap_or(0);
+        let mut seen = history.candidates.clone();
+        seen.insert((d.spec_hash.clone(), model.candidate as i64));
+        let optimism =
+            crate::guard::optimism(metric, idx.len(), seen.len(), None, spec.guard.confidence);
+        let id = writer.write_reveal(&crate::ledger::RevealRecord {
+            run_id: d.summary.id,
+            candidate: model.candidate as i64,
+            partition_id: partition.clone(),
+            source: "predict".into(),
+            revealed_at: chrono::Utc::now().to_rfc3339_opts(chrono::SecondsFormat::Millis, true),
+            user: super::user(),
+            host: super::host(),
+            tool_version: env!("CARGO_PKG_VERSION").into(),
+            mode: "count".into(),
+            budget: i64::from(spec.guard.reveals),
+            metric: metric.name().into(),
+            n_rows: idx.len() as i64,
+            seed: "0".into(),
+            resamples: 0,
+            confidence: spec.guard.confidence,
+            answer: scores[mi],
+            answer_kind: "test".into(),
+            mechanism: serde_json::json!({"mode": "count", "source": "predict --allow-sealed", "file": file.display().to_string()}).to_string(),
+            optimism: serde_json::to_string(&optimism).map_err(|e| Error::Internal(e.to_string()))?,
+            scores: Metric::ALL.iter().enumerate().map(|(i, m)| (m.name().to_string(), scores[i], None, None, None)).collect(),
+        })?;
+        warn(&format!(
+            "{} rows of sealed partition {partition} were scored with their targets: recorded as reveal {id} ({} reveal(s) of the partition now, budget {})",
+            idx.len(),
+            history.reveals + 1,
+            spec.guard.reveals
+        ));
+    }
+    Ok(())
 }

@@ -330,6 +330,18 @@ impl Ledger {
                 warn.execute(params![run, i as i64, w]).map_err(fail)?;
             }
         }
+        if let Some(n) = &out.nested {
+            let sel: Vec<Value> = n
+                .selections
+                .iter()
+                .map(|(c, v)| serde_json::json!({"candidate": c, "score": v}))
+                .collect();
+            tx.execute(
+                "INSERT INTO nested (run_id, metric, estimate, se, outer_folds, selections) VALUES (?1, ?2, ?3, ?4, ?5, ?6)",
+                params![run, n.metric.name(), n.estimate, n.se, n.selections.len() as i64, Value::Array(sel).to_string()],
+            )
+            .map_err(fail)?;
+        }
         tx.commit().map_err(fail)?;
         Ok(run)
     }
@@ -689,6 +701,22 @@ impl Ledger {
             }
         }
         Ok(hits.into_iter().collect())
+    }
+
+    /// The test-row identities of a partition.
+    pub fn partition_row_keys(&self, partition: &str) -> Result<Vec<crate::data::RowKey>> {
+        let mut st = self
+            .conn
+            .prepare("SELECT row_key FROM partition_rows WHERE partition_id = ?1")
+            .map_err(sql_err("read partition rows"))?;
+        let rows: Vec<Vec<u8>> = st
+            .query_map([partition], |r| r.get(0))
+            .and_then(|rows| rows.collect())
+            .map_err(sql_err("read partition rows"))?;
+        Ok(rows
+            .into_iter()
+            .filter_map(|k| <crate::data::RowKey>::try_from(k.as_slice()).ok())
+            .collect())
     }
 
     /// Runs and candidates evaluated on a development partition across the ledger, up to and

@@ -152,7 +152,7 @@ pub fn split(input: &SplitInput) -> Result<Partition> {
             input.validation
         )));
     }
-    let folds = make_folds(input, &train)?;
+    let folds = folds_of(input, &train, Domain::Folds, 0)?;
     Ok(Partition {
         parts,
         folds,
@@ -392,7 +392,15 @@ fn chunk_sizes(m: usize, k: usize) -> Vec<usize> {
     (0..k).map(|i| m / k + usize::from(i < m % k)).collect()
 }
 
-fn make_folds(input: &SplitInput, dev: &[usize]) -> Result<Vec<Fold>> {
+/// Folds over `dev` (row indices) by the input's method; repeat r draws from the stream
+/// `(seed, domain, index + r)`. The run's folds use `Domain::Folds`; nested cross-validation's
+/// inner folds use their own domain.
+pub fn folds_of(
+    input: &SplitInput,
+    dev: &[usize],
+    domain: Domain,
+    index: u32,
+) -> Result<Vec<Fold>> {
     let m = dev.len();
     let k = match input.folds {
         Folds::K(k) => k,
@@ -412,7 +420,7 @@ fn make_folds(input: &SplitInput, dev: &[usize]) -> Result<Vec<Fold>> {
     let repeats = if loo { 1 } else { input.repeats };
     let mut folds = Vec::new();
     for r in 0..repeats {
-        let ridx = r as u32;
+        let ridx = index + r as u32;
         // fold_of[pos in dev] for the exchangeable methods; time builds its own.
         let fold_of: Vec<usize> = match &input.method {
             Method::Time { order } => {
@@ -450,7 +458,7 @@ fn make_folds(input: &SplitInput, dev: &[usize]) -> Result<Vec<Fold>> {
                 continue;
             }
             Method::Stratified { bins } => {
-                let order = strata_order(input.target, *bins, input.seed, Domain::Folds, ridx, dev);
+                let order = strata_order(input.target, *bins, input.seed, domain, ridx, dev);
                 let mut f = std::collections::BTreeMap::new();
                 for (pos, row) in order.into_iter().enumerate() {
                     f.insert(row, pos % k);
@@ -458,7 +466,7 @@ fn make_folds(input: &SplitInput, dev: &[usize]) -> Result<Vec<Fold>> {
                 dev.iter().map(|r| f[r]).collect()
             }
             Method::Group { groups } => {
-                let order = shuffled_groups(groups, input.seed, Domain::Folds, ridx, dev);
+                let order = shuffled_groups(groups, input.seed, domain, ridx, dev);
                 if order.len() < k {
                     return Err(Error::Input(format!(
                         "split: the development rows hold {} groups, fewer than the {k} folds; lower folds or use another method",
@@ -483,7 +491,7 @@ fn make_folds(input: &SplitInput, dev: &[usize]) -> Result<Vec<Fold>> {
             }
             _ => {
                 let mut perm: Vec<usize> = (0..m).collect();
-                let mut rng = stream(input.seed, Domain::Folds, ridx);
+                let mut rng = stream(input.seed, domain, ridx);
                 if !loo {
                     shuffle(&mut rng, &mut perm);
                 }
