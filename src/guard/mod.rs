@@ -223,3 +223,98 @@ pub fn optimism(
         assumes,
     }
 }
+
+#[cfg(test)]
+mod answer_tests {
+    use super::*;
+    use crate::spec::GuardMode;
+    use crate::split::rng::{Domain, stream};
+
+    const REUSABLE: GuardMode = GuardMode::Reusable {
+        threshold: 0.04,
+        noise: 0.01,
+    };
+
+    /// Thresholdout with the practical parameters of Dwork et al. (T = 0.04, sigma = 0.01, as in
+    /// their Science experiments; ../shared/METHODS.md section 1), driven through `answer` with
+    /// the seeded stream, carrying state from reveal to reveal as the ledger does.
+    fn queries(pairs: &[(f64, f64)], seed: u64) -> Vec<Answer> {
+        queries_with(REUSABLE, pairs, seed)
+    }
+
+    fn queries_with(mode: GuardMode, pairs: &[(f64, f64)], seed: u64) -> Vec<Answer> {
+        let mut h = History::default();
+        let mut out = Vec::new();
+        for (i, (dev, test)) in pairs.iter().enumerate() {
+            let mut rng = stream(seed, Domain::Noise, i as u32);
+            let a = answer(mode, 3, &h, *dev, *test, true, &mut rng);
+            h.reveals += 1;
+            h.thresholdout = serde_json::from_value(a.mechanism["step"]["after"].clone()).ok();
+            out.push(a);
+        }
+        out
+    }
+
+    #[test]
+    fn agreeing_estimates_return_the_development_score_and_spend_nothing() {
+        // Test scores within 0.005 of the development estimates: far inside T = 0.04.
+        let pairs: Vec<(f64, f64)> = (0..20)
+            .map(|i| (0.80 + i as f64 * 0.001, 0.803 + i as f64 * 0.001))
+            .collect();
+        // With sigma = 0.01 the threshold noise Lap(0.04) itself crosses the gap about one query
+        // in five (then the test score is answered and budget spent, as designed); with
+        // sigma = 0.001 that chance is below 1e-4 per query, so every answer is the
+        // development estimate.
+        let quiet = GuardMode::Reusable {
+            threshold: 0.04,
+            noise: 0.001,
+        };
+        let answers = queries_with(quiet, &pairs, 11);
+        for (a, (dev, _)) in answers.iter().zip(&pairs) {
+            assert_eq!(a.kind, "development");
+            assert_eq!(a.value, Some(*dev));
+            assert_eq!(a.mechanism["step"]["after"]["budget"], 3);
+        }
+    }
+
+    #[test]
+    fn an_overfitted_candidate_gets_the_noisy_test_score_and_spends_budget() {
+        // Development 0.95, test 0.70: the candidate overfits the development rows.
+        let answers = queries(
+            &[(0.95, 0.70), (0.96, 0.71), (0.97, 0.69), (0.98, 0.70)],
+            12,
+        );
+        for (i, a) in answers.iter().take(3).enumerate() {
+            assert_eq!(a.kind, "test+noise");
+            let v = a.value.unwrap();
+            assert!((v - [0.70, 0.71, 0.69][i]).abs() < 0.2, "{v}");
+            assert_ne!(v, [0.70, 0.71, 0.69][i], "noise was added");
+            assert_eq!(a.mechanism["step"]["after"]["budget"], 2 - i as i64);
+        }
+        assert_eq!(answers[3].kind, "refused");
+        assert_eq!(answers[3].value, None);
+        // Same seed, same noise.
+        let again = queries(
+            &[(0.95, 0.70), (0.96, 0.71), (0.97, 0.69), (0.98, 0.70)],
+            12,
+        );
+        assert_eq!(answers, again);
+        let other = queries(&[(0.95, 0.70)], 13);
+        assert_ne!(answers[0].value, other[0].value);
+    }
+
+    #[test]
+    fn count_mode_returns_the_exact_score() {
+        let mut rng = stream(1, Domain::Noise, 0);
+        let a = answer(
+            GuardMode::Count,
+            1,
+            &History::default(),
+            0.5,
+            0.4,
+            false,
+            &mut rng,
+        );
+        assert_eq!((a.kind, a.value), ("test", Some(0.4)));
+    }
+}

@@ -2,6 +2,7 @@
 
 mod bad_input;
 mod fixtures;
+mod guard;
 mod reference;
 mod run;
 mod tidy;

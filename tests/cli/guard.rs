@@ -1,0 +1,315 @@
+//! The sealed test partition through the binary: reveals, budgets, exposure, predict's guard,
+//! audit, guard modes, nested cross-validation.
+
+use crate::fixtures::{SMALL_SPEC, small_dir};
+use crate::util::{Dir, reference};
+use serde_json::Value;
+
+/// Diabetes with the reference's validation rows as the sealed test rows: the development rows
+/// are exactly the reference fitting rows, so a reveal must reproduce the reference validation
+/// scores (exact or 50-digit values, scikit-learn 1.9.1 cross-checked; tests/reference/README.md).
+fn diabetes_dir(name: &str, extra: &str) -> Dir {
+    let d = Dir::new(name);
+    let text = std::fs::read_to_string(reference("diabetes.csv")).unwrap();
+    // Reference validation rows become test; reference test rows are dropped from play.
+    let relabelled: String = text
+        .lines()
+        .filter(|l| !l.ends_with(",test"))
+        .map(|l| format!("{}\n", l.replace(",validation", ",test")))
+        .collect();
+    d.write("diabetes.csv", &relabelled);
+    d.write(
+        "d.toml",
+        &format!(
+            "name = \"d\"\ntask = \"regression\"\n[data]\npath = \"diabetes.csv\"\ntarget = \"y\"\n[split]\nmethod = \"column\"\ncolumn = \"part\"\nfolds = 5\n{extra}\n[[model]]\nkind = \"ridge\"\nlambda = [10.0]\n[[model]]\nkind = \"knn\"\nk = [5]\n"
+        ),
+    );
+    d
+}
+
+fn expected(case_id: &str) -> Value {
+    let exp: Value = serde_json::from_str(
+        &std::fs::read_to_string(reference("diabetes.expected.json")).unwrap(),
+    )
+    .unwrap();
+    exp["cases"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|c| c["id"] == case_id)
+        .unwrap()
+        .clone()
+}
+
+#[test]
+fn reveal_scores_the_test_rows_once_and_counts() {
+    let d = diabetes_dir("reveal", "");
+    d.probity(&["run", "d.toml"]).expect(0);
+    // Without a terminal and without --yes: refused, nothing recorded.
+    let before = d.counts();
+    let r = d.probity(&["reveal", "1", "--candidate", "2"]).expect(2);
+    assert!(r.stderr().contains("pass --yes"), "{}", r.stderr());
+    assert_eq!(d.counts(), before);
+
+    let j = d
+        .probity(&["reveal", "1", "--candidate", "2", "--yes", "--json"])
+        .expect(0)
+        .json();
+    assert_eq!(j["reveal"], 1);
+    assert_eq!(j["run"], 1);
+    assert_eq!(j["candidate"], 2);
+    assert_eq!(j["rows"], 88);
+    assert_eq!(j["reveals"], 1);
+    assert_eq!(j["budget"], 1);
+    assert_eq!(j["over_budget"], false);
+    let case = expected("ridge(lambda=10.0)");
+    for m in ["rmse", "mae", "r2"] {
+        let (got, want) = (
+            j["test"][m].as_f64().unwrap(),
+            case["metrics"][m].as_f64().unwrap(),
+        );
+        assert!(((got - want) / want).abs() < 1e-8, "{m}: {got} vs {want}");
+        let iv = &j["interval"][m];
+        assert!(
+            iv[0].as_f64().unwrap() <= got && got <= iv[1].as_f64().unwrap(),
+            "{m} interval {iv} misses {got}"
+        );
+    }
+    // One candidate revealed: no selection optimism yet.
+    assert_eq!(j["optimism"]["k"], 1);
+    assert_eq!(j["optimism"]["estimate"], 0.0);
+    let a = d.probity(&["audit", "--json"]).expect(0).json();
+    assert_eq!(a["partitions"][0]["reveals"], 1);
+    assert_eq!(a["partitions"][0]["over_budget"], false);
+
+    // A second, different candidate: over the budget of 1, optimism for k = 2, audit fails.
+    let r = d
+        .probity(&["reveal", "1", "--candidate", "3", "--yes", "--json"])
+        .expect(0);
+    let j2 = r.json();
+    assert_eq!(j2["reveals"], 2);
+    assert_eq!(j2["over_budget"], true);
+    assert!(
+        r.stderr().contains("over its budget of 1"),
+        "{}",
+        r.stderr()
+    );
+    let case = expected("knn(k=5)");
+    let got = j2["test"]["rmse"].as_f64().unwrap();
+    assert!(((got - case["metrics"]["rmse"].as_f64().unwrap()) / got).abs() < 1e-8);
+    assert_eq!(j2["optimism"]["k"], 2);
+    // se x E[max of 2 normals] = se / sqrt(pi) (METHODS.md section 3 closed form).
+    let se = j2["optimism"]["se"].as_f64().unwrap();
+    assert!(
+        (j2["optimism"]["estimate"].as_f64().unwrap() - se / std::f64::consts::PI.sqrt()).abs()
+            < 1e-9
+    );
+    let r = d.probity(&["audit"]).expect(3);
+    assert!(r.stdout().contains("OVER BUDGET"), "{}", r.stdout());
+    let a = d.probity(&["audit", "--json"]).expect(3).json();
+    assert_eq!(a["partitions"][0]["over_budget"], true);
+    assert_eq!(a["partitions"][0]["candidates_revealed"], 2);
+}
+
+#[test]
+fn the_same_reveal_gives_the_same_interval() {
+    let d = diabetes_dir("reveal-seed", "[guard]\nreveals = 5");
+    d.probity(&["run", "d.toml"]).expect(0);
+    let a = d
+        .probity(&["reveal", "1", "--yes", "--json"])
+        .expect(0)
+        .json();
+    let b = d
+        .probity(&["reveal", "1", "--yes", "--json"])
+        .expect(0)
+        .json();
+    assert_eq!(
+        a["interval"], b["interval"],
+        "bootstrap resamples are seeded from the run seed"
+    );
+    assert_eq!(a["bootstrap_seed"], b["bootstrap_seed"]);
+    assert_eq!(b["reveals"], 2);
+    assert_eq!(b["over_budget"], false);
+    // The same candidate twice is still one distinct candidate.
+    assert_eq!(b["optimism"]["k"], 1);
+}
+
+#[test]
+fn exposure_survives_a_new_seed() {
+    let d = small_dir("exposure");
+    d.probity(&["run", "small.toml"]).expect(0);
+    d.probity(&["reveal", "1", "--yes"]).expect(0);
+    d.write("seed.toml", &SMALL_SPEC.replace("seed = 5", "seed = 6"));
+    let r = d.probity(&["run", "seed.toml", "--json"]).expect(0);
+    let j = r.json();
+    let warnings: Vec<&str> = j["warnings"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|w| w.as_str().unwrap())
+        .collect();
+    // The new partition reshuffles the 40 rows: some of the 10 revealed rows are now development
+    // rows, and some are test rows again; the counts must add up to 10.
+    let num = |w: &str| -> usize { w.split(' ').next().unwrap().parse().unwrap() };
+    let dev = warnings
+        .iter()
+        .find(|w| w.contains("development rows were in a test partition revealed 1 time"))
+        .expect("a development exposure warning");
+    let test = warnings
+        .iter()
+        .find(|w| w.contains("test rows were already revealed in another partition"));
+    assert_eq!(num(dev) + test.map_or(0, |t| num(t)), 10, "{warnings:?}");
+    assert!(
+        r.stderr()
+            .contains("development rows were in a test partition"),
+        "{}",
+        r.stderr()
+    );
+    // The same seed again: its own partition was revealed.
+    let j = d.probity(&["run", "small.toml", "--json"]).expect(0).json();
+    assert!(
+        j["warnings"].as_array().unwrap().iter().any(|w| w
+            .as_str()
+            .unwrap()
+            .contains("has already been revealed 1 time")),
+        "{}",
+        j["warnings"]
+    );
+    let a = d.probity(&["audit", "--json"]).expect(0).json();
+    assert!(
+        !a["warnings"].as_array().unwrap().is_empty(),
+        "audit reports the overlap: {a}"
+    );
+}
+
+#[test]
+fn predict_cannot_score_sealed_rows_by_hand() {
+    let d = small_dir("predict-guard");
+    d.probity(&["run", "small.toml"]).expect(0);
+    // The whole data file, targets included: its test rows are sealed.
+    let r = d
+        .probity(&["predict", "1", "--input", "small.csv", "--output", "p.csv"])
+        .expect(2);
+    assert!(
+        r.stderr()
+            .contains("10 rows are test rows of sealed partition")
+            && r.stderr().contains("probity reveal"),
+        "{}",
+        r.stderr()
+    );
+    assert!(!d.path.join("p.csv").exists());
+    // Without the target column it is an ordinary prediction.
+    let no_target: String = crate::fixtures::small_csv()
+        .lines()
+        .map(|l| format!("{}\n", l.rsplit_once(',').unwrap().0))
+        .collect();
+    d.write("nt.csv", &no_target);
+    d.probity(&["predict", "1", "--input", "nt.csv", "--output", "p.csv"])
+        .expect(0);
+    // --allow-sealed records it as a reveal.
+    let r = d
+        .probity(&[
+            "predict",
+            "1",
+            "--input",
+            "small.csv",
+            "--output",
+            "p.csv",
+            "--allow-sealed",
+        ])
+        .expect(0);
+    assert!(
+        r.stderr().contains("recorded as reveal 1"),
+        "{}",
+        r.stderr()
+    );
+    let a = d.probity(&["audit", "--json"]).expect(0).json();
+    assert_eq!(a["partitions"][0]["reveals"], 1);
+}
+
+#[test]
+fn ladder_mode_reports_only_real_improvements() {
+    let d = diabetes_dir(
+        "ladder",
+        "[guard]\nmode = \"ladder\"\nstep = 1.0\nreveals = 10",
+    );
+    d.probity(&["run", "d.toml"]).expect(0);
+    // ridge(10) test rmse 48.1..., knn(5) about 57: the second is worse and repeats the first.
+    let a = d
+        .probity(&["reveal", "1", "--candidate", "2", "--yes", "--json"])
+        .expect(0)
+        .json();
+    assert_eq!(a["answer"]["kind"], "ladder-new");
+    let rmse = expected("ridge(lambda=10.0)")["metrics"]["rmse"]
+        .as_f64()
+        .unwrap();
+    assert_eq!(a["answer"]["value"].as_f64().unwrap(), rmse.round());
+    assert!(
+        a["interval"].as_object().unwrap().is_empty(),
+        "ladder mode withholds the exact scores"
+    );
+    let b = d
+        .probity(&["reveal", "1", "--candidate", "3", "--yes", "--json"])
+        .expect(0)
+        .json();
+    assert_eq!(b["answer"]["kind"], "ladder-previous");
+    assert_eq!(b["answer"]["value"], a["answer"]["value"]);
+    assert_eq!(b["test"]["rmse"], a["answer"]["value"]);
+}
+
+#[test]
+fn reusable_mode_needs_a_bounded_metric() {
+    let d = small_dir("reusable");
+    d.write(
+        "r.toml",
+        &format!("{SMALL_SPEC}\n[guard]\nmode = \"reusable\"\n"),
+    );
+    let r = d.probity(&["run", "r.toml"]).expect(2);
+    assert!(
+        r.stderr().contains("r.toml:25:8") && r.stderr().contains("bounded in [0, 1]"),
+        "{}",
+        r.stderr()
+    );
+}
+
+#[test]
+fn reveal_refuses_a_changed_data_file_and_a_run_without_test_rows() {
+    let d = small_dir("reveal-bad");
+    d.probity(&["run", "small.toml"]).expect(0);
+    d.write(
+        "small.csv",
+        &crate::fixtures::small_csv().replace("r0,", "r00,"),
+    );
+    let r = d.probity(&["reveal", "1", "--yes"]).expect(2);
+    assert!(
+        r.stderr().contains("has SHA-256") && r.stderr().contains("but run 1 used"),
+        "{}",
+        r.stderr()
+    );
+    let d = small_dir("reveal-notest");
+    d.write("n.toml", &SMALL_SPEC.replace("test = 0.25\n", ""));
+    d.probity(&["run", "n.toml"]).expect(0);
+    let r = d.probity(&["reveal", "1", "--yes"]).expect(2);
+    assert!(r.stderr().contains("no test partition"), "{}", r.stderr());
+}
+
+#[test]
+fn nested_cross_validation_estimates_the_whole_procedure() {
+    let d = small_dir("nested");
+    d.write(
+        "n.toml",
+        &SMALL_SPEC.replace("folds = 4", "folds = 3\n[select]\nnested = true"),
+    );
+    let j = d.probity(&["run", "n.toml", "--json"]).expect(0).json();
+    let n = &j["nested"];
+    assert_eq!(n["outer_folds"], 3);
+    assert_eq!(n["selections"].as_array().unwrap().len(), 3);
+    assert!(
+        n["estimate"].as_f64().unwrap() > 0.0 && n["se"].is_number(),
+        "{n}"
+    );
+    // Same spec without nesting: the same candidates, and no nested block.
+    let plain = d.probity(&["run", "small.toml", "--json"]).expect(0).json();
+    assert!(plain["nested"].is_null());
+    assert!(j["development"]["candidates"].as_i64().unwrap() >= 6);
+}
