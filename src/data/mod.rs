@@ -279,7 +279,7 @@ pub fn parse(bytes: &[u8], path: &Path, sha256: String, text_columns: &[&str]) -
         }
     }
     // Pass 2, only when some column is text: intern its cells, then sort the levels.
-    let mut texts: Vec<Option<(Vec<u32>, std::collections::BTreeMap<String, u32>)>> = is_text
+    let mut texts: Vec<Option<Interned>> = is_text
         .iter()
         .map(|&t| {
             t.then(|| {
@@ -356,6 +356,9 @@ fn line_at(body: &[u8], offset: usize) -> u64 {
     }
     line
 }
+
+/// A text column being read: codes in first-seen order, and level -> first-seen code.
+type Interned = (Vec<u32>, std::collections::BTreeMap<String, u32>);
 
 /// A finite number, or the reason it is not one.
 fn number(s: &str) -> Option<std::result::Result<f64, ()>> {

@@ -125,6 +125,7 @@ mod tests {
     /// The deterministic trace of ../shared/METHODS.md section 1 (T = 0.04, B = 2, initial
     /// gamma = 0.004 so T_hat = 0.044; injected noise).
     #[test]
+    #[allow(clippy::type_complexity)]
     fn thresholdout_follows_the_worked_trace() {
         let mut state = ThresholdoutState {
             budget: 2,

@@ -527,6 +527,9 @@ impl Ledger {
     }
 }
 
+/// One metric of a reveal: (metric, value, low, high, bootstrap se).
+pub type RevealScore = (String, Option<f64>, Option<f64>, Option<f64>, Option<f64>);
+
 /// A reveal to store.
 #[derive(Debug, Clone)]
 pub struct RevealRecord {
@@ -551,7 +554,7 @@ pub struct RevealRecord {
     pub mechanism: String,
     pub optimism: String,
     /// (metric, value, low, high, se)
-    pub scores: Vec<(String, Option<f64>, Option<f64>, Option<f64>, Option<f64>)>,
+    pub scores: Vec<RevealScore>,
 }
 
 /// One partition in `audit`.

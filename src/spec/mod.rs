@@ -811,10 +811,10 @@ impl Check<'_> {
             (&r.noise, "noise", "reusable"),
             (&r.step, "step", "ladder"),
         ] {
-            if let Some(v) = v {
-                if mode_name != m {
-                    return Err(self.err(v, format!("'{key}' is only read by mode = \"{m}\"")));
-                }
+            if let Some(v) = v
+                && mode_name != m
+            {
+                return Err(self.err(v, format!("'{key}' is only read by mode = \"{m}\"")));
             }
         }
         Ok(GuardSpec {
