@@ -313,3 +313,53 @@ fn nested_cross_validation_estimates_the_whole_procedure() {
     assert!(plain["nested"].is_null());
     assert!(j["development"]["candidates"].as_i64().unwrap() >= 6);
 }
+
+/// On a terminal (a pseudo-terminal from util-linux `script`), reveal shows what was spent and
+/// asks; "n" records nothing, "y" records the reveal.
+#[test]
+fn reveal_asks_on_a_terminal() {
+    let d = small_dir("tty");
+    d.probity(&["run", "small.toml"]).expect(0);
+    let ask = |answer: &str| {
+        let cmd = format!(
+            "'{}' reveal 1 --ledger '{}'",
+            env!("CARGO_BIN_EXE_probity"),
+            d.ledger().display()
+        );
+        let mut child = std::process::Command::new("script")
+            .args(["-q", "-e", "-c", &cmd, "/dev/null"])
+            .current_dir(&d.path)
+            .stdin(std::process::Stdio::piped())
+            .stdout(std::process::Stdio::piped())
+            .stderr(std::process::Stdio::piped())
+            .spawn()
+            .expect("util-linux `script` provides the pseudo-terminal");
+        use std::io::Write;
+        child
+            .stdin
+            .take()
+            .unwrap()
+            .write_all(answer.as_bytes())
+            .unwrap();
+        let out = child.wait_with_output().unwrap();
+        (
+            out.status.code(),
+            String::from_utf8_lossy(&out.stdout).into_owned(),
+        )
+    };
+    let before = d.counts();
+    let (code, text) = ask("n\n");
+    assert_eq!(code, Some(2), "{text}");
+    assert!(
+        text.contains("revealed 0 time(s) so far, budget 1") && text.contains("[y/N]"),
+        "{text}"
+    );
+    assert!(text.contains("nothing was recorded"), "{text}");
+    assert_eq!(d.counts(), before);
+    let (code, text) = ask("y\n");
+    assert_eq!(code, Some(0), "{text}");
+    assert!(
+        text.contains("reveals of this partition: 1 of a budget of 1"),
+        "{text}"
+    );
+}
