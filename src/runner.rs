@@ -131,6 +131,8 @@ pub struct RunOutcome {
     pub metric: Metric,
     pub rule: Rule,
     pub refit: StoredModel,
+    /// SHA-256 of the refitted model's predictions on the development rows (f64 LE bytes).
+    pub predictions_digest: String,
     /// Present when `[select] nested = true`.
     pub nested: Option<NestedOutcome>,
     pub warnings: Vec<String>,
@@ -599,6 +601,18 @@ pub fn run(spec: &Spec, table: &Table, threads: usize) -> Result<RunOutcome> {
         encoder,
         fitted,
     };
+    // The refitted model's predictions on the development rows, digested: replay compares it.
+    let predictions_digest = {
+        let rows: Vec<usize> = dev_rows.iter().map(|&i| prep.rows[i]).collect();
+        let p = refit
+            .fitted
+            .predict(&refit.encoder.transform(table, &rows, &mut notes)?);
+        let mut h = Sha256::new();
+        for v in &p {
+            h.update(v.to_le_bytes());
+        }
+        hex(&h.finalize())
+    };
     let nested = if spec.select.nested {
         Some(nested_cv(
             spec, table, &prep, &entries, &grids, &folds, threads, &mut notes,
@@ -622,6 +636,7 @@ pub fn run(spec: &Spec, table: &Table, threads: usize) -> Result<RunOutcome> {
         metric,
         rule: spec.select.rule,
         refit,
+        predictions_digest,
         nested,
         warnings,
     })

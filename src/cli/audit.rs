@@ -1,5 +1,6 @@
 //! `probity audit`: every partition's reveals against its budget, and where revealed rows turn
-//! up again. Exit 3 when any partition is over budget, so a team can gate on it.
+//! up again, and the tamper-evident chain. Exit 4 when the chain is broken, 3 when any partition
+//! is over budget, so a team can gate on it.
 
 use super::{Global, open_existing, out, out_json};
 use crate::error::Result;
@@ -8,6 +9,9 @@ use serde_json::{Value, json};
 /// Check every partition's reveals against its budget (exit 3 when any is over)
 #[derive(clap::Args, Debug)]
 pub struct Args {
+    /// Only verify the tamper-evident chain (audit always verifies it too)
+    #[arg(long)]
+    pub verify: bool,
     /// Print JSON instead of a table
     #[arg(long)]
     pub json: bool,
@@ -15,6 +19,22 @@ pub struct Args {
 
 pub fn run(g: &Global, a: Args) -> Result<i32> {
     let ledger = open_existing(g)?;
+    let (entries, breaks) = ledger.verify()?;
+    let head = ledger.head()?;
+    let chain = json!({
+        "entries": entries,
+        "head": head,
+        "intact": breaks.is_empty(),
+        "breaks": breaks.iter().map(|b| json!({"seq": b.seq, "kind": b.kind, "id": b.id, "what": b.what})).collect::<Vec<_>>(),
+    });
+    if a.verify {
+        if a.json {
+            out_json(&json!({"chain": chain}))?;
+        } else {
+            out(&crate::report::table::chain(&chain))?;
+        }
+        return Ok(if breaks.is_empty() { 0 } else { 4 });
+    }
     let parts = ledger.audit()?;
     let mut rows = Vec::new();
     let mut any_over = false;
@@ -60,9 +80,18 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
     }
     let warnings = ledger.overlap_findings()?;
     if a.json {
-        out_json(&json!({"partitions": rows, "warnings": warnings}))?;
+        out_json(&json!({"partitions": rows, "warnings": warnings, "chain": chain}))?;
     } else {
-        out(&crate::report::table::audit(&rows, &warnings))?;
+        let mut text = crate::report::table::audit(&rows, &warnings);
+        text.push_str(&crate::report::table::chain(&chain));
+        out(&text)?;
     }
-    Ok(if any_over { 3 } else { 0 })
+    // A broken chain outranks a spent budget: nothing else in the ledger can be trusted.
+    Ok(if !breaks.is_empty() {
+        4
+    } else if any_over {
+        3
+    } else {
+        0
+    })
 }

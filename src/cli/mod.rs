@@ -4,7 +4,9 @@
 mod audit;
 mod check;
 mod history;
+mod note;
 mod predict;
+mod replay;
 mod reveal;
 mod run;
 mod show;
@@ -45,6 +47,8 @@ pub enum Command {
     Show(show::Args),
     Predict(predict::Args),
     Reveal(reveal::Args),
+    Replay(replay::Args),
+    Note(note::Args),
 }
 
 /// Parse the process arguments, run, print any error; returns the exit code.
@@ -65,6 +69,8 @@ pub fn main() -> i32 {
         Command::Show(a) => show::run(&cli.global, a),
         Command::Predict(a) => predict::run(&cli.global, a),
         Command::Reveal(a) => reveal::run(&cli.global, a),
+        Command::Replay(a) => replay::run(&cli.global, a),
+        Command::Note(a) => note::run(&cli.global, a),
     };
     match result {
         Ok(code) => code,

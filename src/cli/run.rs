@@ -67,6 +67,9 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
         spec_path: absolute(&a.spec),
         data_path: absolute(&spec.data.path),
         note: a.note.clone(),
+        tool_commit: env!("PROBITY_GIT_COMMIT").to_string(),
+        target_triple: env!("PROBITY_TARGET").to_string(),
+        replay: None,
     };
     let id = ledger.write_run(&spec, &table, &outcome, &meta)?;
     let detail = ledger

@@ -15,6 +15,10 @@ pub const MIGRATIONS: &[(&str, &str)] = &[
         "0002_reveals.sql",
         include_str!("../../migrations/0002_reveals.sql"),
     ),
+    (
+        "0003_chain.sql",
+        include_str!("../../migrations/0003_chain.sql"),
+    ),
 ];
 
 /// The schema version this binary writes.
@@ -47,6 +51,11 @@ pub fn migrate(conn: &mut Connection, path: &Path) -> Result<()> {
             context: format!("apply migration {name}"),
             source: e,
         })?;
+    }
+    // Entries written before the chain existed are linked in, in id order, as the chain's
+    // start: this happens once, inside the migration, never on an ordinary open.
+    if version < 3 {
+        super::chain::adopt(&tx)?;
     }
     tx.pragma_update(None, "user_version", latest())
         .map_err(|e| Error::Ledger {

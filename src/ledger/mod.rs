@@ -1,6 +1,7 @@
 //! The SQLite ledger: the only code that speaks SQL. Opens (WAL, foreign keys, busy timeout),
 //! migrates, writes one run per transaction, and answers typed read queries.
 
+pub mod chain;
 pub mod migrate;
 
 use crate::error::{Error, Result};
@@ -30,6 +31,22 @@ pub struct RunMeta {
     pub spec_path: String,
     pub data_path: String,
     pub note: Option<String>,
+    /// The tool's git commit and target triple at build time.
+    pub tool_commit: String,
+    pub target_triple: String,
+    /// Set when this run is the replay of another, with the comparison's result.
+    pub replay: Option<ReplayRecord>,
+}
+
+/// The outcome of a replay, stored with the replay's own run.
+#[derive(Debug, Clone)]
+pub struct ReplayRecord {
+    pub replay_of: i64,
+    pub identical: bool,
+    pub compared: i64,
+    pub differing: i64,
+    /// JSON array of the first differences.
+    pub differences: String,
 }
 
 /// One line of `history`.
@@ -330,6 +347,18 @@ impl Ledger {
                 warn.execute(params![run, i as i64, w]).map_err(fail)?;
             }
         }
+        tx.execute(
+            "UPDATE runs SET tool_commit = ?2, target_triple = ?3, predictions_digest = ?4, replay_of = ?5 WHERE id = ?1",
+            params![run, meta.tool_commit, meta.target_triple, out.predictions_digest, meta.replay.as_ref().map(|r| r.replay_of)],
+        )
+        .map_err(fail)?;
+        if let Some(r) = &meta.replay {
+            tx.execute(
+                "INSERT INTO replays (run_id, replay_of, identical, compared, differing, differences) VALUES (?1, ?2, ?3, ?4, ?5, ?6)",
+                params![run, r.replay_of, r.identical, r.compared, r.differing, r.differences],
+            )
+            .map_err(fail)?;
+        }
         if let Some(n) = &out.nested {
             let sel: Vec<Value> = n
                 .selections
@@ -342,6 +371,7 @@ impl Ledger {
             )
             .map_err(fail)?;
         }
+        chain::append(&tx, "run", run, None)?;
         tx.commit().map_err(fail)?;
         Ok(run)
     }
@@ -632,6 +662,7 @@ impl Ledger {
                 st.execute(params![id, m, v, lo, hi, se]).map_err(fail)?;
             }
         }
+        chain::append(&tx, "reveal", id, None)?;
         tx.commit().map_err(fail)?;
         Ok(id)
     }
@@ -913,4 +944,262 @@ pub fn locate(explicit: Option<&Path>, cwd: &Path) -> (PathBuf, bool) {
         dir = d.parent();
     }
     (cwd.join(".probity").join("ledger.sqlite"), false)
+}
+
+/// One item that differs between a stored run and its replay.
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+pub struct Difference {
+    pub candidate: Option<i64>,
+    pub repeat: Option<i64>,
+    pub fold: Option<i64>,
+    pub part: Option<String>,
+    /// A metric name, or what was compared (`selected`, `predictions_digest`, `partition`, ...).
+    pub metric: String,
+    pub stored: Value,
+    pub replayed: Value,
+}
+
+/// Bit-for-bit comparison of a stored run with a fresh outcome.
+#[derive(Debug, Clone)]
+pub struct Comparison {
+    pub compared: i64,
+    pub differences: Vec<Difference>,
+}
+
+fn same(a: Option<f64>, b: Option<f64>) -> bool {
+    match (a, b) {
+        (None, None) => true,
+        (Some(x), Some(y)) => x.to_bits() == y.to_bits(),
+        _ => false,
+    }
+}
+
+impl Ledger {
+    /// Compare every stored score of `run` (every candidate, fold, part and metric, and the
+    /// aggregates), the selection, the partition and the refitted model's predictions digest
+    /// with `out`, bit for bit.
+    pub fn compare(&self, run: i64, spec_hash: &str, out: &RunOutcome) -> Result<Comparison> {
+        let d = self
+            .run(run)?
+            .ok_or_else(|| Error::Input(format!("no run {run}")))?;
+        let mut diffs = Vec::new();
+        let mut compared = 0i64;
+        let mut item =
+            |metric: &str, stored: Value, replayed: Value, diffs: &mut Vec<Difference>| {
+                compared += 1;
+                if stored != replayed {
+                    diffs.push(Difference {
+                        candidate: None,
+                        repeat: None,
+                        fold: None,
+                        part: None,
+                        metric: metric.into(),
+                        stored,
+                        replayed,
+                    });
+                }
+            };
+        item(
+            "spec_hash",
+            json_str(&d.spec_hash),
+            json_str(spec_hash),
+            &mut diffs,
+        );
+        item(
+            "partition",
+            json_str(&d.summary.partition_id),
+            json_str(&out.prepared.partition_id),
+            &mut diffs,
+        );
+        item(
+            "candidates",
+            Value::from(d.candidates.len()),
+            Value::from(out.candidates.len()),
+            &mut diffs,
+        );
+        item(
+            "best",
+            Value::from(d.best),
+            Value::from(out.best as i64),
+            &mut diffs,
+        );
+        item(
+            "selected",
+            Value::from(d.summary.selected),
+            Value::from(out.selected as i64),
+            &mut diffs,
+        );
+        let digest: Option<String> = self
+            .conn
+            .query_row(
+                "SELECT predictions_digest FROM runs WHERE id = ?1",
+                [run],
+                |r| r.get(0),
+            )
+            .map_err(sql_err("read digest"))?;
+        item(
+            "predictions_digest",
+            digest.map_or(Value::Null, Value::String),
+            json_str(&out.predictions_digest),
+            &mut diffs,
+        );
+        // Scores, by key.
+        let mut st = self
+            .conn
+            .prepare("SELECT candidate, repeat, fold, part, metric, value FROM fold_scores WHERE run_id = ?1 ORDER BY candidate, repeat, fold, part, metric")
+            .map_err(sql_err("read fold scores"))?;
+        let stored: Vec<(i64, i64, i64, String, String, Option<f64>)> = st
+            .query_map([run], |r| {
+                Ok((
+                    r.get(0)?,
+                    r.get(1)?,
+                    r.get(2)?,
+                    r.get(3)?,
+                    r.get(4)?,
+                    r.get(5)?,
+                ))
+            })
+            .and_then(|rows| rows.collect())
+            .map_err(sql_err("read fold scores"))?;
+        let mut fresh: BTreeMap<(i64, i64, i64, String, String), Option<f64>> = BTreeMap::new();
+        for c in &out.candidates {
+            for f in &c.folds {
+                for (part, sc) in [("train", &f.train), ("validation", &f.validation)] {
+                    for (k, m) in Metric::ALL.iter().enumerate() {
+                        fresh.insert(
+                            (
+                                c.id as i64,
+                                f.repeat as i64,
+                                f.fold as i64,
+                                part.into(),
+                                m.name().into(),
+                            ),
+                            sc[k],
+                        );
+                    }
+                }
+            }
+        }
+        for (c, rep, fold, part, metric, v) in stored {
+            compared += 1;
+            let key = (c, rep, fold, part.clone(), metric.clone());
+            let got = fresh.remove(&key);
+            if got.is_none_or(|g| !same(v, g)) {
+                diffs.push(Difference {
+                    candidate: Some(c),
+                    repeat: Some(rep),
+                    fold: Some(fold),
+                    part: Some(part),
+                    metric,
+                    stored: v.map_or(Value::Null, Value::from),
+                    replayed: got.flatten().map_or(Value::Null, Value::from),
+                });
+            }
+        }
+        for ((c, rep, fold, part, metric), v) in fresh {
+            compared += 1;
+            diffs.push(Difference {
+                candidate: Some(c),
+                repeat: Some(rep),
+                fold: Some(fold),
+                part: Some(part),
+                metric,
+                stored: Value::Null,
+                replayed: v.map_or(Value::Null, Value::from),
+            });
+        }
+        // Aggregates.
+        for c in &out.candidates {
+            let Some(row) = d.candidates.iter().find(|x| x.id == c.id as i64) else {
+                continue;
+            };
+            for (part, mean, se, stored) in [
+                ("train", &c.train, &c.train_se, &row.train),
+                (
+                    "validation",
+                    &c.validation,
+                    &c.validation_se,
+                    &row.validation,
+                ),
+            ] {
+                for (k, m) in Metric::ALL.iter().enumerate() {
+                    let s = stored.get(m.name()).copied().unwrap_or(Stat {
+                        mean: None,
+                        se: None,
+                    });
+                    for (what, a, b) in [("mean", s.mean, mean[k]), ("se", s.se, se[k])] {
+                        compared += 1;
+                        if !same(a, b) {
+                            diffs.push(Difference {
+                                candidate: Some(c.id as i64),
+                                repeat: None,
+                                fold: None,
+                                part: Some(part.into()),
+                                metric: format!("{} {what}", m.name()),
+                                stored: a.map_or(Value::Null, Value::from),
+                                replayed: b.map_or(Value::Null, Value::from),
+                            });
+                        }
+                    }
+                }
+            }
+        }
+        Ok(Comparison {
+            compared,
+            differences: diffs,
+        })
+    }
+
+    /// Verify the chain: (entries checked, problems found).
+    pub fn verify(&self) -> Result<(usize, Vec<chain::Break>)> {
+        chain::verify(&self.conn)
+    }
+
+    /// The chain's head hash.
+    pub fn head(&self) -> Result<String> {
+        chain::head(&self.conn)
+    }
+
+    /// Append a note to a run, as its own chained entry; returns the note id.
+    pub fn write_note(&mut self, run: i64, at: &str, user: &str, text: &str) -> Result<i64> {
+        let path = self.path.clone();
+        let fail = |e: rusqlite::Error| migrate::refuse_or_fail(&path, e, "write note");
+        let tx = self
+            .conn
+            .transaction_with_behavior(rusqlite::TransactionBehavior::Immediate)
+            .map_err(fail)?;
+        tx.execute(
+            "INSERT INTO notes (run_id, written_at, user, text) VALUES (?1, ?2, ?3, ?4)",
+            params![run, at, user, text],
+        )
+        .map_err(fail)?;
+        let id = tx.last_insert_rowid();
+        chain::append(&tx, "note", id, None)?;
+        tx.commit().map_err(fail)?;
+        Ok(id)
+    }
+
+    /// Notes on a run: (when, who, text), oldest first.
+    pub fn notes(&self, run: i64) -> Result<Vec<(String, String, String)>> {
+        let mut st = self
+            .conn
+            .prepare("SELECT written_at, user, text FROM notes WHERE run_id = ?1 ORDER BY id")
+            .map_err(sql_err("read notes"))?;
+        st.query_map([run], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)))
+            .and_then(|rows| rows.collect())
+            .map_err(sql_err("read notes"))
+    }
+
+    /// Build facts of a run: (tool version, tool commit, target triple, threads).
+    pub fn provenance(&self, run: i64) -> Result<(String, String, String, i64, Option<i64>)> {
+        self.conn
+            .query_row("SELECT tool_version, tool_commit, target_triple, threads, replay_of FROM runs WHERE id = ?1", [run], |r| {
+                Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?, r.get(4)?))
+            })
+            .map_err(sql_err("read provenance"))
+    }
+}
+
+fn json_str(s: &str) -> Value {
+    Value::String(s.to_string())
 }

@@ -382,3 +382,101 @@ pub fn audit(rows: &[serde_json::Value], warnings: &[String]) -> String {
     }
     out
 }
+
+/// The text shown for a replay, from its JSON document.
+pub fn replay(doc: &serde_json::Value) -> String {
+    let mut out = format!(
+        "replay of run {} stored as run {}: {}\n",
+        doc["replay_of"],
+        doc["run"],
+        if doc["identical"].as_bool() == Some(true) {
+            "IDENTICAL, bit for bit"
+        } else {
+            "DIFFERS"
+        }
+    );
+    let mut t = new_table(vec!["compared", "identical", "differing"]);
+    t.add_row(vec![
+        doc["compared"].to_string(),
+        doc["identical_items"].to_string(),
+        doc["differing"].to_string(),
+    ]);
+    right(&mut t, 0);
+    out.push_str(&format!("{t}\n"));
+    let s = &doc["stored"];
+    let r = &doc["replayed"];
+    out.push_str(&format!(
+        "stored:   probity {} ({}, {}, {} threads)\nreplayed: probity {} ({}, {}, {} threads)\n",
+        s["tool_version"].as_str().unwrap_or(""),
+        s["tool_commit"].as_str().unwrap_or(""),
+        s["target"].as_str().unwrap_or(""),
+        s["threads"],
+        r["tool_version"].as_str().unwrap_or(""),
+        r["tool_commit"].as_str().unwrap_or(""),
+        r["target"].as_str().unwrap_or(""),
+        r["threads"]
+    ));
+    let diffs = doc["differences"].as_array().cloned().unwrap_or_default();
+    if !diffs.is_empty() {
+        let mut t = new_table(vec![
+            "candidate",
+            "repeat",
+            "fold",
+            "part",
+            "what",
+            "stored",
+            "replayed",
+        ]);
+        for d in diffs.iter().take(10) {
+            let s = |v: &serde_json::Value| {
+                if v.is_null() {
+                    "-".to_string()
+                } else {
+                    v.as_str()
+                        .map(str::to_string)
+                        .unwrap_or_else(|| v.to_string())
+                }
+            };
+            t.add_row(vec![
+                s(&d["candidate"]),
+                s(&d["repeat"]),
+                s(&d["fold"]),
+                s(&d["part"]),
+                s(&d["metric"]),
+                s(&d["stored"]),
+                s(&d["replayed"]),
+            ]);
+        }
+        out.push_str(&format!("first differences (exact values):\n{t}\n"));
+    }
+    out
+}
+
+/// The chain verification summary.
+pub fn chain(c: &serde_json::Value) -> String {
+    let mut out = format!(
+        "chain: {} entries, head {}: {}\n",
+        c["entries"],
+        c["head"].as_str().unwrap_or(""),
+        if c["intact"].as_bool() == Some(true) {
+            "intact"
+        } else {
+            "BROKEN"
+        }
+    );
+    for b in c["breaks"].as_array().into_iter().flatten() {
+        let at = match b["seq"].as_i64() {
+            Some(s) => format!(
+                "entry {s} ({} {})",
+                b["kind"].as_str().unwrap_or(""),
+                b["id"]
+            ),
+            None => format!("{} {}", b["kind"].as_str().unwrap_or(""), b["id"]),
+        };
+        out.push_str(&format!(
+            "  broken at {at}: {}\n",
+            b["what"].as_str().unwrap_or("")
+        ));
+    }
+    out
+}

@@ -4,6 +4,7 @@ mod bad_input;
 mod fixtures;
 mod guard;
 mod reference;
+mod replay;
 mod run;
 mod tidy;
 mod util;

@@ -75,6 +75,11 @@ PARTITION, FOLDS, CANDIDATE = 1, 2, 3
 rfc = block(bytes(range(32)), (0x09000000 << 32) | 1, 0x4A000000)
 assert rfc[0] == 0xE4E7F110 and rfc[15] == 0x4E3C50A2, [hex(w) for w in rfc]
 
+# RFC 8439 appendix A.1 test vector #1: all-zero key and nonce, counter 0.
+zero = struct.pack("<16I", *block(bytes(32), 0, 0)).hex()
+assert zero == ("76b8e0ada0f13d90405d6ae55386bd28bdd219b8a08ded1aa836efcc8b770dc7"
+                "da41597c5157488d7724e03fb8d84a376a43b8f41518a11cc387b669b2ee6586"), zero
+
 # src/split/rng.rs pins.
 v = list(range(12))
 shuffle(Stream(42, PARTITION, 0), v)
@@ -96,4 +101,4 @@ k = 3
 size0 = len(dev) // k + (1 if 0 < len(dev) % k else 0)
 fold0 = sorted(dev[p] for p in perm[:size0])
 assert fold0 == [0, 6, 8, 16, 17], fold0
-print("split_check: ChaCha20 (RFC 8439 vector), bounded draw, shuffle and pinned partitions agree")
+print("split_check: ChaCha20 (RFC 8439 vectors), bounded draw, shuffle and pinned partitions agree")

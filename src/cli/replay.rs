@@ -1,0 +1,90 @@
+//! `probity replay RUN`: re-execute a stored run from the ledger's spec text and seeds, compare
+//! every stored number bit for bit, and record the replay. Exit 0 identical, 5 different.
+
+use super::{Global, open_existing, out, out_json};
+use crate::error::{Error, Result};
+use crate::ledger::{ReplayRecord, RunMeta};
+use serde_json::json;
+use std::path::PathBuf;
+
+/// Re-run a stored run from its stored spec and seeds and compare every score bit for bit
+#[derive(clap::Args, Debug)]
+pub struct Args {
+    /// Run id
+    pub run: i64,
+    /// The data file, when it moved (its SHA-256 must match the run's)
+    #[arg(long, value_name = "PATH")]
+    pub data: Option<PathBuf>,
+    /// Worker threads (results do not depend on it) [default: all cores]
+    #[arg(long, value_name = "N")]
+    pub threads: Option<usize>,
+    /// Print JSON instead of text
+    #[arg(long)]
+    pub json: bool,
+}
+
+pub fn run(g: &Global, a: Args) -> Result<i32> {
+    let mut ledger = open_existing(g)?;
+    let d = ledger.run(a.run)?.ok_or_else(|| {
+        Error::Input(format!(
+            "no run {}; `probity history` lists the runs",
+            a.run
+        ))
+    })?;
+    // The spec comes from the ledger, not from the file on disk, which may have changed.
+    let (spec, table) = super::reveal::reload(&d, a.data.as_deref())?;
+    let threads = a
+        .threads
+        .unwrap_or_else(|| std::thread::available_parallelism().map_or(1, |n| n.get()))
+        .max(1);
+    let started = chrono::Utc::now();
+    let outcome = crate::runner::run(&spec, &table, threads)?;
+    let cmp = ledger.compare(a.run, &spec.canonical_hash(), &outcome)?;
+    let identical = cmp.differences.is_empty();
+    let shown: Vec<_> = cmp.differences.iter().take(100).collect();
+    let (stored_version, stored_commit, stored_target, stored_threads, _) =
+        ledger.provenance(a.run)?;
+    let meta = RunMeta {
+        started_at: started.to_rfc3339_opts(chrono::SecondsFormat::Millis, true),
+        finished_at: chrono::Utc::now().to_rfc3339_opts(chrono::SecondsFormat::Millis, true),
+        tool_version: env!("CARGO_PKG_VERSION").to_string(),
+        user: super::user(),
+        host: super::host(),
+        threads,
+        spec_path: d.spec_path.clone(),
+        data_path: a
+            .data
+            .as_deref()
+            .map(super::absolute)
+            .unwrap_or_else(|| d.data_path.clone()),
+        note: Some(format!("replay of run {}", a.run)),
+        tool_commit: env!("PROBITY_GIT_COMMIT").to_string(),
+        target_triple: env!("PROBITY_TARGET").to_string(),
+        replay: Some(ReplayRecord {
+            replay_of: a.run,
+            identical,
+            compared: cmp.compared,
+            differing: cmp.differences.len() as i64,
+            differences: serde_json::to_string(&shown)
+                .map_err(|e| Error::Internal(e.to_string()))?,
+        }),
+    };
+    let id = ledger.write_run(&spec, &table, &outcome, &meta)?;
+    let doc = json!({
+        "run": id,
+        "replay_of": a.run,
+        "identical": identical,
+        "compared": cmp.compared,
+        "identical_items": cmp.compared - cmp.differences.len() as i64,
+        "differing": cmp.differences.len(),
+        "differences": shown,
+        "stored": {"tool_version": stored_version, "tool_commit": stored_commit, "target": stored_target, "threads": stored_threads},
+        "replayed": {"tool_version": env!("CARGO_PKG_VERSION"), "tool_commit": env!("PROBITY_GIT_COMMIT"), "target": env!("PROBITY_TARGET"), "threads": threads},
+    });
+    if a.json {
+        out_json(&doc)?;
+    } else {
+        out(&crate::report::table::replay(&doc))?;
+    }
+    Ok(if identical { 0 } else { 5 })
+}

@@ -1,0 +1,302 @@
+//! The tamper-evident chain. Every entry (a run with everything stored under it, a reveal with
+//! its scores, a note) gets entry_hash = SHA-256(prev_hash || canonical bytes), prev_hash being
+//! the previous entry's hash as 64 hex characters (64 zeros for the first).
+//!
+//! Canonical bytes: for each section of the entry, in a fixed order, the section name, then each
+//! row in primary-key order, each column in table order, each value type-tagged and
+//! length-prefixed (integers as decimal text, reals as the 16 hex digits of their IEEE-754 bits,
+//! text as UTF-8, blobs as bytes). The same rows always give the same bytes, wherever they came
+//! from (this ledger, or a bundle being merged).
+
+use crate::error::{Error, Result};
+use rusqlite::types::Value as Sql;
+use rusqlite::{Connection, OptionalExtension, params};
+use sha2::{Digest, Sha256};
+
+pub const GENESIS: &str = "0000000000000000000000000000000000000000000000000000000000000000";
+
+/// An entry's content: (section name, rows).
+pub type Sections = Vec<(String, Vec<Vec<Sql>>)>;
+
+/// The queries that make up each kind of entry, in order; `?1` is the entry's id.
+pub fn section_queries(kind: &str) -> &'static [(&'static str, &'static str)] {
+    match kind {
+        "run" => &[
+            ("runs", "SELECT * FROM runs WHERE id = ?1"),
+            (
+                "partitions",
+                "SELECT * FROM partitions WHERE id = (SELECT partition_id FROM runs WHERE id = ?1)",
+            ),
+            (
+                "partition_rows",
+                "SELECT * FROM partition_rows WHERE partition_id = (SELECT partition_id FROM runs WHERE id = ?1) ORDER BY row_key",
+            ),
+            (
+                "folds",
+                "SELECT * FROM folds WHERE run_id = ?1 ORDER BY repeat, fold",
+            ),
+            (
+                "candidates",
+                "SELECT * FROM candidates WHERE run_id = ?1 ORDER BY id",
+            ),
+            (
+                "fold_scores",
+                "SELECT * FROM fold_scores WHERE run_id = ?1 ORDER BY candidate, repeat, fold, part, metric",
+            ),
+            (
+                "scores",
+                "SELECT * FROM scores WHERE run_id = ?1 ORDER BY candidate, part, metric",
+            ),
+            (
+                "warnings",
+                "SELECT * FROM warnings WHERE run_id = ?1 ORDER BY seq",
+            ),
+            ("nested", "SELECT * FROM nested WHERE run_id = ?1"),
+            ("replays", "SELECT * FROM replays WHERE run_id = ?1"),
+        ],
+        "reveal" => &[
+            ("reveals", "SELECT * FROM reveals WHERE id = ?1"),
+            (
+                "reveal_scores",
+                "SELECT * FROM reveal_scores WHERE reveal_id = ?1 ORDER BY metric",
+            ),
+        ],
+        "note" => &[("notes", "SELECT * FROM notes WHERE id = ?1")],
+        _ => &[],
+    }
+}
+
+fn sql_err(context: &'static str) -> impl FnOnce(rusqlite::Error) -> Error {
+    move |e| Error::Ledger {
+        context: context.to_string(),
+        source: e,
+    }
+}
+
+/// Read an entry's sections; `None` when its main row is gone.
+pub fn sections(conn: &Connection, kind: &str, id: i64) -> Result<Option<Sections>> {
+    let mut out = Vec::new();
+    for (i, (name, sql)) in section_queries(kind).iter().enumerate() {
+        let mut st = conn.prepare(sql).map_err(sql_err("read entry"))?;
+        let n = st.column_count();
+        let rows: Vec<Vec<Sql>> = st
+            .query_map([id], |r| (0..n).map(|c| r.get::<_, Sql>(c)).collect())
+            .and_then(|rows| rows.collect())
+            .map_err(sql_err("read entry"))?;
+        if i == 0 && rows.is_empty() {
+            return Ok(None);
+        }
+        out.push((name.to_string(), rows));
+    }
+    Ok(Some(out))
+}
+
+/// The canonical bytes of an entry, fed straight into a hasher.
+fn feed(h: &mut Sha256, sections: &Sections) {
+    let mut put = |tag: u8, bytes: &[u8]| {
+        h.update([tag]);
+        h.update((bytes.len() as u64).to_le_bytes());
+        h.update(bytes);
+    };
+    for (name, rows) in sections {
+        put(b'S', name.as_bytes());
+        for row in rows {
+            put(b'R', &(row.len() as u64).to_le_bytes());
+            for v in row {
+                match v {
+                    Sql::Null => put(b'n', b""),
+                    Sql::Integer(i) => put(b'i', i.to_string().as_bytes()),
+                    Sql::Real(f) => put(b'r', format!("{:016x}", f.to_bits()).as_bytes()),
+                    Sql::Text(t) => put(b't', t.as_bytes()),
+                    Sql::Blob(b) => put(b'b', b),
+                }
+            }
+        }
+    }
+}
+
+/// SHA-256(prev_hash || canonical bytes), hex.
+pub fn entry_hash(prev: &str, sections: &Sections) -> String {
+    let mut h = Sha256::new();
+    h.update(prev.as_bytes());
+    feed(&mut h, sections);
+    crate::spec::hex(&h.finalize())
+}
+
+/// The chain's last hash (the genesis hash when empty).
+pub fn head(conn: &Connection) -> Result<String> {
+    Ok(conn
+        .query_row(
+            "SELECT entry_hash FROM chain ORDER BY seq DESC LIMIT 1",
+            [],
+            |r| r.get(0),
+        )
+        .optional()
+        .map_err(sql_err("read chain head"))?
+        .unwrap_or_else(|| GENESIS.to_string()))
+}
+
+/// Link an entry (already written in this transaction) onto the chain; returns its hash.
+pub fn append(
+    conn: &Connection,
+    kind: &str,
+    id: i64,
+    origin: Option<(&str, &str)>,
+) -> Result<String> {
+    let prev = head(conn)?;
+    let s = sections(conn, kind, id)?
+        .ok_or_else(|| Error::Internal(format!("{kind} {id} vanished before it was chained")))?;
+    let hash = entry_hash(&prev, &s);
+    conn.execute(
+        "INSERT INTO chain (kind, ref_id, prev_hash, entry_hash, origin, origin_prev) VALUES (?1, ?2, ?3, ?4, ?5, ?6)",
+        params![kind, id, prev, hash, origin.map(|o| o.0), origin.map(|o| o.1)],
+    )
+    .map_err(sql_err("append to chain"))?;
+    Ok(hash)
+}
+
+/// Chain every run, reveal and note that has no entry yet, in id order (runs, then reveals,
+/// then notes); used once, when a ledger first gets a chain.
+pub fn adopt(conn: &Connection) -> Result<()> {
+    for (kind, table) in [("run", "runs"), ("reveal", "reveals"), ("note", "notes")] {
+        let mut st = conn
+            .prepare(&format!("SELECT id FROM {table} WHERE id NOT IN (SELECT ref_id FROM chain WHERE kind = ?1) ORDER BY id"))
+            .map_err(sql_err("adopt entries"))?;
+        let ids: Vec<i64> = st
+            .query_map([kind], |r| r.get(0))
+            .and_then(|rows| rows.collect())
+            .map_err(sql_err("adopt entries"))?;
+        for id in ids {
+            append(conn, kind, id, None)?;
+        }
+    }
+    Ok(())
+}
+
+/// One problem found by `verify`.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Break {
+    /// Chain position (1-based), when the problem is on the chain.
+    pub seq: Option<i64>,
+    pub kind: String,
+    pub id: i64,
+    pub what: String,
+}
+
+/// Recompute the chain from the stored rows. Returns every break found, in chain order, then
+/// entries that exist without a chain link.
+pub fn verify(conn: &Connection) -> Result<(usize, Vec<Break>)> {
+    let mut st = conn
+        .prepare("SELECT seq, kind, ref_id, prev_hash, entry_hash FROM chain ORDER BY seq")
+        .map_err(sql_err("read chain"))?;
+    let links: Vec<(i64, String, i64, String, String)> = st
+        .query_map([], |r| {
+            Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?, r.get(4)?))
+        })
+        .and_then(|rows| rows.collect())
+        .map_err(sql_err("read chain"))?;
+    let mut breaks = Vec::new();
+    let mut expected_prev = GENESIS.to_string();
+    for (seq, kind, id, prev, stored) in &links {
+        if *prev != expected_prev {
+            breaks.push(Break {
+                seq: Some(*seq),
+                kind: kind.clone(),
+                id: *id,
+                what: format!("links to previous hash {prev} but the entry before it has {expected_prev} (entries removed or reordered)"),
+            });
+        }
+        match sections(conn, kind, *id)? {
+            None => breaks.push(Break {
+                seq: Some(*seq),
+                kind: kind.clone(),
+                id: *id,
+                what: format!("{kind} {id} is missing (deleted)"),
+            }),
+            Some(s) => {
+                let computed = entry_hash(prev, &s);
+                if computed != *stored {
+                    breaks.push(Break {
+                        seq: Some(*seq),
+                        kind: kind.clone(),
+                        id: *id,
+                        what: format!("content changed: the chain expects {stored}, the stored rows hash to {computed}"),
+                    });
+                }
+            }
+        }
+        expected_prev = stored.clone();
+    }
+    for (kind, table) in [("run", "runs"), ("reveal", "reveals"), ("note", "notes")] {
+        let mut st = conn
+            .prepare(&format!("SELECT id FROM {table} WHERE id NOT IN (SELECT ref_id FROM chain WHERE kind = ?1) ORDER BY id"))
+            .map_err(sql_err("check unchained entries"))?;
+        let ids: Vec<i64> = st
+            .query_map([kind], |r| r.get(0))
+            .and_then(|rows| rows.collect())
+            .map_err(sql_err("check unchained entries"))?;
+        for id in ids {
+            breaks.push(Break {
+                seq: None,
+                kind: kind.to_string(),
+                id,
+                what: format!("{kind} {id} is not on the chain (inserted outside probity)"),
+            });
+        }
+    }
+    Ok((links.len(), breaks))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// FIPS 180-4 example (NIST CSRC, "SHA256.pdf" example values): SHA-256("abc").
+    #[test]
+    fn sha256_matches_the_fips_180_4_example() {
+        assert_eq!(
+            crate::spec::hex(&Sha256::digest(b"abc")),
+            "ba7816bf8f01cfea414140de5dae2223b00361a396177a9cb410ff61f20015ad"
+        );
+        // FIPS 180-4 two-block example.
+        assert_eq!(
+            crate::spec::hex(&Sha256::digest(
+                b"abcdbcdecdefdefgefghfghighijhijkijkljklmklmnlmnomnopnopq"
+            )),
+            "248d6a61d20638b8e5c026930c3e6039a33ce45964ff2167f6ecedd419db06c1"
+        );
+    }
+
+    #[test]
+    fn the_encoding_separates_types_and_boundaries() {
+        let a: Sections = vec![("x".into(), vec![vec![Sql::Text("12".into())]])];
+        let b: Sections = vec![("x".into(), vec![vec![Sql::Integer(12)]])];
+        let c: Sections = vec![(
+            "x".into(),
+            vec![vec![Sql::Text("1".into()), Sql::Text("2".into())]],
+        )];
+        let (ha, hb, hc) = (
+            entry_hash(GENESIS, &a),
+            entry_hash(GENESIS, &b),
+            entry_hash(GENESIS, &c),
+        );
+        assert!(ha != hb && ha != hc && hb != hc);
+        assert_eq!(ha, entry_hash(GENESIS, &a.clone()));
+        let r1: Sections = vec![("x".into(), vec![vec![Sql::Real(0.1)]])];
+        let r2: Sections = vec![("x".into(), vec![vec![Sql::Real(0.1 + 1e-17)]])];
+        let r3: Sections = vec![(
+            "x".into(),
+            vec![vec![Sql::Real(f64::from_bits(0.1f64.to_bits() + 1))]],
+        )];
+        assert_eq!(
+            entry_hash(GENESIS, &r1),
+            entry_hash(GENESIS, &r2),
+            "same double, same bytes"
+        );
+        assert_ne!(
+            entry_hash(GENESIS, &r1),
+            entry_hash(GENESIS, &r3),
+            "one ulp apart, different bytes"
+        );
+    }
+}

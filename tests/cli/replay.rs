@@ -1,0 +1,208 @@
+//! Exact replay and the tamper-evident chain, through the binary.
+
+use crate::fixtures::small_dir;
+use crate::util::Dir;
+use std::path::Path;
+
+fn demo(d: &Dir, name: &str) {
+    let ex = Path::new(env!("CARGO_MANIFEST_DIR")).join("experiments");
+    d.copy(&ex.join(format!("{name}.toml")), &format!("{name}.toml"));
+    for csv in ["heating-trial.csv", "bays.csv"] {
+        d.copy(&ex.join(csv), csv);
+    }
+}
+
+fn sql(d: &Dir, statement: &str) {
+    let c = rusqlite::Connection::open(d.ledger()).unwrap();
+    c.execute_batch(statement).unwrap();
+}
+
+#[test]
+fn every_demo_experiment_replays_bit_for_bit() {
+    let d = Dir::new("replay-demos");
+    for (i, name) in ["heating-trial", "bay-yield", "bay-yield-hash"]
+        .iter()
+        .enumerate()
+    {
+        demo(&d, name);
+        d.probity(&["run", &format!("{name}.toml"), "--threads", "2"])
+            .expect(0);
+        let run = (2 * i + 1).to_string();
+        // A different thread count must not matter either.
+        let j = d
+            .probity(&["replay", &run, "--json", "--threads", "1"])
+            .expect(0)
+            .json();
+        assert_eq!(j["identical"], true, "{name}: {j}");
+        assert_eq!(j["replay_of"].as_i64(), Some(2 * i as i64 + 1));
+        assert!(j["compared"].as_i64().unwrap() > 100, "{j}");
+        assert!(j["differences"].as_array().unwrap().is_empty());
+    }
+    let s = d.probity(&["show", "2", "--json"]).expect(0).json();
+    assert_eq!(s["note"], "replay of run 1");
+    d.probity(&["audit", "--verify"]).expect(0);
+}
+
+#[test]
+fn replay_uses_the_stored_spec_not_the_file_on_disk() {
+    let d = small_dir("replay-spec");
+    d.probity(&["run", "small.toml"]).expect(0);
+    // The spec on disk changes afterwards; the replay must not notice.
+    d.write(
+        "small.toml",
+        &crate::fixtures::SMALL_SPEC.replace("seed = 5", "seed = 99"),
+    );
+    let j = d.probity(&["replay", "1", "--json"]).expect(0).json();
+    assert_eq!(j["identical"], true);
+}
+
+#[test]
+fn replay_refuses_changed_data_and_reports_changed_scores() {
+    let d = small_dir("replay-diff");
+    d.probity(&["run", "small.toml"]).expect(0);
+    // A stored score edited by hand: replay exits 5 and names it with both values.
+    sql(
+        &d,
+        "UPDATE fold_scores SET value = 1.5 WHERE run_id = 1 AND candidate = 2 AND repeat = 0 AND fold = 1 AND part = 'validation' AND metric = 'mae'",
+    );
+    let r = d.probity(&["replay", "1", "--json"]).expect(5);
+    let j = r.json();
+    assert_eq!(j["identical"], false);
+    let diffs = j["differences"].as_array().unwrap();
+    let fold_diff = diffs
+        .iter()
+        .find(|x| x["fold"] == 1 && x["metric"] == "mae")
+        .expect("the edited score is reported");
+    assert_eq!(fold_diff["candidate"], 2);
+    assert_eq!(fold_diff["stored"], 1.5);
+    assert!(fold_diff["replayed"].as_f64().unwrap() != 1.5);
+    // A changed data file is refused before anything runs.
+    d.write(
+        "small.csv",
+        &crate::fixtures::small_csv().replace("r5,", "r55,"),
+    );
+    let r = d.probity(&["replay", "1"]).expect(2);
+    assert!(
+        r.stderr().contains("has SHA-256") && r.stderr().contains("but run 1 used"),
+        "{}",
+        r.stderr()
+    );
+}
+
+/// Edit a score, delete a reveal, reorder entries, all with SQLite directly: each is detected
+/// and located, with exit code 4.
+#[test]
+fn tampering_is_detected_and_located() {
+    let setup = |name: &str| {
+        let d = small_dir(name);
+        d.probity(&["run", "small.toml"]).expect(0);
+        d.probity(&["reveal", "1", "--yes"]).expect(0);
+        d.probity(&["note", "1", "looked fine"]).expect(0);
+        d.probity(&["run", "small.toml"]).expect(0);
+        let j = d.probity(&["audit", "--verify", "--json"]).expect(0).json();
+        assert_eq!(j["chain"]["entries"], 4);
+        assert_eq!(j["chain"]["intact"], true);
+        d
+    };
+    let broken = |d: &Dir| -> Vec<serde_json::Value> {
+        let r = d.probity(&["audit", "--verify", "--json"]).expect(4);
+        let j = r.json();
+        assert_eq!(j["chain"]["intact"], false);
+        j["chain"]["breaks"].as_array().unwrap().clone()
+    };
+
+    let d = setup("tamper-edit");
+    sql(
+        &d,
+        "UPDATE scores SET mean = 0.001 WHERE run_id = 1 AND candidate = 1 AND part = 'validation' AND metric = 'rmse'",
+    );
+    let b = broken(&d);
+    assert_eq!(
+        (
+            b[0]["seq"].as_i64(),
+            b[0]["kind"].as_str(),
+            b[0]["id"].as_i64()
+        ),
+        (Some(1), Some("run"), Some(1))
+    );
+    assert!(
+        b[0]["what"].as_str().unwrap().contains("content changed"),
+        "{b:?}"
+    );
+    // The plain audit also fails on a broken chain.
+    let r = d.probity(&["audit"]).expect(4);
+    assert!(
+        r.stdout().contains("BROKEN") && r.stdout().contains("broken at entry 1 (run 1)"),
+        "{}",
+        r.stdout()
+    );
+
+    let d = setup("tamper-delete");
+    sql(
+        &d,
+        "DELETE FROM reveal_scores WHERE reveal_id = 1; DELETE FROM reveals WHERE id = 1;",
+    );
+    let b = broken(&d);
+    assert!(
+        b.iter().any(|x| x["seq"] == 2
+            && x["kind"] == "reveal"
+            && x["what"].as_str().unwrap().contains("missing")),
+        "{b:?}"
+    );
+    // Deleting the chain link as well leaves a gap the next entry points across.
+    let d = setup("tamper-delete-link");
+    sql(
+        &d,
+        "DELETE FROM reveal_scores WHERE reveal_id = 1; DELETE FROM reveals WHERE id = 1; DELETE FROM chain WHERE seq = 2;",
+    );
+    let b = broken(&d);
+    assert!(
+        b.iter()
+            .any(|x| x["seq"] == 3 && x["what"].as_str().unwrap().contains("removed or reordered")),
+        "{b:?}"
+    );
+
+    let d = setup("tamper-reorder");
+    sql(
+        &d,
+        "UPDATE chain SET seq = 100 WHERE seq = 2; UPDATE chain SET seq = 2 WHERE seq = 3; UPDATE chain SET seq = 3 WHERE seq = 100;",
+    );
+    let b = broken(&d);
+    assert!(
+        b.iter()
+            .any(|x| x["seq"] == 2 && x["what"].as_str().unwrap().contains("removed or reordered")),
+        "{b:?}"
+    );
+
+    let d = setup("tamper-insert");
+    sql(
+        &d,
+        "INSERT INTO notes (run_id, written_at, user, text) VALUES (1, '2026-01-01T00:00:00Z', 'someone', 'backdated')",
+    );
+    let b = broken(&d);
+    assert!(
+        b.iter().any(|x| x["seq"].is_null()
+            && x["kind"] == "note"
+            && x["what"].as_str().unwrap().contains("not on the chain")),
+        "{b:?}"
+    );
+}
+
+#[test]
+fn runs_record_what_replay_needs() {
+    let d = small_dir("provenance");
+    d.probity(&["run", "small.toml"]).expect(0);
+    let c = rusqlite::Connection::open(d.ledger()).unwrap();
+    let (commit, target, digest, threads, spec_hash, data): (String, String, String, i64, String, String) = c
+        .query_row("SELECT tool_commit, target_triple, predictions_digest, threads, spec_hash, data_sha256 FROM runs WHERE id = 1", [], |r| {
+            Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?, r.get(4)?, r.get(5)?))
+        })
+        .unwrap();
+    assert!(
+        !commit.is_empty() && target.contains('-'),
+        "{commit} {target}"
+    );
+    assert_eq!(digest.len(), 64);
+    assert!(threads >= 1);
+    assert_eq!((spec_hash.len(), data.len()), (64, 64));
+}
