@@ -70,6 +70,11 @@ pub enum Error {
         source: rusqlite::Error,
     },
 
+    /// The ledger's history does not add up: a broken chain, an altered bundle, or two
+    /// different histories (exit 4).
+    #[error("ledger integrity: {0}")]
+    Integrity(String),
+
     /// A bug or an impossible state.
     #[error("internal error: {0}")]
     Internal(String),
@@ -102,6 +107,7 @@ impl Error {
             | Error::Input(_)
             | Error::Io { .. }
             | Error::LedgerRefused { .. } => 2,
+            Error::Integrity(_) => 4,
             Error::Ledger { .. } | Error::Internal(_) => 1,
         }
     }

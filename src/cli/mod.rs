@@ -4,7 +4,9 @@
 mod audit;
 mod check;
 mod history;
+mod merge;
 mod note;
+mod pack;
 mod predict;
 mod replay;
 mod reveal;
@@ -49,6 +51,8 @@ pub enum Command {
     Reveal(reveal::Args),
     Replay(replay::Args),
     Note(note::Args),
+    Pack(pack::Args),
+    Merge(merge::Args),
 }
 
 /// Parse the process arguments, run, print any error; returns the exit code.
@@ -71,6 +75,8 @@ pub fn main() -> i32 {
         Command::Reveal(a) => reveal::run(&cli.global, a),
         Command::Replay(a) => replay::run(&cli.global, a),
         Command::Note(a) => note::run(&cli.global, a),
+        Command::Pack(a) => pack::run(&cli.global, a),
+        Command::Merge(a) => merge::run(&cli.global, a),
     };
     match result {
         Ok(code) => code,

@@ -25,8 +25,16 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
             ledger.path().display()
         ))
     })?;
+    let notes = ledger.notes(a.run)?;
     if a.json {
-        out_json(&crate::report::json::show(&d))?;
+        let mut doc = crate::report::json::show(&d);
+        doc["notes"] = serde_json::json!(
+            notes
+                .iter()
+                .map(|(at, user, text)| serde_json::json!({"at": at, "user": user, "text": text}))
+                .collect::<Vec<_>>()
+        );
+        out_json(&doc)?;
         return Ok(0);
     }
     let mut t = crate::report::table::run_header(&d);
@@ -46,6 +54,12 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
         &d,
         if a.all { None } else { Some(50) },
     ));
+    if !notes.is_empty() {
+        t.push_str("\nnotes:\n");
+        for (at, user, text) in &notes {
+            t.push_str(&format!("  - {at} {user}: {text}\n"));
+        }
+    }
     if !d.warnings.is_empty() {
         t.push_str("\nwarnings raised by this run:\n");
         for w in &d.warnings {

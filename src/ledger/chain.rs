@@ -283,7 +283,10 @@ mod tests {
         assert!(ha != hb && ha != hc && hb != hc);
         assert_eq!(ha, entry_hash(GENESIS, &a.clone()));
         let r1: Sections = vec![("x".into(), vec![vec![Sql::Real(0.1)]])];
-        let r2: Sections = vec![("x".into(), vec![vec![Sql::Real("0.1000000000000000000001".parse().unwrap())]])];
+        let r2: Sections = vec![(
+            "x".into(),
+            vec![vec![Sql::Real("0.1000000000000000000001".parse().unwrap())]],
+        )];
         let r3: Sections = vec![(
             "x".into(),
             vec![vec![Sql::Real(f64::from_bits(0.1f64.to_bits() + 1))]],

@@ -1,6 +1,7 @@
 //! The SQLite ledger: the only code that speaks SQL. Opens (WAL, foreign keys, busy timeout),
 //! migrates, writes one run per transaction, and answers typed read queries.
 
+pub mod bundle;
 pub mod chain;
 pub mod migrate;
 

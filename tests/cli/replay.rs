@@ -206,3 +206,74 @@ fn runs_record_what_replay_needs() {
     assert!(threads >= 1);
     assert_eq!((spec_hash.len(), data.len()), (64, 64));
 }
+
+/// Two teammates without a server: Alice packs, Bob merges (twice: idempotent); Alice's reveal
+/// counts in Bob's audit; an altered bundle and a forked history are refused with exit 4.
+#[test]
+fn bundles_merge_verified_and_never_mix_histories() {
+    let alice = small_dir("alice");
+    alice.probity(&["run", "small.toml"]).expect(0);
+    alice.probity(&["reveal", "1", "--yes"]).expect(0);
+    alice.probity(&["pack", "1", "--out", "a.json"]).expect(0);
+    let bob = small_dir("bob");
+    bob.probity(&["run", "small.toml"]).expect(0);
+    std::fs::copy(alice.path.join("a.json"), bob.path.join("a.json")).unwrap();
+    let r = bob.probity(&["merge", "a.json"]).expect(0);
+    assert!(r.stderr().contains("merged 2 entries"), "{}", r.stderr());
+    let r = bob.probity(&["merge", "a.json"]).expect(0);
+    assert!(
+        r.stderr().contains("merged 0 entries") && r.stderr().contains("2 already present"),
+        "{}",
+        r.stderr()
+    );
+    // Both ran the same spec on the same data: one partition, Alice's reveal counts for Bob.
+    let a = bob.probity(&["audit", "--json"]).expect(0).json();
+    assert_eq!(a["partitions"].as_array().unwrap().len(), 1);
+    assert_eq!(a["partitions"][0]["reveals"], 1);
+    assert_eq!(a["chain"]["intact"], true);
+    let r = bob.probity(&["reveal", "1", "--yes"]).expect(0);
+    assert!(
+        r.stderr()
+            .contains("revealed 2 times, over its budget of 1"),
+        "{}",
+        r.stderr()
+    );
+    bob.probity(&["audit"]).expect(3);
+
+    // An altered bundle: one score changed by hand.
+    let text = std::fs::read_to_string(alice.path.join("a.json")).unwrap();
+    let mut j: serde_json::Value = serde_json::from_str(&text).unwrap();
+    let sections = j["entries"][0]["sections"].as_array_mut().unwrap();
+    let fold_scores = sections
+        .iter_mut()
+        .find(|s| s["name"] == "fold_scores")
+        .unwrap();
+    fold_scores["rows"][0][6] = serde_json::json!({"r": "3ff0000000000000"});
+    let carol = small_dir("carol");
+    carol.write("bad.json", &j.to_string());
+    let r = carol.probity(&["merge", "bad.json"]).expect(4);
+    assert!(
+        r.stderr().contains("was altered") && r.stderr().contains("nothing was merged"),
+        "{}",
+        r.stderr()
+    );
+
+    // A fork: a copy of Alice's ledger gets a different note after the same reveal.
+    let copy = small_dir("alice-copy");
+    std::fs::create_dir_all(copy.path.join(".probity")).unwrap();
+    std::fs::copy(alice.ledger(), copy.ledger()).unwrap();
+    alice.probity(&["note", "1", "alice's note"]).expect(0);
+    copy.probity(&["note", "1", "a different note"]).expect(0);
+    alice.probity(&["pack", "1", "--out", "a2.json"]).expect(0);
+    copy.probity(&["pack", "1", "--out", "c2.json"]).expect(0);
+    let dave = small_dir("dave");
+    std::fs::copy(alice.path.join("a2.json"), dave.path.join("a2.json")).unwrap();
+    std::fs::copy(copy.path.join("c2.json"), dave.path.join("c2.json")).unwrap();
+    dave.probity(&["merge", "a2.json"]).expect(0);
+    let before = dave.counts();
+    let r = dave.probity(&["merge", "c2.json"]).expect(4);
+    assert!(r.stderr().contains("different histories"), "{}", r.stderr());
+    assert_eq!(dave.counts(), before, "a refused merge writes nothing");
+    let s = dave.probity(&["show", "1", "--json"]).expect(0).json();
+    assert_eq!(s["notes"][0]["text"], "alice's note");
+}

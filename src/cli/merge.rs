@@ -1,0 +1,35 @@
+//! `probity merge FILE`: merge a teammate's bundle. Every entry is verified; entries already
+//! here are skipped; two different histories are refused (exit 4). Nothing in a bundle is ever
+//! run.
+
+use super::{Global, open_for_write};
+use crate::error::{Error, Result};
+use std::path::PathBuf;
+
+/// Merge a bundle written by `probity pack` into this ledger
+#[derive(clap::Args, Debug)]
+pub struct Args {
+    /// The bundle file
+    pub file: PathBuf,
+}
+
+pub fn run(g: &Global, a: Args) -> Result<i32> {
+    let text = std::fs::read_to_string(&a.file).map_err(|e| Error::Io {
+        action: "cannot read bundle",
+        path: a.file.clone(),
+        source: e,
+    })?;
+    let bundle: serde_json::Value = serde_json::from_str(&text).map_err(|e| {
+        Error::Input(format!(
+            "{}: not a JSON bundle ({e}); make one with `probity pack`",
+            a.file.display()
+        ))
+    })?;
+    let mut ledger = open_for_write(g)?;
+    let (merged, skipped) = ledger.merge(&bundle)?;
+    eprintln!(
+        "merged {merged} entries from {} ({skipped} already present)",
+        a.file.display()
+    );
+    Ok(0)
+}

@@ -1,0 +1,289 @@
+//! Bundles: chained entries written to a self-contained JSON file (`pack`) and merged into
+//! another ledger (`merge`), verified entry by entry, never silently mixing two histories.
+
+use super::chain::{Sections, entry_hash, section_queries};
+use super::{Ledger, migrate, sql_err};
+use crate::error::{Error, Result};
+use rusqlite::OptionalExtension;
+use rusqlite::types::Value as Sql;
+use serde_json::{Value, json};
+
+pub const FORMAT: &str = "probity-bundle-1";
+
+fn encode(v: &Sql) -> Value {
+    match v {
+        Sql::Null => Value::Null,
+        Sql::Integer(i) => json!(i),
+        Sql::Real(f) => json!({"r": format!("{:016x}", f.to_bits())}),
+        Sql::Text(t) => json!(t),
+        Sql::Blob(b) => json!({"b": crate::spec::hex(b)}),
+    }
+}
+
+fn decode(v: &Value) -> Option<Sql> {
+    Some(match v {
+        Value::Null => Sql::Null,
+        Value::Number(n) => Sql::Integer(n.as_i64()?),
+        Value::String(s) => Sql::Text(s.clone()),
+        Value::Object(o) => match (o.get("r"), o.get("b")) {
+            (Some(Value::String(h)), None) => {
+                Sql::Real(f64::from_bits(u64::from_str_radix(h, 16).ok()?))
+            }
+            (None, Some(Value::String(h))) => Sql::Blob(
+                (0..h.len())
+                    .step_by(2)
+                    .map(|i| u8::from_str_radix(h.get(i..i + 2)?, 16).ok())
+                    .collect::<Option<Vec<u8>>>()?,
+            ),
+            _ => return None,
+        },
+        _ => return None,
+    })
+}
+
+impl Ledger {
+    /// The chained entries of `runs` (with their reveals and notes), in chain order, as a bundle.
+    pub fn pack(&self, runs: &[i64], created_at: &str) -> Result<Value> {
+        let mut st = self
+            .conn
+            .prepare(
+                "SELECT seq, kind, ref_id, prev_hash, entry_hash FROM chain WHERE
+                   (kind = 'run' AND ref_id IN (SELECT value FROM json_each(?1)))
+                   OR (kind = 'reveal' AND ref_id IN (SELECT id FROM reveals WHERE run_id IN (SELECT value FROM json_each(?1))))
+                   OR (kind = 'note' AND ref_id IN (SELECT id FROM notes WHERE run_id IN (SELECT value FROM json_each(?1))))
+                 ORDER BY seq",
+            )
+            .map_err(sql_err("pack"))?;
+        let ids = json!(runs).to_string();
+        let links: Vec<(i64, String, i64, String, String)> = st
+            .query_map([&ids], |r| {
+                Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?, r.get(4)?))
+            })
+            .and_then(|rows| rows.collect())
+            .map_err(sql_err("pack"))?;
+        let mut entries = Vec::new();
+        for (seq, kind, id, prev, hash) in links {
+            let mut sections = Vec::new();
+            for (name, sql) in section_queries(&kind) {
+                let mut st = self.conn.prepare(sql).map_err(sql_err("pack"))?;
+                let columns: Vec<String> = st.column_names().map(str::to_string).collect();
+                let n = columns.len();
+                let rows: Vec<Vec<Sql>> = st
+                    .query_map([id], |r| (0..n).map(|c| r.get::<_, Sql>(c)).collect())
+                    .and_then(|rows| rows.collect())
+                    .map_err(sql_err("pack"))?;
+                sections.push(json!({"name": name, "columns": columns, "rows": rows.iter().map(|r| r.iter().map(encode).collect::<Vec<_>>()).collect::<Vec<_>>()}));
+            }
+            // Reveals and notes name their run by its entry hash: ids differ between ledgers.
+            let run_entry: Option<String> = match kind.as_str() {
+                "run" => None,
+                other => {
+                    let table = if other == "reveal" {
+                        "reveals"
+                    } else {
+                        "notes"
+                    };
+                    self.conn
+                        .query_row(
+                            &format!("SELECT c.entry_hash FROM chain c JOIN {table} t ON c.kind = 'run' AND c.ref_id = t.run_id WHERE t.id = ?1"),
+                            [id],
+                            |r| r.get(0),
+                        )
+                        .optional()
+                        .map_err(sql_err("pack"))?
+                }
+            };
+            entries.push(json!({"seq": seq, "kind": kind, "id": id, "prev_hash": prev, "entry_hash": hash, "run_entry": run_entry, "sections": sections}));
+        }
+        Ok(json!({"format": FORMAT, "created_at": created_at, "entries": entries}))
+    }
+
+    /// Merge a bundle: verify every entry's hash, skip entries already present, refuse a fork
+    /// (exit 4), and append the rest (with new local ids) in one transaction. Returns
+    /// (merged, skipped).
+    pub fn merge(&mut self, bundle: &Value) -> Result<(usize, usize)> {
+        if bundle["format"] != FORMAT {
+            return Err(Error::Input(format!(
+                "not a probity bundle (format {}); make one with `probity pack`",
+                bundle["format"]
+            )));
+        }
+        let entries = bundle["entries"]
+            .as_array()
+            .ok_or_else(|| Error::Input("the bundle has no entries".into()))?;
+        // 1. Every entry must hash to what it claims before anything is written.
+        let mut parsed = Vec::new();
+        for (i, e) in entries.iter().enumerate() {
+            let bad = || Error::Integrity(format!("bundle entry {} is malformed", i + 1));
+            let kind = e["kind"].as_str().ok_or_else(bad)?.to_string();
+            let prev = e["prev_hash"].as_str().ok_or_else(bad)?.to_string();
+            let claimed = e["entry_hash"].as_str().ok_or_else(bad)?.to_string();
+            let mut sections: Sections = Vec::new();
+            let mut columns: Vec<Vec<String>> = Vec::new();
+            for s in e["sections"].as_array().ok_or_else(bad)? {
+                let name = s["name"].as_str().ok_or_else(bad)?.to_string();
+                let cols: Vec<String> = s["columns"]
+                    .as_array()
+                    .ok_or_else(bad)?
+                    .iter()
+                    .map(|c| c.as_str().map(str::to_string))
+                    .collect::<Option<_>>()
+                    .ok_or_else(bad)?;
+                let rows: Vec<Vec<Sql>> = s["rows"]
+                    .as_array()
+                    .ok_or_else(bad)?
+                    .iter()
+                    .map(|r| {
+                        r.as_array()
+                            .and_then(|vals| vals.iter().map(decode).collect::<Option<Vec<Sql>>>())
+                    })
+                    .collect::<Option<_>>()
+                    .ok_or_else(bad)?;
+                sections.push((name, rows));
+                columns.push(cols);
+            }
+            let expected: Vec<&str> = section_queries(&kind).iter().map(|q| q.0).collect();
+            if sections.iter().map(|s| s.0.as_str()).collect::<Vec<_>>() != expected {
+                return Err(bad());
+            }
+            let computed = entry_hash(&prev, &sections);
+            if computed != claimed {
+                return Err(Error::Integrity(format!(
+                    "bundle entry {} ({kind} {}) was altered: it claims {claimed} but its content hashes to {computed}; nothing was merged",
+                    i + 1,
+                    e["id"]
+                )));
+            }
+            parsed.push((
+                kind,
+                prev,
+                claimed,
+                e["run_entry"].as_str().map(str::to_string),
+                sections,
+                columns,
+            ));
+        }
+        let path = self.path.clone();
+        let fail = |e: rusqlite::Error| migrate::refuse_or_fail(&path, e, "merge");
+        let tx = self
+            .conn
+            .transaction_with_behavior(rusqlite::TransactionBehavior::Immediate)
+            .map_err(fail)?;
+        let (mut merged, mut skipped) = (0, 0);
+        for (kind, prev, hash, run_entry, sections, columns) in parsed {
+            let present: bool = tx
+                .query_row(
+                    "SELECT EXISTS (SELECT 1 FROM chain WHERE entry_hash = ?1 OR origin = ?1)",
+                    [&hash],
+                    |r| r.get(0),
+                )
+                .map_err(fail)?;
+            if present {
+                skipped += 1;
+                continue;
+            }
+            // Two different entries continuing the same entry: two histories. Every ledger
+            // starts from the genesis hash, so that shared start is no conflict.
+            let rival: Option<String> = if prev == super::chain::GENESIS {
+                None
+            } else {
+                tx
+                .query_row(
+                    "SELECT coalesce(origin, entry_hash) FROM chain WHERE (origin_prev = ?1) OR (origin IS NULL AND prev_hash = ?1) LIMIT 1",
+                    [&prev],
+                    |r| r.get(0),
+                )
+                .optional()
+                .map_err(fail)?
+            };
+            if let Some(r) = rival {
+                return Err(Error::Integrity(format!(
+                    "the bundle's {kind} entry {hash} continues entry {prev}, which this ledger already continues with {r}: the two ledgers hold different histories (a copied ledger used separately, or a rewritten one); nothing was merged"
+                )));
+            }
+            let local_run = match &run_entry {
+                None => None,
+                Some(h) => Some(
+                    tx.query_row("SELECT ref_id FROM chain WHERE kind = 'run' AND (entry_hash = ?1 OR origin = ?1)", [h], |r| r.get::<_, i64>(0))
+                        .optional()
+                        .map_err(fail)?
+                        .ok_or_else(|| Error::Input(format!("the bundle's {kind} {hash} belongs to a run that is neither in the bundle nor in this ledger; pack its run too")))?,
+                ),
+            };
+            let new_id = insert_entry(&tx, &kind, local_run, &sections, &columns).map_err(fail)?;
+            super::chain::append(&tx, &kind, new_id, Some((&hash, &prev)))?;
+            merged += 1;
+        }
+        tx.commit().map_err(fail)?;
+        Ok((merged, skipped))
+    }
+}
+
+/// Insert one entry's rows with fresh local ids; returns the new main id.
+fn insert_entry(
+    tx: &rusqlite::Transaction,
+    kind: &str,
+    local_run: Option<i64>,
+    sections: &Sections,
+    columns: &[Vec<String>],
+) -> rusqlite::Result<i64> {
+    let mut new_id = 0i64;
+    // Parents first: a run's partition before the run, the run before its scores.
+    let mut order: Vec<usize> = (0..sections.len()).collect();
+    order.sort_by_key(|&i| match sections[i].0.as_str() {
+        "partitions" => 0,
+        "partition_rows" => 1,
+        "runs" | "reveals" | "notes" => 2,
+        _ => 3,
+    });
+    for i in order {
+        let ((name, rows), cols) = (&sections[i], &columns[i]);
+        for row in rows {
+            let mut names = Vec::new();
+            let mut vals: Vec<Sql> = Vec::new();
+            for (c, v) in cols.iter().zip(row) {
+                let is_main = matches!(
+                    (kind, name.as_str(), c.as_str()),
+                    ("run", "runs", "id") | ("reveal", "reveals", "id") | ("note", "notes", "id")
+                );
+                if is_main {
+                    continue; // a fresh id here
+                }
+                let v = match (name.as_str(), c.as_str()) {
+                    (_, "run_id") if kind == "run" => Sql::Integer(new_id),
+                    (_, "run_id") => Sql::Integer(local_run.unwrap_or(0)),
+                    (_, "reveal_id") => Sql::Integer(new_id),
+                    // A replay's original is linked only when it is in this ledger under the same id space.
+                    ("runs", "replay_of") | ("replays", "replay_of") => Sql::Null,
+                    _ => v.clone(),
+                };
+                names.push(c.clone());
+                vals.push(v);
+            }
+            if name == "replays" {
+                continue; // a replay's result names a run id of the other ledger
+            }
+            let verb = if matches!(name.as_str(), "partitions" | "partition_rows") {
+                "INSERT OR IGNORE"
+            } else {
+                "INSERT"
+            };
+            let sql = format!(
+                "{verb} INTO {name} ({}) VALUES ({})",
+                names.join(", "),
+                (1..=names.len())
+                    .map(|i| format!("?{i}"))
+                    .collect::<Vec<_>>()
+                    .join(", ")
+            );
+            tx.execute(&sql, rusqlite::params_from_iter(vals.iter()))?;
+            if matches!(
+                (kind, name.as_str()),
+                ("run", "runs") | ("reveal", "reveals") | ("note", "notes")
+            ) {
+                new_id = tx.last_insert_rowid();
+            }
+        }
+    }
+    Ok(new_id)
+}
