@@ -528,12 +528,19 @@ impl Ledger {
         let mut out = BTreeMap::new();
         for t in [
             "partitions",
+            "partition_rows",
             "runs",
             "folds",
             "candidates",
             "fold_scores",
             "scores",
             "warnings",
+            "reveals",
+            "reveal_scores",
+            "nested",
+            "replays",
+            "notes",
+            "chain",
         ] {
             let n: i64 = self
                 .conn
