@@ -46,25 +46,7 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
                     a.run, a.run
                 )));
             }
-            let spec_path = Path::new(&d.spec_path);
-            let base = spec_path
-                .parent()
-                .map(Path::to_path_buf)
-                .unwrap_or_default();
-            let spec = crate::spec::parse(&d.spec_text, spec_path, &base)?;
-            let text: Vec<&str> = spec
-                .data
-                .categorical
-                .iter()
-                .map(|n| n.name.as_str())
-                .collect();
-            let table = crate::data::load(Path::new(&d.data_path), &text)?;
-            if table.sha256 != d.summary.data_sha256 {
-                return Err(Error::Input(format!(
-                    "{} has SHA-256 {} but run {} used {}; the data changed, so candidate {c} cannot be refitted as it was",
-                    d.data_path, table.sha256, a.run, d.summary.data_sha256
-                )));
-            }
+            let (spec, table) = super::reveal::reload(&d, None)?;
             crate::runner::refit(&spec, &table, c as usize)?
         }
     };

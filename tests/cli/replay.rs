@@ -284,9 +284,20 @@ fn bundles_merge_verified_and_never_mix_histories() {
 fn a_changed_setting_is_caught_by_replay() {
     let d = small_dir("replay-setting");
     d.probity(&["run", "small.toml"]).expect(0);
-    sql(&d, "UPDATE runs SET spec_text = replace(spec_text, 'seed = 5', 'seed = 6') WHERE id = 1");
+    sql(
+        &d,
+        "UPDATE runs SET spec_text = replace(spec_text, 'seed = 5', 'seed = 6') WHERE id = 1",
+    );
     let j = d.probity(&["replay", "1", "--json"]).expect(5).json();
-    let what: Vec<&str> = j["differences"].as_array().unwrap().iter().map(|x| x["metric"].as_str().unwrap()).collect();
-    assert!(what.contains(&"spec_hash") && what.contains(&"partition"), "{what:?}");
+    let what: Vec<&str> = j["differences"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|x| x["metric"].as_str().unwrap())
+        .collect();
+    assert!(
+        what.contains(&"spec_hash") && what.contains(&"partition"),
+        "{what:?}"
+    );
     d.probity(&["audit", "--verify"]).expect(4);
 }
