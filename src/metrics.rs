@@ -1,6 +1,8 @@
-//! Regression metrics: pure functions of (truth, prediction) slices, with their direction.
+//! Metrics: pure functions of (truth, prediction) slices, with their direction.
 //!
-//! Sums are taken in row order, so a score depends only on the rows and their order.
+//! Regression predictions are one value per row. Classification truth is the class index per
+//! row (as f64) and predictions are n x C probabilities, row-major. Sums are taken in row order,
+//! so a score depends only on the rows and their order.
 
 /// A scoring metric.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord)]
@@ -9,11 +11,36 @@ pub enum Metric {
     Mse,
     Mae,
     R2,
+    Accuracy,
+    BalancedAccuracy,
+    LogLoss,
+    Brier,
+    Auc,
 }
 
+/// Probabilities are clipped to [EPS, 1 - EPS] in the log-loss (the usual convention).
+pub const LOG_LOSS_EPS: f64 = 1e-15;
+
 impl Metric {
-    /// Every regression metric, in the order tables and JSON list them.
-    pub const ALL: [Metric; 4] = [Metric::Rmse, Metric::Mse, Metric::Mae, Metric::R2];
+    /// The regression metrics, in the order tables and JSON list them.
+    pub const REGRESSION: [Metric; 4] = [Metric::Rmse, Metric::Mse, Metric::Mae, Metric::R2];
+    /// The classification metrics.
+    pub const CLASSIFICATION: [Metric; 5] = [
+        Metric::Accuracy,
+        Metric::BalancedAccuracy,
+        Metric::LogLoss,
+        Metric::Brier,
+        Metric::Auc,
+    ];
+
+    /// The metrics scored for a task.
+    pub fn for_task(classification: bool) -> &'static [Metric] {
+        if classification {
+            &Metric::CLASSIFICATION
+        } else {
+            &Metric::REGRESSION
+        }
+    }
 
     pub fn name(self) -> &'static str {
         match self {
@@ -21,22 +48,37 @@ impl Metric {
             Metric::Mse => "mse",
             Metric::Mae => "mae",
             Metric::R2 => "r2",
+            Metric::Accuracy => "accuracy",
+            Metric::BalancedAccuracy => "balanced_accuracy",
+            Metric::LogLoss => "log_loss",
+            Metric::Brier => "brier",
+            Metric::Auc => "auc",
         }
     }
 
     pub fn parse(s: &str) -> Option<Metric> {
-        Metric::ALL.into_iter().find(|m| m.name() == s)
+        Metric::REGRESSION
+            .into_iter()
+            .chain(Metric::CLASSIFICATION)
+            .find(|m| m.name() == s)
+    }
+
+    pub fn is_classification(self) -> bool {
+        Metric::CLASSIFICATION.contains(&self)
     }
 
     /// True when a larger value is better.
     pub fn higher_is_better(self) -> bool {
-        matches!(self, Metric::R2)
+        matches!(
+            self,
+            Metric::R2 | Metric::Accuracy | Metric::BalancedAccuracy | Metric::Auc
+        )
     }
 
-    /// True when the metric is a mean of per-row values in [0, 1] (what Thresholdout and the
-    /// Hoeffding bound need). No regression metric is.
+    /// True when the metric is a mean of per-row values in [0, 1], as Thresholdout and the
+    /// Hoeffding bound need: accuracy, and the binary Brier score.
     pub fn bounded_unit(self) -> bool {
-        false
+        matches!(self, Metric::Accuracy | Metric::Brier)
     }
 
     /// True when `a` is strictly better than `b`.
@@ -48,8 +90,9 @@ impl Metric {
         }
     }
 
-    /// The metric on one set of rows; `None` when it is undefined (r2 on rows with one value).
-    pub fn score(self, y: &[f64], pred: &[f64]) -> Option<f64> {
+    /// The metric on one set of rows; `None` when it is undefined (r2 on rows with one value,
+    /// AUC with one class present or more than two classes).
+    pub fn score(self, y: &[f64], pred: &[f64], classes: usize) -> Option<f64> {
         let n = y.len();
         if n == 0 {
             return None;
@@ -70,17 +113,129 @@ impl Metric {
                     Some(1.0 - sse(y, pred) / sst)
                 }
             }
+            Metric::Accuracy => {
+                let hits = y
+                    .iter()
+                    .enumerate()
+                    .filter(|(i, c)| argmax(&pred[i * classes..(i + 1) * classes]) == **c as usize)
+                    .count();
+                Some(hits as f64 / n as f64)
+            }
+            Metric::BalancedAccuracy => {
+                // Mean recall over the classes present among the scored rows.
+                let mut seen = vec![0usize; classes];
+                let mut hit = vec![0usize; classes];
+                for (i, c) in y.iter().enumerate() {
+                    let c = *c as usize;
+                    seen[c] += 1;
+                    if argmax(&pred[i * classes..(i + 1) * classes]) == c {
+                        hit[c] += 1;
+                    }
+                }
+                let present: Vec<f64> = (0..classes)
+                    .filter(|&c| seen[c] > 0)
+                    .map(|c| hit[c] as f64 / seen[c] as f64)
+                    .collect();
+                Some(present.iter().sum::<f64>() / present.len() as f64)
+            }
+            Metric::LogLoss => {
+                let s: f64 = y
+                    .iter()
+                    .enumerate()
+                    .map(|(i, c)| {
+                        -pred[i * classes + *c as usize]
+                            .clamp(LOG_LOSS_EPS, 1.0 - LOG_LOSS_EPS)
+                            .ln()
+                    })
+                    .sum();
+                Some(s / n as f64)
+            }
+            Metric::Brier => {
+                // Binary: mean (p - y)^2 for the positive class. Multiclass: mean over rows of the
+                // squared distance between the probability vector and the one-hot truth (Brier 1950).
+                let s: f64 = if classes == 2 {
+                    y.iter()
+                        .enumerate()
+                        .map(|(i, c)| (pred[i * 2 + 1] - *c).powi(2))
+                        .sum()
+                } else {
+                    y.iter()
+                        .enumerate()
+                        .map(|(i, c)| {
+                            (0..classes)
+                                .map(|k| {
+                                    (pred[i * classes + k]
+                                        - if k == *c as usize { 1.0 } else { 0.0 })
+                                    .powi(2)
+                                })
+                                .sum::<f64>()
+                        })
+                        .sum()
+                };
+                Some(s / n as f64)
+            }
+            Metric::Auc => {
+                if classes != 2 {
+                    return None;
+                }
+                let scores: Vec<f64> = (0..n).map(|i| pred[i * 2 + 1]).collect();
+                auc(y, &scores)
+            }
         }
     }
+}
+
+/// The first index of the largest value (ties go to the first class).
+pub fn argmax(p: &[f64]) -> usize {
+    let mut best = 0;
+    for (i, v) in p.iter().enumerate() {
+        if *v > p[best] {
+            best = i;
+        }
+    }
+    best
+}
+
+/// ROC AUC as the Mann-Whitney statistic with ties counted one half (Hanley & McNeil 1982):
+/// the share of (positive, negative) pairs whose positive scores higher. Computed from midranks,
+/// O(n log n). `None` without both classes.
+pub fn auc(y: &[f64], score: &[f64]) -> Option<f64> {
+    let mut idx: Vec<usize> = (0..y.len()).collect();
+    idx.sort_by(|&a, &b| score[a].total_cmp(&score[b]));
+    let mut rank = vec![0.0; y.len()];
+    let mut i = 0;
+    while i < idx.len() {
+        let mut j = i;
+        while j + 1 < idx.len() && score[idx[j + 1]] == score[idx[i]] {
+            j += 1;
+        }
+        let mid = (i + j) as f64 / 2.0 + 1.0;
+        for &k in &idx[i..=j] {
+            rank[k] = mid;
+        }
+        i = j + 1;
+    }
+    let pos = y.iter().filter(|v| **v == 1.0).count() as f64;
+    let neg = y.len() as f64 - pos;
+    if pos == 0.0 || neg == 0.0 {
+        return None;
+    }
+    let rank_sum: f64 = y
+        .iter()
+        .zip(&rank)
+        .filter(|(v, _)| **v == 1.0)
+        .map(|(_, r)| r)
+        .sum();
+    Some((rank_sum - pos * (pos + 1.0) / 2.0) / (pos * neg))
 }
 
 fn sse(y: &[f64], pred: &[f64]) -> f64 {
     y.iter().zip(pred).map(|(a, b)| (a - b) * (a - b)).sum()
 }
 
-/// Every metric on one set of rows, in `Metric::ALL` order.
-pub fn score_all(y: &[f64], pred: &[f64]) -> [Option<f64>; 4] {
-    Metric::ALL.map(|m| m.score(y, pred))
+/// Every metric of `metrics` on one set of rows (`classes` = 0 for regression).
+pub fn score_all(metrics: &[Metric], y: &[f64], pred: &[f64], classes: usize) -> Vec<Option<f64>> {
+    metrics.iter().map(|m| m.score(y, pred, classes)).collect()
 }
 
 /// Mean and standard error (sample sd with n - 1, over sqrt(n)) of the present values.
@@ -109,17 +264,17 @@ mod tests {
 
     #[test]
     fn metrics_match_hand_computed_values() {
-        assert_eq!(Metric::Mse.score(&Y, &P), Some(1.5));
-        assert_eq!(Metric::Rmse.score(&Y, &P), Some(1.5f64.sqrt()));
-        assert_eq!(Metric::Mae.score(&Y, &P), Some(1.0));
+        assert_eq!(Metric::Mse.score(&Y, &P, 0), Some(1.5));
+        assert_eq!(Metric::Rmse.score(&Y, &P, 0), Some(1.5f64.sqrt()));
+        assert_eq!(Metric::Mae.score(&Y, &P, 0), Some(1.0));
         // SS_tot around the scored rows' mean 6: 9 + 1 + 1 + 9 = 20; SS_res = 6.
-        assert_eq!(Metric::R2.score(&Y, &P), Some(1.0 - 6.0 / 20.0));
+        assert_eq!(Metric::R2.score(&Y, &P, 0), Some(1.0 - 6.0 / 20.0));
     }
 
     #[test]
     fn r2_is_absent_for_one_value() {
-        assert_eq!(Metric::R2.score(&[4.0], &[3.0]), None);
-        assert_eq!(Metric::R2.score(&[4.0, 4.0], &[3.0, 5.0]), None);
+        assert_eq!(Metric::R2.score(&[4.0], &[3.0], 0), None);
+        assert_eq!(Metric::R2.score(&[4.0, 4.0], &[3.0, 5.0], 0), None);
     }
 
     #[test]
@@ -127,6 +282,7 @@ mod tests {
         assert!(Metric::Rmse.better(1.0, 2.0));
         assert!(Metric::R2.better(0.9, 0.8));
         assert!(!Metric::Mae.better(2.0, 2.0));
+        assert!(Metric::Auc.better(0.9, 0.8) && Metric::LogLoss.better(0.2, 0.3));
     }
 
     #[test]
@@ -136,5 +292,59 @@ mod tests {
         // sd = 1, n = 3
         assert_eq!(se, Some((1.0f64 / 3.0).sqrt()));
         assert_eq!(mean_se(&[Some(5.0)]), (Some(5.0), None));
+    }
+
+    /// ../shared/METHODS.md section 6 small check values (computed there):
+    /// positives [0.9, 0.8, 0.6, 0.55], negatives [0.7, 0.5, 0.4, 0.3, 0.2]: A = 0.9; with a
+    /// positive tied at 0.5 with a negative: A = 0.875. By hand: 18 of 20 pairs ordered right,
+    /// then 17 and one tie (17.5 of 20).
+    #[test]
+    fn auc_is_the_mann_whitney_statistic_with_ties_one_half() {
+        let y = [1.0, 1.0, 1.0, 1.0, 0.0, 0.0, 0.0, 0.0, 0.0];
+        let s = [0.9, 0.8, 0.6, 0.55, 0.7, 0.5, 0.4, 0.3, 0.2];
+        assert_eq!(auc(&y, &s), Some(0.9));
+        let s2 = [0.9, 0.8, 0.5, 0.55, 0.7, 0.5, 0.4, 0.3, 0.2];
+        assert_eq!(auc(&y, &s2), Some(0.875));
+        assert_eq!(auc(&[1.0, 1.0], &[0.3, 0.4]), None);
+        // The Hanley & McNeil (1982) CT rating data (METHODS.md section 6): ratings 1..5,
+        // normal counts 33, 6, 6, 11, 2 and abnormal 3, 2, 2, 11, 33: A = 2642 / 2958.
+        let (mut y, mut s) = (Vec::new(), Vec::new());
+        for (rating, (normal, abnormal)) in [(33, 3), (6, 2), (6, 2), (11, 11), (2, 33)]
+            .iter()
+            .enumerate()
+        {
+            for _ in 0..*normal {
+                y.push(0.0);
+                s.push(rating as f64);
+            }
+            for _ in 0..*abnormal {
+                y.push(1.0);
+                s.push(rating as f64);
+            }
+        }
+        assert!((auc(&y, &s).unwrap() - 2642.0 / 2958.0).abs() < 1e-15);
+        assert!((auc(&y, &s).unwrap() - 0.893171).abs() < 5e-7);
+    }
+
+    #[test]
+    fn classification_metrics_by_hand() {
+        // 4 rows, 3 classes; truth 0, 1, 2, 1.
+        let y = [0.0, 1.0, 2.0, 1.0];
+        let p = [0.7, 0.2, 0.1, 0.1, 0.6, 0.3, 0.2, 0.5, 0.3, 0.4, 0.4, 0.2];
+        // argmax: 0, 1, 1, 0 (a 0.4/0.4 tie goes to the first class): 2 of 4 right.
+        assert_eq!(Metric::Accuracy.score(&y, &p, 3), Some(0.5));
+        // recalls: class 0 1/1, class 1 1/2, class 2 0/1 -> mean 0.5
+        assert_eq!(Metric::BalancedAccuracy.score(&y, &p, 3), Some(0.5));
+        let ll = -(0.7f64.ln() + 0.6f64.ln() + 0.3f64.ln() + 0.4f64.ln()) / 4.0;
+        assert!((Metric::LogLoss.score(&y, &p, 3).unwrap() - ll).abs() < 1e-15);
+        // Brier: row sums of squared distances: 0.14, 0.26, 0.78, 0.56 -> mean 0.435
+        assert!((Metric::Brier.score(&y, &p, 3).unwrap() - 0.435).abs() < 1e-15);
+        assert_eq!(Metric::Auc.score(&y, &p, 3), None);
+        // Binary Brier uses the positive class only; log-loss clips at 1e-15.
+        let yb = [1.0, 0.0];
+        let pb = [0.2, 0.8, 1.0, 0.0];
+        assert!((Metric::Brier.score(&yb, &pb, 2).unwrap() - (0.04 + 0.0) / 2.0).abs() < 1e-15);
+        let ll = -(0.8f64.ln() + (1.0 - 1e-15f64).ln()) / 2.0;
+        assert!((Metric::LogLoss.score(&yb, &pb, 2).unwrap() - ll).abs() < 1e-15);
     }
 }

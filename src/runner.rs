@@ -20,8 +20,8 @@ use std::collections::BTreeMap;
 use std::sync::Mutex;
 use std::sync::atomic::{AtomicUsize, Ordering};
 
-/// Scores in `Metric::ALL` order; `None` where a metric is undefined.
-pub type Scores = [Option<f64>; 4];
+/// Scores in the order of `Prepared::metrics`; `None` where a metric is undefined.
+pub type Scores = Vec<Option<f64>>;
 
 /// The experiment's columns resolved against the data, and its partition.
 #[derive(Debug, Clone)]
@@ -46,6 +46,11 @@ pub struct Prepared {
     pub test_keys: Vec<crate::data::RowKey>,
     /// The resolved split method (for nested cross-validation's inner folds).
     pub method: Method,
+    /// The metrics scored for this task, in order (every `Scores` follows it).
+    pub metrics: Vec<Metric>,
+    /// Class labels of a classification task (the target holds their indices); empty for
+    /// regression. A binary task's positive class is the second.
+    pub classes: Vec<String>,
 }
 
 impl Prepared {
@@ -114,6 +119,9 @@ pub struct CandidateResult {
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct StoredModel {
     pub candidate: usize,
+    /// Class labels (classification); predictions are then probabilities per class.
+    #[serde(default)]
+    pub classes: Vec<String>,
     pub target: String,
     pub key: Option<String>,
     pub encoder: Encoder,
@@ -239,25 +247,9 @@ pub fn prepare(spec: &Spec, table: &Table) -> Result<Prepared> {
         ));
     }
     let tcol = &table.columns[target];
-    let yall = match &tcol.values {
-        Values::Numeric(v) => v.clone(),
-        Values::Text { codes, levels } => {
-            let row = codes
-                .iter()
-                .position(|&c| {
-                    c != crate::data::MISSING_CODE && levels[c as usize].parse::<f64>().is_err()
-                })
-                .unwrap_or(0);
-            return Err(Error::data(
-                &table.path,
-                Some(table.lines[row]),
-                Some(&tcol.name),
-                format!(
-                    "the regression target holds text ('{}'); a regression target must be numeric",
-                    tcol.text(row)
-                ),
-            ));
-        }
+    let (yall, classes) = match spec.task {
+        crate::spec::Task::Regression => (regression_target(table, target)?, Vec::new()),
+        crate::spec::Task::Classification => class_target(spec, table, target)?,
     };
     // Missing values in the columns the run reads.
     let mut used: Vec<usize> = features.clone();
@@ -298,6 +290,17 @@ pub fn prepare(spec: &Spec, table: &Table) -> Result<Prepared> {
         )));
     }
     let y: Vec<f64> = rows.iter().map(|&r| yall[r]).collect();
+    if !classes.is_empty() && y.iter().all(|v| *v == y[0]) {
+        return Err(Error::data(
+            &table.path,
+            None,
+            Some(&tcol.name),
+            format!(
+                "every used row is of class '{}'; a classifier needs at least two classes",
+                classes[y[0] as usize]
+            ),
+        ));
+    }
     if y.iter().all(|v| *v == y[0]) {
         return Err(Error::data(
             &table.path,
@@ -331,7 +334,10 @@ pub fn prepare(spec: &Spec, table: &Table) -> Result<Prepared> {
     }
     let method = match &spec.split.method {
         SplitMethod::Random => Method::Random,
-        SplitMethod::Stratified { bins } => Method::Stratified { bins: *bins },
+        SplitMethod::Stratified { bins } => Method::Stratified {
+            bins: *bins,
+            by_class: !classes.is_empty(),
+        },
         SplitMethod::Hash => Method::Hash {
             keys: keys.clone().unwrap_or_default(),
         },
@@ -383,6 +389,17 @@ pub fn prepare(spec: &Spec, table: &Table) -> Result<Prepared> {
             "rule = \"one-se\" needs cross-validation folds, but this split has a fixed validation partition; use rule = \"min\"",
         ));
     }
+    for (c, name) in classes.iter().enumerate() {
+        let in_dev = (0..y.len()).any(|i| y[i] as usize == c && partition.parts[i] != Part::Test);
+        let in_test = (0..y.len())
+            .filter(|&i| y[i] as usize == c && partition.parts[i] == Part::Test)
+            .count();
+        if !in_dev && in_test > 0 {
+            return Err(Error::Input(format!(
+                "class '{name}' appears only in test rows ({in_test}); no model can learn it. Use method = \"stratified\", or check the labels"
+            )));
+        }
+    }
     let mut assignment = vec![b'-'; table.n_rows()];
     for (i, &r) in rows.iter().enumerate() {
         assignment[r] = partition.parts[i].code();
@@ -424,7 +441,90 @@ pub fn prepare(spec: &Spec, table: &Table) -> Result<Prepared> {
         key,
         test_keys,
         method,
+        metrics: Metric::for_task(spec.task == crate::spec::Task::Classification).to_vec(),
+        classes,
     })
+}
+
+/// A regression target: numbers (NaN where missing).
+fn regression_target(table: &Table, target: usize) -> Result<Vec<f64>> {
+    let tcol = &table.columns[target];
+    match &tcol.values {
+        Values::Numeric(v) => Ok(v.clone()),
+        Values::Text { codes, levels } => {
+            let row = codes
+                .iter()
+                .position(|&c| {
+                    c != crate::data::MISSING_CODE && levels[c as usize].parse::<f64>().is_err()
+                })
+                .unwrap_or(0);
+            Err(Error::data(
+                &table.path,
+                Some(table.lines[row]),
+                Some(&tcol.name),
+                format!(
+                    "the regression target holds text ('{}'); a regression target must be numeric (or set task = \"classification\")",
+                    tcol.text(row)
+                ),
+            ))
+        }
+    }
+}
+
+/// A classification target: class indices (NaN where missing) and the class labels, sorted
+/// numerically when every label is a number, else by text; a binary task's positive class is
+/// the second unless `[data] positive` names it.
+fn class_target(spec: &Spec, table: &Table, target: usize) -> Result<(Vec<f64>, Vec<String>)> {
+    let col = &table.columns[target];
+    let texts: Vec<String> = (0..table.n_rows()).map(|r| col.text(r)).collect();
+    let mut classes: Vec<String> = texts.iter().filter(|t| !t.is_empty()).cloned().collect();
+    classes.sort();
+    classes.dedup();
+    let numeric: Option<Vec<f64>> = classes.iter().map(|c| c.parse::<f64>().ok()).collect();
+    if let Some(v) = numeric {
+        let mut paired: Vec<(f64, String)> = v.into_iter().zip(classes).collect();
+        paired.sort_by(|a, b| a.0.total_cmp(&b.0));
+        classes = paired.into_iter().map(|p| p.1).collect();
+    }
+    if let Some((pos, loc)) = &spec.data.positive {
+        if classes.len() != 2 {
+            return Err(Error::spec(
+                &spec.file,
+                Some(*loc),
+                format!(
+                    "'positive' applies to two classes; the target has {}",
+                    classes.len()
+                ),
+            ));
+        }
+        let Some(i) = classes.iter().position(|c| c == pos) else {
+            return Err(Error::spec(
+                &spec.file,
+                Some(*loc),
+                format!(
+                    "positive class '{pos}' is not a value of the target; its classes are {}",
+                    classes.join(", ")
+                ),
+            ));
+        };
+        if i == 0 {
+            classes.swap(0, 1);
+        }
+    }
+    let y = texts
+        .iter()
+        .map(|t| {
+            if t.is_empty() {
+                f64::NAN
+            } else {
+                classes
+                    .iter()
+                    .position(|c| c == t)
+                    .map_or(f64::NAN, |i| i as f64)
+            }
+        })
+        .collect();
+    Ok((y, classes))
 }
 
 /// Codes of a column's values among `rows`, by sorted distinct text.
@@ -502,7 +602,8 @@ fn run_task(
     fold: &crate::split::Fold,
     impute: bool,
 ) -> Result<TaskOut> {
-    let model = model_for(entry);
+    let nc = prep.classes.len();
+    let model = model_for(entry, nc);
     let fit_rows: Vec<usize> = fold.fit.iter().map(|&i| prep.rows[i]).collect();
     let score_rows: Vec<usize> = fold.score.iter().map(|&i| prep.rows[i]).collect();
     let enc = Encoder::fit(
@@ -527,7 +628,10 @@ fn run_task(
                 fmt_params(&grid[g])
             )));
         }
-        scores.push((score_all(&yf, &p[0]), score_all(&ys, &p[1])));
+        scores.push((
+            score_all(&prep.metrics, &yf, &p[0], nc),
+            score_all(&prep.metrics, &ys, &p[1], nc),
+        ));
     }
     Ok(TaskOut { scores, notes })
 }
@@ -596,6 +700,7 @@ pub fn run(spec: &Spec, table: &Table, threads: usize) -> Result<RunOutcome> {
     )?;
     let refit = StoredModel {
         candidate: chosen.id,
+        classes: prep.classes.clone(),
         target: spec.data.target.name.clone(),
         key: spec.data.key.as_ref().map(|k| k.name.clone()),
         encoder,
@@ -654,7 +759,7 @@ fn fit_on(
 ) -> Result<(Encoder, Fitted)> {
     let rows: Vec<usize> = fit.iter().map(|&i| prep.rows[i]).collect();
     let y: Vec<f64> = fit.iter().map(|&i| prep.target[i]).collect();
-    let model = model_for(entry);
+    let model = model_for(entry, prep.classes.len());
     let encoder = Encoder::fit(
         table,
         &prep.features,
@@ -716,7 +821,7 @@ fn cross_validate(
             let id = candidates.len() + 1;
             let mut fs = Vec::with_capacity(folds.len());
             for (f, fold) in folds.iter().enumerate() {
-                let (train, validation) = by_task[f * entries.len() + e].scores[g];
+                let (train, validation) = by_task[f * entries.len() + e].scores[g].clone();
                 fs.push(FoldScores {
                     repeat: fold.repeat,
                     fold: fold.index,
@@ -726,17 +831,18 @@ fn cross_validate(
                     validation,
                 });
             }
-            let agg = |pick: fn(&FoldScores) -> Scores| -> (Scores, Scores) {
-                let mut m = [None; 4];
-                let mut se = [None; 4];
-                for k in 0..4 {
+            let agg = |pick: fn(&FoldScores) -> &Scores| -> (Scores, Scores) {
+                let nm = prep.metrics.len();
+                let mut m = vec![None; nm];
+                let mut se = vec![None; nm];
+                for k in 0..nm {
                     let vals: Vec<Option<f64>> = fs.iter().map(|f| pick(f)[k]).collect();
                     (m[k], se[k]) = mean_se(&vals);
                 }
                 (m, se)
             };
-            let (train, train_se) = agg(|f| f.train);
-            let (validation, validation_se) = agg(|f| f.validation);
+            let (train, train_se) = agg(|f| &f.train);
+            let (validation, validation_se) = agg(|f| &f.validation);
             candidates.push(CandidateResult {
                 id,
                 family: entry.family,
@@ -781,7 +887,7 @@ fn nested_cv(
     notes: &mut Notes,
 ) -> Result<NestedOutcome> {
     let metric = spec.select.metric;
-    let mi = Metric::ALL.iter().position(|m| *m == metric).unwrap_or(0);
+    let mi = prep.metrics.iter().position(|m| *m == metric).unwrap_or(0);
     let mut selections = Vec::new();
     for (o, outer) in folds.iter().filter(|f| f.repeat == 0).enumerate() {
         let wrap = |e: Error| match e {
@@ -809,7 +915,10 @@ fn nested_cv(
         let rows: Vec<usize> = outer.score.iter().map(|&i| prep.rows[i]).collect();
         let y: Vec<f64> = outer.score.iter().map(|&i| prep.target[i]).collect();
         let pred = fitted.predict(&enc.transform(table, &rows, notes)?);
-        selections.push((chosen, score_all(&y, &pred)[mi]));
+        selections.push((
+            chosen,
+            score_all(&prep.metrics, &y, &pred, prep.classes.len())[mi],
+        ));
     }
     let (estimate, se) = mean_se(&selections.iter().map(|s| s.1).collect::<Vec<_>>());
     Ok(NestedOutcome {
@@ -827,7 +936,10 @@ fn select(
     rule: Rule,
     entries: &[ModelSpec],
 ) -> Result<(usize, usize)> {
-    let k = Metric::ALL.iter().position(|m| *m == metric).unwrap_or(0);
+    let k = Metric::for_task(metric.is_classification())
+        .iter()
+        .position(|m| *m == metric)
+        .unwrap_or(0);
     let mut best: Option<&CandidateResult> = None;
     for c in cands {
         if let Some(v) = c.validation[k]
@@ -851,7 +963,8 @@ fn select(
     } else {
         bv + se
     };
-    let model = model_for(&entries[best.entry]);
+    // Complexity does not depend on the class count.
+    let model = model_for(&entries[best.entry], 0);
     let mut pick = best;
     for c in cands.iter().filter(|c| c.entry == best.entry) {
         let Some(v) = c.validation[k] else { continue };
@@ -892,6 +1005,7 @@ pub fn refit_prepared(
                     fit_on(spec, table, prep, entry, &params, &dev, &mut Notes::new())?;
                 return Ok(StoredModel {
                     candidate,
+                    classes: prep.classes.clone(),
                     target: spec.data.target.name.clone(),
                     key: spec.data.key.as_ref().map(|k| k.name.clone()),
                     encoder,
@@ -944,13 +1058,18 @@ pub fn score_test(
     let mut notes = Notes::new();
     let x = model.encoder.transform(table, &rows, &mut notes)?;
     let pred = model.fitted.predict(&x);
-    let scores = score_all(&y, &pred);
+    let nc = prep.classes.len();
+    let scores = score_all(&prep.metrics, &y, &pred, nc);
     let seed = derive_seed(spec.split.seed, Domain::Bootstrap, candidate as u32);
     let mut rng = crate::split::rng::stream(seed, Domain::Bootstrap, 0);
     let reps = crate::guard::stats::bootstrap(y.len(), RESAMPLES, &mut rng, 4, |idx| {
         let ys: Vec<f64> = idx.iter().map(|&i| y[i]).collect();
-        let ps: Vec<f64> = idx.iter().map(|&i| pred[i]).collect();
-        score_all(&ys, &ps).to_vec()
+        let width = nc.max(1);
+        let ps: Vec<f64> = idx
+            .iter()
+            .flat_map(|&i| pred[i * width..(i + 1) * width].iter().copied())
+            .collect();
+        score_all(&prep.metrics, &ys, &ps, nc)
     });
     let mut intervals = [None; 4];
     for (k, r) in reps.into_iter().enumerate() {

@@ -58,10 +58,16 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
         warn(n);
     }
     guard_sealed_rows(&ledger, &d, &model, &input, &pred, a.allow_sealed, &a.input)?;
-    write_predictions(&a.output, &input, model.key.as_deref(), &pred)?;
+    write_predictions(
+        &a.output,
+        &input,
+        model.key.as_deref(),
+        &pred,
+        &model.classes,
+    )?;
     eprintln!(
         "wrote {} predictions of run {} candidate {} to {}",
-        pred.len(),
+        input.n_rows(),
         a.run,
         model.candidate,
         a.output.display()
@@ -74,6 +80,7 @@ fn write_predictions(
     input: &crate::data::Table,
     key: Option<&str>,
     pred: &[f64],
+    classes: &[String],
 ) -> Result<()> {
     let io = |e: std::io::Error| Error::Io {
         action: "cannot write predictions to",
@@ -90,14 +97,22 @@ fn write_predictions(
             header.push(k.name.clone());
         }
         header.push("prediction".to_string());
+        header.extend(classes.iter().map(|c| format!("p_{c}")));
         w.write_record(&header)
             .map_err(|e| io(std::io::Error::other(e)))?;
-        for (i, p) in pred.iter().enumerate() {
+        let width = classes.len().max(1);
+        for (i, p) in pred.chunks(width).enumerate() {
             let mut rec = Vec::new();
             if let Some(k) = key_col {
                 rec.push(k.text(i));
             }
-            rec.push(format!("{p}"));
+            if classes.is_empty() {
+                rec.push(format!("{}", p[0]));
+            } else {
+                // The predicted class is the most probable, ties to the first class.
+                rec.push(classes[crate::metrics::argmax(p)].clone());
+                rec.extend(p.iter().map(|v| format!("{v}")));
+            }
             w.write_record(&rec)
                 .map_err(|e| io(std::io::Error::other(e)))?;
         }
@@ -140,13 +155,22 @@ fn guard_sealed_rows(
             model.target
         )));
     }
-    let crate::data::Values::Numeric(y) = &target.values else {
-        return Err(Error::Input(format!(
-            "{}: the target column '{}' holds text",
-            file.display(),
-            model.target
-        )));
-    };
+    // Truth as the model sees it: numbers, or class indices for a classifier.
+    let nc = model.classes.len();
+    let y: Vec<f64> = (0..input.n_rows())
+        .map(|r| {
+            let t = target.text(r);
+            if nc > 0 {
+                model
+                    .classes
+                    .iter()
+                    .position(|c| *c == t)
+                    .map_or(f64::NAN, |i| i as f64)
+            } else {
+                t.parse().unwrap_or(f64::NAN)
+            }
+        })
+        .collect();
     // Recording needs a writable ledger of its own.
     let mut writer = crate::ledger::Ledger::open(ledger.path(), false)?;
     let spec_path = Path::new(&d.spec_path);
@@ -167,12 +191,18 @@ fn guard_sealed_rows(
             .filter(|(_, k)| own.contains(*k))
             .map(|(r, _)| *r)
             .collect();
+        let idx: Vec<usize> = idx.into_iter().filter(|&r| !y[r].is_nan()).collect();
         let ys: Vec<f64> = idx.iter().map(|&r| y[r]).collect();
-        let ps: Vec<f64> = idx.iter().map(|&r| pred[r]).collect();
-        let scores = crate::metrics::score_all(&ys, &ps);
+        let width = nc.max(1);
+        let ps: Vec<f64> = idx
+            .iter()
+            .flat_map(|&r| pred[r * width..(r + 1) * width].iter().copied())
+            .collect();
+        let metrics = Metric::for_task(nc > 0);
+        let scores = crate::metrics::score_all(metrics, &ys, &ps, nc);
         let history = ledger.partition_history(partition)?;
         let metric = spec.select.metric;
-        let mi = Metric::ALL.iter().position(|m| *m == metric).unwrap_or(0);
+        let mi = metrics.iter().position(|m| *m == metric).unwrap_or(0);
         let mut seen = history.candidates.clone();
         seen.insert((d.spec_hash.clone(), model.candidate as i64));
         let optimism =
@@ -197,7 +227,7 @@ fn guard_sealed_rows(
             answer_kind: "test".into(),
             mechanism: serde_json::json!({"mode": "count", "source": "predict --allow-sealed", "file": file.display().to_string()}).to_string(),
             optimism: serde_json::to_string(&optimism).map_err(|e| Error::Internal(e.to_string()))?,
-            scores: Metric::ALL.iter().enumerate().map(|(i, m)| (m.name().to_string(), scores[i], None, None, None)).collect(),
+            scores: metrics.iter().enumerate().map(|(i, m)| (m.name().to_string(), scores[i], None, None, None)).collect(),
         })?;
         warn(&format!(
             "{} rows of sealed partition {partition} were scored with their targets: recorded as reveal {id} ({} reveal(s) of the partition now, budget {})",

@@ -6,7 +6,6 @@
 use super::{Global, open_existing, out, out_json, warn};
 use crate::error::{Error, Result};
 use crate::ledger::{Ledger, RevealRecord, RunDetail};
-use crate::metrics::Metric;
 use serde_json::{Value, json};
 use std::io::IsTerminal;
 use std::path::{Path, PathBuf};
@@ -188,7 +187,7 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
         spec.guard.confidence,
     )?;
     let metric = spec.select.metric;
-    let mi = Metric::ALL.iter().position(|m| *m == metric).unwrap_or(0);
+    let mi = prep.metrics.iter().position(|m| *m == metric).unwrap_or(0);
     let test_value = outcome.scores[mi].ok_or_else(|| {
         Error::Input(format!("{} is undefined on these test rows", metric.name()))
     })?;
@@ -247,7 +246,8 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
         answer_kind: answer.kind.into(),
         mechanism: answer.mechanism.to_string(),
         optimism: serde_json::to_string(&optimism).map_err(|e| Error::Internal(e.to_string()))?,
-        scores: Metric::ALL
+        scores: prep
+            .metrics
             .iter()
             .enumerate()
             .map(|(i, m)| {
@@ -288,7 +288,7 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
     let mut test = serde_json::Map::new();
     let mut interval = serde_json::Map::new();
     if exact {
-        for (i, m) in Metric::ALL.iter().enumerate() {
+        for (i, m) in prep.metrics.iter().enumerate() {
             test.insert(m.name().into(), json!(outcome.scores[i]));
             interval.insert(
                 m.name().into(),
@@ -306,6 +306,7 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
         "rows": n,
         "mode": spec.guard.mode.name(),
         "metric": metric.name(),
+        "metrics": prep.metrics.iter().map(|m| m.name()).collect::<Vec<_>>(),
         "test": Value::Object(test),
         "interval": Value::Object(interval),
         "confidence": spec.guard.confidence,

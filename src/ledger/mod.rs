@@ -6,7 +6,6 @@ pub mod chain;
 pub mod migrate;
 
 use crate::error::{Error, Result};
-use crate::metrics::Metric;
 use crate::runner::{RunOutcome, Scores};
 use crate::split::Part;
 use rusqlite::{Connection, OptionalExtension, params};
@@ -315,7 +314,7 @@ impl Ledger {
                 .map_err(fail)?;
                 for f in &c.folds {
                     for (part, sc) in [("train", &f.train), ("validation", &f.validation)] {
-                        for (k, m) in Metric::ALL.iter().enumerate() {
+                        for (k, m) in out.prepared.metrics.iter().enumerate() {
                             fold_score
                                 .execute(params![
                                     run,
@@ -335,7 +334,7 @@ impl Ledger {
                     ("validation", &c.validation, &c.validation_se),
                 ];
                 for (part, mean, se) in sets {
-                    for (k, m) in Metric::ALL.iter().enumerate() {
+                    for (k, m) in out.prepared.metrics.iter().enumerate() {
                         agg.execute(params![run, c.id as i64, part, m.name(), mean[k], se[k]])
                             .map_err(fail)?;
                     }
@@ -1073,7 +1072,7 @@ impl Ledger {
         for c in &out.candidates {
             for f in &c.folds {
                 for (part, sc) in [("train", &f.train), ("validation", &f.validation)] {
-                    for (k, m) in Metric::ALL.iter().enumerate() {
+                    for (k, m) in out.prepared.metrics.iter().enumerate() {
                         fresh.insert(
                             (
                                 c.id as i64,
@@ -1130,7 +1129,7 @@ impl Ledger {
                     &row.validation,
                 ),
             ] {
-                for (k, m) in Metric::ALL.iter().enumerate() {
+                for (k, m) in out.prepared.metrics.iter().enumerate() {
                     let s = stored.get(m.name()).copied().unwrap_or(Stat {
                         mean: None,
                         se: None,

@@ -1,5 +1,6 @@
-//! `knn`: the mean target of the k nearest fitting rows, Euclidean distance on standardised
-//! features; distance ties go to the lower fitting row. One neighbour search per fold serves
+//! `knn`: the mean target (regression) or the class vote fractions (classification) of the k
+//! nearest fitting rows, Euclidean distance on standardised features; distance ties go to the
+//! lower fitting row, and the predicted class is the first of the most voted. One neighbour search per fold serves
 //! every k of the grid.
 
 use super::encode::Notes;
@@ -9,6 +10,8 @@ use crate::error::{Error, Result};
 
 pub struct Knn {
     pub standardize: bool,
+    /// 0 for regression, else the number of classes.
+    pub classes: usize,
 }
 
 fn k_of(p: &Params) -> usize {
@@ -26,13 +29,15 @@ fn row_major(x: &Matrix) -> Vec<f64> {
     out
 }
 
-/// Predictions for every query row (standardized) and every k in `ks`: `[k][row]`.
+/// Predictions for every query row (standardized) and every k in `ks`: `[k][row]` (regression)
+/// or `[k][row * classes + class]` vote fractions (classification).
 pub fn predict_many(
     points: &[f64],
     targets: &[f64],
     p: usize,
     queries: &Matrix,
     ks: &[usize],
+    classes: usize,
 ) -> Vec<Vec<f64>> {
     let n = targets.len();
     let kmax = ks.iter().copied().max().unwrap_or(1).min(n);
@@ -57,8 +62,16 @@ pub fn predict_many(
         near.sort_unstable_by(cmp);
         for (slot, &k) in ks.iter().enumerate() {
             let k = k.min(n);
-            let s: f64 = near[..k].iter().map(|&(_, i)| targets[i]).sum();
-            out[slot].push(s / k as f64);
+            if classes > 0 {
+                let mut votes = vec![0.0; classes];
+                for &(_, i) in &near[..k] {
+                    votes[targets[i] as usize] += 1.0;
+                }
+                out[slot].extend(votes.iter().map(|v| v / k as f64));
+            } else {
+                let s: f64 = near[..k].iter().map(|&(_, i)| targets[i]).sum();
+                out[slot].push(s / k as f64);
+            }
         }
     }
     out
@@ -96,6 +109,7 @@ impl Model for Knn {
             scale,
             points,
             targets: y.to_vec(),
+            classes: self.classes,
         })
     }
     fn fit_predict_grid(
@@ -114,7 +128,7 @@ impl Model for Knn {
         let mut out: Vec<Vec<Vec<f64>>> = vec![Vec::new(); ks.len()];
         for t in targets {
             let q = standardize(t, &center, &scale);
-            for (slot, preds) in predict_many(&points, y, x.x.cols, &q, &ks)
+            for (slot, preds) in predict_many(&points, y, x.x.cols, &q, &ks, self.classes)
                 .into_iter()
                 .enumerate()
             {

@@ -7,6 +7,7 @@ pub mod encode;
 pub mod knn;
 pub mod lasso;
 pub mod linalg;
+pub mod logistic;
 pub mod mean;
 pub mod ols;
 pub mod poly;
@@ -62,6 +63,20 @@ pub enum Fitted {
         scale: Vec<f64>,
         points: Vec<f64>,
         targets: Vec<f64>,
+        /// 0 for regression; else the class count, `targets` holding class indices, and the
+        /// prediction is the vote fraction of each class.
+        #[serde(default)]
+        classes: usize,
+    },
+    /// Class probabilities fixed at the fitting rows' class shares.
+    Prior { probs: Vec<f64> },
+    /// Logistic regression on standardised features: one row of (intercept, weights) for the
+    /// positive class (binary) or one per class (softmax).
+    Logistic {
+        center: Vec<f64>,
+        scale: Vec<f64>,
+        coef: Vec<Vec<f64>>,
+        classes: usize,
     },
 }
 
@@ -98,10 +113,18 @@ impl Fitted {
                 scale,
                 points,
                 targets,
+                classes,
             } => {
                 let q = linalg::standardize(x, center, scale);
-                knn::predict_many(points, targets, center.len(), &q, &[*k]).remove(0)
+                knn::predict_many(points, targets, center.len(), &q, &[*k], *classes).remove(0)
             }
+            Fitted::Prior { probs } => (0..x.rows).flat_map(|_| probs.iter().copied()).collect(),
+            Fitted::Logistic {
+                center,
+                scale,
+                coef,
+                classes,
+            } => logistic::probabilities(&linalg::standardize(x, center, scale), coef, *classes),
         }
     }
 }
@@ -138,10 +161,12 @@ pub trait Model: Send + Sync {
     fn complexity(&self, params: &Params) -> f64;
 }
 
-/// The model object for one `[[model]]` entry.
-pub fn model_for(spec: &ModelSpec) -> Box<dyn Model> {
+/// The model object for one `[[model]]` entry; `classes` is 0 for regression, else the number
+/// of classes (predictions are then n x classes probabilities, row-major).
+pub fn model_for(spec: &ModelSpec, classes: usize) -> Box<dyn Model> {
     match spec.family {
-        Family::Mean => Box::new(mean::MeanModel),
+        Family::Mean => Box::new(mean::MeanModel { classes }),
+        Family::Logistic => Box::new(logistic::Logistic { classes }),
         Family::Ols => Box::new(ols::Ols),
         Family::Ridge => Box::new(ridge::Ridge {
             standardize: spec.standardize,
@@ -152,6 +177,7 @@ pub fn model_for(spec: &ModelSpec) -> Box<dyn Model> {
         Family::Poly => Box::new(poly::Poly),
         Family::Knn => Box::new(knn::Knn {
             standardize: spec.standardize,
+            classes,
         }),
     }
 }

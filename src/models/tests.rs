@@ -35,7 +35,7 @@ fn ols_recovers_an_exact_plane() {
         .zip(&x2)
         .map(|(a, b)| 3.0 + 2.0 * a - 1.5 * b)
         .collect();
-    let f = model_for(&spec(Family::Ols))
+    let f = model_for(&spec(Family::Ols), 0)
         .fit(&design(&[x1, x2]), &y, &vec![], &mut Notes::new())
         .unwrap();
     let Fitted::Linear {
@@ -56,7 +56,7 @@ fn collinear_columns_give_minimum_norm_and_a_warning() {
     let x1 = vec![1.0, 2.0, 3.0, 4.0];
     let y = vec![2.0, 4.0, 6.0, 8.0];
     let mut notes = Notes::new();
-    let f = model_for(&spec(Family::Ols))
+    let f = model_for(&spec(Family::Ols), 0)
         .fit(
             &design(&[x1.clone(), x1.clone(), vec![7.0; 4]]),
             &y,
@@ -113,7 +113,7 @@ fn grid_fits_equal_single_fits() {
             vec![ParamValue::Int(1), ParamValue::Int(4), ParamValue::Int(9)],
         ),
     ] {
-        let m = model_for(&spec(family));
+        let m = model_for(&spec(family), 0);
         let grid: Vec<Params> = values.iter().map(|v| p(name, v.clone())).collect();
         let all = m
             .fit_predict_grid(&d, &y, &grid, &[&d.x], &mut Notes::new())
@@ -139,7 +139,10 @@ fn knn_ties_go_to_the_lower_row() {
     // Query at 0: rows 1 and 2 are both at distance 1; k = 2 takes rows 0 and 1.
     let x = vec![0.0, 1.0, -1.0, 5.0];
     let y = vec![10.0, 20.0, 30.0, 40.0];
-    let m = knn::Knn { standardize: false };
+    let m = knn::Knn {
+        standardize: false,
+        classes: 0,
+    };
     let f = m
         .fit(
             &design(&[x]),
@@ -169,7 +172,7 @@ fn lasso_zeroes_everything_above_lambda_max() {
     // lambda_max = max |Z^T y| / n on standardized Z; above it every coefficient is zero.
     let x1: Vec<f64> = (0..20).map(|i| i as f64).collect();
     let y: Vec<f64> = x1.iter().map(|v| 0.5 * v + 1.0).collect();
-    let f = model_for(&spec(Family::Lasso))
+    let f = model_for(&spec(Family::Lasso), 0)
         .fit(
             &design(&[x1]),
             &y,
@@ -191,7 +194,7 @@ fn lasso_zeroes_everything_above_lambda_max() {
 fn poly_predictions_do_not_depend_on_scaling_and_coefficients_expand_back() {
     let x: Vec<f64> = (0..25).map(|i| 100.0 + i as f64 * 0.8).collect();
     let y: Vec<f64> = x.iter().map(|v| 2.0 - 0.5 * v + 0.01 * v * v).collect();
-    let f = model_for(&spec(Family::Poly))
+    let f = model_for(&spec(Family::Poly), 0)
         .fit(
             &design(std::slice::from_ref(&x)),
             &y,
@@ -230,7 +233,7 @@ fn huge_values_do_not_overflow() {
             Family::Knn => p("k", ParamValue::Int(3)),
             _ => vec![],
         };
-        let f = model_for(&spec(family))
+        let f = model_for(&spec(family), 0)
             .fit(
                 &design(std::slice::from_ref(&x)),
                 &y,

@@ -24,7 +24,8 @@ fn right(t: &mut Table, from: usize) {
 /// `limit` keeps the table short after a run; `show --all` passes `None`.
 pub fn leaderboard(d: &RunDetail, limit: Option<usize>) -> String {
     let metric = d.summary.metric.as_str();
-    let higher = metric == "r2";
+    let parsed = crate::metrics::Metric::parse(metric);
+    let higher = parsed.is_some_and(|m| m.higher_is_better());
     let mut rows: Vec<&CandidateRow> = d.candidates.iter().collect();
     let key = |c: &CandidateRow| c.validation.get(metric).and_then(|s| s.mean);
     rows.sort_by(|a, b| {
@@ -48,10 +49,13 @@ pub fn leaderboard(d: &RunDetail, limit: Option<usize>) -> String {
     if !d.holdout {
         header.push(se_label);
     }
-    let others: Vec<&str> = ["rmse", "mae", "r2"]
-        .into_iter()
-        .filter(|m| *m != metric)
-        .collect();
+    // The other metrics of the task, in their usual order (mse is rmse squared: left out).
+    let others: Vec<&str> =
+        crate::metrics::Metric::for_task(parsed.is_some_and(|m| m.is_classification()))
+            .iter()
+            .map(|m| m.name())
+            .filter(|m| *m != metric && *m != "mse")
+            .collect();
     let other_headers: Vec<String> = others.iter().map(|m| format!("val {m}")).collect();
     for h in &other_headers {
         header.push(h);
@@ -230,7 +234,11 @@ pub fn reveal(doc: &serde_json::Value, family: &str, params: &str) -> String {
             &format!("{conf}% interval"),
             "development (CV)",
         ]);
-        for m in ["rmse", "mse", "mae", "r2"] {
+        let names: Vec<&str> = doc["metrics"]
+            .as_array()
+            .map(|a| a.iter().filter_map(|m| m.as_str()).collect())
+            .unwrap_or_default();
+        for m in names {
             let iv = &doc["interval"][m];
             let iv_text = match (iv[0].as_f64(), iv[1].as_f64()) {
                 (Some(lo), Some(hi)) => format!("[{}, {}]", num(Some(lo)), num(Some(hi))),

@@ -51,6 +51,8 @@ pub struct DataSpec {
     pub categorical: Vec<Named>,
     pub sha256: Option<(String, Loc)>,
     pub missing: Missing,
+    /// The positive class of a binary classification task (default: the second class).
+    pub positive: Option<(String, Loc)>,
 }
 
 #[derive(Debug, Clone, PartialEq)]
@@ -140,17 +142,27 @@ pub enum Family {
     Lasso,
     Poly,
     Knn,
+    Logistic,
 }
 
 impl Family {
-    pub const ALL: [Family; 6] = [
+    pub const ALL: [Family; 7] = [
         Family::Mean,
         Family::Ols,
         Family::Ridge,
         Family::Lasso,
         Family::Poly,
         Family::Knn,
+        Family::Logistic,
     ];
+
+    /// Whether the family serves the task.
+    pub fn serves(self, task: Task) -> bool {
+        match task {
+            Task::Regression => !matches!(self, Family::Logistic),
+            Task::Classification => matches!(self, Family::Mean | Family::Knn | Family::Logistic),
+        }
+    }
 
     pub fn name(self) -> &'static str {
         match self {
@@ -160,6 +172,7 @@ impl Family {
             Family::Lasso => "lasso",
             Family::Poly => "poly",
             Family::Knn => "knn",
+            Family::Logistic => "logistic",
         }
     }
 
@@ -167,7 +180,7 @@ impl Family {
     pub fn params(self) -> &'static [&'static str] {
         match self {
             Family::Mean | Family::Ols => &[],
-            Family::Ridge | Family::Lasso => &["lambda"],
+            Family::Ridge | Family::Lasso | Family::Logistic => &["lambda"],
             Family::Poly => &["degree", "feature"],
             Family::Knn => &["k"],
         }
@@ -175,7 +188,26 @@ impl Family {
 
     /// Whether `standardize` means anything for the family.
     pub fn standardizes(self) -> bool {
-        matches!(self, Family::Ridge | Family::Lasso | Family::Knn)
+        matches!(
+            self,
+            Family::Ridge | Family::Lasso | Family::Knn | Family::Logistic
+        )
+    }
+}
+
+/// What the experiment predicts.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Task {
+    Regression,
+    Classification,
+}
+
+impl Task {
+    pub fn name(self) -> &'static str {
+        match self {
+            Task::Regression => "regression",
+            Task::Classification => "classification",
+        }
     }
 }
 
@@ -259,6 +291,7 @@ impl ModelSpec {
 #[derive(Debug, Clone)]
 pub struct Spec {
     pub name: String,
+    pub task: Task,
     pub description: Option<String>,
     pub data: DataSpec,
     pub split: SplitSpec,
@@ -319,8 +352,6 @@ struct Check<'a> {
     file: &'a Path,
 }
 
-const METRICS: [&str; 4] = ["rmse", "mse", "mae", "r2"];
-
 impl Check<'_> {
     fn loc<T>(&self, s: &Spanned<T>) -> Loc {
         Loc::of_offset(self.text, s.span().start)
@@ -365,28 +396,29 @@ impl Check<'_> {
         if !ok {
             return Err(self.err(&name, format!("name '{}' must use lowercase letters, digits and dashes only, and not start with a dash", name.get_ref())));
         }
-        match raw.task.as_ref().map(|t| t.get_ref().as_str()) {
-            None => return Err(self.top("missing required key 'task' (task = \"regression\")")),
-            Some("regression") => {}
-            Some("classification") => {
-                let t = raw.task.as_ref().unwrap_or_else(|| unreachable!());
-                return Err(self.err(t, "task = \"classification\" is not supported by this version yet; only \"regression\" runs"));
+        let task = match raw.task.as_ref().map(|t| t.get_ref().as_str()) {
+            None => {
+                return Err(self.top(
+                    "missing required key 'task' (task = \"regression\" or \"classification\")",
+                ));
             }
+            Some("regression") => Task::Regression,
+            Some("classification") => Task::Classification,
             Some(other) => {
                 let t = raw.task.as_ref().unwrap_or_else(|| unreachable!());
                 return Err(self.err(
                     t,
                     format!(
-                        "unknown task '{other}'; use \"regression\"{}",
+                        "unknown task '{other}'; use \"regression\" or \"classification\"{}",
                         did_you_mean(other, ["regression", "classification"])
                     ),
                 ));
             }
-        }
+        };
         let data_raw = raw
             .data
             .ok_or_else(|| self.top("missing [data] table (with at least path and target)"))?;
-        let data = self.data(&data_raw, base)?;
+        let data = self.data(&data_raw, base, task)?;
         let split =
             match &raw.split {
                 Some(s) => self.split(s)?,
@@ -394,7 +426,7 @@ impl Check<'_> {
                     "missing [split] table (for example method = \"random\", seed = 1, test = 0.2)",
                 )),
             };
-        let select = self.select(raw.select.as_ref())?;
+        let select = self.select(raw.select.as_ref(), task)?;
         let guard = self.guard(raw.guard.as_ref(), select.metric)?;
         if raw.model.is_empty() {
             return Err(self.top("no [[model]] table: add at least one, for example [[model]] kind = \"ridge\" lambda = [0.1, 1, 10]"));
@@ -402,6 +434,22 @@ impl Check<'_> {
         let mut models: Vec<ModelSpec> = Vec::new();
         for m in &raw.model {
             let ms = self.model(m)?;
+            if !ms.family.serves(task) {
+                let serves: Vec<&str> = Family::ALL
+                    .iter()
+                    .filter(|f| f.serves(task))
+                    .map(|f| f.name())
+                    .collect();
+                return Err(self.err(
+                    m,
+                    format!(
+                        "{} does not serve a {} task; use one of {}",
+                        ms.family.name(),
+                        task.name(),
+                        serves.join(", ")
+                    ),
+                ));
+            }
             if let Some(prev) = models.iter().find(|p| {
                 p.family == ms.family && p.grid == ms.grid && p.standardize == ms.standardize
             }) {
@@ -438,6 +486,7 @@ impl Check<'_> {
         }
         Ok(Spec {
             name: name.into_inner(),
+            task,
             description: raw.description,
             data,
             split,
@@ -449,7 +498,7 @@ impl Check<'_> {
         })
     }
 
-    fn data(&self, d: &Spanned<RawData>, base: &Path) -> Result<DataSpec> {
+    fn data(&self, d: &Spanned<RawData>, base: &Path, task: Task) -> Result<DataSpec> {
         let r = d.get_ref();
         let path = r.path.as_ref().ok_or_else(|| {
             self.err(
@@ -522,6 +571,11 @@ impl Check<'_> {
             categorical: self.names(&r.categorical, "categorical")?,
             sha256,
             missing,
+            positive: match (&r.positive, task) {
+                (None, _) => None,
+                (Some(p), Task::Classification) => Some((p.get_ref().clone(), self.loc(p))),
+                (Some(p), Task::Regression) => return Err(self.err(p, "'positive' names the positive class of a classification task; remove it for regression")),
+            },
         })
     }
 
@@ -694,21 +748,32 @@ impl Check<'_> {
         })
     }
 
-    fn select(&self, s: Option<&Spanned<RawSelect>>) -> Result<SelectSpec> {
+    fn select(&self, s: Option<&Spanned<RawSelect>>, task: Task) -> Result<SelectSpec> {
         let r = s.map(|s| s.get_ref());
+        let allowed: Vec<&str> = crate::metrics::Metric::for_task(task == Task::Classification)
+            .iter()
+            .map(|m| m.name())
+            .collect();
         let metric = match r.and_then(|r| r.metric.as_ref()) {
+            None if task == Task::Classification => crate::metrics::Metric::LogLoss,
             None => crate::metrics::Metric::Rmse,
-            Some(m) => crate::metrics::Metric::parse(m.get_ref()).ok_or_else(|| {
-                self.err(
-                    m,
-                    format!(
-                        "unknown metric '{}'{}; use one of {}",
-                        m.get_ref(),
-                        did_you_mean(m.get_ref(), METRICS),
-                        METRICS.join(", ")
-                    ),
-                )
-            })?,
+            Some(m) => match crate::metrics::Metric::parse(m.get_ref())
+                .filter(|x| allowed.contains(&x.name()))
+            {
+                Some(x) => x,
+                None => {
+                    return Err(self.err(
+                        m,
+                        format!(
+                            "metric '{}' is not a {} metric{}; use one of {}",
+                            m.get_ref(),
+                            task.name(),
+                            did_you_mean(m.get_ref(), allowed.iter().copied()),
+                            allowed.join(", ")
+                        ),
+                    ));
+                }
+            },
         };
         let rule = match r.and_then(|r| r.rule.as_ref()) {
             None => Rule::Min,
@@ -829,7 +894,7 @@ impl Check<'_> {
         let kind = r.kind.as_ref().ok_or_else(|| {
             self.err(
                 m,
-                "[[model]] needs kind = \"...\" (mean, ols, ridge, lasso, poly, knn)",
+                "[[model]] needs kind = \"...\" (mean, ols, ridge, lasso, poly, knn, logistic)",
             )
         })?;
         let family = Family::ALL
@@ -1094,7 +1159,7 @@ impl Spec {
         let v = json!({
             "format": 1,
             "name": self.name,
-            "task": "regression",
+            "task": self.task.name(),
             "data": {
                 "path": d.path_text,
                 "target": d.target.name,
@@ -1104,6 +1169,7 @@ impl Spec {
                 "categorical": names(&d.categorical),
                 "sha256": d.sha256.as_ref().map(|s| s.0.clone()),
                 "missing": d.missing.as_str(),
+                "positive": d.positive.as_ref().map(|p| p.0.clone()),
             },
             "split": split,
             "select": {"metric": self.select.metric.name(), "rule": match self.select.rule { Rule::Min => "min", Rule::OneSe => "one-se" }, "nested": self.select.nested},

@@ -28,6 +28,7 @@ pub struct RawData {
     pub key: Option<Spanned<String>>,
     pub categorical: Option<Vec<Spanned<String>>>,
     pub sha256: Option<Spanned<String>>,
+    pub positive: Option<Spanned<String>>,
     pub missing: Option<Spanned<String>>,
 }
 

@@ -113,10 +113,46 @@ fn grids_must_be_real() {
 }
 
 #[test]
-fn classification_is_refused_clearly_for_now() {
+fn classification_takes_its_own_families_and_metrics() {
     let e = err(&GOOD.replace("task = \"regression\"", "task = \"classification\""));
     assert!(
-        e.starts_with("exp.toml:3:8:") && e.contains("not supported by this version yet"),
+        e.starts_with("exp.toml:16:1:")
+            && e.contains(
+                "ridge does not serve a classification task; use one of mean, knn, logistic"
+            ),
+        "{e}"
+    );
+    let c = GOOD
+        .replace("task = \"regression\"", "task = \"classification\"")
+        .replace("kind = \"ridge\"", "kind = \"logistic\"");
+    let s = p(&c).unwrap();
+    assert_eq!(s.task, Task::Classification);
+    assert_eq!(
+        s.select.metric,
+        crate::metrics::Metric::LogLoss,
+        "log_loss is the default for classification"
+    );
+    let e = err(&c.replace("[split]", "[select]\nmetric = \"rmse\"\n[split]"));
+    assert!(
+        e.contains("metric 'rmse' is not a classification metric"),
+        "{e}"
+    );
+    let e = err(&GOOD.replace("[split]", "[select]\nmetric = \"accuracy\"\n[split]"));
+    assert!(
+        e.contains("metric 'accuracy' is not a regression metric"),
+        "{e}"
+    );
+    let e = err(&GOOD.replace(
+        "target = \"yield_kg\"",
+        "target = \"yield_kg\"\npositive = \"yes\"",
+    ));
+    assert!(
+        e.contains("'positive' names the positive class of a classification task"),
+        "{e}"
+    );
+    let e = err(&GOOD.replace("kind = \"ridge\"", "kind = \"logistic\""));
+    assert!(
+        e.contains("logistic does not serve a regression task"),
         "{e}"
     );
 }

@@ -40,9 +40,11 @@ pub enum Folds {
 #[derive(Debug, Clone)]
 pub enum Method {
     Random,
-    /// Target binned into `bins` quantile bins (regression) and kept in proportion.
+    /// Target binned into `bins` quantile bins (regression), or by class when `by_class` (the
+    /// target then holds class indices), and kept in proportion.
     Stratified {
         bins: usize,
+        by_class: bool,
     },
     /// Per-row group codes; a group never straddles partitions or folds.
     Group {
@@ -188,10 +190,10 @@ fn assign(input: &SplitInput, n: usize) -> Result<Vec<Part>> {
                 };
             }
         }
-        Method::Stratified { bins } => {
+        Method::Stratified { bins, by_class } => {
             let order = strata_order(
                 input.target,
-                *bins,
+                if *by_class { 0 } else { *bins },
                 input.seed,
                 Domain::Partition,
                 0,
@@ -308,7 +310,8 @@ pub fn key_unit(seed: u64, key: &str) -> f64 {
 }
 
 /// Rows ordered by (quantile bin of target, shuffled position): the order that systematic
-/// selection and round-robin dealing turn into stratified sets.
+/// selection and round-robin dealing turn into stratified sets. `bins` = 0 takes the target
+/// itself (a class index) as the stratum.
 fn strata_order(
     target: &[f64],
     bins: usize,
@@ -324,7 +327,14 @@ fn strata_order(
     let m = rows.len();
     let mut bin_of = std::collections::BTreeMap::new();
     for (rank, &row) in by_value.iter().enumerate() {
-        bin_of.insert(row, rank * bins / m.max(1));
+        bin_of.insert(
+            row,
+            if bins == 0 {
+                target[row] as usize
+            } else {
+                rank * bins / m.max(1)
+            },
+        );
     }
     let mut keyed: Vec<(usize, usize, usize)> = shuffled
         .iter()
@@ -457,8 +467,15 @@ pub fn folds_of(
                 }
                 continue;
             }
-            Method::Stratified { bins } => {
-                let order = strata_order(input.target, *bins, input.seed, domain, ridx, dev);
+            Method::Stratified { bins, by_class } => {
+                let order = strata_order(
+                    input.target,
+                    if *by_class { 0 } else { *bins },
+                    input.seed,
+                    domain,
+                    ridx,
+                    dev,
+                );
                 let mut f = std::collections::BTreeMap::new();
                 for (pos, row) in order.into_iter().enumerate() {
                     f.insert(row, pos % k);

@@ -63,7 +63,10 @@ const PINNED_RANDOM_FOLD0: [usize; 5] = [0, 6, 8, 16, 17];
 fn pinned_stratified_group_time_hash() {
     let y = ys(24);
     let s = split(&input(
-        Method::Stratified { bins: 4 },
+        Method::Stratified {
+            bins: 4,
+            by_class: false,
+        },
         &y,
         0.25,
         0.0,
@@ -345,7 +348,10 @@ fn property_stratified_keeps_bins_balanced() {
         let bins = 2 + g.below(6) as usize;
         let k = 2 + g.below(6) as usize;
         let p = split(&input(
-            Method::Stratified { bins },
+            Method::Stratified {
+                bins,
+                by_class: false,
+            },
             &y,
             0.2,
             0.0,

@@ -97,12 +97,15 @@ fn empty_grid_and_duplicate_models() {
 }
 
 #[test]
-fn classification_is_refused_for_now() {
+fn regression_families_are_refused_for_classification() {
     spec_case(
         "classif",
         "task = \"regression\"",
         "task = \"classification\"",
-        &["bad.toml:2:8", "not supported by this version yet"],
+        &[
+            "bad.toml:16:1",
+            "ridge does not serve a classification task",
+        ],
     );
 }
 

@@ -67,7 +67,7 @@ fn fit(
         grid: Vec::new(),
         loc: Default::default(),
     };
-    let model = model_for(&spec);
+    let model = model_for(&spec, 0);
     let enc = Encoder::fit(table, features, rows, model.drops_first_level(), false);
     let mut notes = Notes::new();
     let x = Design {
@@ -224,7 +224,7 @@ fn diabetes_cases_match_reference_values() {
             ("mae", probity::metrics::Metric::Mae),
             ("r2", probity::metrics::Metric::R2),
         ] {
-            let got = metric.score(&yv, &pred).unwrap();
+            let got = metric.score(&yv, &pred, 0).unwrap();
             assert_rel(
                 &format!("{id} {m}"),
                 got,
@@ -303,7 +303,7 @@ fn original_coefficients(f: &Fitted, names: &[String], case: &Value) -> (f64, Ve
             }
             (b, out)
         }
-        Fitted::Knn { .. } => (f64::NAN, vec![]),
+        _ => (f64::NAN, vec![]),
     }
 }
 
