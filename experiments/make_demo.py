@@ -1,7 +1,8 @@
 """Generate the demo data of a fictional greenhouse growers' co-operative (invented data).
 
 Writes, next to this script:
-  bays.csv           weekly records of 24 glasshouse bays over 104 weeks (2,496 rows)
+  bays.csv           weekly records of 24 glasshouse bays over 104 weeks (2,496 rows), with
+                     the yield and whether a fungal outbreak was recorded
   heating-trial.csv  a 60-row trial of day-temperature set points in one bay
 
 Deterministic: a splitmix64 generator of our own (not `random`, whose algorithms may change),
@@ -20,6 +21,9 @@ The true relation (so a user can see what a good model should find):
            + bay effect (normal, sd 0.25, fixed per bay)
            + noise (normal, sd 0.35)
   heating trial: yield_kg = 4.0 - 0.02 * (temp_day - 24)^2 + noise (sd 0.25)
+  outbreak (a fungal outbreak in the bay that week): "yes" with probability
+           1 / (1 + exp(-(-2.2 + 0.22 (humidity - 75) - 0.35 (temp_night - 16.5) + 0.5 [brisa]))),
+           drawn from its own stream
 About 1% of humidity cells are blank (sensor outages).
 """
 
@@ -49,7 +53,7 @@ class SplitMix:
         return math.sqrt(-2.0 * math.log(u1)) * math.cos(2.0 * math.pi * u2)
 
 
-def bays(rng):
+def bays(rng, outbreak_rng):
     varieties = ["aurora", "brisa", "cobalt"]
     base = {"aurora": 3.0, "brisa": 3.4, "cobalt": 2.8}
     bay_names = [f"B{i:02d}" for i in range(1, 25)]
@@ -71,9 +75,12 @@ def bays(rng):
                  + 0.35 * math.log(co2 / 400.0) - 0.015 * abs(humidity - 75.0) + 0.06 * math.sqrt(irrigation)
                  + bay_effect[b] + 0.35 * rng.normal())
             hum_text = f"{humidity:.1f}" if rng.uniform() >= 0.01 else ""
+            # A separate stream, so adding this column left every other value as it was.
+            logit = -2.2 + 0.22 * (humidity - 75.0) - 0.35 * (temp_night - 16.5) + (0.5 if v == "brisa" else 0.0)
+            outbreak = "yes" if outbreak_rng.uniform() < 1.0 / (1.0 + math.exp(-logit)) else "no"
             rows.append([f"{b}-W{week:03d}", b, str(week), v, f"{light:.2f}", f"{temp_day:.2f}", f"{temp_night:.2f}",
-                         f"{co2:.0f}", hum_text, f"{irrigation:.2f}", f"{y:.3f}"])
-    header = ["record", "bay", "week", "variety", "light", "temp_day", "temp_night", "co2", "humidity", "irrigation", "yield_kg"]
+                         f"{co2:.0f}", hum_text, f"{irrigation:.2f}", f"{y:.3f}", outbreak])
+    header = ["record", "bay", "week", "variety", "light", "temp_day", "temp_night", "co2", "humidity", "irrigation", "yield_kg", "outbreak"]
     return header, rows
 
 
@@ -94,6 +101,6 @@ def write(name, header, rows):
 
 
 if __name__ == "__main__":
-    write("bays.csv", *bays(SplitMix(20261201)))
+    write("bays.csv", *bays(SplitMix(20261201), SplitMix(20261202)))
     write("heating-trial.csv", *trial(SplitMix(7)))
     print("wrote bays.csv and heating-trial.csv")

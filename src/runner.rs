@@ -373,6 +373,28 @@ pub fn prepare(spec: &Spec, table: &Table) -> Result<Prepared> {
         }
     };
     let s = &spec.split;
+    if matches!(spec.split.method, SplitMethod::Stratified { .. }) && !classes.is_empty() {
+        // Every fold (and the test partition) gets its share of each class within one row; a
+        // class with fewer rows than that cannot be spread.
+        let need = match s.folds {
+            crate::split::Folds::K(k) => k,
+            crate::split::Folds::LeaveOneOut => 2,
+        } + usize::from(s.test > 0.0);
+        for (c, name) in classes.iter().enumerate() {
+            let n = y.iter().filter(|v| **v as usize == c).count();
+            if n < need {
+                return Err(Error::Input(format!(
+                    "class '{name}' has {n} row(s); a stratified split into {} folds{} needs at least {need} rows of each class. Merge or drop the class, or lower folds",
+                    need - usize::from(s.test > 0.0),
+                    if s.test > 0.0 {
+                        " and a test partition"
+                    } else {
+                        ""
+                    }
+                )));
+            }
+        }
+    }
     let partition = split(&SplitInput {
         method: method.clone(),
         seed: s.seed,
@@ -603,6 +625,18 @@ fn run_task(
     impute: bool,
 ) -> Result<TaskOut> {
     let nc = prep.classes.len();
+    if nc > 0 {
+        let mut seen = vec![false; nc];
+        for &i in &fold.fit {
+            seen[prep.target[i] as usize] = true;
+        }
+        if let Some(c) = seen.iter().position(|s| !s) {
+            return Err(Error::Input(format!(
+                "the fitting rows hold no row of class '{}', so no model can learn it; use method = \"stratified\", fewer folds, or more data for that class",
+                prep.classes[c]
+            )));
+        }
+    }
     let model = model_for(entry, nc);
     let fit_rows: Vec<usize> = fold.fit.iter().map(|&i| prep.rows[i]).collect();
     let score_rows: Vec<usize> = fold.score.iter().map(|&i| prep.rows[i]).collect();
@@ -1026,7 +1060,7 @@ pub struct TestOutcome {
     pub n: usize,
     pub scores: Scores,
     /// Per metric: (low, high, bootstrap standard error) at the requested confidence.
-    pub intervals: [Option<(f64, f64, f64)>; 4],
+    pub intervals: Vec<Option<(f64, f64, f64)>>,
     pub resamples: usize,
     /// Seed of the bootstrap stream (derived from the run seed and the candidate).
     pub seed: u64,
@@ -1062,16 +1096,17 @@ pub fn score_test(
     let scores = score_all(&prep.metrics, &y, &pred, nc);
     let seed = derive_seed(spec.split.seed, Domain::Bootstrap, candidate as u32);
     let mut rng = crate::split::rng::stream(seed, Domain::Bootstrap, 0);
-    let reps = crate::guard::stats::bootstrap(y.len(), RESAMPLES, &mut rng, 4, |idx| {
-        let ys: Vec<f64> = idx.iter().map(|&i| y[i]).collect();
-        let width = nc.max(1);
-        let ps: Vec<f64> = idx
-            .iter()
-            .flat_map(|&i| pred[i * width..(i + 1) * width].iter().copied())
-            .collect();
-        score_all(&prep.metrics, &ys, &ps, nc)
-    });
-    let mut intervals = [None; 4];
+    let reps =
+        crate::guard::stats::bootstrap(y.len(), RESAMPLES, &mut rng, prep.metrics.len(), |idx| {
+            let ys: Vec<f64> = idx.iter().map(|&i| y[i]).collect();
+            let width = nc.max(1);
+            let ps: Vec<f64> = idx
+                .iter()
+                .flat_map(|&i| pred[i * width..(i + 1) * width].iter().copied())
+                .collect();
+            score_all(&prep.metrics, &ys, &ps, nc)
+        });
+    let mut intervals = vec![None; prep.metrics.len()];
     for (k, r) in reps.into_iter().enumerate() {
         intervals[k] = crate::guard::stats::percentile_interval(r, confidence);
     }

@@ -1,6 +1,7 @@
 //! The one integration-test binary: drives `probity` end to end and runs the reference checks.
 
 mod bad_input;
+mod classification;
 mod fixtures;
 mod guard;
 mod reference;
