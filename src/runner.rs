@@ -192,6 +192,7 @@ pub fn prepare(spec: &Spec, table: &Table) -> Result<Prepared> {
             Some(named_col(spec, table, column, "split")?)
         }
         SplitMethod::Time { order } => Some(named_col(spec, table, order, "order")?),
+        SplitMethod::Stratified { group: Some(g), .. } => Some(named_col(spec, table, g, "group")?),
         _ => None,
     };
     if matches!(spec.split.method, SplitMethod::Hash) && key.is_none() {
@@ -334,9 +335,16 @@ pub fn prepare(spec: &Spec, table: &Table) -> Result<Prepared> {
     }
     let method = match &spec.split.method {
         SplitMethod::Random => Method::Random,
-        SplitMethod::Stratified { bins } => Method::Stratified {
+        SplitMethod::Stratified { bins, group: None } => Method::Stratified {
             bins: *bins,
             by_class: !classes.is_empty(),
+        },
+        SplitMethod::Stratified {
+            bins,
+            group: Some(_),
+        } => Method::StratifiedGroup {
+            groups: codes_of(table, split_col.unwrap_or(0), &rows),
+            bins: if classes.is_empty() { *bins } else { 0 },
         },
         SplitMethod::Hash => Method::Hash {
             keys: keys.clone().unwrap_or_default(),

@@ -134,6 +134,15 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
             a.run
         )));
     }
+    if matches!(spec.guard.mode, crate::spec::GuardMode::Reusable { .. })
+        && spec.select.metric == crate::metrics::Metric::Brier
+        && prep.classes.len() > 2
+    {
+        return Err(Error::Input(format!(
+            "mode = \"reusable\" needs per-row values in [0, 1]; the Brier score of {} classes ranges up to 2. Use accuracy, or mode = \"count\"",
+            prep.classes.len()
+        )));
+    }
     let partition = d.summary.partition_id.clone();
     let history = ledger.partition_history(&partition)?;
     let budget = spec.guard.reveals;

@@ -58,11 +58,22 @@ pub struct DataSpec {
 #[derive(Debug, Clone, PartialEq)]
 pub enum SplitMethod {
     Random,
-    Stratified { bins: usize },
-    Group { column: Named },
-    Time { order: Named },
+    /// With `group`, whole groups are assigned so that each partition and fold gets close to
+    /// its share of every stratum (stratified group folds).
+    Stratified {
+        bins: usize,
+        group: Option<Named>,
+    },
+    Group {
+        column: Named,
+    },
+    Time {
+        order: Named,
+    },
     Hash,
-    Column { column: Named },
+    Column {
+        column: Named,
+    },
 }
 
 impl SplitMethod {
@@ -616,7 +627,11 @@ impl Check<'_> {
                     Some(b) if *b.get_ref() >= 2 && *b.get_ref() <= 1000 => *b.get_ref() as usize,
                     Some(b) => return Err(self.err(b, "bins must be an integer from 2 to 1000")),
                 };
-                SplitMethod::Stratified { bins }
+                let group = match &r.group {
+                    Some(g) => Some(self.named(g)?),
+                    None => None,
+                };
+                SplitMethod::Stratified { bins, group }
             }
             "group" => SplitMethod::Group {
                 column: need(&r.group, "group", "group")?,
@@ -643,7 +658,15 @@ impl Check<'_> {
         };
         // Keys that only one method reads are errors elsewhere: a silently ignored key misleads.
         let stray: [(&Option<Spanned<String>>, &str, &str); 3] = [
-            (&r.group, "group", "group"),
+            (
+                &r.group,
+                "group",
+                if method_name == "stratified" {
+                    "stratified"
+                } else {
+                    "group"
+                },
+            ),
             (&r.order, "order", "time"),
             (&r.column, "column", "column"),
         ];
@@ -1132,7 +1155,12 @@ impl Spec {
             "repeats": s.repeats,
         });
         match &s.method {
-            SplitMethod::Stratified { bins } => split["bins"] = json!(bins),
+            SplitMethod::Stratified { bins, group } => {
+                split["bins"] = json!(bins);
+                if let Some(g) = group {
+                    split["column"] = json!(g.name);
+                }
+            }
             SplitMethod::Group { column } | SplitMethod::Column { column } => {
                 split["column"] = json!(column.name)
             }

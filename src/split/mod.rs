@@ -46,6 +46,12 @@ pub enum Method {
         bins: usize,
         by_class: bool,
     },
+    /// Whole groups, chosen so each partition and fold gets close to its share of every stratum
+    /// (class, or quantile bin of the target when `bins` > 0).
+    StratifiedGroup {
+        groups: Vec<u32>,
+        bins: usize,
+    },
     /// Per-row group codes; a group never straddles partitions or folds.
     Group {
         groups: Vec<u32>,
@@ -217,6 +223,26 @@ fn assign(input: &SplitInput, n: usize) -> Result<Vec<Part>> {
                 }
             }
         }
+        Method::StratifiedGroup { groups, bins } => {
+            let strata = strata_of(input.target, *bins, &(0..n).collect::<Vec<_>>());
+            let fracs = [
+                input.test,
+                input.validation,
+                1.0 - input.test - input.validation,
+            ];
+            let bucket = balanced_groups(
+                groups,
+                &strata,
+                &(0..n).collect::<Vec<_>>(),
+                &fracs,
+                input.seed,
+                Domain::Partition,
+                0,
+            );
+            for i in 0..n {
+                parts[i] = [Part::Test, Part::Validation, Part::Train][bucket[groups[i] as usize]];
+            }
+        }
         Method::Group { groups } => {
             let order = shuffled_groups(
                 groups,
@@ -343,6 +369,76 @@ fn strata_order(
         .collect();
     keyed.sort_unstable();
     keyed.into_iter().map(|(_, _, row)| row).collect()
+}
+
+/// Stratum of each row (indexed by row; rows outside `rows` get 0): the class index when
+/// `bins` = 0, else the quantile bin of the target among `rows`.
+fn strata_of(target: &[f64], bins: usize, rows: &[usize]) -> Vec<usize> {
+    let mut out = vec![0usize; target.len()];
+    if bins == 0 {
+        for &r in rows {
+            out[r] = target[r] as usize;
+        }
+        return out;
+    }
+    let mut by_value = rows.to_vec();
+    by_value.sort_by(|&a, &b| target[a].total_cmp(&target[b]).then(a.cmp(&b)));
+    for (rank, &r) in by_value.iter().enumerate() {
+        out[r] = rank * bins / rows.len().max(1);
+    }
+    out
+}
+
+/// Assign whole groups (among `rows`) to buckets with target shares `fracs`: groups largest
+/// first (ties in seeded order), each to the bucket where it most reduces the squared gap
+/// between the bucket's per-stratum counts and their targets (ties to the lower bucket).
+/// Returns the bucket of each group code.
+fn balanced_groups(
+    groups: &[u32],
+    strata: &[usize],
+    rows: &[usize],
+    fracs: &[f64],
+    seed: u64,
+    domain: Domain,
+    index: u32,
+) -> Vec<usize> {
+    let order = shuffled_groups(groups, seed, domain, index, rows);
+    let ngroups = groups.iter().copied().max().map_or(0, |g| g as usize + 1);
+    let nstrata = rows.iter().map(|&r| strata[r] + 1).max().unwrap_or(1);
+    let mut counts = vec![vec![0f64; nstrata]; ngroups];
+    let mut totals = vec![0f64; nstrata];
+    for &r in rows {
+        counts[groups[r] as usize][strata[r]] += 1.0;
+        totals[strata[r]] += 1.0;
+    }
+    let size = |g: u32| counts[g as usize].iter().sum::<f64>();
+    let mut by_size = order.clone();
+    by_size.sort_by(|a, b| size(*b).total_cmp(&size(*a)));
+    let mut load = vec![vec![0f64; nstrata]; fracs.len()];
+    let mut bucket = vec![usize::MAX; ngroups];
+    for g in by_size {
+        let gc = &counts[g as usize];
+        let mut best = (f64::INFINITY, 0usize);
+        for (b, f) in fracs.iter().enumerate() {
+            if *f <= 0.0 {
+                continue;
+            }
+            let delta: f64 = (0..nstrata)
+                .map(|c| {
+                    let t = f * totals[c];
+                    (load[b][c] + gc[c] - t).powi(2) - (load[b][c] - t).powi(2)
+                })
+                .sum();
+            if delta < best.0 {
+                best = (delta, b);
+            }
+        }
+        bucket[g as usize] = best.1;
+        for c in 0..nstrata {
+            load[best.1][c] += gc[c];
+        }
+    }
+    bucket
 }
 
 fn group_sizes(groups: &[u32]) -> Vec<usize> {
@@ -481,6 +577,19 @@ pub fn folds_of(
                     f.insert(row, pos % k);
                 }
                 dev.iter().map(|r| f[r]).collect()
+            }
+            Method::StratifiedGroup { groups, bins } => {
+                let present = shuffled_groups(groups, input.seed, domain, ridx, dev).len();
+                if present < k {
+                    return Err(Error::Input(format!(
+                        "split: the development rows hold {present} groups, fewer than the {k} folds; lower folds or use another method"
+                    )));
+                }
+                let strata = strata_of(input.target, *bins, dev);
+                let fracs = vec![1.0 / k as f64; k];
+                let bucket =
+                    balanced_groups(groups, &strata, dev, &fracs, input.seed, domain, ridx);
+                dev.iter().map(|&r| bucket[groups[r] as usize]).collect()
             }
             Method::Group { groups } => {
                 let order = shuffled_groups(groups, input.seed, domain, ridx, dev);

@@ -435,3 +435,92 @@ fn leave_one_out_and_impossible_splits() {
         "{e}"
     );
 }
+
+#[test]
+fn property_stratified_groups_never_straddle_and_keep_class_shares() {
+    let mut g = Gen(6);
+    let mut checked = 0;
+    for _ in 0..100 {
+        let ngroups = 20 + g.below(40) as u32;
+        let n = 200 + g.below(300) as usize;
+        let groups: Vec<u32> = (0..n).map(|_| g.below(u64::from(ngroups)) as u32).collect();
+        // Two classes, about 25% positive.
+        let y: Vec<f64> = (0..n)
+            .map(|_| if g.below(4) == 0 { 1.0 } else { 0.0 })
+            .collect();
+        let k = 2 + g.below(4) as usize;
+        let input = input(
+            Method::StratifiedGroup {
+                groups: groups.clone(),
+                bins: 0,
+            },
+            &y,
+            0.2,
+            0.0,
+            Folds::K(k),
+            1,
+            g.next(),
+        );
+        let Ok(p) = split(&input) else { continue };
+        for a in 0..n {
+            for b in a + 1..n {
+                if groups[a] == groups[b] {
+                    assert_eq!(p.parts[a], p.parts[b]);
+                }
+            }
+        }
+        for f in &p.folds {
+            assert!(
+                f.fit
+                    .iter()
+                    .all(|i| f.score.iter().all(|j| groups[*i] != groups[*j])),
+                "a group straddles a fold"
+            );
+        }
+        check_folds(&p);
+        let share = |rows: &[usize]| {
+            rows.iter().filter(|&&r| y[r] == 1.0).count() as f64 / rows.len().max(1) as f64
+        };
+        let all = share(&(0..n).collect::<Vec<_>>());
+        let test = p.rows_in(Part::Test);
+        assert!(
+            (share(&test) - all).abs() < 0.1,
+            "test share {} vs {all}",
+            share(&test)
+        );
+        assert!(
+            (test.len() as f64 / n as f64 - 0.2).abs() < 0.1,
+            "test size {}",
+            test.len()
+        );
+        checked += 1;
+    }
+    assert!(checked >= 90, "{checked}");
+    // The same inputs give the same assignment.
+    let groups: Vec<u32> = (0..60).map(|i| i / 3).collect();
+    let y: Vec<f64> = (0..60).map(|i| f64::from(i % 4 == 0)).collect();
+    let a = split(&input(
+        Method::StratifiedGroup {
+            groups: groups.clone(),
+            bins: 0,
+        },
+        &y,
+        0.25,
+        0.0,
+        Folds::K(3),
+        1,
+        9,
+    ))
+    .unwrap();
+    let b = split(&input(
+        Method::StratifiedGroup { groups, bins: 0 },
+        &y,
+        0.25,
+        0.0,
+        Folds::K(3),
+        1,
+        9,
+    ))
+    .unwrap();
+    assert_eq!((a.parts, a.folds), (b.parts, b.folds));
+}

@@ -268,3 +268,75 @@ fn class_problems_get_clear_messages() {
         r.stderr()
     );
 }
+
+#[test]
+fn stratified_group_split_keeps_bays_whole() {
+    let d = outbreak_dir("strat-group");
+    d.write(
+        "g.toml",
+        &std::fs::read_to_string(d.path.join("outbreak.toml"))
+            .unwrap()
+            .replace(
+                "method = \"stratified\"",
+                "method = \"stratified\"\ngroup = \"bay\"",
+            ),
+    );
+    let j = d.probity(&["check", "g.toml", "--json"]).expect(0).json();
+    let names: Vec<&str> = j["features"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|f| f["name"].as_str().unwrap())
+        .collect();
+    assert!(
+        !names.contains(&"bay"),
+        "the group column is not a feature: {names:?}"
+    );
+    // 24 bays of 104 rows: the test partition holds whole bays.
+    assert_eq!(j["partition"]["test"].as_i64().unwrap() % 104, 0, "{j}");
+    d.probity(&["run", "g.toml"]).expect(0);
+}
+
+/// The reusable holdout (Thresholdout) through the binary on a bounded metric: each answer is
+/// either the development estimate (no budget spent) or the noisy test score (budget spent),
+/// and the same reveal with the same seed gives the same answer.
+#[test]
+fn reusable_mode_answers_with_thresholdout() {
+    let d = outbreak_dir("reusable-class");
+    let spec = std::fs::read_to_string(d.path.join("outbreak.toml"))
+        .unwrap()
+        .replace("metric = \"log_loss\"", "metric = \"accuracy\"")
+        .replace(
+            "[[model]]\nkind = \"logistic\"",
+            "[guard]\nmode = \"reusable\"\nreveals = 2\n\n[[model]]\nkind = \"logistic\"",
+        );
+    d.write("r.toml", &spec);
+    let j = d.probity(&["run", "r.toml", "--json"]).expect(0).json();
+    let sel = j["selected"].as_i64().unwrap();
+    let dev = j["candidates"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|c| c["id"] == sel)
+        .unwrap()["validation"]["accuracy"]
+        .as_f64()
+        .unwrap();
+    let a = d
+        .probity(&["reveal", "1", "--yes", "--json"])
+        .expect(0)
+        .json();
+    assert!(
+        a["interval"].as_object().unwrap().is_empty(),
+        "exact test scores stay hidden"
+    );
+    match a["answer"]["kind"].as_str().unwrap() {
+        "development" => assert_eq!(a["answer"]["value"].as_f64().unwrap(), dev),
+        "test+noise" => assert_ne!(a["answer"]["value"].as_f64().unwrap(), dev),
+        other => panic!("unexpected answer kind {other}"),
+    }
+    assert_eq!(a["test"]["accuracy"], a["answer"]["value"]);
+    assert!(
+        a["optimism"]["hoeffding_union"].is_number() && a["optimism"]["adaptive_scale"].is_number(),
+        "bounded metric bounds: {a}"
+    );
+}
