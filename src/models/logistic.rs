@@ -116,6 +116,7 @@ fn newton(
         let cls = |a: usize| if binary { 1 } else { a };
         let pr = |i: usize, a: usize| probs[i * classes + cls(a)];
         let mut grad = vec![0.0; k * d];
+        #[allow(clippy::needless_range_loop)] // rows index y, z and probs together
         for i in 0..n {
             for a in 0..k {
                 let r = pr(i, a) - if y[i] as usize == cls(a) { 1.0 } else { 0.0 };
@@ -138,6 +139,7 @@ fn newton(
         let m = k * d;
         let mut h = vec![0.0; m * m];
         let mut xi = vec![0.0; d];
+        #[allow(clippy::needless_range_loop)] // rows index y, z and probs together
         for i in 0..n {
             xi[0] = 1.0;
             for j in 0..p {
