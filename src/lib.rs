@@ -8,6 +8,7 @@
 pub mod cli;
 pub mod data;
 pub mod error;
+pub mod external;
 pub mod guard;
 pub mod ledger;
 pub mod metrics;

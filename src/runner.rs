@@ -113,6 +113,8 @@ pub struct CandidateResult {
     pub train_se: Scores,
     pub validation: Scores,
     pub validation_se: Scores,
+    /// Why an external command failed on some fold (the candidate then has no estimate).
+    pub failure: Option<String>,
 }
 
 /// What `predict` needs: the encoder and the fitted model, stored as JSON in the ledger.
@@ -141,6 +143,8 @@ pub struct RunOutcome {
     pub refit: StoredModel,
     /// SHA-256 of the refitted model's predictions on the development rows (f64 LE bytes).
     pub predictions_digest: String,
+    /// (path as written, SHA-256) of every input file of the external command families.
+    pub inputs: Vec<(String, String)>,
     /// Present when `[select] nested = true`.
     pub nested: Option<NestedOutcome>,
     pub warnings: Vec<String>,
@@ -579,6 +583,7 @@ pub fn entries(spec: &Spec) -> Vec<ModelSpec> {
             standardize: true,
             grid: Vec::new(),
             loc: Default::default(),
+            command: None,
         });
     }
     out.extend(spec.models.iter().cloned());
@@ -612,9 +617,104 @@ fn check_grid(spec: &Spec, table: &Table, prep: &Prepared, entries: &[ModelSpec]
 }
 
 struct TaskOut {
-    /// (grid index, train scores, validation scores)
-    scores: Vec<(Scores, Scores)>,
+    /// Per grid point: (train scores, validation scores), or why an external command failed.
+    scores: Vec<std::result::Result<(Scores, Scores), String>>,
     notes: Notes,
+}
+
+/// Seed handed to an external command for one fit: derived from the candidate's seed and the
+/// fold (`REFIT` for the fit on all development rows).
+pub fn command_seed(run_seed: u64, candidate: usize, fold: u32) -> u64 {
+    derive_seed(
+        derive_seed(run_seed, Domain::Candidate, candidate as u32),
+        Domain::Command,
+        fold,
+    )
+}
+
+/// The fold index used for fits on all development rows.
+pub const REFIT: u32 = u32::MAX;
+
+/// Predictions of a model fitted on `fit` (positions among the kept rows) for `score_rows` of
+/// `score_table`: the stored model's for built-in families; a fresh run of the command, fitted on
+/// the same rows with the refit seed, for an external one.
+#[allow(clippy::too_many_arguments)]
+pub fn predict_with(
+    spec: &Spec,
+    table: &Table,
+    prep: &Prepared,
+    model: &StoredModel,
+    fit: &[usize],
+    score_table: &Table,
+    score_rows: &[usize],
+    notes: &mut Notes,
+) -> Result<Vec<f64>> {
+    if matches!(model.fitted, Fitted::External) {
+        let entry_params = candidate_entry(spec, model.candidate)?;
+        let (entry, params) = entry_params;
+        let cmd = entry
+            .command
+            .as_ref()
+            .ok_or_else(|| Error::Internal("an external model without a command".into()))?;
+        let seed = command_seed(spec.split.seed, model.candidate, REFIT);
+        return run_command(
+            spec,
+            table,
+            prep,
+            cmd,
+            &params,
+            seed,
+            fit,
+            score_table,
+            score_rows,
+        )
+        .map_err(|m| Error::Input(format!("candidate {} (command): {m}", model.candidate)));
+    }
+    Ok(model
+        .fitted
+        .predict(&model.encoder.transform(score_table, score_rows, notes)?))
+}
+
+/// The model entry and grid point of candidate `id` (1-based, in the run's order).
+fn candidate_entry(spec: &Spec, id: usize) -> Result<(ModelSpec, Params)> {
+    let mut n = 0;
+    for entry in entries(spec) {
+        for params in entry.expand() {
+            n += 1;
+            if n == id {
+                return Ok((entry.clone(), params));
+            }
+        }
+    }
+    Err(Error::Input(format!(
+        "the run has no candidate {id}; `probity show RUN` lists them"
+    )))
+}
+
+/// Run an external command family's fit on `fit` (positions among the kept rows) and predict
+/// `score_rows` of `score_table`.
+#[allow(clippy::too_many_arguments)]
+fn run_command(
+    spec: &Spec,
+    table: &Table,
+    prep: &Prepared,
+    cmd: &crate::spec::CommandSpec,
+    params: &Params,
+    seed: u64,
+    fit: &[usize],
+    score_table: &Table,
+    score_rows: &[usize],
+) -> std::result::Result<Vec<f64>, String> {
+    let job = crate::external::Job {
+        cmd,
+        params,
+        seed,
+        target: &spec.data.target.name,
+        features: &prep.feature_names,
+        classes: &prep.classes,
+    };
+    let fit_rows: Vec<usize> = fit.iter().map(|&i| prep.rows[i]).collect();
+    crate::external::fit_predict(&job, table, &fit_rows, score_table, score_rows)
 }
 
 fn design(table: &Table, enc: &Encoder, rows: &[usize], notes: &mut Notes) -> Result<Design> {
@@ -624,13 +724,17 @@ fn design(table: &Table, enc: &Encoder, rows: &[usize], notes: &mut Notes) -> Re
     })
 }
 
+#[allow(clippy::too_many_arguments)]
 fn run_task(
+    spec: &Spec,
     table: &Table,
     prep: &Prepared,
     entry: &ModelSpec,
     grid: &[Params],
     fold: &crate::split::Fold,
     impute: bool,
+    first_id: usize,
+    fold_no: u32,
 ) -> Result<TaskOut> {
     let nc = prep.classes.len();
     if nc > 0 {
@@ -644,6 +748,35 @@ fn run_task(
                 prep.classes[c]
             )));
         }
+    }
+    if let Some(cmd) = &entry.command {
+        // The held-out rows, then the fitting rows again (for training scores), in one call.
+        let mut rows: Vec<usize> = fold.score.iter().map(|&i| prep.rows[i]).collect();
+        rows.extend(fold.fit.iter().map(|&i| prep.rows[i]));
+        let yf: Vec<f64> = fold.fit.iter().map(|&i| prep.target[i]).collect();
+        let ys: Vec<f64> = fold.score.iter().map(|&i| prep.target[i]).collect();
+        let width = nc.max(1);
+        let scores = grid
+            .iter()
+            .enumerate()
+            .map(|(g, params)| {
+                let seed = command_seed(spec.split.seed, first_id + g, fold_no);
+                run_command(
+                    spec, table, prep, cmd, params, seed, &fold.fit, table, &rows,
+                )
+                .map(|p| {
+                    let (held, fitted) = p.split_at(ys.len() * width);
+                    (
+                        score_all(&prep.metrics, &yf, fitted, nc),
+                        score_all(&prep.metrics, &ys, held, nc),
+                    )
+                })
+            })
+            .collect();
+        return Ok(TaskOut {
+            scores,
+            notes: Notes::new(),
+        });
     }
     let model = model_for(entry, nc);
     let fit_rows: Vec<usize> = fold.fit.iter().map(|&i| prep.rows[i]).collect();
@@ -670,10 +803,10 @@ fn run_task(
                 fmt_params(&grid[g])
             )));
         }
-        scores.push((
+        scores.push(Ok((
             score_all(&prep.metrics, &yf, &p[0], nc),
             score_all(&prep.metrics, &ys, &p[1], nc),
-        ));
+        )));
     }
     Ok(TaskOut { scores, notes })
 }
@@ -723,6 +856,10 @@ pub fn run(spec: &Spec, table: &Table, threads: usize) -> Result<RunOutcome> {
     let grids: Vec<Vec<Params>> = entries.iter().map(ModelSpec::expand).collect();
     let folds = prep.sealed.folds().to_vec();
     let mut notes = Notes::new();
+    let mut inputs = Vec::new();
+    for cmd in entries.iter().filter_map(|e| e.command.as_ref()) {
+        inputs.extend(crate::external::input_hashes(cmd).map_err(Error::Input)?);
+    }
     let candidates = cross_validate(
         spec, table, &prep, &entries, &grids, &folds, threads, &mut notes,
     )?;
@@ -751,9 +888,9 @@ pub fn run(spec: &Spec, table: &Table, threads: usize) -> Result<RunOutcome> {
     // The refitted model's predictions on the development rows, digested: replay compares it.
     let predictions_digest = {
         let rows: Vec<usize> = dev_rows.iter().map(|&i| prep.rows[i]).collect();
-        let p = refit
-            .fitted
-            .predict(&refit.encoder.transform(table, &rows, &mut notes)?);
+        let p = predict_with(
+            spec, table, &prep, &refit, &dev_rows, table, &rows, &mut notes,
+        )?;
         let mut h = Sha256::new();
         for v in &p {
             h.update(v.to_le_bytes());
@@ -768,6 +905,15 @@ pub fn run(spec: &Spec, table: &Table, threads: usize) -> Result<RunOutcome> {
         None
     };
     let mut warnings = prep.warnings.clone();
+    for c in candidates.iter().filter(|c| c.failure.is_some()) {
+        warnings.push(format!(
+            "candidate {} ({} {}) failed on {}",
+            c.id,
+            c.family.name(),
+            fmt_params(&c.params),
+            c.failure.as_deref().unwrap_or("")
+        ));
+    }
     for (msg, count) in notes {
         warnings.push(if count > 1 {
             format!("{msg} ({count} fits)")
@@ -784,6 +930,7 @@ pub fn run(spec: &Spec, table: &Table, threads: usize) -> Result<RunOutcome> {
         rule: spec.select.rule,
         refit,
         predictions_digest,
+        inputs,
         nested,
         warnings,
     })
@@ -831,9 +978,28 @@ fn cross_validate(
     let tasks: Vec<(usize, usize)> = (0..folds.len())
         .flat_map(|f| (0..entries.len()).map(move |e| (f, e)))
         .collect();
+    // Candidate ids are consecutive over the entries' grids.
+    let first_ids: Vec<usize> = grids
+        .iter()
+        .scan(1, |next, g| {
+            let first = *next;
+            *next += g.len();
+            Some(first)
+        })
+        .collect();
     let outs = parallel(tasks.len(), threads, |t| {
         let (f, e) = tasks[t];
-        run_task(table, prep, &entries[e], &grids[e], &folds[f], impute)
+        run_task(
+            spec,
+            table,
+            prep,
+            &entries[e],
+            &grids[e],
+            &folds[f],
+            impute,
+            first_ids[e],
+            f as u32,
+        )
     });
     if outs.len() != tasks.len() {
         return Err(Error::Internal("a worker thread panicked".into()));
@@ -862,8 +1028,24 @@ fn cross_validate(
         for (g, params) in grids[e].iter().enumerate() {
             let id = candidates.len() + 1;
             let mut fs = Vec::with_capacity(folds.len());
+            let mut failure: Option<String> = None;
             for (f, fold) in folds.iter().enumerate() {
-                let (train, validation) = by_task[f * entries.len() + e].scores[g].clone();
+                let (train, validation) = match &by_task[f * entries.len() + e].scores[g] {
+                    Ok(s) => s.clone(),
+                    Err(msg) => {
+                        failure.get_or_insert_with(|| {
+                            format!(
+                                "fold {} (repeat {}): {msg}",
+                                fold.index + 1,
+                                fold.repeat + 1
+                            )
+                        });
+                        (
+                            vec![None; prep.metrics.len()],
+                            vec![None; prep.metrics.len()],
+                        )
+                    }
+                };
                 fs.push(FoldScores {
                     repeat: fold.repeat,
                     fold: fold.index,
@@ -883,8 +1065,19 @@ fn cross_validate(
                 }
                 (m, se)
             };
-            let (train, train_se) = agg(|f| &f.train);
-            let (validation, validation_se) = agg(|f| &f.validation);
+            let (mut train, mut train_se) = agg(|f| &f.train);
+            let (mut validation, mut validation_se) = agg(|f| &f.validation);
+            if failure.is_some() {
+                // A candidate that failed on any fold has no estimate and cannot be selected.
+                for v in [
+                    &mut train,
+                    &mut train_se,
+                    &mut validation,
+                    &mut validation_se,
+                ] {
+                    v.iter_mut().for_each(|x| *x = None);
+                }
+            }
             candidates.push(CandidateResult {
                 id,
                 family: entry.family,
@@ -897,6 +1090,7 @@ fn cross_validate(
                 train_se,
                 validation,
                 validation_se,
+                failure,
             });
         }
     }
@@ -944,7 +1138,7 @@ fn nested_cv(
             .map_err(wrap)?;
         let (_, chosen) = select(&cands, metric, spec.select.rule, entries).map_err(wrap)?;
         let c = &cands[chosen - 1];
-        let (enc, fitted) = fit_on(
+        let (encoder, fitted) = fit_on(
             spec,
             table,
             prep,
@@ -956,7 +1150,16 @@ fn nested_cv(
         .map_err(wrap)?;
         let rows: Vec<usize> = outer.score.iter().map(|&i| prep.rows[i]).collect();
         let y: Vec<f64> = outer.score.iter().map(|&i| prep.target[i]).collect();
-        let pred = fitted.predict(&enc.transform(table, &rows, notes)?);
+        let stored = StoredModel {
+            candidate: chosen,
+            classes: prep.classes.clone(),
+            target: spec.data.target.name.clone(),
+            key: None,
+            encoder,
+            fitted,
+        };
+        let pred = predict_with(spec, table, prep, &stored, &outer.fit, table, &rows, notes)
+            .map_err(wrap)?;
         selections.push((
             chosen,
             score_all(&prep.metrics, &y, &pred, prep.classes.len())[mi],
@@ -1098,8 +1301,8 @@ pub fn score_test(
     let rows: Vec<usize> = test.iter().map(|&i| prep.rows[i]).collect();
     let y: Vec<f64> = test.iter().map(|&i| prep.target[i]).collect();
     let mut notes = Notes::new();
-    let x = model.encoder.transform(table, &rows, &mut notes)?;
-    let pred = model.fitted.predict(&x);
+    let dev = prep.sealed.development();
+    let pred = predict_with(spec, table, prep, &model, &dev, table, &rows, &mut notes)?;
     let nc = prep.classes.len();
     let scores = score_all(&prep.metrics, &y, &pred, nc);
     let seed = derive_seed(spec.split.seed, Domain::Bootstrap, candidate as u32);

@@ -53,7 +53,20 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
     let text_cols = model.text_columns();
     let text: Vec<&str> = text_cols.iter().map(String::as_str).collect();
     let input = crate::data::load(&a.input, &text)?;
-    let (pred, notes) = model.predict(&input)?;
+    let (pred, notes) = if matches!(model.fitted, crate::models::Fitted::External) {
+        // An external command keeps no model: fit it again on the run's development rows.
+        let (spec, table) = super::reveal::reload(&d, None)?;
+        let prep = crate::runner::prepare(&spec, &table)?;
+        let dev = prep.sealed.development();
+        let rows: Vec<usize> = (0..input.n_rows()).collect();
+        let mut notes = crate::models::encode::Notes::new();
+        let p = crate::runner::predict_with(
+            &spec, &table, &prep, &model, &dev, &input, &rows, &mut notes,
+        )?;
+        (p, Vec::new())
+    } else {
+        model.predict(&input)?
+    };
     for n in &notes {
         warn(n);
     }

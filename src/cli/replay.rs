@@ -18,6 +18,9 @@ pub struct Args {
     /// Worker threads (results do not depend on it) [default: all cores]
     #[arg(long, value_name = "N")]
     pub threads: Option<usize>,
+    /// Run the external commands the stored spec names (they are shown first)
+    #[arg(long)]
+    pub allow_commands: bool,
     /// Print JSON instead of text
     #[arg(long)]
     pub json: bool,
@@ -33,6 +36,25 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
     })?;
     // The spec comes from the ledger, not from the file on disk, which may have changed.
     let (spec, table) = super::reveal::reload(&d, a.data.as_deref())?;
+    // A replay runs what the ledger says; external commands only with explicit consent.
+    let commands: Vec<String> = spec
+        .models
+        .iter()
+        .filter_map(|m| m.command.as_ref())
+        .map(|c| format!("{:?} in {}", c.run, c.workdir.display()))
+        .collect();
+    if !commands.is_empty() {
+        if !a.allow_commands {
+            return Err(Error::Input(format!(
+                "run {} uses external commands ({}); replay runs them only with --allow-commands",
+                a.run,
+                commands.join("; ")
+            )));
+        }
+        for c in &commands {
+            eprintln!("replay will run: {c}");
+        }
+    }
     let threads = a
         .threads
         .unwrap_or_else(|| std::thread::available_parallelism().map_or(1, |n| n.get()))

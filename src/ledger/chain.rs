@@ -53,6 +53,10 @@ pub fn section_queries(kind: &str) -> &'static [(&'static str, &'static str)] {
             ),
             ("nested", "SELECT * FROM nested WHERE run_id = ?1"),
             ("replays", "SELECT * FROM replays WHERE run_id = ?1"),
+            (
+                "run_inputs",
+                "SELECT * FROM run_inputs WHERE run_id = ?1 ORDER BY path",
+            ),
         ],
         "reveal" => &[
             ("reveals", "SELECT * FROM reveals WHERE id = ?1"),

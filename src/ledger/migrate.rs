@@ -19,6 +19,10 @@ pub const MIGRATIONS: &[(&str, &str)] = &[
         "0003_chain.sql",
         include_str!("../../migrations/0003_chain.sql"),
     ),
+    (
+        "0004_commands.sql",
+        include_str!("../../migrations/0004_commands.sql"),
+    ),
 ];
 
 /// The schema version this binary writes.

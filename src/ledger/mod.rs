@@ -77,6 +77,8 @@ pub struct Stat {
 #[derive(Debug, Clone)]
 pub struct CandidateRow {
     pub id: i64,
+    /// Why an external command failed, if it did.
+    pub failure: Option<String>,
     pub family: String,
     pub params: Value,
     pub standardize: bool,
@@ -352,6 +354,20 @@ impl Ledger {
             params![run, meta.tool_commit, meta.target_triple, out.predictions_digest, meta.replay.as_ref().map(|r| r.replay_of)],
         )
         .map_err(fail)?;
+        for c in out.candidates.iter().filter(|c| c.failure.is_some()) {
+            tx.execute(
+                "UPDATE candidates SET failure = ?3 WHERE run_id = ?1 AND id = ?2",
+                params![run, c.id as i64, c.failure],
+            )
+            .map_err(fail)?;
+        }
+        for (path, sha) in &out.inputs {
+            tx.execute(
+                "INSERT INTO run_inputs (run_id, path, sha256) VALUES (?1, ?2, ?3)",
+                params![run, path, sha],
+            )
+            .map_err(fail)?;
+        }
         if let Some(r) = &meta.replay {
             tx.execute(
                 "INSERT INTO replays (run_id, replay_of, identical, compared, differing, differences) VALUES (?1, ?2, ?3, ?4, ?5, ?6)",
@@ -453,10 +469,18 @@ impl Ledger {
             })
             .and_then(|rows| rows.collect())
             .map_err(sql_err("read folds"))?;
-        let mut st = self.conn.prepare("SELECT id, family, params, standardize, seed FROM candidates WHERE run_id = ?1 ORDER BY id").map_err(sql_err("read candidates"))?;
-        let cands: Vec<(i64, String, String, bool, String)> = st
+        let mut st = self.conn.prepare("SELECT id, family, params, standardize, seed, failure FROM candidates WHERE run_id = ?1 ORDER BY id").map_err(sql_err("read candidates"))?;
+        type Row = (i64, String, String, bool, String, Option<String>);
+        let cands: Vec<Row> = st
             .query_map([id], |r| {
-                Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?, r.get(4)?))
+                Ok((
+                    r.get(0)?,
+                    r.get(1)?,
+                    r.get(2)?,
+                    r.get(3)?,
+                    r.get(4)?,
+                    r.get(5)?,
+                ))
             })
             .and_then(|rows| rows.collect())
             .map_err(sql_err("read candidates"))?;
@@ -480,9 +504,10 @@ impl Ledger {
                 .or_default()
                 .insert(metric, Stat { mean, se });
         }
-        for (cid, family, params, standardize, seed) in cands {
+        for (cid, family, params, standardize, seed, failure) in cands {
             d.candidates.push(CandidateRow {
                 id: cid,
+                failure,
                 family,
                 params: serde_json::from_str(&params).unwrap_or(Value::Null),
                 standardize,
@@ -1050,6 +1075,21 @@ impl Ledger {
             json_str(&out.predictions_digest),
             &mut diffs,
         );
+        let stored_inputs: BTreeMap<String, String> = self.run_inputs(run)?.into_iter().collect();
+        let fresh_inputs: BTreeMap<String, String> = out.inputs.iter().cloned().collect();
+        for path in stored_inputs
+            .keys()
+            .chain(fresh_inputs.keys())
+            .collect::<std::collections::BTreeSet<_>>()
+        {
+            let (a, b) = (stored_inputs.get(path), fresh_inputs.get(path));
+            item(
+                &format!("input {path}"),
+                a.map_or(Value::Null, |v| json_str(v)),
+                b.map_or(Value::Null, |v| json_str(v)),
+                &mut diffs,
+            );
+        }
         // Scores, by key.
         let mut st = self
             .conn
@@ -1195,6 +1235,17 @@ impl Ledger {
         st.query_map([run], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)))
             .and_then(|rows| rows.collect())
             .map_err(sql_err("read notes"))
+    }
+
+    /// The input files fingerprinted with a run: (path as written, SHA-256).
+    pub fn run_inputs(&self, run: i64) -> Result<Vec<(String, String)>> {
+        let mut st = self
+            .conn
+            .prepare("SELECT path, sha256 FROM run_inputs WHERE run_id = ?1 ORDER BY path")
+            .map_err(sql_err("read inputs"))?;
+        st.query_map([run], |r| Ok((r.get(0)?, r.get(1)?)))
+            .and_then(|rows| rows.collect())
+            .map_err(sql_err("read inputs"))
     }
 
     /// Build facts of a run: (tool version, tool commit, target triple, threads).

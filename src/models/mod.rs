@@ -78,6 +78,9 @@ pub enum Fitted {
         coef: Vec<Vec<f64>>,
         classes: usize,
     },
+    /// An external command's model: nothing is kept; predicting refits by running the command
+    /// (`runner::predict_with`).
+    External,
 }
 
 impl Fitted {
@@ -125,6 +128,8 @@ impl Fitted {
                 coef,
                 classes,
             } => logistic::probabilities(&linalg::standardize(x, center, scale), coef, *classes),
+            // Never called: the runner runs the command instead.
+            Fitted::External => Vec::new(),
         }
     }
 }
@@ -167,6 +172,7 @@ pub fn model_for(spec: &ModelSpec, classes: usize) -> Box<dyn Model> {
     match spec.family {
         Family::Mean => Box::new(mean::MeanModel { classes }),
         Family::Logistic => Box::new(logistic::Logistic { classes }),
+        Family::Command => Box::new(ExternalModel),
         Family::Ols => Box::new(ols::Ols),
         Family::Ridge => Box::new(ridge::Ridge {
             standardize: spec.standardize,
@@ -179,6 +185,22 @@ pub fn model_for(spec: &ModelSpec, classes: usize) -> Box<dyn Model> {
             standardize: spec.standardize,
             classes,
         }),
+    }
+}
+
+/// Stands in for an external command inside the grid machinery; the runner runs the command.
+pub struct ExternalModel;
+
+impl Model for ExternalModel {
+    fn fit(&self, _x: &Design, _y: &[f64], _params: &Params, _notes: &mut Notes) -> Result<Fitted> {
+        Ok(Fitted::External)
+    }
+    fn drops_first_level(&self) -> bool {
+        false
+    }
+    fn complexity(&self, _params: &Params) -> f64 {
+        // No known order: the one-SE rule keeps the best command candidate.
+        0.0
     }
 }
 

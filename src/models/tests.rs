@@ -19,6 +19,7 @@ fn spec(family: Family) -> ModelSpec {
         standardize: true,
         grid: Vec::new(),
         loc: Default::default(),
+        command: None,
     }
 }
 

@@ -32,6 +32,7 @@ fn candidate(c: &CandidateRow) -> Value {
         "train_se": ses(&c.train),
         "validation": means(&c.validation),
         "validation_se": ses(&c.validation),
+        "failure": c.failure,
     })
 }
 

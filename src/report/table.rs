@@ -63,7 +63,9 @@ pub fn leaderboard(d: &RunDetail, limit: Option<usize>) -> String {
     let mut t = new_table(header);
     let shown = limit.unwrap_or(rows.len()).min(rows.len());
     for c in &rows[..shown] {
-        let mark = if c.id == d.summary.selected {
+        let mark = if c.failure.is_some() {
+            "failed"
+        } else if c.id == d.summary.selected {
             "*"
         } else if c.id == d.best {
             "best"

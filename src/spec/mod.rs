@@ -154,10 +154,12 @@ pub enum Family {
     Poly,
     Knn,
     Logistic,
+    /// An external command (a model fitted by another program).
+    Command,
 }
 
 impl Family {
-    pub const ALL: [Family; 7] = [
+    pub const ALL: [Family; 8] = [
         Family::Mean,
         Family::Ols,
         Family::Ridge,
@@ -165,13 +167,17 @@ impl Family {
         Family::Poly,
         Family::Knn,
         Family::Logistic,
+        Family::Command,
     ];
 
     /// Whether the family serves the task.
     pub fn serves(self, task: Task) -> bool {
         match task {
             Task::Regression => !matches!(self, Family::Logistic),
-            Task::Classification => matches!(self, Family::Mean | Family::Knn | Family::Logistic),
+            Task::Classification => matches!(
+                self,
+                Family::Mean | Family::Knn | Family::Logistic | Family::Command
+            ),
         }
     }
 
@@ -184,13 +190,14 @@ impl Family {
             Family::Poly => "poly",
             Family::Knn => "knn",
             Family::Logistic => "logistic",
+            Family::Command => "command",
         }
     }
 
     /// The grid parameters the family takes (each must be given).
     pub fn params(self) -> &'static [&'static str] {
         match self {
-            Family::Mean | Family::Ols => &[],
+            Family::Mean | Family::Ols | Family::Command => &[],
             Family::Ridge | Family::Lasso | Family::Logistic => &["lambda"],
             Family::Poly => &["degree", "feature"],
             Family::Knn => &["k"],
@@ -228,6 +235,7 @@ pub enum ParamValue {
     Float(f64),
     Int(u64),
     Text(String),
+    Bool(bool),
 }
 
 impl ParamValue {
@@ -236,20 +244,21 @@ impl ParamValue {
             ParamValue::Float(f) => json!(f),
             ParamValue::Int(i) => json!(i),
             ParamValue::Text(s) => json!(s),
+            ParamValue::Bool(b) => json!(b),
         }
     }
     pub fn as_f64(&self) -> f64 {
         match self {
             ParamValue::Float(f) => *f,
             ParamValue::Int(i) => *i as f64,
-            ParamValue::Text(_) => f64::NAN,
+            ParamValue::Text(_) | ParamValue::Bool(_) => f64::NAN,
         }
     }
     pub fn as_usize(&self) -> usize {
         match self {
             ParamValue::Int(i) => *i as usize,
             ParamValue::Float(f) => *f as usize,
-            ParamValue::Text(_) => 0,
+            ParamValue::Text(_) | ParamValue::Bool(_) => 0,
         }
     }
     pub fn as_text(&self) -> &str {
@@ -266,6 +275,7 @@ impl std::fmt::Display for ParamValue {
             ParamValue::Float(x) => write!(f, "{x}"),
             ParamValue::Int(i) => write!(f, "{i}"),
             ParamValue::Text(s) => write!(f, "{s}"),
+            ParamValue::Bool(b) => write!(f, "{b}"),
         }
     }
 }
@@ -277,6 +287,21 @@ pub struct ModelSpec {
     pub standardize: bool,
     pub grid: Vec<(String, Vec<ParamValue>)>,
     pub loc: Loc,
+    /// Present for `kind = "command"`.
+    pub command: Option<CommandSpec>,
+}
+
+/// An external command family: what to run, where, and which files to fingerprint.
+#[derive(Debug, Clone, PartialEq)]
+pub struct CommandSpec {
+    /// argv, run without a shell.
+    pub run: Vec<String>,
+    /// The spec file's folder: the command's working directory.
+    pub workdir: PathBuf,
+    /// (as written, resolved) for each file whose SHA-256 is recorded with the run.
+    pub inputs: Vec<(String, PathBuf)>,
+    /// Seconds before the command is stopped.
+    pub timeout: u64,
 }
 
 impl ModelSpec {
@@ -936,6 +961,25 @@ impl Check<'_> {
                     ),
                 )
             })?;
+        if family == Family::Command {
+            return self.command_model(m);
+        }
+        for (present, key) in [
+            (r.run.is_some(), "run"),
+            (r.params.is_some(), "params"),
+            (r.inputs.is_some(), "inputs"),
+            (r.timeout.is_some(), "timeout"),
+        ] {
+            if present {
+                return Err(self.err(
+                    m,
+                    format!(
+                        "'{key}' belongs to kind = \"command\"; {} does not read it",
+                        family.name()
+                    ),
+                ));
+            }
+        }
         let given: [(&str, &Option<Spanned<toml::Value>>); 4] = [
             ("degree", &r.degree),
             ("feature", &r.feature),
@@ -986,6 +1030,107 @@ impl Check<'_> {
             standardize: r.standardize.as_ref().is_none_or(|s| *s.get_ref()),
             grid,
             loc: self.loc(m),
+            command: None,
+        })
+    }
+
+    /// `kind = "command"`: run (argv), params (name -> list), inputs, timeout.
+    fn command_model(&self, m: &Spanned<RawModel>) -> Result<ModelSpec> {
+        let r = m.get_ref();
+        for (v, key) in [
+            (&r.lambda, "lambda"),
+            (&r.k, "k"),
+            (&r.degree, "degree"),
+            (&r.feature, "feature"),
+        ] {
+            if let Some(v) = v {
+                return Err(self.err(v, format!("'{key}' is not a key of kind = \"command\"; put the command's parameters in params = {{ {key} = [...] }}")));
+            }
+        }
+        if let Some(s) = &r.standardize {
+            return Err(self.err(s, "'standardize' does not apply to a command; the command sees the data as it is in the file"));
+        }
+        let run = r.run.as_ref().ok_or_else(|| self.err(m, "kind = \"command\" needs run = [\"program\", \"arg\", ...] (an argv list, run without a shell)"))?;
+        if run.get_ref().is_empty() || run.get_ref()[0].trim().is_empty() {
+            return Err(self.err(
+                run,
+                "run must name a program: run = [\"python3\", \"models/forest.py\"]",
+            ));
+        }
+        // The command's working folder: the spec's folder, made absolute ("" means here).
+        let base = match self.file.parent() {
+            Some(p) if !p.as_os_str().is_empty() => p.to_path_buf(),
+            _ => PathBuf::from("."),
+        };
+        let base = std::fs::canonicalize(&base).unwrap_or(base);
+        let mut grid = Vec::new();
+        if let Some(p) = &r.params {
+            for (name, v) in p.get_ref() {
+                let list = match v {
+                    toml::Value::Array(a) => a.clone(),
+                    other => vec![other.clone()],
+                };
+                if list.is_empty() {
+                    return Err(self.err(
+                        p,
+                        format!("params.{name} has no values; the grid would be empty"),
+                    ));
+                }
+                let mut vals = Vec::new();
+                for it in list {
+                    let pv = match it {
+                        toml::Value::Integer(i) if i >= 0 => ParamValue::Int(i as u64),
+                        toml::Value::Integer(i) => ParamValue::Float(i as f64),
+                        toml::Value::Float(x) if x.is_finite() => ParamValue::Float(x),
+                        toml::Value::String(s) => ParamValue::Text(s),
+                        toml::Value::Boolean(b) => ParamValue::Bool(b),
+                        other => {
+                            return Err(self.err(
+                                p,
+                                format!(
+                                    "params.{name}: {other} is not a number, string or boolean"
+                                ),
+                            ));
+                        }
+                    };
+                    if vals.contains(&pv) {
+                        return Err(self.err(p, format!("params.{name} lists {pv} twice")));
+                    }
+                    vals.push(pv);
+                }
+                grid.push((name.clone(), vals));
+            }
+        }
+        let inputs = r
+            .inputs
+            .iter()
+            .flatten()
+            .map(|i| {
+                let path = base.join(i.get_ref());
+                if !path.is_file() {
+                    return Err(self.err(i, format!("input file {} does not exist (inputs are relative to the spec file's folder)", path.display())));
+                }
+                Ok((i.get_ref().clone(), path))
+            })
+            .collect::<Result<Vec<_>>>()?;
+        let timeout = match &r.timeout {
+            None => 600,
+            Some(t) if *t.get_ref() >= 1 => *t.get_ref() as u64,
+            Some(t) => {
+                return Err(self.err(t, "timeout must be a whole number of seconds, at least 1"));
+            }
+        };
+        Ok(ModelSpec {
+            family: Family::Command,
+            standardize: false,
+            grid,
+            loc: self.loc(m),
+            command: Some(CommandSpec {
+                run: run.get_ref().clone(),
+                workdir: base,
+                inputs,
+                timeout,
+            }),
         })
     }
 
@@ -1181,7 +1326,15 @@ impl Spec {
                         )
                     })
                     .collect();
-                json!({"kind": m.family.name(), "standardize": m.standardize, "params": grid})
+                {
+                    let mut v = json!({"kind": m.family.name(), "standardize": m.standardize, "params": grid});
+                    if let Some(c) = &m.command {
+                        v["run"] = json!(c.run);
+                        v["inputs"] = json!(c.inputs.iter().map(|i| i.0.clone()).collect::<Vec<_>>());
+                        v["timeout"] = json!(c.timeout);
+                    }
+                    v
+                }
             })
             .collect();
         let v = json!({

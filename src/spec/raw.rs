@@ -76,4 +76,9 @@ pub struct RawModel {
     pub k: Option<Spanned<toml::Value>>,
     pub degree: Option<Spanned<toml::Value>>,
     pub feature: Option<Spanned<toml::Value>>,
+    /// `kind = "command"`: the argv to run, its parameter grid, files to fingerprint, timeout.
+    pub run: Option<Spanned<Vec<String>>>,
+    pub params: Option<Spanned<toml::Table>>,
+    pub inputs: Option<Vec<Spanned<String>>>,
+    pub timeout: Option<Spanned<i64>>,
 }

@@ -22,6 +22,8 @@ pub enum Domain {
     Noise = 5,
     /// Inner folds of nested cross-validation; the index is the outer fold.
     NestedFolds = 6,
+    /// Seeds handed to external commands; keyed by the candidate seed, the index is the fold.
+    Command = 7,
 }
 
 /// A ChaCha20 generator keyed by `seed` (little-endian in the first 8 key bytes) on the stream

@@ -47,6 +47,7 @@ fn probabilities(
         standardize: true,
         grid: Vec::new(),
         loc: Default::default(),
+        command: None,
     };
     let model = model_for(&spec, classes.len());
     let enc = Encoder::fit(&table, &features, &train, model.drops_first_level(), false);

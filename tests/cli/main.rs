@@ -2,6 +2,7 @@
 
 mod bad_input;
 mod classification;
+mod commands;
 mod fixtures;
 mod guard;
 mod reference;

@@ -66,6 +66,7 @@ fn fit(
         standardize: true,
         grid: Vec::new(),
         loc: Default::default(),
+        command: None,
     };
     let model = model_for(&spec, 0);
     let enc = Encoder::fit(table, features, rows, model.drops_first_level(), false);

@@ -1,0 +1,274 @@
+//! External command families through the binary: the protocol, the sealed target, failures,
+//! replay consent and determinism.
+
+use crate::fixtures::{SMALL_SPEC, small_dir};
+use crate::util::Dir;
+
+/// A model in plain Python: the mean of the fitting target, plus the `shift` parameter. It fails
+/// loudly if the score file ever holds the target or the key.
+const MEAN_MODEL: &str = r#"
+import csv, json, os, sys
+fit = list(csv.reader(open(os.environ["PROBITY_FIT"])))
+score = list(csv.reader(open(os.environ["PROBITY_SCORE"])))
+target = os.environ["PROBITY_TARGET"]
+if target in score[0] or "id" in score[0]:
+    sys.exit("the score file holds the target or the key: " + ",".join(score[0]))
+if fit[0] != ["x1", "x2", "shade", "y"]:
+    sys.exit("unexpected fit columns " + ",".join(fit[0]))
+t = fit[0].index(target)
+total = 0.0
+for r in fit[1:]:
+    total += float(r[t])
+mean = total / (len(fit) - 1) + json.loads(os.environ["PROBITY_PARAMS"])["shift"]
+with open(os.environ["PROBITY_OUT"], "w") as f:
+    f.write("prediction\n")
+    for _ in score[1:]:
+        f.write(repr(mean) + "\n")
+"#;
+
+fn command_spec(script: &str, extra: &str) -> String {
+    format!(
+        "{SMALL_SPEC}\n[[model]]\nkind = \"command\"\nrun = [\"python3\", \"{script}\"]\nparams = {{ shift = [0.0, 1.5] }}\ninputs = [\"{script}\"]\n{extra}"
+    )
+}
+
+fn setup(name: &str, script: &str, extra: &str) -> Dir {
+    let d = small_dir(name);
+    d.write("model.py", script);
+    d.write("c.toml", &command_spec("model.py", extra));
+    d
+}
+
+#[test]
+fn a_command_family_is_fitted_scored_and_revealed() {
+    let d = setup("cmd", MEAN_MODEL, "");
+    let j = d.probity(&["run", "c.toml", "--json"]).expect(0).json();
+    let cands = j["candidates"].as_array().unwrap();
+    assert_eq!(cands.len(), 8);
+    let mean = &cands[0];
+    let cmd0 = cands
+        .iter()
+        .find(|c| c["model"] == "command" && c["params"]["shift"] == 0.0)
+        .unwrap();
+    assert!(cmd0["failure"].is_null(), "{cmd0}");
+    // Same model, same rows, same arithmetic order: the very same bits as the built-in mean.
+    assert_eq!(cmd0["validation"], mean["validation"]);
+    assert_eq!(cmd0["train"], mean["train"]);
+    let cmd1 = cands.iter().find(|c| c["params"]["shift"] == 1.5).unwrap();
+    assert!(cmd1["validation"]["rmse"].as_f64() > cmd0["validation"]["rmse"].as_f64());
+    // Reveal and predict a command candidate: it is fitted again, on every development row.
+    let id = cmd0["id"].as_i64().unwrap().to_string();
+    let r = d
+        .probity(&["reveal", "1", "--candidate", &id, "--yes", "--json"])
+        .expect(0)
+        .json();
+    let m = d
+        .probity(&["reveal", "1", "--candidate", "1", "--yes", "--json"])
+        .expect(0)
+        .json();
+    assert_eq!(
+        r["test"], m["test"],
+        "the command's test scores equal the built-in mean's"
+    );
+    d.write("new.csv", "id,x1,x2,shade\nn1,1,2,low\nn2,3,4,high\n");
+    d.probity(&[
+        "predict",
+        "1",
+        "--input",
+        "new.csv",
+        "--output",
+        "p.csv",
+        "--candidate",
+        &id,
+    ])
+    .expect(0);
+    let out = std::fs::read_to_string(d.path.join("p.csv")).unwrap();
+    assert_eq!(out.lines().count(), 3, "{out}");
+    // Replay runs commands only with consent, then gives the same bits.
+    let r = d.probity(&["replay", "1"]).expect(2);
+    assert!(
+        r.stderr().contains("--allow-commands") && r.stderr().contains("model.py"),
+        "{}",
+        r.stderr()
+    );
+    let r = d
+        .probity(&["replay", "1", "--allow-commands", "--json"])
+        .expect(0);
+    assert!(r.stderr().contains("replay will run"), "{}", r.stderr());
+    assert_eq!(r.json()["identical"], true);
+    // A changed script shows in the replay.
+    d.write("model.py", &format!("{MEAN_MODEL}\n# edited\n"));
+    let j = d
+        .probity(&["replay", "1", "--allow-commands", "--json"])
+        .expect(5)
+        .json();
+    assert!(
+        j["differences"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .any(|x| x["metric"] == "input model.py"),
+        "{j}"
+    );
+}
+
+#[test]
+fn failures_are_recorded_and_the_others_go_on() {
+    let cases: [(&str, &str, &str, &str); 5] = [
+        (
+            "cmd-exit",
+            "import sys\nsys.stderr.write('no convergence here\\n')\nsys.exit(7)\n",
+            "",
+            "exit status 7; stderr: no convergence here",
+        ),
+        (
+            "cmd-timeout",
+            "import time\ntime.sleep(30)\n",
+            "timeout = 1",
+            "timed out after 1 s",
+        ),
+        (
+            "cmd-nan",
+            "import os\nopen(os.environ['PROBITY_OUT'], 'w').write('prediction\\n' + 'nan\\n' * 100)\n",
+            "",
+            "not a finite number",
+        ),
+        (
+            "cmd-rows",
+            "import os\nopen(os.environ['PROBITY_OUT'], 'w').write('prediction\\n1.0\\n')\n",
+            "",
+            "prediction rows for",
+        ),
+        ("cmd-none", "pass\n", "", "wrote no predictions file"),
+    ];
+    for (name, script, extra, fragment) in cases {
+        let d = setup(name, script, extra);
+        let j = d.probity(&["run", "c.toml", "--json"]).expect(0).json();
+        let failed: Vec<&serde_json::Value> = j["candidates"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .filter(|c| c["model"] == "command")
+            .collect();
+        assert_eq!(failed.len(), 2);
+        for c in failed {
+            let f = c["failure"]
+                .as_str()
+                .unwrap_or_else(|| panic!("{name}: no failure recorded: {c}"));
+            assert!(f.contains(fragment), "{name}: {f}");
+            assert!(c["validation"]["rmse"].is_null());
+        }
+        assert_ne!(
+            j["candidates"][j["selected"].as_i64().unwrap() as usize - 1]["model"],
+            "command"
+        );
+        assert!(
+            j["warnings"]
+                .as_array()
+                .unwrap()
+                .iter()
+                .any(|w| w.as_str().unwrap().contains("failed on fold")),
+            "{name}"
+        );
+        let s = d.probity(&["show", "1"]).expect(0).stdout();
+        assert!(s.contains("failed"), "{s}");
+    }
+}
+
+/// A command that ignores the seed (draws from the operating system) is caught by replay,
+/// which names the candidate.
+#[test]
+fn a_nondeterministic_command_is_caught_by_replay() {
+    let noisy = MEAN_MODEL.replace(
+        "+ json.loads(",
+        "+ int.from_bytes(os.urandom(4), 'little') * 1e-9 + json.loads(",
+    );
+    let d = setup("cmd-noise", &noisy, "");
+    d.probity(&["run", "c.toml"]).expect(0);
+    let j = d
+        .probity(&["replay", "1", "--allow-commands", "--json"])
+        .expect(5)
+        .json();
+    let diffs = j["differences"].as_array().unwrap();
+    assert!(
+        diffs
+            .iter()
+            .any(|x| x["candidate"].as_i64().is_some_and(|c| c >= 7)),
+        "{j}"
+    );
+}
+
+#[test]
+fn command_specs_are_checked() {
+    let d = small_dir("cmd-spec");
+    d.write(
+        "a.toml",
+        &format!("{SMALL_SPEC}\n[[model]]\nkind = \"command\"\nparams = {{ a = [1] }}\n"),
+    );
+    let r = d.probity(&["run", "a.toml"]).expect(2);
+    assert!(r.stderr().contains("needs run = ["), "{}", r.stderr());
+    d.write("b.toml", &format!("{SMALL_SPEC}\n[[model]]\nkind = \"command\"\nrun = [\"python3\", \"m.py\"]\ninputs = [\"m.py\"]\n"));
+    let r = d.probity(&["run", "b.toml"]).expect(2);
+    assert!(
+        r.stderr().contains("input file") && r.stderr().contains("does not exist"),
+        "{}",
+        r.stderr()
+    );
+    d.write(
+        "c.toml",
+        &format!(
+            "{SMALL_SPEC}\n[[model]]\nkind = \"command\"\nrun = [\"python3\"]\nlambda = [1]\n"
+        ),
+    );
+    let r = d.probity(&["run", "c.toml"]).expect(2);
+    assert!(
+        r.stderr()
+            .contains("put the command's parameters in params"),
+        "{}",
+        r.stderr()
+    );
+}
+
+/// A classifier as a command: class shares as probabilities, checked against the built-in prior
+/// baseline; and probabilities that do not sum to one are refused.
+#[test]
+fn a_command_classifier_writes_class_probabilities() {
+    let prior = r#"
+import csv, json, os
+fit = list(csv.reader(open(os.environ["PROBITY_FIT"])))
+score = list(csv.reader(open(os.environ["PROBITY_SCORE"])))
+classes = json.loads(os.environ["PROBITY_CLASSES"])
+t = fit[0].index(os.environ["PROBITY_TARGET"])
+counts = [sum(1 for r in fit[1:] if r[t] == c) for c in classes]
+p = [c / (len(fit) - 1) for c in counts]
+scale = json.loads(os.environ["PROBITY_PARAMS"])["scale"]
+with open(os.environ["PROBITY_OUT"], "w") as f:
+    f.write("prediction," + ",".join("p_" + c for c in classes) + "\n")
+    for _ in score[1:]:
+        f.write(classes[p.index(max(p))] + "," + ",".join(repr(v * scale) for v in p) + "\n")
+"#;
+    let d = Dir::new("cmd-class");
+    let ex = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("experiments");
+    d.copy(&ex.join("bays.csv"), "bays.csv");
+    d.write("prior.py", prior);
+    let spec = std::fs::read_to_string(ex.join("outbreak.toml"))
+        .unwrap()
+        .split("[[model]]")
+        .next()
+        .unwrap()
+        .to_string()
+        + "[[model]]\nkind = \"command\"\nrun = [\"python3\", \"prior.py\"]\nparams = { scale = [1.0, 0.5] }\n";
+    d.write("o.toml", &spec);
+    let j = d.probity(&["run", "o.toml", "--json"]).expect(0).json();
+    let c = j["candidates"].as_array().unwrap();
+    let ok = c.iter().find(|x| x["params"]["scale"] == 1.0).unwrap();
+    assert_eq!(ok["validation"]["accuracy"], c[0]["validation"]["accuracy"]);
+    assert!(
+        (ok["validation"]["log_loss"].as_f64().unwrap()
+            - c[0]["validation"]["log_loss"].as_f64().unwrap())
+        .abs()
+            < 1e-12
+    );
+    let bad = c.iter().find(|x| x["params"]["scale"] == 0.5).unwrap();
+    assert!(bad["failure"].as_str().unwrap().contains("sum to"), "{bad}");
+}
