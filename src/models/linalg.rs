@@ -91,6 +91,11 @@ pub struct Svd {
 /// Decompose A (n x p) with right-hand side y: Householder QR when n >= p (so the Jacobi sweeps
 /// run on the p x p factor only), then one-sided Jacobi on the result.
 pub fn svd_solve_prep(a: &Matrix, y: &[f64]) -> Svd {
+    svd_solve_owned(a.clone(), y)
+}
+
+/// As `svd_solve_prep`, overwriting `a` instead of copying it (large designs: one copy less).
+pub fn svd_solve_owned(a: Matrix, y: &[f64]) -> Svd {
     let (n, p) = (a.rows, a.cols);
     let dim = n.max(p);
     if n >= p && p > 0 {
@@ -98,15 +103,14 @@ pub fn svd_solve_prep(a: &Matrix, y: &[f64]) -> Svd {
         let (s, v, uty) = jacobi(r, &qty[..p]);
         Svd { s, v, uty, dim }
     } else {
-        let (s, v, uty) = jacobi(a.clone(), y);
+        let (s, v, uty) = jacobi(a, y);
         Svd { s, v, uty, dim }
     }
 }
 
 /// Householder QR: returns the p x p factor R and Q^T y (length n).
-fn householder_qr(a: &Matrix, y: &[f64]) -> (Matrix, Vec<f64>) {
+fn householder_qr(mut a: Matrix, y: &[f64]) -> (Matrix, Vec<f64>) {
     let (n, p) = (a.rows, a.cols);
-    let mut a = a.clone();
     let mut y = y.to_vec();
     for j in 0..p {
         let norm = {

@@ -2,7 +2,7 @@
 //! normal equations); a rank-deficient design gets the minimum-norm solution and a warning.
 
 use super::encode::{Notes, note};
-use super::linalg::{Matrix, svd_solve_prep};
+use super::linalg::{Matrix, svd_solve_owned};
 use super::{Design, Fitted, Model, Params, center_scale, center_target, unscale};
 use crate::error::Result;
 
@@ -15,7 +15,7 @@ pub fn least_squares(x: &Matrix, y: &[f64], label: &str, notes: &mut Notes) -> (
     // Scaling columns to unit sd improves the conditioning; the solution is the same when the
     // design has full rank.
     let (xmean, xsd, z) = center_scale(x, true);
-    let svd = svd_solve_prep(&z, &yc);
+    let svd = svd_solve_owned(z, &yc);
     let rank = svd.rank();
     if rank < x.cols {
         note(
@@ -27,7 +27,7 @@ pub fn least_squares(x: &Matrix, y: &[f64], label: &str, notes: &mut Notes) -> (
         );
         // Minimum norm in the original units, as the users' coefficients are read.
         let (xmean, ones, zc) = center_scale(x, false);
-        let svd = svd_solve_prep(&zc, &yc);
+        let svd = svd_solve_owned(zc, &yc);
         return unscale(&svd.solve(0.0), ymean, yscale, &xmean, &ones);
     }
     unscale(&svd.solve(0.0), ymean, yscale, &xmean, &xsd)

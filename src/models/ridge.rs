@@ -2,7 +2,7 @@
 //! unpenalised. One SVD per fold serves every lambda of the grid.
 
 use super::encode::{Notes, note};
-use super::linalg::{Matrix, svd_solve_prep};
+use super::linalg::{Matrix, svd_solve_owned};
 use super::{Design, Fitted, Model, Params, center_scale, center_target, param, unscale};
 use crate::error::Result;
 
@@ -14,7 +14,7 @@ impl Ridge {
     fn fit_all(&self, x: &Matrix, y: &[f64], lambdas: &[f64], notes: &mut Notes) -> Vec<Fitted> {
         let (ymean, yscale, yc) = center_target(y);
         let (xmean, xscale, z) = center_scale(x, self.standardize);
-        let svd = svd_solve_prep(&z, &yc);
+        let svd = svd_solve_owned(z, &yc);
         lambdas
             .iter()
             .map(|&l| {
