@@ -27,30 +27,36 @@ fn lse(v: &[f64]) -> f64 {
     m + v.iter().map(|x| (x - m).exp()).sum::<f64>().ln()
 }
 
-/// Linear scores of every row for every coefficient row: `[row][k]`.
-fn scores(z: &Matrix, coef: &[Vec<f64>]) -> Vec<Vec<f64>> {
-    let mut out = vec![vec![0.0; coef.len()]; z.rows];
-    for (k, c) in coef.iter().enumerate() {
-        for row in out.iter_mut() {
-            row[k] = c[0];
-        }
-        for j in 0..z.cols {
-            let w = c[j + 1];
-            if w != 0.0 {
-                for (i, v) in z.col(j).iter().enumerate() {
-                    out[i][k] += w * v;
-                }
-            }
+/// Row-major copy of the standardised design, so each row's features are contiguous.
+fn rows_of(z: &Matrix) -> Vec<f64> {
+    let (n, p) = (z.rows, z.cols);
+    let mut out = vec![0.0; n * p];
+    for j in 0..p {
+        for (i, v) in z.col(j).iter().enumerate() {
+            out[i * p + j] = *v;
         }
     }
     out
 }
 
-/// Class probabilities (n x classes, row-major) for standardised rows.
-pub fn probabilities(z: &Matrix, coef: &[Vec<f64>], classes: usize) -> Vec<f64> {
-    let s = scores(z, coef);
-    let mut out = Vec::with_capacity(z.rows * classes);
-    for row in &s {
+/// Linear scores, n x k row-major: intercept + row . weights for each coefficient row.
+fn scores_flat(xr: &[f64], n: usize, p: usize, coef: &[Vec<f64>]) -> Vec<f64> {
+    let k = coef.len();
+    let mut out = vec![0.0; n * k];
+    for i in 0..n {
+        let row = &xr[i * p..(i + 1) * p];
+        for (a, c) in coef.iter().enumerate() {
+            out[i * k + a] = c[0] + row.iter().zip(&c[1..]).map(|(x, w)| x * w).sum::<f64>();
+        }
+    }
+    out
+}
+
+/// Probabilities (n x classes) from flat scores.
+fn probs_from_scores(s: &[f64], n: usize, k: usize, classes: usize) -> Vec<f64> {
+    let mut out = Vec::with_capacity(n * classes);
+    for i in 0..n {
+        let row = &s[i * k..(i + 1) * k];
         if classes == 2 {
             // p = 1 / (1 + exp(-eta)), computed without overflow on either side.
             let eta = row[0];
@@ -69,11 +75,32 @@ pub fn probabilities(z: &Matrix, coef: &[Vec<f64>], classes: usize) -> Vec<f64> 
     out
 }
 
+/// Class probabilities (n x classes, row-major) for standardised rows.
+pub fn probabilities(z: &Matrix, coef: &[Vec<f64>], classes: usize) -> Vec<f64> {
+    let xr = rows_of(z);
+    probs_from_scores(
+        &scores_flat(&xr, z.rows, z.cols, coef),
+        z.rows,
+        coef.len(),
+        classes,
+    )
+}
+
 /// The objective: summed log-loss + (lambda/2) sum of squared weights (not intercepts).
-fn objective(z: &Matrix, y: &[f64], coef: &[Vec<f64>], lambda: f64, binary: bool) -> f64 {
-    let s = scores(z, coef);
+fn objective(
+    xr: &[f64],
+    n: usize,
+    p: usize,
+    y: &[f64],
+    coef: &[Vec<f64>],
+    lambda: f64,
+    binary: bool,
+) -> f64 {
+    let k = coef.len();
+    let s = scores_flat(xr, n, p, coef);
     let mut loss = 0.0;
-    for (i, row) in s.iter().enumerate() {
+    for i in 0..n {
+        let row = &s[i * k..(i + 1) * k];
         let c = y[i] as usize;
         loss += if binary {
             // log(1 + exp(eta)) - y eta
@@ -105,51 +132,34 @@ fn newton(
     start: Option<Vec<Vec<f64>>>,
 ) -> (Vec<Vec<f64>>, bool, bool) {
     let (n, p) = (z.rows, z.cols);
+    let xr = rows_of(z);
     let binary = classes == 2;
     let k = if binary { 1 } else { classes };
     let d = p + 1;
     let mut coef = start.unwrap_or_else(|| vec![vec![0.0; d]; k]);
-    let mut f = objective(z, y, &coef, lambda, binary);
+    let mut f = objective(&xr, n, p, y, &coef, lambda, binary);
+    let cls = |a: usize| if binary { 1 } else { a };
+    let m = k * d;
     for _ in 0..MAX_ITER {
-        let probs = probabilities(z, &coef, classes);
-        // Residuals r[i][a] = P(class of a) - 1{y = class of a}; for binary a is the positive class.
-        let cls = |a: usize| if binary { 1 } else { a };
+        let probs = probs_from_scores(&scores_flat(&xr, n, p, &coef), n, k, classes);
         let pr = |i: usize, a: usize| probs[i * classes + cls(a)];
-        let mut grad = vec![0.0; k * d];
-        #[allow(clippy::needless_range_loop)] // rows index y, z and probs together
-        for i in 0..n {
-            for a in 0..k {
-                let r = pr(i, a) - if y[i] as usize == cls(a) { 1.0 } else { 0.0 };
-                grad[a * d] += r;
-                for j in 0..p {
-                    grad[a * d + j + 1] += r * z.get(i, j);
-                }
-            }
-        }
-        for a in 0..k {
-            for j in 0..p {
-                grad[a * d + j + 1] += lambda * coef[a][j + 1];
-            }
-        }
-        let gnorm = grad.iter().map(|g| g * g).sum::<f64>().sqrt();
-        if gnorm <= TOL {
-            return (coef, true, false);
-        }
-        // Hessian, (k d) x (k d): sum_i x_i x_i^T P_a (delta_ab - P_b), plus lambda on weights.
-        let m = k * d;
+        // Gradient and Hessian in one pass over the rows. Hessian, (k d) x (k d):
+        // sum_i x_i x_i^T P_a (delta_ab - P_b), plus lambda on the weights; only the upper
+        // triangle is accumulated, then mirrored.
+        let mut grad = vec![0.0; m];
         let mut h = vec![0.0; m * m];
         let mut xi = vec![0.0; d];
-        #[allow(clippy::needless_range_loop)] // rows index y, z and probs together
         for i in 0..n {
             xi[0] = 1.0;
-            for j in 0..p {
-                xi[j + 1] = z.get(i, j);
-            }
+            xi[1..].copy_from_slice(&xr[i * p..(i + 1) * p]);
             for a in 0..k {
-                for b in 0..k {
+                let r = pr(i, a) - if y[i] as usize == cls(a) { 1.0 } else { 0.0 };
+                for u in 0..d {
+                    grad[a * d + u] += r * xi[u];
+                }
+                for b in a..k {
                     let w = if binary {
-                        let q = pr(i, 0);
-                        q * (1.0 - q)
+                        pr(i, 0) * (1.0 - pr(i, 0))
                     } else {
                         pr(i, a) * (if a == b { 1.0 } else { 0.0 } - pr(i, b))
                     };
@@ -159,17 +169,28 @@ fn newton(
                     for u in 0..d {
                         let wu = w * xi[u];
                         let row = (a * d + u) * m + b * d;
-                        for v in 0..d {
+                        let from = if a == b { u } else { 0 };
+                        for v in from..d {
                             h[row + v] += wu * xi[v];
                         }
                     }
                 }
             }
         }
+        for r in 0..m {
+            for c in 0..r {
+                h[r * m + c] = h[c * m + r];
+            }
+        }
         for a in 0..k {
             for j in 1..d {
+                grad[a * d + j] += lambda * coef[a][j];
                 h[(a * d + j) * m + a * d + j] += lambda;
             }
+        }
+        let gnorm = grad.iter().map(|g| g * g).sum::<f64>().sqrt();
+        if gnorm <= TOL {
+            return (coef, true, false);
         }
         let hm = Matrix {
             rows: m,
@@ -185,7 +206,7 @@ fn newton(
             let trial: Vec<Vec<f64>> = (0..k)
                 .map(|a| (0..d).map(|u| coef[a][u] + t * step[a * d + u]).collect())
                 .collect();
-            let ft = objective(z, y, &trial, lambda, binary);
+            let ft = objective(&xr, n, p, y, &trial, lambda, binary);
             // Near the optimum the objective is flat to rounding: allow that much slack.
             if ft.is_finite() && ft <= f + 1e-13 * f.abs().max(1.0) {
                 coef = trial;
@@ -249,6 +270,33 @@ impl Logistic {
 impl Model for Logistic {
     fn fit(&self, x: &Design, y: &[f64], params: &Params, notes: &mut Notes) -> Result<Fitted> {
         self.fit_one(x, y, lambda(params), notes, None)
+    }
+    /// The grid along a decreasing penalty path, each fit starting from the previous one's
+    /// solution (warm starts: fewer Newton steps, the same optimum).
+    fn fit_predict_grid(
+        &self,
+        x: &Design,
+        y: &[f64],
+        grid: &[Params],
+        targets: &[&Matrix],
+        notes: &mut Notes,
+    ) -> Result<Vec<Vec<Vec<f64>>>> {
+        let mut order: Vec<usize> = (0..grid.len()).collect();
+        order.sort_by(|&a, &b| {
+            lambda(&grid[b])
+                .total_cmp(&lambda(&grid[a]))
+                .then(a.cmp(&b))
+        });
+        let mut out = vec![Vec::new(); grid.len()];
+        let mut start = None;
+        for g in order {
+            let fitted = self.fit_one(x, y, lambda(&grid[g]), notes, start.take())?;
+            if let Fitted::Logistic { coef, .. } = &fitted {
+                start = Some(coef.clone());
+            }
+            out[g] = targets.iter().map(|t| fitted.predict(t)).collect();
+        }
+        Ok(out)
     }
     fn drops_first_level(&self) -> bool {
         true

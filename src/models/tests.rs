@@ -278,3 +278,31 @@ fn encoder_learns_only_from_its_fitting_rows() {
     assert_eq!((m.get(0, 0), m.get(0, 1)), (0.0, 0.0));
     assert!(notes.is_empty());
 }
+
+#[test]
+fn logistic_warm_started_path_equals_single_fits() {
+    // Two overlapping classes on two features.
+    let x1: Vec<f64> = (0..80).map(|i| ((i * 37 % 101) as f64) / 10.0).collect();
+    let x2: Vec<f64> = (0..80).map(|i| ((i * 53 % 89) as f64) / 9.0).collect();
+    let y: Vec<f64> = (0..80)
+        .map(|i| f64::from(x1[i] + 0.5 * x2[i] + ((i * 7 % 11) as f64) > 12.0))
+        .collect();
+    let d = design(&[x1, x2]);
+    let m = model_for(&spec(Family::Logistic), 2);
+    let grid: Vec<Params> = [0.01, 10.0, 1.0]
+        .iter()
+        .map(|l| p("lambda", ParamValue::Float(*l)))
+        .collect();
+    let all = m
+        .fit_predict_grid(&d, &y, &grid, &[&d.x], &mut Notes::new())
+        .unwrap();
+    for (g, params) in grid.iter().enumerate() {
+        let single = m
+            .fit(&d, &y, params, &mut Notes::new())
+            .unwrap()
+            .predict(&d.x);
+        for (a, b) in all[g][0].iter().zip(&single) {
+            assert!((a - b).abs() < 1e-9, "{params:?}: {a} vs {b}");
+        }
+    }
+}
