@@ -799,7 +799,22 @@ fn run_task(
     let xs = design(table, &enc, &score_rows, &mut notes)?;
     let yf: Vec<f64> = fold.fit.iter().map(|&i| prep.target[i]).collect();
     let ys: Vec<f64> = fold.score.iter().map(|&i| prep.target[i]).collect();
-    let preds = model.fit_predict_grid(&xf, &yf, grid, &[&xf.x, &xs.x], &mut notes)?;
+    // Training scores of a family that is quadratic to predict on its own fitting rows (knn) are
+    // taken on at most `limit` evenly spaced fitting rows; exact below that.
+    let (xt, yt) = match model.train_rows_limit() {
+        Some(limit) if yf.len() > limit => {
+            let pick: Vec<usize> = (0..limit).map(|i| i * yf.len() / limit).collect();
+            let cols: Vec<Vec<f64>> = (0..xf.x.cols)
+                .map(|j| pick.iter().map(|&i| xf.x.get(i, j)).collect())
+                .collect();
+            (
+                crate::models::linalg::Matrix::from_cols(limit, &cols),
+                pick.iter().map(|&i| yf[i]).collect(),
+            )
+        }
+        _ => (xf.x.clone(), yf.clone()),
+    };
+    let preds = model.fit_predict_grid(&xf, &yf, grid, &[&xt, &xs.x], &mut notes)?;
     let mut scores = Vec::with_capacity(grid.len());
     for (g, p) in preds.iter().enumerate() {
         if p.iter().flatten().any(|v| !v.is_finite()) {
@@ -810,7 +825,7 @@ fn run_task(
             )));
         }
         scores.push(Ok((
-            score_all(&prep.metrics, &yf, &p[0], nc),
+            score_all(&prep.metrics, &yt, &p[0], nc),
             score_all(&prep.metrics, &ys, &p[1], nc),
         )));
     }

@@ -8,6 +8,10 @@ use super::linalg::{Matrix, mean_sd, standardize};
 use super::{Design, Fitted, Model, Params, param};
 use crate::error::{Error, Result};
 
+/// Training scores are taken on at most this many evenly spaced fitting rows: predicting every
+/// fitting row from all the others is quadratic in the fold size.
+pub const TRAIN_SCORE_ROWS: usize = 2000;
+
 pub struct Knn {
     pub standardize: bool,
     /// 0 for regression, else the number of classes.
@@ -29,6 +33,25 @@ fn row_major(x: &Matrix) -> Vec<f64> {
     out
 }
 
+/// Squared Euclidean distance with four partial sums, which the compiler can keep in vector
+/// registers (a fixed order, so the same bits on every run).
+fn sq_dist(a: &[f64], b: &[f64]) -> f64 {
+    let mut acc = [0.0f64; 4];
+    let chunks = a.len() / 4;
+    for c in 0..chunks {
+        for l in 0..4 {
+            let t = a[c * 4 + l] - b[c * 4 + l];
+            acc[l] += t * t;
+        }
+    }
+    let mut tail = 0.0;
+    for i in chunks * 4..a.len() {
+        let t = a[i] - b[i];
+        tail += t * t;
+    }
+    (acc[0] + acc[1]) + (acc[2] + acc[3]) + tail
+}
+
 /// Predictions for every query row (standardized) and every k in `ks`: `[k][row]` (regression)
 /// or `[k][row * classes + class]` vote fractions (classification).
 pub fn predict_many(
@@ -43,34 +66,47 @@ pub fn predict_many(
     let kmax = ks.iter().copied().max().unwrap_or(1).min(n);
     let q = row_major(queries);
     let mut out = vec![Vec::with_capacity(queries.rows); ks.len()];
-    let mut dist: Vec<(f64, usize)> = Vec::with_capacity(n);
-    for r in 0..queries.rows {
-        let qr = &q[r * p..(r + 1) * p];
-        dist.clear();
+    // The kmax nearest so far per query, sorted by (distance, row): a point enters only when it
+    // beats the worst kept one. Rows are scanned in order, so an equal distance never displaces
+    // an earlier row: the same neighbours as a full sort by (distance, row). Queries go in
+    // blocks of 8 per pass over the points, so each point is read from memory once per block.
+    const BLOCK: usize = 8;
+    let mut nears: Vec<Vec<(f64, usize)>> = vec![Vec::with_capacity(kmax + 1); BLOCK];
+    for r0 in (0..queries.rows).step_by(BLOCK) {
+        let r1 = (r0 + BLOCK).min(queries.rows);
+        for near in nears.iter_mut() {
+            near.clear();
+        }
         for i in 0..n {
             let pt = &points[i * p..(i + 1) * p];
-            let d: f64 = pt.iter().zip(qr).map(|(a, b)| (a - b) * (a - b)).sum();
-            dist.push((d, i));
-        }
-        // (distance, row) is a total order, so the neighbour set is the same however the
-        // selection proceeds.
-        let cmp = |a: &(f64, usize), b: &(f64, usize)| a.0.total_cmp(&b.0).then(a.1.cmp(&b.1));
-        if kmax < n {
-            dist.select_nth_unstable_by(kmax - 1, cmp);
-        }
-        let near = &mut dist[..kmax];
-        near.sort_unstable_by(cmp);
-        for (slot, &k) in ks.iter().enumerate() {
-            let k = k.min(n);
-            if classes > 0 {
-                let mut votes = vec![0.0; classes];
-                for &(_, i) in &near[..k] {
-                    votes[targets[i] as usize] += 1.0;
+            for (b, r) in (r0..r1).enumerate() {
+                let d = sq_dist(pt, &q[r * p..(r + 1) * p]);
+                let near = &mut nears[b];
+                if near.len() == kmax {
+                    if d >= near[kmax - 1].0 {
+                        continue;
+                    }
+                    near.pop();
                 }
-                out[slot].extend(votes.iter().map(|v| v / k as f64));
-            } else {
-                let s: f64 = near[..k].iter().map(|&(_, i)| targets[i]).sum();
-                out[slot].push(s / k as f64);
+                // Insert after every kept entry with a distance <= d (earlier rows win ties).
+                let at = near.partition_point(|e| e.0 <= d);
+                near.insert(at, (d, i));
+            }
+        }
+        for b in 0..r1 - r0 {
+            let near = &nears[b];
+            for (slot, &k) in ks.iter().enumerate() {
+                let k = k.min(n);
+                if classes > 0 {
+                    let mut votes = vec![0.0; classes];
+                    for &(_, i) in &near[..k] {
+                        votes[targets[i] as usize] += 1.0;
+                    }
+                    out[slot].extend(votes.iter().map(|v| v / k as f64));
+                } else {
+                    let s: f64 = near[..k].iter().map(|&(_, i)| targets[i]).sum();
+                    out[slot].push(s / k as f64);
+                }
             }
         }
     }
@@ -139,6 +175,9 @@ impl Model for Knn {
     }
     fn drops_first_level(&self) -> bool {
         false
+    }
+    fn train_rows_limit(&self) -> Option<usize> {
+        Some(TRAIN_SCORE_ROWS)
     }
     fn complexity(&self, params: &Params) -> f64 {
         // Larger k averages more rows: a smoother, simpler fit.

@@ -161,6 +161,12 @@ pub trait Model: Send + Sync {
     /// Whether categorical features drop their first level (linear models).
     fn drops_first_level(&self) -> bool;
 
+    /// At most this many fitting rows are predicted for training scores (for families whose
+    /// prediction on their own fitting rows is quadratic); `None`: all of them.
+    fn train_rows_limit(&self) -> Option<usize> {
+        None
+    }
+
     /// Orders grid points from simplest to most complex, for the one-standard-error rule:
     /// a smaller key is simpler.
     fn complexity(&self, params: &Params) -> f64;
