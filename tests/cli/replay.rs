@@ -20,17 +20,34 @@ fn sql(d: &Dir, statement: &str) {
 #[test]
 fn every_demo_experiment_replays_bit_for_bit() {
     let d = Dir::new("replay-demos");
-    for (i, name) in ["heating-trial", "bay-yield", "bay-yield-hash"]
-        .iter()
-        .enumerate()
-    {
+    let ex = Path::new(env!("CARGO_MANIFEST_DIR")).join("experiments");
+    std::fs::create_dir_all(d.path.join("models")).unwrap();
+    d.copy(
+        &ex.join("models/bagged_stumps.py"),
+        "models/bagged_stumps.py",
+    );
+    let demos = [
+        "heating-trial",
+        "bay-yield",
+        "bay-yield-hash",
+        "outbreak",
+        "heating-trial-stumps",
+    ];
+    for (i, name) in demos.iter().enumerate() {
         demo(&d, name);
         d.probity(&["run", &format!("{name}.toml"), "--threads", "2"])
             .expect(0);
         let run = (2 * i + 1).to_string();
         // A different thread count must not matter either.
         let j = d
-            .probity(&["replay", &run, "--json", "--threads", "1"])
+            .probity(&[
+                "replay",
+                &run,
+                "--json",
+                "--threads",
+                "1",
+                "--allow-commands",
+            ])
             .expect(0)
             .json();
         assert_eq!(j["identical"], true, "{name}: {j}");
