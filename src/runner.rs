@@ -814,9 +814,12 @@ fn run_task(
         }
         _ => (xf.x.clone(), yf.clone()),
     };
-    let preds = model.fit_predict_grid(&xf, &yf, grid, &[&xt, &xs.x], &mut notes)?;
     let mut scores = Vec::with_capacity(grid.len());
-    for (g, p) in preds.iter().enumerate() {
+    let mut fit_notes = Notes::new();
+    model.fit_predict_each(&xf, &yf, grid, &[&xt, &xs.x], &mut fit_notes, &mut |g, p| {
+        if g != scores.len() {
+            return Err(Error::Internal(format!("grid point {g} arrived out of order")));
+        }
         if p.iter().flatten().any(|v| !v.is_finite()) {
             return Err(Error::Input(format!(
                 "{} {}: predictions are not finite (overflow); rescale the features or the target",
@@ -824,10 +827,11 @@ fn run_task(
                 fmt_params(&grid[g])
             )));
         }
-        scores.push(Ok((
-            score_all(&prep.metrics, &yt, &p[0], nc),
-            score_all(&prep.metrics, &ys, &p[1], nc),
-        )));
+        scores.push(Ok((score_all(&prep.metrics, &yt, &p[0], nc), score_all(&prep.metrics, &ys, &p[1], nc))));
+        Ok(())
+    })?;
+    for (k, v) in fit_notes {
+        *notes.entry(k).or_insert(0) += v;
     }
     Ok(TaskOut { scores, notes })
 }

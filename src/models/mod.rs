@@ -158,6 +158,28 @@ pub trait Model: Send + Sync {
         Ok(out)
     }
 
+    /// As `fit_predict_grid`, handing each grid point's predictions to `each` as soon as they
+    /// exist, so a long grid on many rows never holds every prediction at once. Families whose
+    /// fits are cheap to keep (coefficients) override it.
+    fn fit_predict_each(
+        &self,
+        x: &Design,
+        y: &[f64],
+        grid: &[Params],
+        targets: &[&Matrix],
+        notes: &mut Notes,
+        each: &mut dyn FnMut(usize, Vec<Vec<f64>>) -> Result<()>,
+    ) -> Result<()> {
+        for (g, p) in self
+            .fit_predict_grid(x, y, grid, targets, notes)?
+            .into_iter()
+            .enumerate()
+        {
+            each(g, p)?;
+        }
+        Ok(())
+    }
+
     /// Whether categorical features drop their first level (linear models).
     fn drops_first_level(&self) -> bool;
 

@@ -44,12 +44,28 @@ impl Model for Ridge {
         targets: &[&Matrix],
         notes: &mut Notes,
     ) -> Result<Vec<Vec<Vec<f64>>>> {
+        let mut out = vec![Vec::new(); grid.len()];
+        self.fit_predict_each(x, y, grid, targets, notes, &mut |g, p| {
+            out[g] = p;
+            Ok(())
+        })?;
+        Ok(out)
+    }
+    fn fit_predict_each(
+        &self,
+        x: &Design,
+        y: &[f64],
+        grid: &[Params],
+        targets: &[&Matrix],
+        notes: &mut Notes,
+        each: &mut dyn FnMut(usize, Vec<Vec<f64>>) -> Result<()>,
+    ) -> Result<()> {
         let lambdas: Vec<f64> = grid.iter().map(lambda).collect();
-        let fits = self.fit_all(&x.x, y, &lambdas, notes);
-        Ok(fits
-            .iter()
-            .map(|f| targets.iter().map(|t| f.predict(t)).collect())
-            .collect())
+        // The fits are coefficient vectors: keep them all, predict one grid point at a time.
+        for (g, f) in self.fit_all(&x.x, y, &lambdas, notes).iter().enumerate() {
+            each(g, targets.iter().map(|t| f.predict(t)).collect())?;
+        }
+        Ok(())
     }
     fn drops_first_level(&self) -> bool {
         true
