@@ -71,7 +71,8 @@ pub fn predict_many(
     // an earlier row: the same neighbours as a full sort by (distance, row). Queries go in
     // blocks of 8 per pass over the points, so each point is read from memory once per block.
     const BLOCK: usize = 8;
-    let mut nears: Vec<Vec<(f64, usize)>> = vec![Vec::with_capacity(kmax + 1); BLOCK];
+    let mut nears: Vec<Vec<(f64, usize)>> =
+        (0..BLOCK).map(|_| Vec::with_capacity(kmax + 1)).collect();
     for r0 in (0..queries.rows).step_by(BLOCK) {
         let r1 = (r0 + BLOCK).min(queries.rows);
         for near in nears.iter_mut() {
@@ -93,8 +94,7 @@ pub fn predict_many(
                 near.insert(at, (d, i));
             }
         }
-        for b in 0..r1 - r0 {
-            let near = &nears[b];
+        for near in &nears[..r1 - r0] {
             for (slot, &k) in ks.iter().enumerate() {
                 let k = k.min(n);
                 if classes > 0 {

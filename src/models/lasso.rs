@@ -168,12 +168,9 @@ impl Model for Lasso {
         targets: &[&Matrix],
         notes: &mut Notes,
     ) -> Result<Vec<Vec<Vec<f64>>>> {
-        let mut out = vec![Vec::new(); grid.len()];
-        self.fit_predict_each(x, y, grid, targets, notes, &mut |g, p| {
-            out[g] = p;
-            Ok(())
-        })?;
-        Ok(out)
+        super::collect(grid.len(), |each| {
+            self.fit_predict_each(x, y, grid, targets, notes, each)
+        })
     }
     fn fit_predict_each(
         &self,
@@ -186,10 +183,7 @@ impl Model for Lasso {
     ) -> Result<()> {
         let lambdas: Vec<f64> = grid.iter().map(lambda).collect();
         // The fits are coefficient vectors: keep them all, predict one grid point at a time.
-        for (g, f) in self.fit_path(&x.x, y, &lambdas, notes).iter().enumerate() {
-            each(g, targets.iter().map(|t| f.predict(t)).collect())?;
-        }
-        Ok(())
+        super::emit(&self.fit_path(&x.x, y, &lambdas, notes), targets, each)
     }
     fn drops_first_level(&self) -> bool {
         true

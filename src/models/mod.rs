@@ -216,6 +216,31 @@ pub fn model_for(spec: &ModelSpec, classes: usize) -> Box<dyn Model> {
     }
 }
 
+/// Hand each already-fitted grid point's predictions for `targets` to `each`, one at a time.
+pub(crate) fn emit(
+    fits: &[Fitted],
+    targets: &[&Matrix],
+    each: &mut dyn FnMut(usize, Vec<Vec<f64>>) -> Result<()>,
+) -> Result<()> {
+    for (g, f) in fits.iter().enumerate() {
+        each(g, targets.iter().map(|t| f.predict(t)).collect())?;
+    }
+    Ok(())
+}
+
+/// Gather what a `fit_predict_each` hands out into `[grid point][target][row]`.
+pub(crate) fn collect(
+    n: usize,
+    run: impl FnOnce(&mut dyn FnMut(usize, Vec<Vec<f64>>) -> Result<()>) -> Result<()>,
+) -> Result<Vec<Vec<Vec<f64>>>> {
+    let mut out = vec![Vec::new(); n];
+    run(&mut |g, p| {
+        out[g] = p;
+        Ok(())
+    })?;
+    Ok(out)
+}
+
 /// Stands in for an external command inside the grid machinery; the runner runs the command.
 pub struct ExternalModel;
 
