@@ -202,3 +202,25 @@ pub(crate) fn user() -> String {
         })
         .unwrap_or_else(|| "unknown".into())
 }
+
+/// Phase timings on stderr when `PROBITY_TIMINGS` is set (for benchmarking; see DEVELOPERS.md).
+pub(crate) struct Phases {
+    on: bool,
+    last: std::time::Instant,
+}
+
+impl Phases {
+    pub(crate) fn start() -> Phases {
+        Phases {
+            on: std::env::var_os("PROBITY_TIMINGS").is_some(),
+            last: std::time::Instant::now(),
+        }
+    }
+    pub(crate) fn mark(&mut self, what: &str) {
+        if self.on {
+            let now = std::time::Instant::now();
+            eprintln!("timing {what}: {:.3} s", (now - self.last).as_secs_f64());
+            self.last = now;
+        }
+    }
+}

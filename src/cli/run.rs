@@ -24,7 +24,9 @@ pub struct Args {
 
 pub fn run(g: &Global, a: Args) -> Result<i32> {
     let started = chrono::Utc::now();
+    let mut phases = super::Phases::start();
     let (spec, table) = load_inputs(&a.spec)?;
+    phases.mark("load");
     let threads = a
         .threads
         .unwrap_or_else(|| std::thread::available_parallelism().map_or(1, |n| n.get()))
@@ -51,11 +53,11 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
         });
     }
     let mut outcome = crate::runner::run(&spec, &table, threads)?;
+    phases.mark("run");
     let mut ledger = match early {
         Some(l) => l,
         None => open_for_write(g)?,
     };
-    exposure_warnings(&ledger, &table, &mut outcome)?;
     let finished = chrono::Utc::now();
     let meta = RunMeta {
         started_at: started.to_rfc3339_opts(chrono::SecondsFormat::Millis, true),
@@ -71,7 +73,10 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
         target_triple: env!("PROBITY_TARGET").to_string(),
         replay: None,
     };
+    exposure_warnings(&ledger, &table, &mut outcome)?;
+    phases.mark("exposure");
     let id = ledger.write_run(&spec, &table, &outcome, &meta)?;
+    phases.mark("ledger");
     let detail = ledger
         .run(id)?
         .ok_or_else(|| crate::error::Error::Internal(format!("run {id} vanished after commit")))?;

@@ -7,6 +7,11 @@ use crate::error::{Error, Result, did_you_mean};
 use sha2::{Digest, Sha256};
 use std::path::{Path, PathBuf};
 
+mod fast;
+
+/// Bytes read per block by the fast loader.
+const FAST_BLOCK: usize = 8 << 20;
+
 /// Marker for a missing text cell.
 pub const MISSING_CODE: u32 = u32::MAX;
 
@@ -132,6 +137,13 @@ fn read(path: &Path) -> Result<Vec<u8>> {
 
 /// Load a CSV file. Columns named in `text_columns` are read as text even when numeric.
 pub fn load(path: &Path, text_columns: &[&str]) -> Result<Table> {
+    if path.is_dir() {
+        return Err(Error::data(path, None, None, "is a folder, not a CSV file"));
+    }
+    let threads = std::thread::available_parallelism().map_or(1, |n| n.get());
+    if let Some(t) = fast::load(path, text_columns, threads, FAST_BLOCK)? {
+        return Ok(t);
+    }
     let bytes = read(path)?;
     let sha256 = crate::spec::hex(&Sha256::digest(&bytes));
     parse(&bytes, path, sha256, text_columns)
@@ -263,21 +275,9 @@ pub fn parse(bytes: &[u8], path: &Path, sha256: String, text_columns: &[&str]) -
             "the file has a header but no data rows",
         ));
     }
-    let is_text: Vec<bool> = (0..ncol)
-        .map(|c| forced[c] || counts[c].0 == 0 || counts[c].1 > counts[c].0)
-        .collect();
-    for c in (0..ncol).filter(|&c| !is_text[c]) {
-        if let Some((row, text, nonfinite)) = &first_bad[c] {
-            let msg = if *nonfinite {
-                format!("'{text}' is not a finite number; leave the cell empty for a missing value")
-            } else {
-                format!(
-                    "'{text}' is not a number in a numeric column; fix the value, leave the cell empty for a missing value, or list the column in [data] categorical"
-                )
-            };
-            return Err(Error::data(path, Some(lines[*row]), Some(&headers[c]), msg));
-        }
-    }
+    let is_text = decide(path, &headers, &forced, &counts, &first_bad, |row| {
+        lines[row]
+    })?;
     // Pass 2, only when some column is text: intern its cells, then sort the levels.
     let mut texts: Vec<Option<Interned>> = is_text
         .iter()
@@ -309,7 +309,50 @@ pub fn parse(bytes: &[u8], path: &Path, sha256: String, text_columns: &[&str]) -
             }
         }
     }
-    let mut columns = Vec::with_capacity(ncol);
+    Ok(Table {
+        path: path.to_path_buf(),
+        sha256,
+        columns: assemble(headers, nums, texts),
+        lines,
+    })
+}
+
+/// Which columns are text (forced, no numbers, or mostly non-numbers); an error for the first
+/// bad cell of a numeric column. `line` maps a row to its CSV line.
+fn decide(
+    path: &Path,
+    headers: &[String],
+    forced: &[bool],
+    counts: &[(usize, usize)],
+    first_bad: &[Option<(usize, String, bool)>],
+    line: impl Fn(usize) -> u64,
+) -> Result<Vec<bool>> {
+    let ncol = headers.len();
+    let is_text: Vec<bool> = (0..ncol)
+        .map(|c| forced[c] || counts[c].0 == 0 || counts[c].1 > counts[c].0)
+        .collect();
+    for c in (0..ncol).filter(|&c| !is_text[c]) {
+        if let Some((row, text, nonfinite)) = &first_bad[c] {
+            let msg = if *nonfinite {
+                format!("'{text}' is not a finite number; leave the cell empty for a missing value")
+            } else {
+                format!(
+                    "'{text}' is not a number in a numeric column; fix the value, leave the cell empty for a missing value, or list the column in [data] categorical"
+                )
+            };
+            return Err(Error::data(path, Some(line(*row)), Some(&headers[c]), msg));
+        }
+    }
+    Ok(is_text)
+}
+
+/// Columns from the parsed numbers and the interned text columns (levels sorted by byte order).
+fn assemble(
+    headers: Vec<String>,
+    nums: Vec<Vec<f64>>,
+    texts: Vec<Option<Interned>>,
+) -> Vec<Column> {
+    let mut columns = Vec::with_capacity(headers.len());
     for ((name, num), text) in headers.into_iter().zip(nums).zip(texts) {
         let values = match text {
             None => Values::Numeric(num),
@@ -336,12 +379,7 @@ pub fn parse(bytes: &[u8], path: &Path, sha256: String, text_columns: &[&str]) -
         };
         columns.push(Column { name, values });
     }
-    Ok(Table {
-        path: path.to_path_buf(),
-        sha256,
-        columns,
-        lines,
-    })
+    columns
 }
 
 /// The 1-based line of the record starting at `offset` (line ends before it are skipped).
@@ -429,5 +467,106 @@ mod tests {
                 levels: vec!["10".into(), "9".into()]
             }
         );
+    }
+
+    /// A deterministic mixed file: numbers in several spellings, text, missing cells, an
+    /// all-text column, padding spaces.
+    fn mixed(rows: usize, crlf: bool, last_newline: bool) -> String {
+        let end = if crlf { "\r\n" } else { "\n" };
+        let mut s = format!("id,x, y ,grade,note,code{end}");
+        for r in 0..rows {
+            let x = match r % 7 {
+                0 => format!("{}", r as f64 * 0.1),
+                1 => format!("{:e}", r as f64 * 1.5e-9),
+                2 => String::new(),
+                3 => format!(" -{}.25 ", r),
+                4 => format!("+{r}"),
+                5 => format!("{}.", r),
+                _ => format!("{}", 1.0 / (r as f64 + 1.0)),
+            };
+            let grade = ["a", "b", "é", ""][r % 4];
+            s.push_str(&format!("{r},{x},{},{grade},n{},{}", r * 3, r % 11, r % 5));
+            if r + 1 < rows || last_newline {
+                s.push_str(end);
+            }
+        }
+        s
+    }
+
+    #[test]
+    fn fast_loader_equals_the_general_reader() {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("m.csv");
+        for (rows, crlf, last) in [(1, false, true), (3000, false, true), (2500, true, false)] {
+            let text = mixed(rows, crlf, last);
+            std::fs::write(&path, &text).unwrap();
+            for forced in [&[][..], &["code"][..]] {
+                let want = parse(
+                    text.as_bytes(),
+                    &path,
+                    crate::spec::hex(&Sha256::digest(text.as_bytes())),
+                    forced,
+                )
+                .unwrap();
+                for threads in [1, 2, 3] {
+                    for block in [1024, 4096, 1 << 20] {
+                        let got = fast::load(&path, forced, threads, block)
+                            .unwrap()
+                            .expect("a plain file takes the fast path");
+                        for (g, w) in got.columns.iter().zip(&want.columns) {
+                            let first = (0..rows).find(|&r| g.text(r) != w.text(r));
+                            let same = match (&g.values, &w.values) {
+                                // Bitwise, so missing cells (NaN) compare equal.
+                                (Values::Numeric(a), Values::Numeric(b)) => a
+                                    .iter()
+                                    .map(|v| v.to_bits())
+                                    .eq(b.iter().map(|v| v.to_bits())),
+                                (a, b) => a == b,
+                            };
+                            assert!(
+                                same && g.name == w.name,
+                                "column {} differs ({rows} rows, {threads} threads, block {block}), first at row {first:?}: {:?} vs {:?}",
+                                w.name,
+                                first.map(|r| g.text(r)),
+                                first.map(|r| w.text(r))
+                            );
+                        }
+                        assert_eq!(got.lines, want.lines);
+                        assert_eq!(got.sha256, want.sha256);
+                    }
+                }
+            }
+        }
+    }
+
+    #[test]
+    fn fast_loader_leaves_unusual_files_to_the_general_reader() {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("u.csv");
+        for text in [
+            "a,b\n1,\"2\"\n",
+            "a,b\n1,2\n\n3,4\n",
+            "a,b\n1,2\n3\n",
+            "a,b\n1,2\r3,4\n",
+            "a,a\n1,2\n",
+            "a,b\n",
+            // A column that turns to text after a numeric first row.
+            "a,b\n1,2\n3,x\n4,y\n5,z\n",
+        ] {
+            std::fs::write(&path, text).unwrap();
+            assert!(
+                fast::load(&path, &[], 2, 1024).unwrap().is_none(),
+                "{text:?}"
+            );
+        }
+        // A bad number in a numeric column is reported with its line, as the general reader does.
+        std::fs::write(&path, "a,b\n1,2\n2,3\nzz,4\n").unwrap();
+        let e = fast::load(&path, &[], 2, 1024).unwrap_err().to_string();
+        assert!(
+            e.contains("u.csv:4 (column 'a')") && e.contains("'zz'"),
+            "{e}"
+        );
+        std::fs::write(&path, [0xffu8, b',', b'b', b'\n', b'1', b',', b'2', b'\n']).unwrap();
+        assert!(fast::load(&path, &[], 2, 1024).unwrap().is_none());
     }
 }

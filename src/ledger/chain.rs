@@ -95,28 +95,60 @@ pub fn sections(conn: &Connection, kind: &str, id: i64) -> Result<Option<Section
     Ok(Some(out))
 }
 
+fn put(h: &mut Sha256, tag: u8, bytes: &[u8]) {
+    h.update([tag]);
+    h.update((bytes.len() as u64).to_le_bytes());
+    h.update(bytes);
+}
+
+/// One value's canonical bytes.
+fn put_value(h: &mut Sha256, v: rusqlite::types::ValueRef<'_>) {
+    use rusqlite::types::ValueRef as V;
+    match v {
+        V::Null => put(h, b'n', b""),
+        V::Integer(i) => put(h, b'i', i.to_string().as_bytes()),
+        V::Real(f) => put(h, b'r', format!("{:016x}", f.to_bits()).as_bytes()),
+        V::Text(t) => put(h, b't', t),
+        V::Blob(b) => put(h, b'b', b),
+    }
+}
+
 /// The canonical bytes of an entry, fed straight into a hasher.
 fn feed(h: &mut Sha256, sections: &Sections) {
-    let mut put = |tag: u8, bytes: &[u8]| {
-        h.update([tag]);
-        h.update((bytes.len() as u64).to_le_bytes());
-        h.update(bytes);
-    };
     for (name, rows) in sections {
-        put(b'S', name.as_bytes());
+        put(h, b'S', name.as_bytes());
         for row in rows {
-            put(b'R', &(row.len() as u64).to_le_bytes());
+            put(h, b'R', &(row.len() as u64).to_le_bytes());
             for v in row {
-                match v {
-                    Sql::Null => put(b'n', b""),
-                    Sql::Integer(i) => put(b'i', i.to_string().as_bytes()),
-                    Sql::Real(f) => put(b'r', format!("{:016x}", f.to_bits()).as_bytes()),
-                    Sql::Text(t) => put(b't', t.as_bytes()),
-                    Sql::Blob(b) => put(b'b', b),
-                }
+                put_value(h, v.into());
             }
         }
     }
+}
+
+/// The hash of an entry read straight from the ledger, row by row (a run's sections can hold
+/// hundreds of thousands of rows; nothing is collected). `None` when its main row is gone.
+fn stream_hash(conn: &Connection, prev: &str, kind: &str, id: i64) -> Result<Option<String>> {
+    let mut h = Sha256::new();
+    h.update(prev.as_bytes());
+    for (i, (name, sql)) in section_queries(kind).iter().enumerate() {
+        put(&mut h, b'S', name.as_bytes());
+        let mut st = conn.prepare(sql).map_err(sql_err("read entry"))?;
+        let n = st.column_count();
+        let mut rows = st.query([id]).map_err(sql_err("read entry"))?;
+        let mut any = false;
+        while let Some(r) = rows.next().map_err(sql_err("read entry"))? {
+            any = true;
+            put(&mut h, b'R', &(n as u64).to_le_bytes());
+            for c in 0..n {
+                put_value(&mut h, r.get_ref(c).map_err(sql_err("read entry"))?);
+            }
+        }
+        if i == 0 && !any {
+            return Ok(None);
+        }
+    }
+    Ok(Some(crate::spec::hex(&h.finalize())))
 }
 
 /// SHA-256(prev_hash || canonical bytes), hex.
@@ -148,9 +180,8 @@ pub fn append(
     origin: Option<(&str, &str)>,
 ) -> Result<String> {
     let prev = head(conn)?;
-    let s = sections(conn, kind, id)?
+    let hash = stream_hash(conn, &prev, kind, id)?
         .ok_or_else(|| Error::Internal(format!("{kind} {id} vanished before it was chained")))?;
-    let hash = entry_hash(&prev, &s);
     conn.execute(
         "INSERT INTO chain (kind, ref_id, prev_hash, entry_hash, origin, origin_prev) VALUES (?1, ?2, ?3, ?4, ?5, ?6)",
         params![kind, id, prev, hash, origin.map(|o| o.0), origin.map(|o| o.1)],
@@ -210,15 +241,14 @@ pub fn verify(conn: &Connection) -> Result<(usize, Vec<Break>)> {
                 what: format!("links to previous hash {prev} but the entry before it has {expected_prev} (entries removed or reordered)"),
             });
         }
-        match sections(conn, kind, *id)? {
+        match stream_hash(conn, prev, kind, *id)? {
             None => breaks.push(Break {
                 seq: Some(*seq),
                 kind: kind.clone(),
                 id: *id,
                 what: format!("{kind} {id} is missing (deleted)"),
             }),
-            Some(s) => {
-                let computed = entry_hash(prev, &s);
+            Some(computed) => {
                 if computed != *stored {
                     breaks.push(Break {
                         seq: Some(*seq),
