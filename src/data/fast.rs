@@ -7,7 +7,7 @@
 //! a bad header) returns `None`, and the general reader, which owns every error message about the
 //! file's shape, reads the file instead. The result equals the general reader's, cell for cell.
 
-use super::{Interned, MISSING_CODE, Table, assemble, decide, number};
+use super::{Interned, MISSING_CODE, Table, assemble, cell_value, decide, number};
 use crate::error::{Error, Result};
 use sha2::{Digest, Sha256};
 use std::collections::BTreeMap;
@@ -450,24 +450,7 @@ fn parse_piece(piece: &[u8], layout: &Layout, mut out: Out<'_>, expect: usize) -
                 };
             }
             if !layout.forced[c] && !s.is_empty() {
-                out.nums[c][row] = match number(s) {
-                    Some(Ok(v)) => {
-                        counts[c].0 += 1;
-                        v
-                    }
-                    other => {
-                        let nonfinite = other.is_some();
-                        if nonfinite {
-                            counts[c].0 += 1;
-                        } else {
-                            counts[c].1 += 1;
-                        }
-                        if first_bad[c].is_none() {
-                            first_bad[c] = Some((row, s.to_string(), nonfinite));
-                        }
-                        f64::NAN
-                    }
-                };
+                out.nums[c][row] = cell_value(s, row, &mut counts[c], &mut first_bad[c]);
             }
             c += 1;
             if i == stop {

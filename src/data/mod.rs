@@ -245,24 +245,7 @@ pub fn parse(bytes: &[u8], path: &Path, sha256: String, text_columns: &[&str]) -
             let v = if f.is_empty() {
                 f64::NAN
             } else {
-                match number(f) {
-                    Some(Ok(v)) => {
-                        counts[c].0 += 1;
-                        v
-                    }
-                    other => {
-                        let nonfinite = other.is_some();
-                        if nonfinite {
-                            counts[c].0 += 1;
-                        } else {
-                            counts[c].1 += 1;
-                        }
-                        if first_bad[c].is_none() {
-                            first_bad[c] = Some((row, f.to_string(), nonfinite));
-                        }
-                        f64::NAN
-                    }
-                }
+                cell_value(f, row, &mut counts[c], &mut first_bad[c])
             };
             nums[c].push(v);
         }
@@ -397,6 +380,32 @@ fn line_at(body: &[u8], offset: usize) -> u64 {
 
 /// A text column being read: codes in first-seen order, and level -> first-seen code.
 type Interned = (Vec<u32>, std::collections::BTreeMap<String, u32>);
+
+/// The first cell of a column that is not a finite number: (row, text, non-finite number).
+type FirstBad = Option<(usize, String, bool)>;
+
+/// A non-empty cell's value in a column being typed: counts (numbers, texts) and keeps the
+/// column's first bad cell; NaN for a cell that is not a finite number.
+fn cell_value(s: &str, row: usize, counts: &mut (usize, usize), first_bad: &mut FirstBad) -> f64 {
+    match number(s) {
+        Some(Ok(v)) => {
+            counts.0 += 1;
+            v
+        }
+        other => {
+            let nonfinite = other.is_some();
+            if nonfinite {
+                counts.0 += 1;
+            } else {
+                counts.1 += 1;
+            }
+            if first_bad.is_none() {
+                *first_bad = Some((row, s.to_string(), nonfinite));
+            }
+            f64::NAN
+        }
+    }
+}
 
 /// A finite number, or the reason it is not one.
 fn number(s: &str) -> Option<std::result::Result<f64, ()>> {
