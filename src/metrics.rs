@@ -98,20 +98,9 @@ impl Metric {
             return None;
         }
         match self {
-            Metric::Mse => Some(sse(y, pred) / n as f64),
-            Metric::Rmse => Some((sse(y, pred) / n as f64).sqrt()),
-            Metric::Mae => {
-                Some(y.iter().zip(pred).map(|(a, b)| (a - b).abs()).sum::<f64>() / n as f64)
-            }
-            Metric::R2 => {
-                let mean = y.iter().sum::<f64>() / n as f64;
-                let sst: f64 = y.iter().map(|v| (v - mean) * (v - mean)).sum();
-                // One distinct value among the scored rows (always so with leave-one-out).
-                if sst == 0.0 || y.iter().all(|v| *v == y[0]) {
-                    None
-                } else {
-                    Some(1.0 - sse(y, pred) / sst)
-                }
+            Metric::Mse | Metric::Rmse | Metric::Mae | Metric::R2 => {
+                let sae = y.iter().zip(pred).map(|(a, b)| (a - b).abs()).sum::<f64>();
+                Truth::of(y).score(self, sse(y, pred), sae)
             }
             Metric::Accuracy => {
                 let hits = y
@@ -233,8 +222,54 @@ fn sse(y: &[f64], pred: &[f64]) -> f64 {
     y.iter().zip(pred).map(|(a, b)| (a - b) * (a - b)).sum()
 }
 
+/// What the regression metrics need from the true values of a set of rows besides the sums
+/// of squared and absolute errors: so a caller that accumulates those sums itself (the
+/// sufficient-statistics path for least squares) scores exactly as `Metric::score` does.
+#[derive(Debug, Clone, Copy)]
+pub struct Truth {
+    pub n: usize,
+    /// Total sum of squares about the mean; `None` when the rows hold one distinct value.
+    pub sst: Option<f64>,
+}
+
+impl Truth {
+    pub fn of(y: &[f64]) -> Truth {
+        let n = y.len();
+        let mean = y.iter().sum::<f64>() / n.max(1) as f64;
+        let sst: f64 = y.iter().map(|v| (v - mean) * (v - mean)).sum();
+        // One distinct value among the scored rows (always so with leave-one-out).
+        let constant = sst == 0.0 || y.iter().all(|v| *v == y[0]);
+        Truth {
+            n,
+            sst: (!constant).then_some(sst),
+        }
+    }
+
+    /// A regression metric from the sums of squared and absolute errors, taken in row order.
+    pub fn score(&self, m: Metric, sse: f64, sae: f64) -> Option<f64> {
+        if self.n == 0 {
+            return None;
+        }
+        let n = self.n as f64;
+        match m {
+            Metric::Mse => Some(sse / n),
+            Metric::Rmse => Some((sse / n).sqrt()),
+            Metric::Mae => Some(sae / n),
+            Metric::R2 => self.sst.map(|sst| 1.0 - sse / sst),
+            _ => None,
+        }
+    }
+}
+
 /// Every metric of `metrics` on one set of rows (`classes` = 0 for regression).
 pub fn score_all(metrics: &[Metric], y: &[f64], pred: &[f64], classes: usize) -> Vec<Option<f64>> {
+    if classes == 0 && metrics.iter().all(|m| !m.is_classification()) {
+        // The regression metrics share their sums: take them once.
+        let truth = Truth::of(y);
+        let sae = y.iter().zip(pred).map(|(a, b)| (a - b).abs()).sum::<f64>();
+        let sse = sse(y, pred);
+        return metrics.iter().map(|&m| truth.score(m, sse, sae)).collect();
+    }
     metrics.iter().map(|m| m.score(y, pred, classes)).collect()
 }
 

@@ -8,8 +8,9 @@
 use crate::data::{Table, Values};
 use crate::error::{Error, Result};
 use crate::guard::Sealed;
-use crate::metrics::{Metric, mean_se, score_all};
+use crate::metrics::{Metric, Truth, mean_se, score_all};
 use crate::models::encode::{Encoder, Notes};
+use crate::models::gram::{Gram, Source, error_sums_both};
 use crate::models::{Design, Fitted, Params, model_for};
 use crate::spec::{Family, Missing, ModelSpec, Named, Rule, Spec, SplitMethod, hex};
 use crate::split::rng::{Domain, derive_seed};
@@ -778,6 +779,42 @@ fn run_task(
             notes: Notes::new(),
         });
     }
+    if let Some(lambdas) = gram_lambdas(table, prep, entry, grid, impute) {
+        let columns = numeric_columns(table, &prep.features);
+        let src = Source {
+            columns: &columns,
+            target: &prep.target,
+            table_row: &prep.rows,
+        };
+        if let Some(fits) = Gram::of(&src, &fold.fit).solve(&lambdas) {
+            let tf = Truth::of(&fold.fit.iter().map(|&i| prep.target[i]).collect::<Vec<_>>());
+            let ts = Truth::of(
+                &fold
+                    .score
+                    .iter()
+                    .map(|&i| prep.target[i])
+                    .collect::<Vec<_>>(),
+            );
+            let (on_fit, on_score) = error_sums_both(&src, &fold.fit, &fold.score, &fits);
+            let mut scores = Vec::with_capacity(grid.len());
+            for (g, (f, s)) in on_fit.iter().zip(&on_score).enumerate() {
+                if ![f.0, f.1, s.0, s.1].iter().all(|v| v.is_finite()) {
+                    return Err(not_finite(entry, &grid[g]));
+                }
+                let of = |t: &Truth, sums: &(f64, f64)| -> Scores {
+                    prep.metrics
+                        .iter()
+                        .map(|&m| t.score(m, sums.0, sums.1))
+                        .collect()
+                };
+                scores.push(Ok((of(&tf, f), of(&ts, s))));
+            }
+            return Ok(TaskOut {
+                scores,
+                notes: Notes::new(),
+            });
+        }
+    }
     let model = model_for(entry, nc);
     let fit_rows: Vec<usize> = fold.fit.iter().map(|&i| prep.rows[i]).collect();
     let score_rows: Vec<usize> = fold.score.iter().map(|&i| prep.rows[i]).collect();
@@ -816,24 +853,82 @@ fn run_task(
     };
     let mut scores = Vec::with_capacity(grid.len());
     let mut fit_notes = Notes::new();
-    model.fit_predict_each(&xf, &yf, grid, &[&xt, &xs.x], &mut fit_notes, &mut |g, p| {
-        if g != scores.len() {
-            return Err(Error::Internal(format!("grid point {g} arrived out of order")));
-        }
-        if p.iter().flatten().any(|v| !v.is_finite()) {
-            return Err(Error::Input(format!(
-                "{} {}: predictions are not finite (overflow); rescale the features or the target",
-                entry.family.name(),
-                fmt_params(&grid[g])
+    model.fit_predict_each(
+        &xf,
+        &yf,
+        grid,
+        &[&xt, &xs.x],
+        &mut fit_notes,
+        &mut |g, p| {
+            if g != scores.len() {
+                return Err(Error::Internal(format!(
+                    "grid point {g} arrived out of order"
+                )));
+            }
+            if p.iter().flatten().any(|v| !v.is_finite()) {
+                return Err(not_finite(entry, &grid[g]));
+            }
+            scores.push(Ok((
+                score_all(&prep.metrics, &yt, &p[0], nc),
+                score_all(&prep.metrics, &ys, &p[1], nc),
             )));
-        }
-        scores.push(Ok((score_all(&prep.metrics, &yt, &p[0], nc), score_all(&prep.metrics, &ys, &p[1], nc))));
-        Ok(())
-    })?;
+            Ok(())
+        },
+    )?;
     for (k, v) in fit_notes {
         *notes.entry(k).or_insert(0) += v;
     }
     Ok(TaskOut { scores, notes })
+}
+
+fn not_finite(entry: &ModelSpec, params: &Params) -> Error {
+    Error::Input(format!(
+        "{} {}: predictions are not finite (overflow); rescale the features or the target",
+        entry.family.name(),
+        fmt_params(params)
+    ))
+}
+
+/// Most features the sufficient-statistics path takes (its eigendecomposition is O(p^3) per
+/// sweep; the SVD path is the better choice beyond this).
+const GRAM_MAX_FEATURES: usize = 200;
+
+/// The penalties of a grid that the sufficient-statistics path (`models::gram`) can take:
+/// standardised ridge on numeric features with nothing imputed and every penalty positive.
+fn gram_lambdas(
+    table: &Table,
+    prep: &Prepared,
+    entry: &ModelSpec,
+    grid: &[Params],
+    impute: bool,
+) -> Option<Vec<f64>> {
+    let plain = entry.family == Family::Ridge
+        && entry.standardize
+        && entry.command.is_none()
+        && !impute
+        && prep.features.len() <= GRAM_MAX_FEATURES
+        && prep
+            .features
+            .iter()
+            .all(|&c| matches!(table.columns[c].values, Values::Numeric(_)));
+    if !plain {
+        return None;
+    }
+    grid.iter()
+        .map(|p| crate::models::param(p, "lambda").map(|v| v.as_f64()))
+        .collect::<Option<Vec<f64>>>()
+        .filter(|ls| ls.iter().all(|&l| l > 0.0 && l.is_finite()))
+}
+
+/// The numeric feature columns, by table row.
+fn numeric_columns<'a>(table: &'a Table, features: &[usize]) -> Vec<&'a [f64]> {
+    features
+        .iter()
+        .filter_map(|&c| match &table.columns[c].values {
+            Values::Numeric(v) => Some(v.as_slice()),
+            Values::Text { .. } => None,
+        })
+        .collect()
 }
 
 /// `name=value` pairs for messages and tables.
@@ -913,9 +1008,29 @@ pub fn run(spec: &Spec, table: &Table, threads: usize) -> Result<RunOutcome> {
     // The refitted model's predictions on the development rows, digested: replay compares it.
     let predictions_digest = {
         let rows: Vec<usize> = dev_rows.iter().map(|&i| prep.rows[i]).collect();
-        let p = predict_with(
-            spec, table, &prep, &refit, &dev_rows, table, &rows, &mut notes,
-        )?;
+        let columns = numeric_columns(table, &prep.features);
+        let p = match &refit.fitted {
+            // A linear model on plain numeric columns is applied straight to the table (the
+            // same arithmetic as `Fitted::predict`, without a copy of the design).
+            Fitted::Linear {
+                intercept,
+                weights,
+                poly: None,
+            } if columns.len() == prep.features.len()
+                && weights.len() == columns.len()
+                && !refit.encoder.impute =>
+            {
+                let src = Source {
+                    columns: &columns,
+                    target: &prep.target,
+                    table_row: &prep.rows,
+                };
+                crate::models::gram::predictions(&src, &dev_rows, *intercept, weights)
+            }
+            _ => predict_with(
+                spec, table, &prep, &refit, &dev_rows, table, &rows, &mut notes,
+            )?,
+        };
         let mut h = Sha256::new();
         for v in &p {
             h.update(v.to_le_bytes());
@@ -981,6 +1096,29 @@ fn fit_on(
         model.drops_first_level(),
         spec.data.missing == Missing::Mean,
     );
+    if let Some(lambdas) = gram_lambdas(
+        table,
+        prep,
+        entry,
+        std::slice::from_ref(params),
+        spec.data.missing == Missing::Mean,
+    ) {
+        let columns = numeric_columns(table, &prep.features);
+        let src = Source {
+            columns: &columns,
+            target: &prep.target,
+            table_row: &prep.rows,
+        };
+        if let Some(mut fits) = Gram::of(&src, fit).solve(&lambdas) {
+            let (intercept, weights) = fits.remove(0);
+            let fitted = Fitted::Linear {
+                intercept,
+                weights,
+                poly: None,
+            };
+            return Ok((encoder, fitted));
+        }
+    }
     let x = design(table, &encoder, &rows, notes)?;
     let fitted = model.fit(&x, &y, params, notes)?;
     Ok((encoder, fitted))

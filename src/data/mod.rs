@@ -40,6 +40,23 @@ impl Column {
             Values::Text { codes, .. } => codes[row] == MISSING_CODE,
         }
     }
+    /// `text` into a reused buffer (cleared first).
+    pub fn write_text(&self, row: usize, buf: &mut String) {
+        use std::fmt::Write;
+        buf.clear();
+        match &self.values {
+            Values::Numeric(v) if v[row].is_nan() => {}
+            Values::Numeric(v) => {
+                let _ = write!(buf, "{}", v[row]);
+            }
+            Values::Text { codes, levels } => {
+                if let Some(l) = levels.get(codes[row] as usize) {
+                    buf.push_str(l);
+                }
+            }
+        }
+    }
+
     /// The cell as text (numbers in shortest round-trip form), or "" when missing.
     pub fn text(&self, row: usize) -> String {
         match &self.values {
@@ -90,6 +107,23 @@ pub type RowKey = [u8; 16];
 pub fn row_keys(table: &Table, key: Option<usize>, rows: &[usize]) -> Vec<RowKey> {
     let mut order: Vec<usize> = (0..table.columns.len()).collect();
     order.sort_by(|&a, &b| table.columns[a].name.cmp(&table.columns[b].name));
+    // Rows are independent: cut them into one contiguous run per core, joined in order.
+    let threads = std::thread::available_parallelism().map_or(1, |n| n.get());
+    let per = rows.len().div_ceil(threads.max(1)).max(4096);
+    std::thread::scope(|s| {
+        let parts: Vec<_> = rows
+            .chunks(per)
+            .map(|part| s.spawn(|| keys_of(table, key, &order, part)))
+            .collect();
+        parts
+            .into_iter()
+            .flat_map(|h| h.join().unwrap_or_default())
+            .collect()
+    })
+}
+
+fn keys_of(table: &Table, key: Option<usize>, order: &[usize], rows: &[usize]) -> Vec<RowKey> {
+    let mut cell = String::new();
     rows.iter()
         .map(|&r| {
             let mut h = Sha256::new();
@@ -98,14 +132,16 @@ pub fn row_keys(table: &Table, key: Option<usize>, rows: &[usize]) -> Vec<RowKey
                     h.update(b"probity-row-key\0");
                     h.update(table.columns[k].name.as_bytes());
                     h.update(b"\0");
-                    h.update(table.columns[k].text(r).as_bytes());
+                    table.columns[k].write_text(r, &mut cell);
+                    h.update(cell.as_bytes());
                 }
                 None => {
                     h.update(b"probity-row\0");
-                    for &c in &order {
+                    for &c in order {
                         h.update(table.columns[c].name.as_bytes());
                         h.update(b"\0");
-                        h.update(table.columns[c].text(r).as_bytes());
+                        table.columns[c].write_text(r, &mut cell);
+                        h.update(cell.as_bytes());
                         h.update(b"\x1f");
                     }
                 }

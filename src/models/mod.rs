@@ -4,6 +4,7 @@
 //! fit sees only the fitting rows it is given (already encoded by `encode::Encoder`).
 
 pub mod encode;
+pub mod gram;
 pub mod knn;
 pub mod lasso;
 pub mod linalg;

@@ -207,19 +207,7 @@ fn diabetes_cases_match_reference_values() {
         let (f, enc) = fit(&table, &features, &train, &y, family, params);
         let mut notes = Notes::new();
         let pred = f.predict(&enc.transform(&table, &valid, &mut notes).unwrap());
-        for (i, want) in case["first_10_predictions"]
-            .as_array()
-            .unwrap()
-            .iter()
-            .enumerate()
-        {
-            assert_rel(
-                &format!("{id} prediction {i}"),
-                pred[i],
-                want.as_f64().unwrap(),
-                tol,
-            );
-        }
+        check_predictions(&format!("{id}"), &pred, case, tol);
         for (m, metric) in [
             ("rmse", probity::metrics::Metric::Rmse),
             ("mae", probity::metrics::Metric::Mae),
@@ -340,6 +328,128 @@ fn standardisation_uses_fitting_rows_population_sd() {
             sd[j],
             s["population_sd"][n].as_f64().unwrap(),
             1e-13,
+        );
+    }
+}
+
+/// The sufficient-statistics path for ridge (`models::gram`, used by the runner for standardised
+/// ridge grids) against the same reference values as the SVD path, on every ridge case: the
+/// diabetes data set, reference values from scikit-learn 1.9.1 as above, tolerance 1e-8. Its
+/// error sums must also give exactly the scores `Metric::score` gives on its predictions.
+#[test]
+fn diabetes_ridge_by_sufficient_statistics_matches_reference_values() {
+    use probity::data::Values;
+    use probity::metrics::{Metric, Truth};
+    use probity::models::gram::{Gram, Source, error_sums};
+    let (table, exp) = diabetes();
+    let train = rows_of(&table, "train");
+    let valid = rows_of(&table, "validation");
+    let yall = column(&table, "y");
+    let yv: Vec<f64> = valid.iter().map(|&r| yall[r]).collect();
+    let names: Vec<String> = exp["features"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|v| v.as_str().unwrap().to_string())
+        .collect();
+    let columns: Vec<&[f64]> = names
+        .iter()
+        .map(|n| match &table.column(n).unwrap().values {
+            Values::Numeric(v) => v.as_slice(),
+            Values::Text { .. } => panic!("{n} is not numeric"),
+        })
+        .collect();
+    let identity: Vec<usize> = (0..table.n_rows()).collect();
+    let src = Source {
+        columns: &columns,
+        target: &yall,
+        table_row: &identity,
+    };
+    let gram = Gram::of(&src, &train);
+    let mut checked = 0;
+    for case in exp["cases"].as_array().unwrap() {
+        if case["model"].as_str() != Some("ridge") {
+            continue;
+        }
+        let id = case["id"].as_str().unwrap();
+        let lambda = case["lambda"].as_f64().unwrap();
+        let fits = gram.solve(&[lambda]).expect("well conditioned");
+        let (intercept, weights) = fits[0].clone();
+        let fitted = Fitted::Linear {
+            intercept,
+            weights,
+            poly: None,
+        };
+        let mut notes = Notes::new();
+        let enc = Encoder::fit(&table, &features_of(&table, &names), &train, true, false);
+        let pred = fitted.predict(&enc.transform(&table, &valid, &mut notes).unwrap());
+        check_predictions(&format!("gram {id}"), &pred, case, 1e-8);
+        let (b, coefs) = original_coefficients(&fitted, &names, case);
+        assert_rel(
+            &format!("gram {id} intercept"),
+            b,
+            case["intercept"].as_f64().unwrap(),
+            1e-8,
+        );
+        for (name, want) in case["coefficients"].as_object().unwrap() {
+            let got = coefs
+                .iter()
+                .find(|(n, _)| n == name)
+                .map(|(_, v)| *v)
+                .unwrap();
+            assert_rel(
+                &format!("gram {id} coefficient {name}"),
+                got,
+                want.as_f64().unwrap(),
+                1e-8,
+            );
+        }
+        let (sse, sae) = error_sums(&src, &valid, &fits)[0];
+        let truth = Truth::of(&yv);
+        for (m, metric) in [
+            ("rmse", Metric::Rmse),
+            ("mae", Metric::Mae),
+            ("r2", Metric::R2),
+        ] {
+            let direct = metric.score(&yv, &pred, 0).unwrap();
+            let summed = truth.score(metric, sse, sae).unwrap();
+            assert_eq!(
+                summed.to_bits(),
+                direct.to_bits(),
+                "gram {id} {m}: sums {summed} vs scores {direct}"
+            );
+            assert_rel(
+                &format!("gram {id} {m}"),
+                summed,
+                case["metrics"][m].as_f64().unwrap(),
+                1e-8,
+            );
+        }
+        checked += 1;
+    }
+    assert!(
+        checked >= 2,
+        "the reference file holds ridge cases ({checked})"
+    );
+}
+
+fn features_of(table: &Table, names: &[String]) -> Vec<usize> {
+    names.iter().map(|n| table.index_of(n).unwrap()).collect()
+}
+
+/// The first ten validation predictions of a reference case.
+fn check_predictions(id: &str, pred: &[f64], case: &Value, tol: f64) {
+    for (i, want) in case["first_10_predictions"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .enumerate()
+    {
+        assert_rel(
+            &format!("{id} prediction {i}"),
+            pred[i],
+            want.as_f64().unwrap(),
+            tol,
         );
     }
 }

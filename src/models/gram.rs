@@ -1,0 +1,420 @@
+//! Sufficient statistics for standardised ridge: one pass over the fitting rows builds the
+//! cross-product matrix of [x, y] (about a shift, so sums do not cancel), one symmetric
+//! eigendecomposition of the standardised Gram matrix then gives every penalty of a grid at
+//! O(p^2) each, and one more pass predicts every penalty at once and sums the errors.
+//!
+//! Forming X'X squares the condition number, which is harmless with standardised columns and a
+//! positive penalty (the penalty bounds the condition number), and wrong for plain least squares
+//! on ill-conditioned data; so this path is only taken for ridge with every penalty > 0, and
+//! `solve` refuses (the caller then takes the SVD path) when (largest eigenvalue + lambda) /
+//! (smallest + lambda) exceeds `MAX_CONDITION`.
+//!
+//! Sums run in a fixed order (blocks of rows in row order, fixed accumulator lanes), so the
+//! results depend only on the rows, never on threads. Predictions are formed exactly as
+//! `Fitted::predict` forms them (intercept, then each weight times its column, in column order)
+//! and the error sums are taken in row order, so the scores equal `metrics::score_all` on those
+//! predictions, bit for bit.
+
+/// Largest accepted (largest eigenvalue + lambda) / (smallest + lambda): a relative error of
+/// at most about 1e-8 in the worst-conditioned direction.
+pub const MAX_CONDITION: f64 = 1e8;
+
+/// Rows per block of the passes.
+const BLOCK: usize = 256;
+
+/// Accumulator lanes of the dot products (fixed, so the sums do not depend on the machine).
+const LANES: usize = 8;
+
+/// Where the passes read: feature columns by table row, the target by kept-row position, and
+/// the table row of each kept-row position.
+pub struct Source<'a> {
+    pub columns: &'a [&'a [f64]],
+    pub target: &'a [f64],
+    pub table_row: &'a [usize],
+}
+
+/// Cross-products of [x, y] about `shift` over a set of rows.
+#[derive(Debug, Clone)]
+pub struct Gram {
+    pub n: usize,
+    /// p + 1 (the features, then the target).
+    pub dim: usize,
+    pub shift: Vec<f64>,
+    /// Sum of (v - shift) per column.
+    pub sum: Vec<f64>,
+    /// Sum of (v - shift)(v - shift)' (dim x dim, row-major, symmetric).
+    pub cross: Vec<f64>,
+}
+
+/// Gather `rows` into a column-major block (dim columns of BLOCK).
+#[inline(always)]
+fn gather(src: &Source, rows: &[usize], block: &mut [f64], with_target: bool) {
+    let p = src.columns.len();
+    for (j, col) in src.columns.iter().enumerate() {
+        let out = &mut block[j * BLOCK..j * BLOCK + rows.len()];
+        for (o, &i) in out.iter_mut().zip(rows) {
+            *o = col[src.table_row[i]];
+        }
+    }
+    if with_target {
+        let out = &mut block[p * BLOCK..p * BLOCK + rows.len()];
+        for (o, &i) in out.iter_mut().zip(rows) {
+            *o = src.target[i];
+        }
+    }
+}
+
+/// Dot product in LANES fixed accumulators, combined in lane order.
+#[inline(always)]
+fn dot(a: &[f64], b: &[f64]) -> f64 {
+    let mut acc = [0.0f64; LANES];
+    let (ca, cb) = (a.chunks_exact(LANES), b.chunks_exact(LANES));
+    let (ra, rb) = (ca.remainder(), cb.remainder());
+    for (x, y) in ca.zip(cb) {
+        for l in 0..LANES {
+            acc[l] += x[l] * y[l];
+        }
+    }
+    for (l, (x, y)) in ra.iter().zip(rb).enumerate() {
+        acc[l] += x * y;
+    }
+    acc.iter().sum()
+}
+
+/// Run `$body` compiled for the widest vector unit the CPU has. Every version performs the same
+/// IEEE operations in the same order on each lane (Rust never fuses a multiply and an add), so
+/// the bits are the same on every machine; only the speed differs.
+macro_rules! widest {
+    ($name:ident, fn($($arg:ident: $ty:ty),*) -> $ret:ty, $body:ident) => {
+        fn $name($($arg: $ty),*) -> $ret {
+            #[cfg(target_arch = "x86_64")]
+            {
+                #[target_feature(enable = "avx512f")]
+                fn wide512($($arg: $ty),*) -> $ret {
+                    $body($($arg),*)
+                }
+                #[target_feature(enable = "avx2")]
+                fn wide256($($arg: $ty),*) -> $ret {
+                    $body($($arg),*)
+                }
+                if std::arch::is_x86_feature_detected!("avx512f") {
+                    // SAFETY: the CPU has AVX-512F, checked on the line above.
+                    return unsafe { wide512($($arg),*) };
+                }
+                if std::arch::is_x86_feature_detected!("avx2") {
+                    // SAFETY: the CPU has AVX2, checked on the line above.
+                    return unsafe { wide256($($arg),*) };
+                }
+            }
+            $body($($arg),*)
+        }
+    };
+}
+
+widest!(
+    gram_of,
+    fn(src: &Source, rows: &[usize]) -> Gram,
+    gram_of_body
+);
+widest!(
+    sums_of,
+    fn(src: &Source, rows: &[(usize, bool)], fits: &[(f64, Vec<f64>)]) -> Vec<(f64, f64)>,
+    error_sums_body
+);
+
+impl Gram {
+    /// One pass over `rows` (kept-row positions, in order).
+    pub fn of(src: &Source, rows: &[usize]) -> Gram {
+        gram_of(src, rows)
+    }
+
+    /// (intercept, weights) in the original units for each lambda, as `ridge` defines them
+    /// (features centred and scaled by their population standard deviation, intercept not
+    /// penalised); `None` when the problem is too ill-conditioned for this path.
+    pub fn solve(&self, lambdas: &[f64]) -> Option<Vec<(f64, Vec<f64>)>> {
+        let (dim, n) = (self.dim, self.n as f64);
+        let p = dim - 1;
+        if self.n == 0 || lambdas.iter().any(|&l| !(l > 0.0 && l.is_finite())) {
+            return None;
+        }
+        let mean: Vec<f64> = (0..dim).map(|j| self.shift[j] + self.sum[j] / n).collect();
+        // Centred cross-products.
+        let c = |j: usize, k: usize| self.cross[j * dim + k] - self.sum[j] * self.sum[k] / n;
+        let sd: Vec<f64> = (0..p)
+            .map(|j| {
+                let s = (c(j, j).max(0.0) / n).sqrt();
+                if s > 0.0 && s.is_finite() { s } else { 1.0 }
+            })
+            .collect();
+        let mut a = vec![0.0; p * p];
+        for j in 0..p {
+            for k in 0..p {
+                a[j * p + k] = c(j, k) / (sd[j] * sd[k]);
+            }
+        }
+        let b: Vec<f64> = (0..p).map(|j| c(j, p) / sd[j]).collect();
+        let (values, vectors) = sym_eigen(a, p);
+        let (lo, hi) = values
+            .iter()
+            .fold((f64::INFINITY, f64::NEG_INFINITY), |(lo, hi), &v| {
+                (lo.min(v), hi.max(v))
+            });
+        let lmin = lambdas.iter().copied().fold(f64::INFINITY, f64::min);
+        if p > 0 && !((hi + lmin) / (lo + lmin) <= MAX_CONDITION && lo + lmin > 0.0) {
+            return None;
+        }
+        // Q'b, once.
+        let qb: Vec<f64> = (0..p)
+            .map(|k| (0..p).map(|j| vectors[j * p + k] * b[j]).sum())
+            .collect();
+        Some(
+            lambdas
+                .iter()
+                .map(|&l| {
+                    let g: Vec<f64> = (0..p).map(|k| qb[k] / (values[k] + l)).collect();
+                    let weights: Vec<f64> = (0..p)
+                        .map(|j| (0..p).map(|k| vectors[j * p + k] * g[k]).sum::<f64>() / sd[j])
+                        .collect();
+                    let intercept =
+                        mean[p] - weights.iter().zip(&mean).map(|(w, m)| w * m).sum::<f64>();
+                    (intercept, weights)
+                })
+                .collect(),
+        )
+    }
+}
+
+#[inline(always)]
+fn gram_of_body(src: &Source, rows: &[usize]) -> Gram {
+    let p = src.columns.len();
+    let dim = p + 1;
+    // The first row as the shift: sums then hold deviations of the order of the spread.
+    let shift: Vec<f64> = match rows.first() {
+        Some(&i) => src
+            .columns
+            .iter()
+            .map(|c| c[src.table_row[i]])
+            .chain([src.target[i]])
+            .collect(),
+        None => vec![0.0; dim],
+    };
+    let mut sum = vec![0.0; dim];
+    let mut cross = vec![0.0; dim * dim];
+    let mut block = vec![0.0; dim * BLOCK];
+    for chunk in rows.chunks(BLOCK) {
+        let nb = chunk.len();
+        gather(src, chunk, &mut block, true);
+        for j in 0..dim {
+            let col = &mut block[j * BLOCK..j * BLOCK + nb];
+            col.iter_mut().for_each(|v| *v -= shift[j]);
+            sum[j] += col.iter().sum::<f64>();
+        }
+        for j in 0..dim {
+            for k in j..dim {
+                cross[j * dim + k] += dot(
+                    &block[j * BLOCK..j * BLOCK + nb],
+                    &block[k * BLOCK..k * BLOCK + nb],
+                );
+            }
+        }
+    }
+    for j in 0..dim {
+        for k in 0..j {
+            cross[j * dim + k] = cross[k * dim + j];
+        }
+    }
+    Gram {
+        n: rows.len(),
+        dim,
+        shift,
+        sum,
+        cross,
+    }
+}
+
+/// Eigenvalues and eigenvectors (columns of the row-major p x p result) of a symmetric matrix,
+/// by cyclic Jacobi rotations: accurate to the last bits for the small matrices met here.
+pub fn sym_eigen(mut a: Vec<f64>, p: usize) -> (Vec<f64>, Vec<f64>) {
+    let mut v = vec![0.0; p * p];
+    for i in 0..p {
+        v[i * p + i] = 1.0;
+    }
+    for _sweep in 0..64 {
+        let off: f64 = (0..p)
+            .flat_map(|i| (i + 1..p).map(move |j| (i, j)))
+            .map(|(i, j)| a[i * p + j] * a[i * p + j])
+            .sum();
+        let diag: f64 = (0..p).map(|i| a[i * p + i] * a[i * p + i]).sum();
+        if off <= diag * 1e-32 || off == 0.0 {
+            break;
+        }
+        for r in 0..p {
+            for q in r + 1..p {
+                let apq = a[r * p + q];
+                if apq == 0.0 {
+                    continue;
+                }
+                let (app, aqq) = (a[r * p + r], a[q * p + q]);
+                let theta = (aqq - app) / (2.0 * apq);
+                let t = theta.signum() / (theta.abs() + (theta * theta + 1.0).sqrt());
+                let c = 1.0 / (t * t + 1.0).sqrt();
+                let s = t * c;
+                for k in 0..p {
+                    let (akr, akq) = (a[k * p + r], a[k * p + q]);
+                    a[k * p + r] = c * akr - s * akq;
+                    a[k * p + q] = s * akr + c * akq;
+                }
+                for k in 0..p {
+                    let (ark, aqk) = (a[r * p + k], a[q * p + k]);
+                    a[r * p + k] = c * ark - s * aqk;
+                    a[q * p + k] = s * ark + c * aqk;
+                }
+                for k in 0..p {
+                    let (vkr, vkq) = (v[k * p + r], v[k * p + q]);
+                    v[k * p + r] = c * vkr - s * vkq;
+                    v[k * p + q] = s * vkr + c * vkq;
+                }
+            }
+        }
+    }
+    ((0..p).map(|i| a[i * p + i]).collect(), v)
+}
+
+/// Sums of squared and absolute errors over `rows` for every fit (intercept, weights): all
+/// fits predicted together, block by block. Each sum runs in row order.
+/// (sum of squared errors, sum of absolute errors) per fit.
+pub type ErrorSums = Vec<(f64, f64)>;
+
+/// Error sums on two sets of rows at once (a fold's fitting and held-out rows): one pass in row
+/// order when both lists are sorted, each list's own order kept either way.
+pub fn error_sums_both(
+    src: &Source,
+    a: &[usize],
+    b: &[usize],
+    fits: &[(f64, Vec<f64>)],
+) -> (ErrorSums, ErrorSums) {
+    let sorted = |v: &[usize]| v.windows(2).all(|w| w[0] < w[1]);
+    let mut rows = Vec::with_capacity(a.len() + b.len());
+    if sorted(a) && sorted(b) {
+        let (mut i, mut j) = (0, 0);
+        while i < a.len() || j < b.len() {
+            if j == b.len() || (i < a.len() && a[i] < b[j]) {
+                rows.push((a[i], false));
+                i += 1;
+            } else {
+                rows.push((b[j], true));
+                j += 1;
+            }
+        }
+    } else {
+        rows.extend(a.iter().map(|&i| (i, false)));
+        rows.extend(b.iter().map(|&i| (i, true)));
+    }
+    let mut sums = sums_of(src, &rows, fits);
+    let second = sums.split_off(fits.len());
+    (sums, second)
+}
+
+/// Error sums over `rows` for every fit.
+pub fn error_sums(src: &Source, rows: &[usize], fits: &[(f64, Vec<f64>)]) -> Vec<(f64, f64)> {
+    let tagged: Vec<(usize, bool)> = rows.iter().map(|&i| (i, false)).collect();
+    let mut sums = sums_of(src, &tagged, fits);
+    sums.truncate(fits.len());
+    sums
+}
+
+/// Sums per fit for the rows tagged false, then for those tagged true.
+#[inline(always)]
+fn error_sums_body(
+    src: &Source,
+    rows: &[(usize, bool)],
+    fits: &[(f64, Vec<f64>)],
+) -> Vec<(f64, f64)> {
+    let p = src.columns.len();
+    let nf = fits.len();
+    // Weights laid out by feature, then fit, so the inner loop runs over fits.
+    let mut w = vec![0.0; p * nf];
+    for (k, (_, wk)) in fits.iter().enumerate() {
+        for j in 0..p {
+            w[j * nf + k] = wk[j];
+        }
+    }
+    let intercepts: Vec<f64> = fits.iter().map(|f| f.0).collect();
+    let mut block = vec![0.0; (p + 1) * BLOCK];
+    let mut pred = vec![0.0; BLOCK * nf];
+    // Fits 0..nf for the rows tagged false, nf..2nf for those tagged true.
+    let mut sse = vec![0.0; 2 * nf];
+    let mut sae = vec![0.0; 2 * nf];
+    let mut idx = Vec::with_capacity(BLOCK);
+    for chunk in rows.chunks(BLOCK) {
+        let nb = chunk.len();
+        idx.clear();
+        idx.extend(chunk.iter().map(|r| r.0));
+        gather(src, &idx, &mut block, true);
+        for r in 0..nb {
+            let out = &mut pred[r * nf..(r + 1) * nf];
+            out.copy_from_slice(&intercepts);
+            for j in 0..p {
+                let x = block[j * BLOCK + r];
+                let wj = &w[j * nf..(j + 1) * nf];
+                // `Fitted::predict` skips a zero weight; adding its +-0 product changes at most
+                // the sign of a zero prediction, which no error sum can see.
+                for (o, &wv) in out.iter_mut().zip(wj) {
+                    *o += wv * x;
+                }
+            }
+            let y = block[p * BLOCK + r];
+            let at = if chunk[r].1 { nf } else { 0 };
+            for ((o, q), a) in out
+                .iter()
+                .zip(sse[at..at + nf].iter_mut())
+                .zip(sae[at..at + nf].iter_mut())
+            {
+                let e = y - o;
+                *q += e * e;
+                *a += e.abs();
+            }
+        }
+    }
+    sse.into_iter().zip(sae).collect()
+}
+
+/// A linear model's predictions on `rows`, formed exactly as `Fitted::predict` forms them
+/// (intercept, then each non-zero weight times its column, in column order), without building
+/// the design matrix.
+pub fn predictions(src: &Source, rows: &[usize], intercept: f64, weights: &[f64]) -> Vec<f64> {
+    let mut out = vec![intercept; rows.len()];
+    for (col, &w) in src.columns.iter().zip(weights) {
+        if w != 0.0 {
+            for (o, &i) in out.iter_mut().zip(rows) {
+                *o += w * col[src.table_row[i]];
+            }
+        }
+    }
+    out
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn jacobi_reconstructs_a_symmetric_matrix() {
+        let p = 5;
+        let mut a = vec![0.0; p * p];
+        for i in 0..p {
+            for j in 0..p {
+                a[i * p + j] = 1.0 / (1.0 + i as f64 + j as f64) + if i == j { 0.5 } else { 0.0 };
+            }
+        }
+        let (vals, v) = sym_eigen(a.clone(), p);
+        for i in 0..p {
+            for j in 0..p {
+                let r: f64 = (0..p).map(|k| v[i * p + k] * vals[k] * v[j * p + k]).sum();
+                assert!((r - a[i * p + j]).abs() < 1e-14, "{i} {j}: {r}");
+                let o: f64 = (0..p).map(|k| v[k * p + i] * v[k * p + j]).sum();
+                assert!((o - if i == j { 1.0 } else { 0.0 }).abs() < 1e-14);
+            }
+        }
+    }
+}
