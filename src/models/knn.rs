@@ -35,26 +35,51 @@ fn row_major(x: &Matrix) -> Vec<f64> {
 
 /// Squared Euclidean distance with four partial sums, which the compiler can keep in vector
 /// registers (a fixed order, so the same bits on every run).
+#[inline(always)]
 fn sq_dist(a: &[f64], b: &[f64]) -> f64 {
     let mut acc = [0.0f64; 4];
-    let chunks = a.len() / 4;
-    for c in 0..chunks {
+    let (ca, cb) = (a.chunks_exact(4), b.chunks_exact(4));
+    let (ra, rb) = (ca.remainder(), cb.remainder());
+    for (x, y) in ca.zip(cb) {
         for l in 0..4 {
-            let t = a[c * 4 + l] - b[c * 4 + l];
+            let t = x[l] - y[l];
             acc[l] += t * t;
         }
     }
     let mut tail = 0.0;
-    for i in chunks * 4..a.len() {
-        let t = a[i] - b[i];
+    for (x, y) in ra.iter().zip(rb) {
+        let t = x - y;
         tail += t * t;
     }
     (acc[0] + acc[1]) + (acc[2] + acc[3]) + tail
 }
 
-/// Predictions for every query row (standardized) and every k in `ks`: `[k][row]` (regression)
-/// or `[k][row * classes + class]` vote fractions (classification).
 pub fn predict_many(
+    points: &[f64],
+    targets: &[f64],
+    p: usize,
+    queries: &Matrix,
+    ks: &[usize],
+    classes: usize,
+) -> Vec<Vec<f64>> {
+    predict_wide(points, targets, p, queries, ks, classes)
+}
+
+widest!(
+    predict_wide,
+    fn(
+        points: &[f64],
+        targets: &[f64],
+        p: usize,
+        queries: &Matrix,
+        ks: &[usize],
+        classes: usize,
+    ) -> Vec<Vec<f64>>,
+    predict_body
+);
+
+#[inline(always)]
+fn predict_body(
     points: &[f64],
     targets: &[f64],
     p: usize,

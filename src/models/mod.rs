@@ -3,6 +3,37 @@
 //! One file per family. Nothing here reads files, the clock or a global random source; every
 //! fit sees only the fitting rows it is given (already encoded by `encode::Encoder`).
 
+// Defined before the modules so each of them can use it.
+/// Run `$body` compiled for the widest vector unit the CPU has. Every version performs the same
+/// IEEE operations in the same order on each lane (Rust never fuses a multiply and an add), so
+/// the bits are the same on every machine; only the speed differs.
+macro_rules! widest {
+    ($name:ident, fn($($arg:ident: $ty:ty),* $(,)?) -> $ret:ty, $body:ident) => {
+        fn $name($($arg: $ty),*) -> $ret {
+            #[cfg(target_arch = "x86_64")]
+            {
+                #[target_feature(enable = "avx512f")]
+                fn wide512($($arg: $ty),*) -> $ret {
+                    $body($($arg),*)
+                }
+                #[target_feature(enable = "avx2")]
+                fn wide256($($arg: $ty),*) -> $ret {
+                    $body($($arg),*)
+                }
+                if std::arch::is_x86_feature_detected!("avx512f") {
+                    // SAFETY: the CPU has AVX-512F, checked on the line above.
+                    return unsafe { wide512($($arg),*) };
+                }
+                if std::arch::is_x86_feature_detected!("avx2") {
+                    // SAFETY: the CPU has AVX2, checked on the line above.
+                    return unsafe { wide256($($arg),*) };
+                }
+            }
+            $body($($arg),*)
+        }
+    };
+}
+
 pub mod encode;
 pub mod gram;
 pub mod knn;

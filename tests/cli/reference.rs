@@ -207,7 +207,7 @@ fn diabetes_cases_match_reference_values() {
         let (f, enc) = fit(&table, &features, &train, &y, family, params);
         let mut notes = Notes::new();
         let pred = f.predict(&enc.transform(&table, &valid, &mut notes).unwrap());
-        check_predictions(&format!("{id}"), &pred, case, tol);
+        check_predictions(id, &pred, case, tol);
         for (m, metric) in [
             ("rmse", probity::metrics::Metric::Rmse),
             ("mae", probity::metrics::Metric::Mae),
