@@ -94,18 +94,22 @@ PEER = {"a": ["a", "c2"], "b": ["d2"], "c": ["e"], "d": []}
 def run_probity(binary, spec_path, ledger):
     if os.path.exists(ledger):
         os.remove(ledger)
-    out = subprocess.run(["/usr/bin/time", "-v", binary, "run", spec_path, "--ledger", ledger, "--json"], capture_output=True, text=True)
+    env = dict(os.environ, PROBITY_TIMINGS="1")
+    out = subprocess.run(["/usr/bin/time", "-v", binary, "run", spec_path, "--ledger", ledger, "--json"], capture_output=True, text=True, env=env)
     if out.returncode != 0:
         raise SystemExit(f"probity failed: {out.stderr[-2000:]}")
-    wall = rss = None
+    wall = rss = load = None
     for line in out.stderr.splitlines():
         line = line.strip()
+        # PROBITY_TIMINGS: the load phase (read, parse, hash) is the parse floor of the same run.
+        if line.startswith("timing load:"):
+            load = float(line.split()[2])
         if line.startswith("Elapsed (wall clock) time"):
             t = line.rsplit(" ", 1)[1].split(":")
             wall = sum(float(x) * 60 ** i for i, x in enumerate(reversed(t)))
         if line.startswith("Maximum resident set size"):
             rss = int(line.rsplit(" ", 1)[1]) / 1024
-    return wall, rss
+    return wall, rss, load
 
 
 def run_peer(files, stages, repeats_json):
@@ -134,18 +138,21 @@ def main():
         with open(spec_path, "w") as f:
             f.write(spec(f"bench-{sc}", files[key], task, models, folds))
         ledger = os.path.join(args.data, f"bench-{sc}.sqlite")
-        ours, rss, peer = [], [], []
+        ours, rss, peer, loads = [], [], [], []
         for _ in range(args.repeats):
-            w, m = run_probity(binary, spec_path, ledger)
+            w, m, ld = run_probity(binary, spec_path, ledger)
             ours.append(w)
             rss.append(m)
+            loads.append(ld)
             p = run_peer(files, PEER[sc], os.path.join(args.data, "peer.json"))
             if p:
                 peer.append(sum(p.values()))
         o = statistics.median(ours)
         q = statistics.median(peer) if peer else None
         rows.append((sc, o, q, max(rss)))
+        ld = statistics.median(loads)
         print(f"{sc}: probity {o:.3f} s (runs {', '.join(f'{x:.3f}' for x in ours)}), peak {max(rss):.0f} MiB; "
+              + f"load (read+parse+hash) {ld:.3f} s, total/load {o / ld:.2f}; "
               + (f"peer {'+'.join(PEER[sc])} {q:.3f} s, ratio {o / q:.2f}" if q else "no peer stage"), flush=True)
     print("\nscenario  probity_s  peer_s  ratio  probity_peak_MiB")
     for sc, o, q, m in rows:

@@ -80,11 +80,13 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
     let detail = ledger
         .run(id)?
         .ok_or_else(|| crate::error::Error::Internal(format!("run {id} vanished after commit")))?;
+    phases.mark("read back");
     for w in &detail.warnings {
         warn(w);
     }
     if a.json {
         out_json(&crate::report::json::run(&detail))?;
+        phases.mark("print");
         return Ok(0);
     }
     let mut t = crate::report::table::run_header(&detail);

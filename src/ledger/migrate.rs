@@ -23,6 +23,10 @@ pub const MIGRATIONS: &[(&str, &str)] = &[
         "0004_commands.sql",
         include_str!("../../migrations/0004_commands.sql"),
     ),
+    (
+        "0005_scores_without_rowid.sql",
+        include_str!("../../migrations/0005_scores_without_rowid.sql"),
+    ),
 ];
 
 /// The schema version this binary writes.
@@ -144,5 +148,41 @@ mod tests {
         let e = migrate(&mut c, Path::new("x.sqlite")).unwrap_err();
         assert_eq!(e.exit_code(), 2);
         assert!(e.to_string().contains("newer"), "{e}");
+    }
+
+    /// 0005 rebuilds the score tables: every row survives, in the same columns and order, so
+    /// the canonical bytes the chain hashes do not change.
+    #[test]
+    fn scores_survive_the_rebuild_unchanged() {
+        let c = Connection::open_in_memory().unwrap();
+        // Score rows without their runs and candidates: the rebuild is what is under test.
+        c.pragma_update(None, "foreign_keys", "OFF").unwrap();
+        for (_, sql) in &MIGRATIONS[..4] {
+            c.execute_batch(sql).unwrap();
+        }
+        c.execute_batch(
+            "INSERT INTO fold_scores VALUES (1, 2, 0, 1, 'train', 'rmse', 0.5), (1, 2, 0, 0, 'validation', 'mae', NULL), (1, 1, 0, 0, 'train', 'r2', -3.25);
+             INSERT INTO scores VALUES (1, 2, 'train', 'rmse', 0.5, 0.125), (1, 1, 'validation', 'r2', NULL, NULL);",
+        )
+        .unwrap();
+        let dump = |c: &Connection| -> Vec<Vec<rusqlite::types::Value>> {
+            let mut out = Vec::new();
+            for sql in [
+                "SELECT * FROM fold_scores ORDER BY run_id, candidate, repeat, fold, part, metric",
+                "SELECT * FROM scores ORDER BY run_id, candidate, part, metric",
+            ] {
+                let mut st = c.prepare(sql).unwrap();
+                let n = st.column_count();
+                let rows = st
+                    .query_map([], |r| (0..n).map(|k| r.get(k)).collect())
+                    .unwrap();
+                out.extend(rows.map(|r| r.unwrap()));
+            }
+            out
+        };
+        let before = dump(&c);
+        c.execute_batch(MIGRATIONS[4].1).unwrap();
+        assert_eq!(dump(&c), before);
+        assert_eq!(before.len(), 5);
     }
 }

@@ -8,6 +8,7 @@ pub mod migrate;
 use crate::error::{Error, Result};
 use crate::runner::{RunOutcome, Scores};
 use crate::split::Part;
+use rusqlite::types::Value as Sql;
 use rusqlite::{Connection, OptionalExtension, params};
 use serde_json::Value;
 use std::collections::BTreeMap;
@@ -302,10 +303,32 @@ impl Ledger {
                     .map_err(fail)?;
             }
             let mut cand = tx.prepare("INSERT INTO candidates (run_id, id, family, params, standardize, seed) VALUES (?1, ?2, ?3, ?4, ?5, ?6)").map_err(fail)?;
+            // One statement per (candidate, fold) and per candidate, each holding every metric of
+            // both parts: a 10,000-candidate grid writes 20,000 statements, not 240,000.
+            let nm = out.prepared.metrics.len();
+            let tuples = |n: usize, width: usize| -> String {
+                (0..n)
+                    .map(|r| {
+                        let cells: Vec<String> =
+                            (1..=width).map(|c| format!("?{}", r * width + c)).collect();
+                        format!("({})", cells.join(", "))
+                    })
+                    .collect::<Vec<_>>()
+                    .join(", ")
+            };
             let mut fold_score = tx
-                .prepare("INSERT INTO fold_scores (run_id, candidate, repeat, fold, part, metric, value) VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7)")
+                .prepare(&format!(
+                    "INSERT INTO fold_scores (run_id, candidate, repeat, fold, part, metric, value) VALUES {}",
+                    tuples(2 * nm, 7)
+                ))
                 .map_err(fail)?;
-            let mut agg = tx.prepare("INSERT INTO scores (run_id, candidate, part, metric, mean, se) VALUES (?1, ?2, ?3, ?4, ?5, ?6)").map_err(fail)?;
+            let mut agg = tx
+                .prepare(&format!(
+                    "INSERT INTO scores (run_id, candidate, part, metric, mean, se) VALUES {}",
+                    tuples(2 * nm, 6)
+                ))
+                .map_err(fail)?;
+            let real = |v: Option<f64>| v.map_or(Sql::Null, Sql::Real);
             for c in &out.candidates {
                 let p: serde_json::Map<String, Value> = c
                     .params
@@ -321,33 +344,45 @@ impl Ledger {
                     c.seed.to_string()
                 ])
                 .map_err(fail)?;
+                let mut vals: Vec<Sql> = Vec::with_capacity(14 * nm);
                 for f in &c.folds {
+                    vals.clear();
                     for (part, sc) in [("train", &f.train), ("validation", &f.validation)] {
                         for (k, m) in out.prepared.metrics.iter().enumerate() {
-                            fold_score
-                                .execute(params![
-                                    run,
-                                    c.id as i64,
-                                    f.repeat as i64,
-                                    f.fold as i64,
-                                    part,
-                                    m.name(),
-                                    sc[k]
-                                ])
-                                .map_err(fail)?;
+                            vals.extend([
+                                Sql::Integer(run),
+                                Sql::Integer(c.id as i64),
+                                Sql::Integer(f.repeat as i64),
+                                Sql::Integer(f.fold as i64),
+                                Sql::Text(part.into()),
+                                Sql::Text(m.name().into()),
+                                real(sc[k]),
+                            ]);
                         }
                     }
+                    fold_score
+                        .execute(rusqlite::params_from_iter(vals.iter()))
+                        .map_err(fail)?;
                 }
                 let sets: [(&str, &Scores, &Scores); 2] = [
                     ("train", &c.train, &c.train_se),
                     ("validation", &c.validation, &c.validation_se),
                 ];
+                vals.clear();
                 for (part, mean, se) in sets {
                     for (k, m) in out.prepared.metrics.iter().enumerate() {
-                        agg.execute(params![run, c.id as i64, part, m.name(), mean[k], se[k]])
-                            .map_err(fail)?;
+                        vals.extend([
+                            Sql::Integer(run),
+                            Sql::Integer(c.id as i64),
+                            Sql::Text(part.into()),
+                            Sql::Text(m.name().into()),
+                            real(mean[k]),
+                            real(se[k]),
+                        ]);
                     }
                 }
+                agg.execute(rusqlite::params_from_iter(vals.iter()))
+                    .map_err(fail)?;
             }
             let mut warn = tx
                 .prepare("INSERT INTO warnings (run_id, seq, message) VALUES (?1, ?2, ?3)")

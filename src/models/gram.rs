@@ -22,6 +22,9 @@ pub const MAX_CONDITION: f64 = 1e8;
 /// Rows per block of the passes.
 const BLOCK: usize = 256;
 
+/// Fits predicted together in the error sweep (one AVX-512 register of predictions).
+const FITS: usize = 8;
+
 /// Accumulator lanes of the dot products (fixed, so the sums do not depend on the machine).
 const LANES: usize = 8;
 
@@ -66,7 +69,7 @@ fn gather(src: &Source, rows: &[usize], block: &mut [f64], with_target: bool) {
 
 /// Dot product in LANES fixed accumulators, combined in lane order.
 #[inline(always)]
-fn dot(a: &[f64], b: &[f64]) -> f64 {
+pub(crate) fn dot(a: &[f64], b: &[f64]) -> f64 {
     let mut acc = [0.0f64; LANES];
     let (ca, cb) = (a.chunks_exact(LANES), b.chunks_exact(LANES));
     let (ra, rb) = (ca.remainder(), cb.remainder());
@@ -302,51 +305,64 @@ fn error_sums_body(
 ) -> Vec<(f64, f64)> {
     let p = src.columns.len();
     let nf = fits.len();
-    // Weights laid out by feature, then fit, so the inner loop runs over fits.
-    let mut w = vec![0.0; p * nf];
-    for (k, (_, wk)) in fits.iter().enumerate() {
+    // Fits in groups of FITS lanes (the last group padded with zero fits), each group's
+    // predictions kept in registers while the features stream past.
+    let groups = nf.div_ceil(FITS);
+    let mut w = vec![[0.0f64; FITS]; groups * p];
+    let mut intercepts = vec![[0.0f64; FITS]; groups];
+    for (k, (b, wk)) in fits.iter().enumerate() {
+        let (g, l) = (k / FITS, k % FITS);
+        intercepts[g][l] = *b;
         for j in 0..p {
-            w[j * nf + k] = wk[j];
+            w[g * p + j][l] = wk[j];
         }
     }
-    let intercepts: Vec<f64> = fits.iter().map(|f| f.0).collect();
     let mut block = vec![0.0; (p + 1) * BLOCK];
-    let mut pred = vec![0.0; BLOCK * nf];
-    // Fits 0..nf for the rows tagged false, nf..2nf for those tagged true.
-    let mut sse = vec![0.0; 2 * nf];
-    let mut sae = vec![0.0; 2 * nf];
+    // Per group: sums for the rows tagged false, then for those tagged true.
+    let mut sse = vec![[0.0f64; FITS]; 2 * groups];
+    let mut sae = vec![[0.0f64; FITS]; 2 * groups];
     let mut idx = Vec::with_capacity(BLOCK);
+    let mut x = vec![0.0f64; p];
     for chunk in rows.chunks(BLOCK) {
         let nb = chunk.len();
         idx.clear();
         idx.extend(chunk.iter().map(|r| r.0));
         gather(src, &idx, &mut block, true);
         for r in 0..nb {
-            let out = &mut pred[r * nf..(r + 1) * nf];
-            out.copy_from_slice(&intercepts);
-            for j in 0..p {
-                let x = block[j * BLOCK + r];
-                let wj = &w[j * nf..(j + 1) * nf];
-                // `Fitted::predict` skips a zero weight; adding its +-0 product changes at most
-                // the sign of a zero prediction, which no error sum can see.
-                for (o, &wv) in out.iter_mut().zip(wj) {
-                    *o += wv * x;
-                }
+            for (j, v) in x.iter_mut().enumerate() {
+                *v = block[j * BLOCK + r];
             }
             let y = block[p * BLOCK + r];
-            let at = if chunk[r].1 { nf } else { 0 };
-            for ((o, q), a) in out
-                .iter()
-                .zip(sse[at..at + nf].iter_mut())
-                .zip(sae[at..at + nf].iter_mut())
-            {
-                let e = y - o;
-                *q += e * e;
-                *a += e.abs();
+            let side = usize::from(chunk[r].1);
+            for g in 0..groups {
+                // `Fitted::predict` skips a zero weight; adding its +-0 product changes at most
+                // the sign of a zero prediction, which no error sum can see.
+                let mut acc = intercepts[g];
+                for (wj, &xv) in w[g * p..(g + 1) * p].iter().zip(&x) {
+                    for l in 0..FITS {
+                        acc[l] += wj[l] * xv;
+                    }
+                }
+                let (q, a) = (&mut sse[2 * g + side], &mut sae[2 * g + side]);
+                for l in 0..FITS {
+                    let e = y - acc[l];
+                    q[l] += e * e;
+                    a[l] += e.abs();
+                }
             }
         }
     }
-    sse.into_iter().zip(sae).collect()
+    let flat = |side: usize| -> Vec<(f64, f64)> {
+        (0..nf)
+            .map(|k| {
+                let (g, l) = (k / FITS, k % FITS);
+                (sse[2 * g + side][l], sae[2 * g + side][l])
+            })
+            .collect()
+    };
+    let mut out = flat(0);
+    out.extend(flat(1));
+    out
 }
 
 /// A linear model's predictions on `rows`, formed exactly as `Fitted::predict` forms them

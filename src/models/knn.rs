@@ -12,6 +12,9 @@ use crate::error::{Error, Result};
 /// fitting row from all the others is quadratic in the fold size.
 pub const TRAIN_SCORE_ROWS: usize = 2000;
 
+/// Points per tile of the distance kernel (one AVX-512 register of distances).
+const TILE: usize = 8;
+
 pub struct Knn {
     pub standardize: bool,
     /// 0 for regression, else the number of classes.
@@ -33,9 +36,9 @@ fn row_major(x: &Matrix) -> Vec<f64> {
     out
 }
 
-/// Squared Euclidean distance with four partial sums, which the compiler can keep in vector
-/// registers (a fixed order, so the same bits on every run).
-#[inline(always)]
+/// Squared Euclidean distance with four partial sums in a fixed order: the definition the tiled
+/// kernel of `predict_many` repeats lane by lane (the test below holds them equal).
+#[cfg(test)]
 fn sq_dist(a: &[f64], b: &[f64]) -> f64 {
     let mut acc = [0.0f64; 4];
     let (ca, cb) = (a.chunks_exact(4), b.chunks_exact(4));
@@ -98,25 +101,68 @@ fn predict_body(
     const BLOCK: usize = 8;
     let mut nears: Vec<Vec<(f64, usize)>> =
         (0..BLOCK).map(|_| Vec::with_capacity(kmax + 1)).collect();
+    // Points in tiles of TILE, stored feature by feature, so one query's distances to a whole
+    // tile are computed lane by lane; each lane repeats `sq_dist`'s operations exactly.
+    let tiles = n.div_ceil(TILE);
+    let mut tiled = vec![[0.0f64; TILE]; tiles * p];
+    for i in 0..n {
+        for j in 0..p {
+            tiled[(i / TILE) * p + j][i % TILE] = points[i * p + j];
+        }
+    }
+    let quads = p / 4;
     for r0 in (0..queries.rows).step_by(BLOCK) {
         let r1 = (r0 + BLOCK).min(queries.rows);
         for near in nears.iter_mut() {
             near.clear();
         }
-        for i in 0..n {
-            let pt = &points[i * p..(i + 1) * p];
+        for t in 0..tiles {
+            let tile = &tiled[t * p..(t + 1) * p];
+            let lanes = (n - t * TILE).min(TILE);
             for (b, r) in (r0..r1).enumerate() {
-                let d = sq_dist(pt, &q[r * p..(r + 1) * p]);
+                let qr = &q[r * p..(r + 1) * p];
+                let mut acc = [[0.0f64; TILE]; 4];
+                for c in 0..quads {
+                    for (l4, a) in acc.iter_mut().enumerate() {
+                        let (col, qv) = (&tile[c * 4 + l4], qr[c * 4 + l4]);
+                        for ln in 0..TILE {
+                            let d = col[ln] - qv;
+                            a[ln] += d * d;
+                        }
+                    }
+                }
+                let mut tail = [0.0f64; TILE];
+                for j in quads * 4..p {
+                    let (col, qv) = (&tile[j], qr[j]);
+                    for ln in 0..TILE {
+                        let d = col[ln] - qv;
+                        tail[ln] += d * d;
+                    }
+                }
+                let mut dist = [0.0f64; TILE];
+                for ln in 0..TILE {
+                    dist[ln] = (acc[0][ln] + acc[1][ln]) + (acc[2][ln] + acc[3][ln]) + tail[ln];
+                }
                 let near = &mut nears[b];
+                // Most tiles hold no point nearer than the worst kept one: one test skips them.
                 if near.len() == kmax {
-                    if d >= near[kmax - 1].0 {
+                    let worst = near[kmax - 1].0;
+                    let any = dist[..lanes].iter().fold(false, |h, &v| h | (v < worst));
+                    if !any {
                         continue;
                     }
-                    near.pop();
                 }
-                // Insert after every kept entry with a distance <= d (earlier rows win ties).
-                let at = near.partition_point(|e| e.0 <= d);
-                near.insert(at, (d, i));
+                for (ln, &d) in dist[..lanes].iter().enumerate() {
+                    if near.len() == kmax {
+                        if d >= near[kmax - 1].0 {
+                            continue;
+                        }
+                        near.pop();
+                    }
+                    // Insert after every kept entry with a distance <= d (earlier rows win ties).
+                    let at = near.partition_point(|e| e.0 <= d);
+                    near.insert(at, (d, t * TILE + ln));
+                }
             }
         }
         for near in &nears[..r1 - r0] {
@@ -207,5 +253,52 @@ impl Model for Knn {
     fn complexity(&self, params: &Params) -> f64 {
         // Larger k averages more rows: a smoother, simpler fit.
         -(k_of(params) as f64)
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// The tiled kernel against the definition: every distance by `sq_dist`, a full sort by
+    /// (distance, row), the mean of the first k. Ties are planted (duplicated points), the point
+    /// count is not a multiple of the tile and the feature count not a multiple of four.
+    #[test]
+    fn tiled_kernel_equals_sorting_every_distance() {
+        for (n, p) in [(37, 7), (64, 4), (9, 1), (100, 20)] {
+            let mut state = 12345u64 + n as u64;
+            let mut next = || {
+                state = state
+                    .wrapping_mul(6364136223846793005)
+                    .wrapping_add(1442695040888963407);
+                ((state >> 11) as f64 / (1u64 << 53) as f64 - 0.5) * 4.0
+            };
+            let mut points: Vec<f64> = (0..n * p).map(|_| next()).collect();
+            for j in 0..p {
+                points[5 * p + j] = points[2 * p + j];
+            }
+            let targets: Vec<f64> = (0..n).map(|_| next()).collect();
+            let nq = 13;
+            let qcols: Vec<Vec<f64>> = (0..p).map(|_| (0..nq).map(|_| next()).collect()).collect();
+            let queries = Matrix::from_cols(nq, &qcols);
+            let ks = [1, 2, 3, 8];
+            let got = predict_many(&points, &targets, p, &queries, &ks, 0);
+            for r in 0..nq {
+                let q: Vec<f64> = (0..p).map(|j| qcols[j][r]).collect();
+                let mut all: Vec<(f64, usize)> = (0..n)
+                    .map(|i| (sq_dist(&points[i * p..(i + 1) * p], &q), i))
+                    .collect();
+                all.sort_by(|a, b| a.0.total_cmp(&b.0).then(a.1.cmp(&b.1)));
+                for (slot, &k) in ks.iter().enumerate() {
+                    let want: f64 =
+                        all[..k].iter().map(|&(_, i)| targets[i]).sum::<f64>() / k as f64;
+                    assert_eq!(
+                        got[slot][r].to_bits(),
+                        want.to_bits(),
+                        "n {n} p {p} query {r} k {k}"
+                    );
+                }
+            }
+        }
     }
 }

@@ -122,15 +122,28 @@ fn objective(
     loss + 0.5 * lambda * pen
 }
 
-/// Fit by Newton's method. Returns the coefficients and whether it converged; `separable` is set
-/// when lambda = 0 and the weights run away (the classes can be split perfectly).
-fn newton(
+// Fit by Newton's method. Returns the coefficients and whether it converged; `separable` is set
+// when lambda = 0 and the weights run away (the classes can be split perfectly).
+widest!(
+    newton,
+    fn(z: &Matrix, y: &[f64], classes: usize, lambda: f64, start: Option<Vec<Vec<f64>>>) -> Fit,
+    newton_body
+);
+
+/// (coefficients, converged, separable)
+type Fit = (Vec<Vec<f64>>, bool, bool);
+
+#[inline(always)]
+fn newton_body(
     z: &Matrix,
     y: &[f64],
     classes: usize,
     lambda: f64,
     start: Option<Vec<Vec<f64>>>,
-) -> (Vec<Vec<f64>>, bool, bool) {
+) -> Fit {
+    if classes == 2 {
+        return newton_binary(z, y, lambda, start);
+    }
     let (n, p) = (z.rows, z.cols);
     let xr = rows_of(z);
     let binary = classes == 2;
@@ -154,8 +167,8 @@ fn newton(
             xi[1..].copy_from_slice(&xr[i * p..(i + 1) * p]);
             for a in 0..k {
                 let r = pr(i, a) - if y[i] as usize == cls(a) { 1.0 } else { 0.0 };
-                for u in 0..d {
-                    grad[a * d + u] += r * xi[u];
+                for (g, &xv) in grad[a * d..(a + 1) * d].iter_mut().zip(&xi) {
+                    *g += r * xv;
                 }
                 for b in a..k {
                     let w = if binary {
@@ -170,8 +183,8 @@ fn newton(
                         let wu = w * xi[u];
                         let row = (a * d + u) * m + b * d;
                         let from = if a == b { u } else { 0 };
-                        for v in from..d {
-                            h[row + v] += wu * xi[v];
+                        for (hv, &xv) in h[row + from..row + d].iter_mut().zip(&xi[from..d]) {
+                            *hv += wu * xv;
                         }
                     }
                 }
@@ -182,50 +195,187 @@ fn newton(
                 h[r * m + c] = h[c * m + r];
             }
         }
-        for a in 0..k {
-            for j in 1..d {
-                grad[a * d + j] += lambda * coef[a][j];
-                h[(a * d + j) * m + a * d + j] += lambda;
-            }
+        match finish_step(coef, grad, h, f, lambda, n, |c| {
+            objective(&xr, n, p, y, c, lambda, binary)
+        }) {
+            Next::Done(fit) => return fit,
+            Next::Go(c, fc) => (coef, f) = (c, fc),
         }
-        let gnorm = grad.iter().map(|g| g * g).sum::<f64>().sqrt();
-        if gnorm <= TOL {
-            return (coef, true, false);
+    }
+    (coef, false, lambda == 0.0)
+}
+
+/// Where a Newton iteration leaves the fit.
+enum Next {
+    Done(Fit),
+    Go(Vec<Vec<f64>>, f64),
+}
+
+/// The end of a Newton iteration, shared by both forms: the penalty's gradient and Hessian
+/// terms, the convergence test, the minimum-norm step, backtracking (halve until the objective
+/// does not increase) and the stopping rules.
+#[inline(always)]
+fn finish_step(
+    coef: Vec<Vec<f64>>,
+    mut grad: Vec<f64>,
+    mut h: Vec<f64>,
+    f: f64,
+    lambda: f64,
+    n: usize,
+    obj: impl Fn(&[Vec<f64>]) -> f64,
+) -> Next {
+    let (k, d) = (coef.len(), coef.first().map_or(0, Vec::len));
+    let m = k * d;
+    for a in 0..k {
+        for j in 1..d {
+            grad[a * d + j] += lambda * coef[a][j];
+            h[(a * d + j) * m + a * d + j] += lambda;
         }
-        let hm = Matrix {
-            rows: m,
-            cols: m,
-            data: h,
-        };
-        let neg: Vec<f64> = grad.iter().map(|g| -g).collect();
-        let step = svd_solve_prep(&hm, &neg).solve(0.0);
-        // Backtracking: halve until the objective does not increase.
-        let mut t = 1.0;
-        let mut accepted = false;
-        for _ in 0..60 {
-            let trial: Vec<Vec<f64>> = (0..k)
-                .map(|a| (0..d).map(|u| coef[a][u] + t * step[a * d + u]).collect())
-                .collect();
-            let ft = objective(&xr, n, p, y, &trial, lambda, binary);
-            // Near the optimum the objective is flat to rounding: allow that much slack.
-            if ft.is_finite() && ft <= f + 1e-13 * f.abs().max(1.0) {
-                coef = trial;
-                f = ft;
-                accepted = true;
-                break;
-            }
-            t *= 0.5;
+    }
+    let gnorm = grad.iter().map(|g| g * g).sum::<f64>().sqrt();
+    if gnorm <= TOL {
+        return Next::Done((coef, true, false));
+    }
+    let hm = Matrix {
+        rows: m,
+        cols: m,
+        data: h,
+    };
+    let neg: Vec<f64> = grad.iter().map(|g| -g).collect();
+    let step = svd_solve_prep(&hm, &neg).solve(0.0);
+    let mut t = 1.0;
+    let mut next = None;
+    for _ in 0..60 {
+        let trial: Vec<Vec<f64>> = (0..k)
+            .map(|a| (0..d).map(|u| coef[a][u] + t * step[a * d + u]).collect())
+            .collect();
+        let ft = obj(&trial);
+        // Near the optimum the objective is flat to rounding: allow that much slack.
+        if ft.is_finite() && ft <= f + 1e-13 * f.abs().max(1.0) {
+            next = Some((trial, ft));
+            break;
         }
-        let big = coef
+        t *= 0.5;
+    }
+    let accepted = next.is_some();
+    let (coef, f) = next.unwrap_or((coef, f));
+    let big = coef
+        .iter()
+        .flat_map(|c| c[1..].iter())
+        .fold(0.0f64, |a, w| a.max(w.abs()));
+    if lambda == 0.0 && (big > 1e6 || f < 1e-12 * n as f64) {
+        return Next::Done((coef, false, true));
+    }
+    if !accepted {
+        // No decrease possible at this precision: as converged as floating point allows.
+        return Next::Done((coef, gnorm <= 1e-6 * (1.0 + n as f64), false));
+    }
+    Next::Go(coef, f)
+}
+
+/// Rows per block of the binary Hessian.
+const BLOCK: usize = 256;
+
+/// Linear scores of the binary model, column by column over the standardised design.
+#[inline(always)]
+fn etas(z: &Matrix, c: &[f64]) -> Vec<f64> {
+    let mut e = vec![c[0]; z.rows];
+    for (j, w) in c[1..].iter().enumerate() {
+        for (ei, zi) in e.iter_mut().zip(z.col(j)) {
+            *ei += w * zi;
+        }
+    }
+    e
+}
+
+/// Summed log-loss of the binary model + (lambda/2) ||w||^2.
+#[inline(always)]
+fn objective_binary(z: &Matrix, y: &[f64], c: &[f64], lambda: f64) -> f64 {
+    let loss: f64 = etas(z, c)
+        .iter()
+        .zip(y)
+        .map(|(&eta, &yi)| {
+            let softplus = if eta > 0.0 {
+                eta + (-eta).exp().ln_1p()
+            } else {
+                eta.exp().ln_1p()
+            };
+            softplus - if yi as usize == 1 { eta } else { 0.0 }
+        })
+        .sum();
+    loss + 0.5 * lambda * c[1..].iter().map(|w| w * w).sum::<f64>()
+}
+
+/// Newton's method for two classes, column-oriented: the Hessian X'WX is accumulated block by
+/// block as weighted dot products of the design's columns (fixed lanes, so the same bits on
+/// any machine), the same iteration, line search and stopping rules as `newton`.
+#[inline(always)]
+fn newton_binary(z: &Matrix, y: &[f64], lambda: f64, start: Option<Vec<Vec<f64>>>) -> Fit {
+    use super::gram::dot;
+    let (n, p) = (z.rows, z.cols);
+    let d = p + 1;
+    let mut coef = start.unwrap_or_else(|| vec![vec![0.0; d]]);
+    let mut f = objective_binary(z, y, &coef[0], lambda);
+    let mut wz = vec![0.0; d * BLOCK];
+    for _ in 0..MAX_ITER {
+        let eta = etas(z, &coef[0]);
+        let prob: Vec<f64> = eta
             .iter()
-            .flat_map(|c| c[1..].iter())
-            .fold(0.0f64, |a, w| a.max(w.abs()));
-        if lambda == 0.0 && (big > 1e6 || f < 1e-12 * n as f64) {
-            return (coef, false, true);
+            .map(|&e| {
+                if e >= 0.0 {
+                    1.0 / (1.0 + (-e).exp())
+                } else {
+                    e.exp() / (1.0 + e.exp())
+                }
+            })
+            .collect();
+        let r: Vec<f64> = prob
+            .iter()
+            .zip(y)
+            .map(|(&pi, &yi)| pi - if yi as usize == 1 { 1.0 } else { 0.0 })
+            .collect();
+        let w: Vec<f64> = prob.iter().map(|&pi| pi * (1.0 - pi)).collect();
+        let mut grad = vec![0.0; d];
+        grad[0] = r.iter().sum();
+        for j in 0..p {
+            grad[j + 1] = dot(&r, z.col(j));
         }
-        if !accepted {
-            // No decrease possible at this precision: as converged as floating point allows.
-            return (coef, gnorm <= 1e-6 * (1.0 + n as f64), false);
+        // Upper triangle of X'WX, the intercept as column 0.
+        let mut h = vec![0.0; d * d];
+        for b0 in (0..n).step_by(BLOCK) {
+            let b1 = (b0 + BLOCK).min(n);
+            let nb = b1 - b0;
+            let wb = &w[b0..b1];
+            wz[..nb].copy_from_slice(wb);
+            for j in 0..p {
+                let out = &mut wz[(j + 1) * BLOCK..(j + 1) * BLOCK + nb];
+                for ((o, &wi), &zi) in out.iter_mut().zip(wb).zip(&z.col(j)[b0..b1]) {
+                    *o = wi * zi;
+                }
+            }
+            h[0] += wb.iter().sum::<f64>();
+            for k in 0..p {
+                h[k + 1] += wz[(k + 1) * BLOCK..(k + 1) * BLOCK + nb]
+                    .iter()
+                    .sum::<f64>();
+            }
+            for j in 0..p {
+                let a = &wz[(j + 1) * BLOCK..(j + 1) * BLOCK + nb];
+                for k in j..p {
+                    h[(j + 1) * d + k + 1] += dot(a, &z.col(k)[b0..b1]);
+                }
+            }
+        }
+        for r in 0..d {
+            for c in 0..r {
+                h[r * d + c] = h[c * d + r];
+            }
+        }
+        match finish_step(coef, grad, h, f, lambda, n, |c| {
+            objective_binary(z, y, &c[0], lambda)
+        }) {
+            Next::Done(fit) => return fit,
+            Next::Go(c, fc) => (coef, f) = (c, fc),
         }
     }
     (coef, false, lambda == 0.0)

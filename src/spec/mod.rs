@@ -239,6 +239,16 @@ pub enum ParamValue {
 }
 
 impl ParamValue {
+    /// A totally ordered key with the same equality as `==` (0.0 and -0.0 are one value).
+    fn key(&self) -> (u8, u64, String) {
+        match self {
+            ParamValue::Float(f) => (0, (f + 0.0).to_bits(), String::new()),
+            ParamValue::Int(i) => (1, *i, String::new()),
+            ParamValue::Text(t) => (2, 0, t.clone()),
+            ParamValue::Bool(b) => (3, u64::from(*b), String::new()),
+        }
+    }
+
     pub fn to_json(&self) -> Value {
         match self {
             ParamValue::Float(f) => json!(f),
@@ -1153,6 +1163,7 @@ impl Check<'_> {
             ));
         }
         let mut out: Vec<ParamValue> = Vec::new();
+        let mut seen = std::collections::BTreeSet::new();
         for it in &items {
             let pv = match (name, it) {
                 ("lambda", toml::Value::Float(x)) if x.is_finite() && *x >= 0.0 => {
@@ -1201,7 +1212,8 @@ impl Check<'_> {
                     )));
                 }
             };
-            if out.contains(&pv) {
+            // A set of keys, not a scan of the list: generated ranges hold thousands of values.
+            if !seen.insert(pv.key()) {
                 return Err(self.err(
                     v,
                     format!("'{name}' lists {pv} twice; each grid value must be distinct"),
