@@ -25,6 +25,9 @@ const BLOCK: usize = 256;
 /// Fits predicted together in the error sweep (one AVX-512 register of predictions).
 const FITS: usize = 8;
 
+/// Rows predicted together in the error sweep (BLOCK is a multiple of it).
+const ROWS: usize = 4;
+
 /// Accumulator lanes of the dot products (fixed, so the sums do not depend on the machine).
 const LANES: usize = 8;
 
@@ -322,34 +325,40 @@ fn error_sums_body(
     let mut sse = vec![[0.0f64; FITS]; 2 * groups];
     let mut sae = vec![[0.0f64; FITS]; 2 * groups];
     let mut idx = Vec::with_capacity(BLOCK);
-    let mut x = vec![0.0f64; p];
     for chunk in rows.chunks(BLOCK) {
         let nb = chunk.len();
         idx.clear();
         idx.extend(chunk.iter().map(|r| r.0));
         gather(src, &idx, &mut block, true);
-        for r in 0..nb {
-            for (j, v) in x.iter_mut().enumerate() {
-                *v = block[j * BLOCK + r];
-            }
-            let y = block[p * BLOCK + r];
-            let side = usize::from(chunk[r].1);
+        // ROWS rows at a time: their predictions are independent chains of additions, so the
+        // processor overlaps them; each row's errors still enter the sums in row order.
+        let mut r = 0;
+        while r < nb {
+            let take = (nb - r).min(ROWS);
             for g in 0..groups {
                 // `Fitted::predict` skips a zero weight; adding its +-0 product changes at most
                 // the sign of a zero prediction, which no error sum can see.
-                let mut acc = intercepts[g];
-                for (wj, &xv) in w[g * p..(g + 1) * p].iter().zip(&x) {
-                    for l in 0..FITS {
-                        acc[l] += wj[l] * xv;
+                let mut acc = [intercepts[g]; ROWS];
+                for (j, wj) in w[g * p..(g + 1) * p].iter().enumerate() {
+                    let xs = &block[j * BLOCK + r..j * BLOCK + r + ROWS];
+                    for (a, &xv) in acc.iter_mut().zip(xs) {
+                        for l in 0..FITS {
+                            a[l] += wj[l] * xv;
+                        }
                     }
                 }
-                let (q, a) = (&mut sse[2 * g + side], &mut sae[2 * g + side]);
-                for l in 0..FITS {
-                    let e = y - acc[l];
-                    q[l] += e * e;
-                    a[l] += e.abs();
+                for (rr, a) in acc.iter().enumerate().take(take) {
+                    let y = block[p * BLOCK + r + rr];
+                    let side = usize::from(chunk[r + rr].1);
+                    let (q, s) = (&mut sse[2 * g + side], &mut sae[2 * g + side]);
+                    for l in 0..FITS {
+                        let e = y - a[l];
+                        q[l] += e * e;
+                        s[l] += e.abs();
+                    }
                 }
             }
+            r += take;
         }
     }
     let flat = |side: usize| -> Vec<(f64, f64)> {
