@@ -970,6 +970,17 @@ fn parallel<T: Send>(n: usize, threads: usize, f: impl Fn(usize) -> T + Sync) ->
 
 /// Run the experiment. `threads` only changes speed, never a result.
 pub fn run(spec: &Spec, table: &Table, threads: usize) -> Result<RunOutcome> {
+    run_reporting(spec, table, threads, &|_, _| {})
+}
+
+/// `run`, calling `progress(done, total)` as cross-validation tasks finish (for a display; the
+/// calls come from worker threads, in no particular order).
+pub fn run_reporting(
+    spec: &Spec,
+    table: &Table,
+    threads: usize,
+    progress: &(dyn Fn(usize, usize) + Sync),
+) -> Result<RunOutcome> {
     let prep = prepare(spec, table)?;
     let entries = entries(spec);
     check_grid(spec, table, &prep, &entries)?;
@@ -981,7 +992,7 @@ pub fn run(spec: &Spec, table: &Table, threads: usize) -> Result<RunOutcome> {
         inputs.extend(crate::external::input_hashes(cmd).map_err(Error::Input)?);
     }
     let candidates = cross_validate(
-        spec, table, &prep, &entries, &grids, &folds, threads, &mut notes,
+        spec, table, &prep, &entries, &grids, &folds, threads, &mut notes, progress,
     )?;
     let metric = spec.select.metric;
     let (best, selected) = select(&candidates, metric, spec.select.rule, &entries)?;
@@ -1136,6 +1147,7 @@ fn cross_validate(
     folds: &[crate::split::Fold],
     threads: usize,
     notes: &mut Notes,
+    progress: &(dyn Fn(usize, usize) + Sync),
 ) -> Result<Vec<CandidateResult>> {
     let impute = spec.data.missing == Missing::Mean;
     let tasks: Vec<(usize, usize)> = (0..folds.len())
@@ -1150,9 +1162,10 @@ fn cross_validate(
             Some(first)
         })
         .collect();
+    let done = AtomicUsize::new(0);
     let outs = parallel(tasks.len(), threads, |t| {
         let (f, e) = tasks[t];
-        run_task(
+        let out = run_task(
             spec,
             table,
             prep,
@@ -1162,7 +1175,9 @@ fn cross_validate(
             impute,
             first_ids[e],
             f as u32,
-        )
+        );
+        progress(done.fetch_add(1, Ordering::Relaxed) + 1, tasks.len());
+        out
     });
     if outs.len() != tasks.len() {
         return Err(Error::Internal("a worker thread panicked".into()));
@@ -1297,8 +1312,18 @@ fn nested_cv(
             other => other,
         };
         let inner = prep.inner_folds(spec, &outer.fit, o as u32).map_err(wrap)?;
-        let cands = cross_validate(spec, table, prep, entries, grids, &inner, threads, notes)
-            .map_err(wrap)?;
+        let cands = cross_validate(
+            spec,
+            table,
+            prep,
+            entries,
+            grids,
+            &inner,
+            threads,
+            notes,
+            &|_, _| {},
+        )
+        .map_err(wrap)?;
         let (_, chosen) = select(&cands, metric, spec.select.rule, entries).map_err(wrap)?;
         let c = &cands[chosen - 1];
         let (encoder, fitted) = fit_on(

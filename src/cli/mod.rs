@@ -8,6 +8,7 @@ mod merge;
 mod note;
 mod pack;
 mod predict;
+mod progress;
 mod replay;
 mod reveal;
 mod run;

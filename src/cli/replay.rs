@@ -60,7 +60,10 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
         .unwrap_or_else(|| std::thread::available_parallelism().map_or(1, |n| n.get()))
         .max(1);
     let started = chrono::Utc::now();
-    let outcome = crate::runner::run(&spec, &table, threads)?;
+    let outcome = {
+        let progress = super::progress::Progress::start(a.json);
+        crate::runner::run_reporting(&spec, &table, threads, &|d, t| progress.tasks(d, t))?
+    };
     let cmp = ledger.compare(a.run, &spec.canonical_hash(), &outcome)?;
     let identical = cmp.differences.is_empty();
     let shown: Vec<_> = cmp.differences.iter().take(100).collect();

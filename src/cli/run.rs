@@ -25,6 +25,8 @@ pub struct Args {
 pub fn run(g: &Global, a: Args) -> Result<i32> {
     let started = chrono::Utc::now();
     let mut phases = super::Phases::start();
+    let progress = super::progress::Progress::start(a.json);
+    progress.phase("reading the data");
     let (spec, table) = load_inputs(&a.spec)?;
     phases.mark("load");
     let threads = a
@@ -52,7 +54,9 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
             ),
         });
     }
-    let mut outcome = crate::runner::run(&spec, &table, threads)?;
+    let mut outcome =
+        crate::runner::run_reporting(&spec, &table, threads, &|d, t| progress.tasks(d, t))?;
+    progress.phase("writing the ledger");
     phases.mark("run");
     let mut ledger = match early {
         Some(l) => l,
@@ -76,6 +80,7 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
     exposure_warnings(&ledger, &table, &mut outcome)?;
     phases.mark("exposure");
     let id = ledger.write_run(&spec, &table, &outcome, &meta)?;
+    drop(progress);
     phases.mark("ledger");
     let detail = ledger
         .run(id)?

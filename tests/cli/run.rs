@@ -616,3 +616,21 @@ fn test_rows_never_enter_a_run() {
         l.run(2).unwrap().unwrap().model_json
     );
 }
+
+/// Progress is drawn only on a terminal: a run whose stderr is a pipe (scripts, CI, this test)
+/// gets no bar, no spinner and no carriage returns, whether or not it asks for JSON.
+#[test]
+fn progress_stays_off_a_pipe() {
+    let d = small_dir("quiet");
+    for args in [
+        &["run", "small.toml"][..],
+        &["run", "small.toml", "--json"][..],
+    ] {
+        let r = d.probity(args).expect(0);
+        let err = r.stderr();
+        assert!(
+            !err.contains('\r') && !err.contains("fitting") && !err.contains("reading the data"),
+            "{err:?}"
+        );
+    }
+}
