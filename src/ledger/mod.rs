@@ -14,6 +14,9 @@ use serde_json::Value;
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 
+/// Test-row identities written per statement.
+const KEYS_PER_STATEMENT: usize = 500;
+
 /// An open ledger.
 pub struct Ledger {
     conn: Connection,
@@ -238,17 +241,28 @@ impl Ledger {
         .map_err(fail)?;
         // A new partition brings its test rows' identities (exposure follows rows).
         if tx.changes() == 1 {
-            let mut st = tx
-                .prepare(
-                    "INSERT OR IGNORE INTO partition_rows (partition_id, row_key) VALUES (?1, ?2)",
-                )
-                .map_err(fail)?;
-            // In key order: both the table and its index then grow at their ends.
+            // In key order, so the table and its index grow at their ends, and many rows per
+            // statement: a large test partition holds hundreds of thousands of rows.
             let mut keys = prep.test_keys.clone();
             keys.sort_unstable();
-            for k in &keys {
-                st.execute(params![prep.partition_id, &k[..]])
-                    .map_err(fail)?;
+            let many = |n: usize| {
+                let tuples: Vec<String> = (0..n).map(|i| format!("(?1, ?{})", i + 2)).collect();
+                format!(
+                    "INSERT OR IGNORE INTO partition_rows (partition_id, row_key) VALUES {}",
+                    tuples.join(", ")
+                )
+            };
+            let mut full = tx.prepare(&many(KEYS_PER_STATEMENT)).map_err(fail)?;
+            for chunk in keys.chunks(KEYS_PER_STATEMENT) {
+                let mut vals: Vec<Sql> = Vec::with_capacity(chunk.len() + 1);
+                vals.push(Sql::Text(prep.partition_id.clone()));
+                vals.extend(chunk.iter().map(|k| Sql::Blob(k.to_vec())));
+                if chunk.len() == KEYS_PER_STATEMENT {
+                    full.execute(rusqlite::params_from_iter(vals.iter()))
+                } else {
+                    tx.execute(&many(chunk.len()), rusqlite::params_from_iter(vals.iter()))
+                }
+                .map_err(fail)?;
             }
         }
         let model_json = serde_json::to_string(&out.refit)
