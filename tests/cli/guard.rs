@@ -363,3 +363,33 @@ fn reveal_asks_on_a_terminal() {
         "{text}"
     );
 }
+
+/// A test partition larger than one insert statement's batch (500 identities): every test row's
+/// identity is stored once, and the stored set is exactly the run's test rows.
+#[test]
+fn large_test_partitions_store_every_row_identity() {
+    let d = crate::util::Dir::new("many-test-rows");
+    let mut csv = String::from("x,y\n");
+    for i in 0..2400 {
+        let x = i as f64 * 0.01;
+        csv.push_str(&format!("{x},{}\n", 3.0 * x + ((i * 7) % 13) as f64 * 0.1));
+    }
+    d.write("many.csv", &csv);
+    d.write(
+        "many.toml",
+        "name = \"many\"\ntask = \"regression\"\n[data]\npath = \"many.csv\"\ntarget = \"y\"\n[split]\nmethod = \"random\"\nseed = 3\ntest = 0.45\nfolds = 3\n[[model]]\nkind = \"ridge\"\nlambda = [0.1, 1.0]\n",
+    );
+    let j = d.probity(&["run", "many.toml", "--json"]).expect(0).json();
+    let n_test = j["partition"]["test"].as_i64().unwrap();
+    assert!(n_test > 1000, "{n_test}");
+    let c = rusqlite::Connection::open(d.ledger()).unwrap();
+    let (rows, distinct): (i64, i64) = c
+        .query_row(
+            "SELECT count(*), count(DISTINCT row_key) FROM partition_rows",
+            [],
+            |r| Ok((r.get(0)?, r.get(1)?)),
+        )
+        .unwrap();
+    assert_eq!((rows, distinct), (n_test, n_test));
+    d.probity(&["audit", "--verify"]).expect(0);
+}
