@@ -736,6 +736,7 @@ fn run_task(
     impute: bool,
     first_id: usize,
     fold_no: u32,
+    pre: Option<&Gram>,
 ) -> Result<TaskOut> {
     let nc = prep.classes.len();
     if nc > 0 {
@@ -786,7 +787,11 @@ fn run_task(
             target: &prep.target,
             table_row: &prep.rows,
         };
-        if let Some(fits) = Gram::of(&src, &fold.fit).solve(&lambdas) {
+        let gram = match pre {
+            Some(g) => g.clone(),
+            None => Gram::of(&src, &fold.fit),
+        };
+        if let Some(fits) = gram.solve(&lambdas) {
             let tf = Truth::of(&fold.fit.iter().map(|&i| prep.target[i]).collect::<Vec<_>>());
             let ts = Truth::of(
                 &fold
@@ -879,6 +884,88 @@ fn run_task(
         *notes.entry(k).or_insert(0) += v;
     }
     Ok(TaskOut { scores, notes })
+}
+
+/// The Gram matrix of each fold's fitting rows for the sufficient-statistics path, as the
+/// development rows' total minus the fold's held-out rows: one pass over the development rows
+/// instead of one over each fold's fitting rows. Only when some entry takes that path and the
+/// folds of each repeat split the development rows (every row held out exactly once, fitting
+/// rows = the rest); otherwise `None` per fold, and each task makes its own.
+#[allow(clippy::too_many_arguments)]
+fn fold_grams(
+    table: &Table,
+    prep: &Prepared,
+    entries: &[ModelSpec],
+    grids: &[Vec<Params>],
+    folds: &[crate::split::Fold],
+    threads: usize,
+    impute: bool,
+) -> Vec<Option<Gram>> {
+    let none = || vec![None; folds.len()];
+    let wanted = entries
+        .iter()
+        .zip(grids)
+        .any(|(e, g)| gram_lambdas(table, prep, e, g, impute).is_some());
+    let dev = prep.sealed.development();
+    if !wanted || dev.is_empty() {
+        return none();
+    }
+    let mut in_dev = vec![false; prep.rows.len()];
+    dev.iter().for_each(|&i| in_dev[i] = true);
+    let repeats: std::collections::BTreeSet<usize> = folds.iter().map(|f| f.repeat).collect();
+    for r in repeats {
+        // held[i]: how many folds of this repeat hold row i out; owner[i]: the last of them.
+        let mut held = vec![0u32; prep.rows.len()];
+        let mut owner = vec![usize::MAX; prep.rows.len()];
+        for (f, fold) in folds.iter().enumerate().filter(|(_, x)| x.repeat == r) {
+            if fold.fit.len() + fold.score.len() != dev.len() {
+                return none();
+            }
+            for &i in &fold.score {
+                held[i] += 1;
+                owner[i] = f;
+            }
+        }
+        if dev.iter().any(|&i| held[i] != 1) {
+            return none();
+        }
+        for (f, fold) in folds.iter().enumerate().filter(|(_, x)| x.repeat == r) {
+            // Fitting rows: development rows, none held out by this fold, none repeated.
+            let mut seen = vec![false; prep.rows.len()];
+            for &i in &fold.fit {
+                if !in_dev[i] || owner[i] == f || seen[i] {
+                    return none();
+                }
+                seen[i] = true;
+            }
+        }
+    }
+    let columns = numeric_columns(table, &prep.features);
+    let src = Source {
+        columns: &columns,
+        target: &prep.target,
+        table_row: &prep.rows,
+    };
+    let shift = Gram::row(&src, dev[0]);
+    let held: Vec<Gram> = parallel(folds.len(), threads, |f| {
+        Gram::of_shifted(&src, &folds[f].score, &shift)
+    });
+    if held.len() != folds.len() {
+        return none();
+    }
+    folds
+        .iter()
+        .enumerate()
+        .map(|(f, fold)| {
+            let parts: Vec<Gram> = folds
+                .iter()
+                .zip(&held)
+                .filter(|(x, _)| x.repeat == fold.repeat)
+                .map(|(_, g)| g.clone())
+                .collect();
+            Gram::total(&parts).map(|t| t.minus(&held[f]))
+        })
+        .collect()
 }
 
 fn not_finite(entry: &ModelSpec, params: &Params) -> Error {
@@ -1162,6 +1249,7 @@ fn cross_validate(
             Some(first)
         })
         .collect();
+    let pre = fold_grams(table, prep, entries, grids, folds, threads, impute);
     let done = AtomicUsize::new(0);
     let outs = parallel(tasks.len(), threads, |t| {
         let (f, e) = tasks[t];
@@ -1175,6 +1263,7 @@ fn cross_validate(
             impute,
             first_ids[e],
             f as u32,
+            pre[f].as_ref(),
         );
         progress(done.fetch_add(1, Ordering::Relaxed) + 1, tasks.len());
         out

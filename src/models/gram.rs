@@ -89,7 +89,7 @@ pub(crate) fn dot(a: &[f64], b: &[f64]) -> f64 {
 
 widest!(
     gram_of,
-    fn(src: &Source, rows: &[usize]) -> Gram,
+    fn(src: &Source, rows: &[usize], shift: &[f64]) -> Gram,
     gram_of_body
 );
 widest!(
@@ -101,7 +101,53 @@ widest!(
 impl Gram {
     /// One pass over `rows` (kept-row positions, in order).
     pub fn of(src: &Source, rows: &[usize]) -> Gram {
-        gram_of(src, rows)
+        // The first row as the shift: sums then hold deviations of the order of the spread.
+        let shift = rows
+            .first()
+            .map_or_else(|| vec![0.0; src.columns.len() + 1], |&i| Gram::row(src, i));
+        gram_of(src, rows, &shift)
+    }
+
+    /// One pass over `rows` about a given shift (Grams that will be added or subtracted must
+    /// share theirs).
+    pub fn of_shifted(src: &Source, rows: &[usize], shift: &[f64]) -> Gram {
+        gram_of(src, rows, shift)
+    }
+
+    /// [x, y] of one kept row.
+    pub fn row(src: &Source, i: usize) -> Vec<f64> {
+        src.columns
+            .iter()
+            .map(|c| c[src.table_row[i]])
+            .chain([src.target[i]])
+            .collect()
+    }
+
+    /// The sum of Grams over disjoint row sets (same shift), added in the order given.
+    pub fn total(parts: &[Gram]) -> Option<Gram> {
+        let mut out = parts.first()?.clone();
+        for g in &parts[1..] {
+            out.n += g.n;
+            out.sum.iter_mut().zip(&g.sum).for_each(|(a, b)| *a += b);
+            out.cross
+                .iter_mut()
+                .zip(&g.cross)
+                .for_each(|(a, b)| *a += b);
+        }
+        Some(out)
+    }
+
+    /// The Gram of the rows of `self` that are not in `part` (a subset, same shift): the fitting
+    /// rows of a fold as all rows minus the held-out ones.
+    pub fn minus(&self, part: &Gram) -> Gram {
+        let mut out = self.clone();
+        out.n -= part.n;
+        out.sum.iter_mut().zip(&part.sum).for_each(|(a, b)| *a -= b);
+        out.cross
+            .iter_mut()
+            .zip(&part.cross)
+            .for_each(|(a, b)| *a -= b);
+        out
     }
 
     /// (intercept, weights) in the original units for each lambda, as `ridge` defines them
@@ -161,19 +207,10 @@ impl Gram {
 }
 
 #[inline(always)]
-fn gram_of_body(src: &Source, rows: &[usize]) -> Gram {
+fn gram_of_body(src: &Source, rows: &[usize], shift: &[f64]) -> Gram {
     let p = src.columns.len();
     let dim = p + 1;
-    // The first row as the shift: sums then hold deviations of the order of the spread.
-    let shift: Vec<f64> = match rows.first() {
-        Some(&i) => src
-            .columns
-            .iter()
-            .map(|c| c[src.table_row[i]])
-            .chain([src.target[i]])
-            .collect(),
-        None => vec![0.0; dim],
-    };
+    let shift = shift.to_vec();
     let mut sum = vec![0.0; dim];
     let mut cross = vec![0.0; dim * dim];
     let mut block = vec![0.0; dim * BLOCK];
@@ -409,6 +446,58 @@ mod tests {
                 assert!((r - a[i * p + j]).abs() < 1e-14, "{i} {j}: {r}");
                 let o: f64 = (0..p).map(|k| v[k * p + i] * v[k * p + j]).sum();
                 assert!((o - if i == j { 1.0 } else { 0.0 }).abs() < 1e-14);
+            }
+        }
+    }
+
+    /// A fold's fitting-row Gram as all rows minus its held-out rows solves to the same
+    /// coefficients as a direct pass over its fitting rows (to rounding).
+    #[test]
+    fn total_minus_fold_equals_a_direct_pass() {
+        let n = 600;
+        let mut state = 7u64;
+        let mut next = || {
+            state = state
+                .wrapping_mul(6364136223846793005)
+                .wrapping_add(1442695040888963407);
+            (state >> 11) as f64 / (1u64 << 53) as f64
+        };
+        let cols: Vec<Vec<f64>> = (0..3)
+            .map(|j| {
+                (0..n)
+                    .map(|_| 50.0 * j as f64 + next() * (1.0 + j as f64))
+                    .collect()
+            })
+            .collect();
+        let y: Vec<f64> = (0..n)
+            .map(|i| cols[0][i] - 2.0 * cols[2][i] + next())
+            .collect();
+        let refs: Vec<&[f64]> = cols.iter().map(|c| c.as_slice()).collect();
+        let ident: Vec<usize> = (0..n).collect();
+        let src = Source {
+            columns: &refs,
+            target: &y,
+            table_row: &ident,
+        };
+        let folds: Vec<Vec<usize>> = (0..3)
+            .map(|f| (0..n).filter(|i| i % 3 == f).collect())
+            .collect();
+        let shift = Gram::row(&src, 0);
+        let held: Vec<Gram> = folds
+            .iter()
+            .map(|r| Gram::of_shifted(&src, r, &shift))
+            .collect();
+        let total = Gram::total(&held).unwrap();
+        assert_eq!(total.n, n);
+        for (f, h) in held.iter().enumerate() {
+            let fit: Vec<usize> = (0..n).filter(|i| i % 3 != f).collect();
+            let a = total.minus(h).solve(&[0.5, 10.0]).unwrap();
+            let b = Gram::of(&src, &fit).solve(&[0.5, 10.0]).unwrap();
+            for ((ia, wa), (ib, wb)) in a.iter().zip(&b) {
+                assert!((ia - ib).abs() <= 1e-10 * ib.abs().max(1.0), "{ia} {ib}");
+                for (x, z) in wa.iter().zip(wb) {
+                    assert!((x - z).abs() <= 1e-10 * z.abs().max(1e-3), "{x} {z}");
+                }
             }
         }
     }
