@@ -782,11 +782,7 @@ fn run_task(
     }
     if let Some(lambdas) = gram_lambdas(table, prep, entry, grid, impute) {
         let columns = numeric_columns(table, &prep.features);
-        let src = Source {
-            columns: &columns,
-            target: &prep.target,
-            table_row: &prep.rows,
-        };
+        let src = source(prep, &columns);
         let gram = match pre {
             Some(g) => g.clone(),
             None => Gram::of(&src, &fold.fit),
@@ -941,11 +937,7 @@ fn fold_grams(
         }
     }
     let columns = numeric_columns(table, &prep.features);
-    let src = Source {
-        columns: &columns,
-        target: &prep.target,
-        table_row: &prep.rows,
-    };
+    let src = source(prep, &columns);
     let shift = Gram::row(&src, dev[0]);
     let held: Vec<Gram> = parallel(folds.len(), threads, |f| {
         Gram::of_shifted(&src, &folds[f].score, &shift)
@@ -1005,6 +997,15 @@ fn gram_lambdas(
         .map(|p| crate::models::param(p, "lambda").map(|v| v.as_f64()))
         .collect::<Option<Vec<f64>>>()
         .filter(|ls| ls.iter().all(|&l| l > 0.0 && l.is_finite()))
+}
+
+/// Where the sufficient-statistics passes read this run's rows.
+fn source<'a>(prep: &'a Prepared, columns: &'a [&'a [f64]]) -> Source<'a> {
+    Source {
+        columns,
+        target: &prep.target,
+        table_row: &prep.rows,
+    }
 }
 
 /// The numeric feature columns, by table row.
@@ -1118,11 +1119,7 @@ pub fn run_reporting(
                 && weights.len() == columns.len()
                 && !refit.encoder.impute =>
             {
-                let src = Source {
-                    columns: &columns,
-                    target: &prep.target,
-                    table_row: &prep.rows,
-                };
+                let src = source(&prep, &columns);
                 crate::models::gram::predictions(&src, &dev_rows, *intercept, weights)
             }
             _ => predict_with(
@@ -1202,11 +1199,7 @@ fn fit_on(
         spec.data.missing == Missing::Mean,
     ) {
         let columns = numeric_columns(table, &prep.features);
-        let src = Source {
-            columns: &columns,
-            target: &prep.target,
-            table_row: &prep.rows,
-        };
+        let src = source(prep, &columns);
         if let Some(mut fits) = Gram::of(&src, fit).solve(&lambdas) {
             let (intercept, weights) = fits.remove(0);
             let fitted = Fitted::Linear {
