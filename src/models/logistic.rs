@@ -75,6 +75,35 @@ fn probs_from_scores(s: &[f64], n: usize, k: usize, classes: usize) -> Vec<f64> 
     out
 }
 
+/// Class probabilities (n x classes, row-major) for raw rows standardised by `center` and
+/// `scale`. Two classes take a column-wise pass with no copies of the design: the same
+/// arithmetic as standardising, then `scores_flat` (each score is the intercept plus the
+/// products summed in feature order from -0.0, as `Iterator::sum` sums).
+pub fn probabilities_raw(
+    x: &Matrix,
+    center: &[f64],
+    scale: &[f64],
+    coef: &[Vec<f64>],
+    classes: usize,
+) -> Vec<f64> {
+    if classes != 2 || coef.len() != 1 {
+        return probabilities(&standardize(x, center, scale), coef, classes);
+    }
+    let c = &coef[0];
+    let mut acc = vec![-0.0f64; x.rows];
+    for (b, ab) in acc.chunks_mut(BLOCK).enumerate() {
+        let (at, len) = (b * BLOCK, ab.len());
+        for j in 0..x.cols {
+            let (m, sc, w) = (center[j], scale[j], c[j + 1]);
+            for (a, v) in ab.iter_mut().zip(&x.col(j)[at..at + len]) {
+                *a += ((v - m) / sc) * w;
+            }
+        }
+    }
+    let scores: Vec<f64> = acc.iter().map(|a| c[0] + a).collect();
+    probs_from_scores(&scores, x.rows, 1, classes)
+}
+
 /// Class probabilities (n x classes, row-major) for standardised rows.
 pub fn probabilities(z: &Matrix, coef: &[Vec<f64>], classes: usize) -> Vec<f64> {
     let xr = rows_of(z);
@@ -280,30 +309,43 @@ const BLOCK: usize = 256;
 #[inline(always)]
 fn etas(z: &Matrix, c: &[f64]) -> Vec<f64> {
     let mut e = vec![c[0]; z.rows];
-    for (j, w) in c[1..].iter().enumerate() {
-        for (ei, zi) in e.iter_mut().zip(z.col(j)) {
-            *ei += w * zi;
+    // Block by block, so each block of scores stays in the cache while the columns pass.
+    for (b, eb) in e.chunks_mut(BLOCK).enumerate() {
+        let (at, len) = (b * BLOCK, eb.len());
+        for (j, w) in c[1..].iter().enumerate() {
+            for (ei, zi) in eb.iter_mut().zip(&z.col(j)[at..at + len]) {
+                *ei += w * zi;
+            }
         }
     }
     e
 }
 
-/// Summed log-loss of the binary model + (lambda/2) ||w||^2.
+/// Summed log-loss of the binary model + (lambda/2) ||w||^2, with the linear scores and
+/// exp(-|score|) per row, which the next Newton step reuses for its probabilities.
 #[inline(always)]
-fn objective_binary(z: &Matrix, y: &[f64], c: &[f64], lambda: f64) -> f64 {
-    let loss: f64 = etas(z, c)
+fn objective_binary(z: &Matrix, y: &[f64], c: &[f64], lambda: f64) -> (f64, Vec<f64>, Vec<f64>) {
+    let eta = etas(z, c);
+    let ex: Vec<f64> = eta.iter().map(|e| (-e.abs()).exp()).collect();
+    let loss: f64 = eta
         .iter()
+        .zip(&ex)
         .zip(y)
-        .map(|(&eta, &yi)| {
+        .map(|((&eta, &ex), &yi)| {
+            // log(1 + exp(eta)) without overflow on either side.
             let softplus = if eta > 0.0 {
-                eta + (-eta).exp().ln_1p()
+                eta + ex.ln_1p()
             } else {
-                eta.exp().ln_1p()
+                ex.ln_1p()
             };
             softplus - if yi as usize == 1 { eta } else { 0.0 }
         })
         .sum();
-    loss + 0.5 * lambda * c[1..].iter().map(|w| w * w).sum::<f64>()
+    (
+        loss + 0.5 * lambda * c[1..].iter().map(|w| w * w).sum::<f64>(),
+        eta,
+        ex,
+    )
 }
 
 /// Newton's method for two classes, column-oriented: the Hessian X'WX is accumulated block by
@@ -315,20 +357,25 @@ fn newton_binary(z: &Matrix, y: &[f64], lambda: f64, start: Option<Vec<Vec<f64>>
     let (n, p) = (z.rows, z.cols);
     let d = p + 1;
     let mut coef = start.unwrap_or_else(|| vec![vec![0.0; d]]);
-    let mut f = objective_binary(z, y, &coef[0], lambda);
+    let (mut f, eta0, ex0) = objective_binary(z, y, &coef[0], lambda);
+    // The scores and exp(-|score|) of the current point: from the line search that accepted it.
+    let last = std::cell::RefCell::new((eta0, ex0));
     let mut wz = vec![0.0; d * BLOCK];
     for _ in 0..MAX_ITER {
-        let eta = etas(z, &coef[0]);
-        let prob: Vec<f64> = eta
-            .iter()
-            .map(|&e| {
-                if e >= 0.0 {
-                    1.0 / (1.0 + (-e).exp())
-                } else {
-                    e.exp() / (1.0 + e.exp())
-                }
-            })
-            .collect();
+        let prob: Vec<f64> = {
+            let cur = last.borrow();
+            cur.0
+                .iter()
+                .zip(&cur.1)
+                .map(|(&e, &ex)| {
+                    if e >= 0.0 {
+                        1.0 / (1.0 + ex)
+                    } else {
+                        ex / (1.0 + ex)
+                    }
+                })
+                .collect()
+        };
         let r: Vec<f64> = prob
             .iter()
             .zip(y)
@@ -339,6 +386,20 @@ fn newton_binary(z: &Matrix, y: &[f64], lambda: f64, start: Option<Vec<Vec<f64>>
         grad[0] = r.iter().sum();
         for j in 0..p {
             grad[j + 1] = dot(&r, z.col(j));
+        }
+        // Converged already: stop before building a Hessian (`finish_step` would stop too).
+        let penalised: f64 = (0..d)
+            .map(|j| {
+                let g = if j == 0 {
+                    grad[0]
+                } else {
+                    grad[j] + lambda * coef[0][j]
+                };
+                g * g
+            })
+            .sum();
+        if penalised.sqrt() <= TOL {
+            return (coef, true, false);
         }
         // Upper triangle of X'WX, the intercept as column 0.
         let mut h = vec![0.0; d * d];
@@ -372,7 +433,9 @@ fn newton_binary(z: &Matrix, y: &[f64], lambda: f64, start: Option<Vec<Vec<f64>>
             }
         }
         match finish_step(coef, grad, h, f, lambda, n, |c| {
-            objective_binary(z, y, &c[0], lambda)
+            let (v, eta, ex) = objective_binary(z, y, &c[0], lambda);
+            *last.borrow_mut() = (eta, ex);
+            v
         }) {
             Next::Done(fit) => return fit,
             Next::Go(c, fc) => (coef, f) = (c, fc),
@@ -397,7 +460,22 @@ impl Logistic {
         }
         let (center, scale) = mean_sd(&x.x);
         let z = standardize(&x.x, &center, &scale);
-        let (coef, converged, separable) = newton(&z, y, self.classes, lambda, start);
+        self.fit_standardized(&z, center, scale, y, lambda, notes, start)
+    }
+
+    /// `fit_one` on an already standardised design (a grid standardises once).
+    #[allow(clippy::too_many_arguments)]
+    fn fit_standardized(
+        &self,
+        z: &Matrix,
+        center: Vec<f64>,
+        scale: Vec<f64>,
+        y: &[f64],
+        lambda: f64,
+        notes: &mut Notes,
+        start: Option<Vec<Vec<f64>>>,
+    ) -> Result<Fitted> {
+        let (coef, converged, separable) = newton(z, y, self.classes, lambda, start);
         if separable {
             note(notes, "logistic with lambda = 0: the classes are (almost) perfectly separable, so the weights grow without bound; the fit was stopped. Set lambda > 0".to_string());
         } else if !converged {
@@ -439,8 +517,24 @@ impl Model for Logistic {
         });
         let mut out = vec![Vec::new(); grid.len()];
         let mut start = None;
+        if self.classes < 2 {
+            return Err(Error::Input(
+                "logistic needs a classification task with at least two classes".into(),
+            ));
+        }
+        // One standardisation for the whole path: the same fitting rows every time.
+        let (center, scale) = mean_sd(&x.x);
+        let z = standardize(&x.x, &center, &scale);
         for g in order {
-            let fitted = self.fit_one(x, y, lambda(&grid[g]), notes, start.take())?;
+            let fitted = self.fit_standardized(
+                &z,
+                center.clone(),
+                scale.clone(),
+                y,
+                lambda(&grid[g]),
+                notes,
+                start.take(),
+            )?;
             if let Fitted::Logistic { coef, .. } = &fitted {
                 start = Some(coef.clone());
             }

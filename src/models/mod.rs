@@ -159,7 +159,7 @@ impl Fitted {
                 scale,
                 coef,
                 classes,
-            } => logistic::probabilities(&linalg::standardize(x, center, scale), coef, *classes),
+            } => logistic::probabilities_raw(x, center, scale, coef, *classes),
             // Never called: the runner runs the command instead.
             Fitted::External => Vec::new(),
         }
