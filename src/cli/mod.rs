@@ -102,8 +102,17 @@ pub(crate) fn out(text: &str) -> Result<()> {
 }
 
 pub(crate) fn out_json(v: &serde_json::Value) -> Result<()> {
-    let s = serde_json::to_string_pretty(v).map_err(|e| Error::Internal(e.to_string()))?;
-    out(&format!("{s}\n"))
+    // Streamed: a run of 10,000 candidates is megabytes of JSON.
+    let mut o = std::io::BufWriter::new(std::io::stdout().lock());
+    serde_json::to_writer_pretty(&mut o, v)
+        .map_err(std::io::Error::from)
+        .and_then(|_| o.write_all(b"\n"))
+        .and_then(|_| o.flush())
+        .map_err(|e| Error::Io {
+            action: "cannot write to",
+            path: PathBuf::from("stdout"),
+            source: e,
+        })
 }
 
 pub(crate) fn warn(msg: &str) {
