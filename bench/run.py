@@ -99,17 +99,21 @@ def run_probity(binary, spec_path, ledger):
     if out.returncode != 0:
         raise SystemExit(f"probity failed: {out.stderr[-2000:]}")
     wall = rss = load = None
+    stored = 0.0
     for line in out.stderr.splitlines():
         line = line.strip()
-        # PROBITY_TIMINGS: the load phase (read, parse, hash) is the parse floor of the same run.
+        # PROBITY_TIMINGS: the load phase (read, parse, hash) is the parse floor of the same run;
+        # load + run + exposure + ledger is the time until the run is committed.
         if line.startswith("timing load:"):
             load = float(line.split()[2])
+        if line.startswith("timing ") and line.split()[1].rstrip(":") in ("load", "run", "exposure", "ledger"):
+            stored += float(line.split()[-2])
         if line.startswith("Elapsed (wall clock) time"):
             t = line.rsplit(" ", 1)[1].split(":")
             wall = sum(float(x) * 60 ** i for i, x in enumerate(reversed(t)))
         if line.startswith("Maximum resident set size"):
             rss = int(line.rsplit(" ", 1)[1]) / 1024
-    return wall, rss, load
+    return wall, rss, load, stored
 
 
 def run_peer(files, stages, repeats_json):
@@ -138,12 +142,13 @@ def main():
         with open(spec_path, "w") as f:
             f.write(spec(f"bench-{sc}", files[key], task, models, folds))
         ledger = os.path.join(args.data, f"bench-{sc}.sqlite")
-        ours, rss, peer, loads = [], [], [], []
+        ours, rss, peer, loads, stores = [], [], [], [], []
         for _ in range(args.repeats):
-            w, m, ld = run_probity(binary, spec_path, ledger)
+            w, m, ld, st = run_probity(binary, spec_path, ledger)
             ours.append(w)
             rss.append(m)
             loads.append(ld)
+            stores.append(st)
             p = run_peer(files, PEER[sc], os.path.join(args.data, "peer.json"))
             if p:
                 peer.append(sum(p.values()))
@@ -152,7 +157,8 @@ def main():
         rows.append((sc, o, q, max(rss)))
         ld = statistics.median(loads)
         print(f"{sc}: probity {o:.3f} s (runs {', '.join(f'{x:.3f}' for x in ours)}), peak {max(rss):.0f} MiB; "
-              + f"load (read+parse+hash) {ld:.3f} s, total/load {o / ld:.2f}; "
+              + f"load (read+parse+hash) {ld:.3f} s, total/load {o / ld:.2f}, "
+              + f"committed after {statistics.median(stores):.3f} s; "
               + (f"peer {'+'.join(PEER[sc])} {q:.3f} s, ratio {o / q:.2f}" if q else "no peer stage"), flush=True)
     print("\nscenario  probity_s  peer_s  ratio  probity_peak_MiB")
     for sc, o, q, m in rows:
