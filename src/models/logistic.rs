@@ -86,6 +86,23 @@ pub fn probabilities_raw(
     coef: &[Vec<f64>],
     classes: usize,
 ) -> Vec<f64> {
+    probabilities_wide(x, center, scale, coef, classes)
+}
+
+widest!(
+    probabilities_wide,
+    fn(x: &Matrix, center: &[f64], scale: &[f64], coef: &[Vec<f64>], classes: usize) -> Vec<f64>,
+    probabilities_body
+);
+
+#[inline(always)]
+fn probabilities_body(
+    x: &Matrix,
+    center: &[f64],
+    scale: &[f64],
+    coef: &[Vec<f64>],
+    classes: usize,
+) -> Vec<f64> {
     if classes != 2 || coef.len() != 1 {
         return probabilities(&standardize(x, center, scale), coef, classes);
     }
@@ -348,6 +365,12 @@ fn objective_binary(z: &Matrix, y: &[f64], c: &[f64], lambda: f64) -> (f64, Vec<
     )
 }
 
+widest!(
+    objective_wide,
+    fn(z: &Matrix, y: &[f64], c: &[f64], lambda: f64) -> (f64, Vec<f64>, Vec<f64>),
+    objective_binary
+);
+
 /// Newton's method for two classes, column-oriented: the Hessian X'WX is accumulated block by
 /// block as weighted dot products of the design's columns (fixed lanes, so the same bits on
 /// any machine), the same iteration, line search and stopping rules as `newton`.
@@ -433,7 +456,8 @@ fn newton_binary(z: &Matrix, y: &[f64], lambda: f64, start: Option<Vec<Vec<f64>>
             }
         }
         match finish_step(coef, grad, h, f, lambda, n, |c| {
-            let (v, eta, ex) = objective_binary(z, y, &c[0], lambda);
+            // Through the dispatcher: a closure is compiled without the caller's vector unit.
+            let (v, eta, ex) = objective_wide(z, y, &c[0], lambda);
             *last.borrow_mut() = (eta, ex);
             v
         }) {
