@@ -84,7 +84,7 @@ impl Prepared {
             .iter()
             .map(|&i| self.rows[i])
             .collect();
-        crate::data::row_keys(table, self.key, &rows)
+        crate::data::row_keys(table, self.key, &rows, crate::data::all_cores())
     }
 }
 
@@ -167,7 +167,8 @@ fn named_col(spec: &Spec, table: &Table, n: &Named, role: &str) -> Result<usize>
 }
 
 /// Resolve the spec's columns against the table, handle missing values and split.
-pub fn prepare(spec: &Spec, table: &Table) -> Result<Prepared> {
+/// `threads` only changes speed (the row identities are hashed on them).
+pub fn prepare(spec: &Spec, table: &Table, threads: usize) -> Result<Prepared> {
     let d = &spec.data;
     if let Some((want, loc)) = &d.sha256
         && *want != table.sha256
@@ -452,7 +453,7 @@ pub fn prepare(spec: &Spec, table: &Table) -> Result<Prepared> {
         .iter()
         .map(|&i| rows[i])
         .collect();
-    let test_keys = crate::data::row_keys(table, key, &test_rows);
+    let test_keys = crate::data::row_keys(table, key, &test_rows, threads);
     let mut warnings = Vec::new();
     if dropped > 0 {
         warnings.push(format!(
@@ -1069,7 +1070,7 @@ pub fn run_reporting(
     threads: usize,
     progress: &(dyn Fn(usize, usize) + Sync),
 ) -> Result<RunOutcome> {
-    let prep = prepare(spec, table)?;
+    let prep = prepare(spec, table, threads)?;
     let entries = entries(spec);
     check_grid(spec, table, &prep, &entries)?;
     let grids: Vec<Vec<Params>> = entries.iter().map(ModelSpec::expand).collect();
@@ -1508,7 +1509,7 @@ fn select(
 /// Refit one candidate of a stored run on all development rows (for `predict --candidate`).
 /// The spec and data must be the run's own; the caller checks the data hash.
 pub fn refit(spec: &Spec, table: &Table, candidate: usize) -> Result<StoredModel> {
-    let prep = prepare(spec, table)?;
+    let prep = prepare(spec, table, crate::data::all_cores())?;
     refit_prepared(spec, table, &prep, candidate)
 }
 

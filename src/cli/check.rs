@@ -19,8 +19,8 @@ pub struct Args {
 }
 
 pub fn run(_g: &Global, a: Args) -> Result<i32> {
-    let (spec, table) = load_inputs(&a.spec)?;
-    let prep = crate::runner::prepare(&spec, &table)?;
+    let (spec, table) = load_inputs(&a.spec, crate::data::all_cores())?;
+    let prep = crate::runner::prepare(&spec, &table, crate::data::all_cores())?;
     let entries = crate::runner::entries(&spec);
     let n_cands: usize = entries.iter().map(|e| e.expand().len()).sum();
     let s = &prep.sealed;

@@ -161,7 +161,10 @@ pub(crate) fn absolute(p: &Path) -> String {
 }
 
 /// Load the spec and its data file.
-pub(crate) fn load_inputs(spec_path: &Path) -> Result<(crate::spec::Spec, crate::data::Table)> {
+pub(crate) fn load_inputs(
+    spec_path: &Path,
+    threads: usize,
+) -> Result<(crate::spec::Spec, crate::data::Table)> {
     let spec = crate::spec::load(spec_path)?;
     let text: Vec<&str> = spec
         .data
@@ -179,7 +182,7 @@ pub(crate) fn load_inputs(spec_path: &Path) -> Result<(crate::spec::Spec, crate:
             ),
         });
     }
-    let table = crate::data::load(&spec.data.path, &text)?;
+    let table = crate::data::load(&spec.data.path, &text, threads)?;
     Ok((spec, table))
 }
 

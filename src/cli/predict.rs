@@ -52,11 +52,11 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
     };
     let text_cols = model.text_columns();
     let text: Vec<&str> = text_cols.iter().map(String::as_str).collect();
-    let input = crate::data::load(&a.input, &text)?;
+    let input = crate::data::load(&a.input, &text, crate::data::all_cores())?;
     let (pred, notes) = if matches!(model.fitted, crate::models::Fitted::External) {
         // An external command keeps no model: fit it again on the run's development rows.
         let (spec, table) = super::reveal::reload(&d, None)?;
-        let prep = crate::runner::prepare(&spec, &table)?;
+        let prep = crate::runner::prepare(&spec, &table, crate::data::all_cores())?;
         let dev = prep.sealed.development();
         let rows: Vec<usize> = (0..input.n_rows()).collect();
         let mut notes = crate::models::encode::Notes::new();
@@ -155,7 +155,7 @@ fn guard_sealed_rows(
         return Ok(());
     }
     let key = model.key.as_deref().and_then(|k| input.index_of(k));
-    let keys = crate::data::row_keys(input, key, &rows);
+    let keys = crate::data::row_keys(input, key, &rows, crate::data::all_cores());
     let hits = ledger.sealed_partitions_holding(&keys)?;
     if hits.is_empty() {
         return Ok(());

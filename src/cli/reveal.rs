@@ -50,7 +50,7 @@ pub(crate) fn reload(
     let path = data
         .map(Path::to_path_buf)
         .unwrap_or_else(|| PathBuf::from(&d.data_path));
-    let table = crate::data::load(&path, &text)?;
+    let table = crate::data::load(&path, &text, crate::data::all_cores())?;
     if table.sha256 != d.summary.data_sha256 {
         return Err(Error::Input(format!(
             "{} has SHA-256 {} but run {} used {}; the data changed, so the run's partition cannot be rebuilt (pass --data with the original file)",
@@ -121,7 +121,7 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
         })?
         .clone();
     let (spec, table) = reload(&d, a.data.as_deref())?;
-    let prep = crate::runner::prepare(&spec, &table)?;
+    let prep = crate::runner::prepare(&spec, &table, crate::data::all_cores())?;
     if prep.partition_id != d.summary.partition_id {
         return Err(Error::Internal(format!(
             "rebuilt partition {} differs from the stored {}",

@@ -27,12 +27,9 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
     let mut phases = super::Phases::start();
     let progress = super::progress::Progress::start(a.json);
     progress.phase("reading the data");
-    let (spec, table) = load_inputs(&a.spec)?;
+    let threads = a.threads.unwrap_or_else(crate::data::all_cores).max(1);
+    let (spec, table) = load_inputs(&a.spec, threads)?;
     phases.mark("load");
-    let threads = a
-        .threads
-        .unwrap_or_else(|| std::thread::available_parallelism().map_or(1, |n| n.get()))
-        .max(1);
     // An existing ledger is opened (and migrated) before the long work, so a bad ledger fails
     // fast; a new one is created only once the run has succeeded, so a refused spec leaves no
     // trace on disk.

@@ -195,11 +195,10 @@ impl Table {
 /// reordering columns keeps the identity; adding or changing a column changes it).
 pub type RowKey = [u8; 16];
 
-pub fn row_keys(table: &Table, key: Option<usize>, rows: &[usize]) -> Vec<RowKey> {
+pub fn row_keys(table: &Table, key: Option<usize>, rows: &[usize], threads: usize) -> Vec<RowKey> {
     let mut order: Vec<usize> = (0..table.columns.len()).collect();
     order.sort_by(|&a, &b| table.columns[a].name.cmp(&table.columns[b].name));
-    // Rows are independent: cut them into one contiguous run per core, joined in order.
-    let threads = std::thread::available_parallelism().map_or(1, |n| n.get());
+    // Rows are independent: cut them into one contiguous run per thread, joined in order.
     let per = rows.len().div_ceil(threads.max(1)).max(4096);
     std::thread::scope(|s| {
         let parts: Vec<_> = rows
@@ -247,6 +246,11 @@ fn keys_of(table: &Table, key: Option<usize>, order: &[usize], rows: &[usize]) -
         .collect()
 }
 
+/// Every core the machine offers (the default thread count).
+pub fn all_cores() -> usize {
+    std::thread::available_parallelism().map_or(1, |n| n.get())
+}
+
 /// SHA-256 of a file's bytes, hex.
 pub fn file_sha256(path: &Path) -> Result<String> {
     let bytes = read(path)?;
@@ -264,13 +268,13 @@ fn read(path: &Path) -> Result<Vec<u8>> {
     })
 }
 
-/// Load a CSV file. Columns named in `text_columns` are read as text even when numeric.
-pub fn load(path: &Path, text_columns: &[&str]) -> Result<Table> {
+/// Load a CSV file on `threads` threads (the table is the same for any number). Columns named
+/// in `text_columns` are read as text even when numeric.
+pub fn load(path: &Path, text_columns: &[&str], threads: usize) -> Result<Table> {
     if path.is_dir() {
         return Err(Error::data(path, None, None, "is a folder, not a CSV file"));
     }
-    let threads = std::thread::available_parallelism().map_or(1, |n| n.get());
-    if let Some(t) = fast::load(path, text_columns, threads, FAST_BLOCK)? {
+    if let Some(t) = fast::load(path, text_columns, threads.max(1), FAST_BLOCK)? {
         return Ok(t);
     }
     let bytes = read(path)?;

@@ -29,7 +29,7 @@ fn probabilities(
     family: Family,
     params: Vec<(String, ParamValue)>,
 ) -> Vec<f64> {
-    let table = load(&reference(file), &[]).unwrap();
+    let table = load(&reference(file), &[], 2).unwrap();
     let part = table.column("part").unwrap();
     let rows =
         |w: &str| -> Vec<usize> { (0..table.n_rows()).filter(|&r| part.text(r) == w).collect() };

@@ -87,7 +87,7 @@ fn column(table: &Table, name: &str) -> Vec<f64> {
 
 #[test]
 fn longley_ols_matches_nist_certified_values() {
-    let table = load(&reference("longley.csv"), &[]).unwrap();
+    let table = load(&reference("longley.csv"), &[], 2).unwrap();
     let exp = json("longley.expected.json");
     let cert = &exp["certified"];
     let y = column(&table, "y");
@@ -132,7 +132,7 @@ fn longley_ols_matches_nist_certified_values() {
 
 fn diabetes() -> (Table, Value) {
     (
-        load(&reference("diabetes.csv"), &[]).unwrap(),
+        load(&reference("diabetes.csv"), &[], 2).unwrap(),
         json("diabetes.expected.json"),
     )
 }
