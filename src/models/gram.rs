@@ -1,7 +1,9 @@
 //! Sufficient statistics for standardised ridge: one pass over the fitting rows builds the
 //! cross-product matrix of [x, y] (about a shift, so sums do not cancel), one symmetric
 //! eigendecomposition of the standardised Gram matrix then gives every penalty of a grid at
-//! O(p^2) each, and one more pass predicts every penalty at once and sums the errors.
+//! O(p^2) each, and one more pass predicts every penalty at once and sums the errors. Grams
+//! about the same shift add and subtract, so the runner forms each fold's fitting-row Gram as
+//! the development total minus the fold's held-out rows (one pass for all folds).
 //!
 //! Forming X'X squares the condition number, which is harmless with standardised columns and a
 //! positive penalty (the penalty bounds the condition number), and wrong for plain least squares
