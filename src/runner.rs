@@ -1241,8 +1241,29 @@ fn cross_validate(
     progress: &(dyn Fn(usize, usize) + Sync),
 ) -> Result<Vec<CandidateResult>> {
     let impute = spec.data.missing == Missing::Mean;
-    let tasks: Vec<(usize, usize)> = (0..folds.len())
-        .flat_map(|f| (0..entries.len()).map(move |e| (f, e)))
+    // A grid on the sufficient-statistics path is cut into one chunk of fits per thread: each
+    // fit's sums are its own, so the cut changes no bit and keeps every thread busy. Other
+    // grids stay whole (they share a decomposition or warm starts).
+    let chunks: Vec<usize> = entries
+        .iter()
+        .zip(grids)
+        .map(|(e, g)| {
+            if gram_lambdas(table, prep, e, g, impute).is_some() {
+                threads.min(g.len() / 8).max(1)
+            } else {
+                1
+            }
+        })
+        .collect();
+    // (fold, entry, first grid point, end)
+    let tasks: Vec<(usize, usize, usize, usize)> = (0..folds.len())
+        .flat_map(|f| {
+            let chunks = &chunks;
+            (0..entries.len()).flat_map(move |e| {
+                let (k, n) = (chunks[e], grids[e].len());
+                (0..k).map(move |c| (f, e, c * n / k, (c + 1) * n / k))
+            })
+        })
         .collect();
     // Candidate ids are consecutive over the entries' grids.
     let first_ids: Vec<usize> = grids
@@ -1256,16 +1277,16 @@ fn cross_validate(
     let pre = fold_grams(table, prep, entries, grids, folds, threads, impute);
     let done = AtomicUsize::new(0);
     let outs = parallel(tasks.len(), threads, |t| {
-        let (f, e) = tasks[t];
+        let (f, e, lo, hi) = tasks[t];
         let out = run_task(
             spec,
             table,
             prep,
             &entries[e],
-            &grids[e],
+            &grids[e][lo..hi],
             &folds[f],
             impute,
-            first_ids[e],
+            first_ids[e] + lo,
             f as u32,
             pre[f].as_ref(),
         );
@@ -1275,8 +1296,14 @@ fn cross_validate(
     if outs.len() != tasks.len() {
         return Err(Error::Internal("a worker thread panicked".into()));
     }
-    // Reduce in task order: the first error by task, the notes merged in a sorted map.
-    let mut by_task = Vec::with_capacity(outs.len());
+    // Reduce in task order: the first error by task, the notes merged in a sorted map, the
+    // chunks of a (fold, entry) joined in grid order.
+    let mut by_task: Vec<TaskOut> = (0..folds.len() * entries.len())
+        .map(|_| TaskOut {
+            scores: Vec::new(),
+            notes: Notes::new(),
+        })
+        .collect();
     for (t, o) in outs.into_iter().enumerate() {
         let o = o.map_err(|e| match e {
             Error::Input(m) => {
@@ -1292,7 +1319,8 @@ fn cross_validate(
         for (k, v) in &o.notes {
             *notes.entry(k.clone()).or_insert(0) += v;
         }
-        by_task.push(o);
+        let (f, e, _, _) = tasks[t];
+        by_task[f * entries.len() + e].scores.extend(o.scores);
     }
     let mut candidates = Vec::new();
     for (e, entry) in entries.iter().enumerate() {

@@ -634,3 +634,40 @@ fn progress_stays_off_a_pipe() {
         );
     }
 }
+
+/// The sufficient-statistics path for ridge cuts a large grid into one chunk of fits per thread;
+/// the scores must not depend on the cut (1, 2 and 3 threads on a 24-point grid).
+#[test]
+fn ridge_grid_chunks_change_no_bit() {
+    let d = Dir::new("ridge-chunks");
+    let mut csv = String::from("a,b,c,y\n");
+    for i in 0..300 {
+        let (a, b, c) = (
+            i as f64 * 0.37 % 11.0,
+            ((i * 7) % 13) as f64 * 1.5,
+            (i as f64).sqrt(),
+        );
+        csv.push_str(&format!(
+            "{a},{b},{c},{}\n",
+            2.0 * a - b + 0.3 * c + ((i * 5) % 7) as f64 * 0.2
+        ));
+    }
+    d.write("g.csv", &csv);
+    d.write(
+        "g.toml",
+        "name = \"g\"\ntask = \"regression\"\n[data]\npath = \"g.csv\"\ntarget = \"y\"\n[split]\nmethod = \"random\"\nseed = 5\ntest = 0.2\nfolds = 4\n[[model]]\nkind = \"ridge\"\nlambda = { from = 0.001, to = 1000, steps = 24, scale = \"log\" }\n",
+    );
+    let runs: Vec<Value> = ["1", "2", "3"]
+        .iter()
+        .map(|t| {
+            d.probity(&["run", "g.toml", "--json", "--threads", t])
+                .expect(0)
+                .json()
+        })
+        .collect();
+    assert_eq!(runs[0]["candidates"].as_array().unwrap().len(), 25);
+    for r in &runs[1..] {
+        assert_eq!(scores_only(r), scores_only(&runs[0]));
+        assert_eq!(r["selected"], runs[0]["selected"]);
+    }
+}
