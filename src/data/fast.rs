@@ -103,6 +103,11 @@ fn parse_blocks(
     } else {
         0
     };
+    // A header longer than a block: read on until its line ends.
+    while more && memchr::memchr(b'\n', &buf[start..]).is_none() {
+        let want = buf.len() * 2;
+        more = fill(&mut f, &mut buf, want, path)?;
+    }
     let Some(nl) = memchr::memchr(b'\n', &buf[start..]).map(|i| i + start) else {
         return Ok(None);
     };

@@ -773,4 +773,42 @@ mod tests {
             assert_eq!(buf, format!("{v}"), "{:e}", v);
         }
     }
+
+    /// A line longer than a block makes the fast loader grow its buffer; a quoted file goes to
+    /// the general reader through `load`; both give the general reader's table.
+    #[test]
+    fn long_lines_and_quoted_files_load_right() {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("wide.csv");
+        let ncol = 600;
+        let header: Vec<String> = (0..ncol).map(|c| format!("c{c}")).collect();
+        let mut text = header.join(",") + "\n";
+        for r in 0..5 {
+            let row: Vec<String> = (0..ncol).map(|c| format!("{}.25", r * ncol + c)).collect();
+            text.push_str(&(row.join(",") + "\n"));
+        }
+        assert!(
+            text.lines().nth(1).unwrap().len() > 2048,
+            "longer than the 1 KiB block"
+        );
+        std::fs::write(&path, &text).unwrap();
+        let want = parse(
+            text.as_bytes(),
+            &path,
+            crate::spec::hex(&Sha256::digest(text.as_bytes())),
+            &[],
+        )
+        .unwrap();
+        let got = fast::load(&path, &[], 2, 1024)
+            .unwrap()
+            .expect("plain file");
+        assert_eq!(got.columns, want.columns);
+        assert_eq!(got.sha256, want.sha256);
+        let quoted = dir.path().join("q.csv");
+        let q = "a,b\n1,\"x, y\"\n2,z\n";
+        std::fs::write(&quoted, q).unwrap();
+        let t = load(&quoted, &[], 2).unwrap();
+        assert_eq!(t.columns[1].text(0), "x, y");
+        assert_eq!(t.sha256, crate::spec::hex(&Sha256::digest(q.as_bytes())));
+    }
 }
