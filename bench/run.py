@@ -22,6 +22,7 @@ and /usr/bin/time. Data files (about 0.5 GB) go to --data (default: a temporary 
 import argparse
 import json
 import os
+import re
 import statistics
 import subprocess
 import sys
@@ -104,10 +105,11 @@ def run_probity(binary, spec_path, ledger):
         line = line.strip()
         # PROBITY_TIMINGS: the load phase (read, parse, hash) is the parse floor of the same run;
         # load + run + exposure + ledger is the time until the run is committed.
-        if line.startswith("timing load:"):
-            load = float(line.split()[2])
-        if line.startswith("timing ") and line.split()[1].rstrip(":") in ("load", "run", "exposure", "ledger"):
-            stored += float(line.split()[-2])
+        m = re.match(r"timing ([a-z ]+): ([0-9.]+) s", line)
+        if m and m.group(1) == "load":
+            load = float(m.group(2))
+        if m and m.group(1) in ("load", "run", "exposure", "ledger"):
+            stored += float(m.group(2))
         if line.startswith("Elapsed (wall clock) time"):
             t = line.rsplit(" ", 1)[1].split(":")
             wall = sum(float(x) * 60 ** i for i, x in enumerate(reversed(t)))

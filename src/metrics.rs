@@ -234,11 +234,18 @@ pub struct Truth {
 
 impl Truth {
     pub fn of(y: &[f64]) -> Truth {
-        let n = y.len();
-        let mean = y.iter().sum::<f64>() / n.max(1) as f64;
-        let sst: f64 = y.iter().map(|v| (v - mean) * (v - mean)).sum();
+        Truth::of_rows(y, 0..y.len())
+    }
+
+    /// `of` for the rows `rows` of `y` (in that order), without copying them out.
+    pub fn of_rows(y: &[f64], rows: impl Iterator<Item = usize> + Clone) -> Truth {
+        let n = rows.clone().count();
+        let mean = rows.clone().map(|i| y[i]).sum::<f64>() / n.max(1) as f64;
+        let sst: f64 = rows.clone().map(|i| (y[i] - mean) * (y[i] - mean)).sum();
         // One distinct value among the scored rows (always so with leave-one-out).
-        let constant = sst == 0.0 || y.iter().all(|v| *v == y[0]);
+        let mut values = rows.map(|i| y[i]);
+        let first = values.next();
+        let constant = sst == 0.0 || values.all(|v| Some(v) == first);
         Truth {
             n,
             sst: (!constant).then_some(sst),

@@ -297,6 +297,8 @@ pub fn prepare(spec: &Spec, table: &Table, threads: usize) -> Result<Prepared> {
         )));
     }
     let y: Vec<f64> = rows.iter().map(|&r| yall[r]).collect();
+    // A large file's full target column need not live beside the folds.
+    drop(yall);
     if !classes.is_empty() && y.iter().all(|v| *v == y[0]) {
         return Err(Error::data(
             &table.path,
@@ -789,14 +791,8 @@ fn run_task(
             None => Gram::of(&src, &fold.fit),
         };
         if let Some(fits) = gram.solve(&lambdas) {
-            let tf = Truth::of(&fold.fit.iter().map(|&i| prep.target[i]).collect::<Vec<_>>());
-            let ts = Truth::of(
-                &fold
-                    .score
-                    .iter()
-                    .map(|&i| prep.target[i])
-                    .collect::<Vec<_>>(),
-            );
+            let tf = Truth::of_rows(&prep.target, fold.fit.iter().copied());
+            let ts = Truth::of_rows(&prep.target, fold.score.iter().copied());
             let (on_fit, on_score) = error_sums_both(&src, &fold.fit, &fold.score, &fits);
             let mut scores = Vec::with_capacity(grid.len());
             for (g, (f, s)) in on_fit.iter().zip(&on_score).enumerate() {
@@ -907,36 +903,41 @@ fn fold_grams(
     if !wanted || dev.is_empty() {
         return none();
     }
+    const NONE: u32 = u32::MAX;
     let mut in_dev = vec![false; prep.rows.len()];
     dev.iter().for_each(|&i| in_dev[i] = true);
+    // owner[i]: the fold of this repeat that holds row i out; seen[i]: the last fold whose
+    // fitting rows included row i (both as fold numbers, so one pair of arrays serves all).
+    let mut owner = vec![NONE; prep.rows.len()];
+    let mut seen = vec![NONE; prep.rows.len()];
     let repeats: std::collections::BTreeSet<usize> = folds.iter().map(|f| f.repeat).collect();
     for r in repeats {
-        // held[i]: how many folds of this repeat hold row i out; owner[i]: the last of them.
-        let mut held = vec![0u32; prep.rows.len()];
-        let mut owner = vec![usize::MAX; prep.rows.len()];
+        owner.iter_mut().for_each(|o| *o = NONE);
         for (f, fold) in folds.iter().enumerate().filter(|(_, x)| x.repeat == r) {
             if fold.fit.len() + fold.score.len() != dev.len() {
                 return none();
             }
             for &i in &fold.score {
-                held[i] += 1;
-                owner[i] = f;
+                if owner[i] != NONE {
+                    return none();
+                }
+                owner[i] = f as u32;
             }
         }
-        if dev.iter().any(|&i| held[i] != 1) {
+        if dev.iter().any(|&i| owner[i] == NONE) {
             return none();
         }
         for (f, fold) in folds.iter().enumerate().filter(|(_, x)| x.repeat == r) {
             // Fitting rows: development rows, none held out by this fold, none repeated.
-            let mut seen = vec![false; prep.rows.len()];
             for &i in &fold.fit {
-                if !in_dev[i] || owner[i] == f || seen[i] {
+                if !in_dev[i] || owner[i] == f as u32 || seen[i] == f as u32 {
                     return none();
                 }
-                seen[i] = true;
+                seen[i] = f as u32;
             }
         }
     }
+    drop((in_dev, owner, seen));
     let columns = numeric_columns(table, &prep.features);
     let src = source(prep, &columns);
     let shift = Gram::row(&src, dev[0]);
@@ -1107,7 +1108,6 @@ pub fn run_reporting(
     };
     // The refitted model's predictions on the development rows, digested: replay compares it.
     let predictions_digest = {
-        let rows: Vec<usize> = dev_rows.iter().map(|&i| prep.rows[i]).collect();
         let columns = numeric_columns(table, &prep.features);
         let p = match &refit.fitted {
             // A linear model on plain numeric columns is applied straight to the table (the
@@ -1124,6 +1124,7 @@ pub fn run_reporting(
                 crate::models::gram::predictions(&src, &dev_rows, *intercept, weights)
             }
             _ => {
+                let rows: Vec<usize> = dev_rows.iter().map(|&i| prep.rows[i]).collect();
                 // A family that is quadratic to predict on its own fitting rows (knn) is
                 // digested on the same evenly spaced subset its training scores use.
                 let limit =

@@ -232,7 +232,19 @@ impl Phases {
     pub(crate) fn mark(&mut self, what: &str) {
         if self.on {
             let now = std::time::Instant::now();
-            eprintln!("timing {what}: {:.3} s", (now - self.last).as_secs_f64());
+            // Peak resident memory so far, where the system reports it (Linux).
+            let peak = std::fs::read_to_string("/proc/self/status")
+                .ok()
+                .and_then(|st| {
+                    st.lines()
+                        .find(|l| l.starts_with("VmHWM:"))
+                        .map(|l| l.trim_start_matches("VmHWM:").trim().to_string())
+                })
+                .map_or(String::new(), |kb| format!(" (peak memory {kb})"));
+            eprintln!(
+                "timing {what}: {:.3} s{peak}",
+                (now - self.last).as_secs_f64()
+            );
             self.last = now;
         }
     }

@@ -96,7 +96,13 @@ widest!(
 );
 widest!(
     sums_of,
-    fn(src: &Source, rows: &[(usize, bool)], fits: &[(f64, Vec<f64>)]) -> Vec<(f64, f64)>,
+    fn(
+        src: &Source,
+        a: &[usize],
+        b: &[usize],
+        merge: bool,
+        fits: &[(f64, Vec<f64>)],
+    ) -> Vec<(f64, f64)>,
     error_sums_body
 );
 
@@ -309,40 +315,50 @@ pub fn error_sums_both(
     fits: &[(f64, Vec<f64>)],
 ) -> (ErrorSums, ErrorSums) {
     let sorted = |v: &[usize]| v.windows(2).all(|w| w[0] < w[1]);
-    let mut rows = Vec::with_capacity(a.len() + b.len());
-    if sorted(a) && sorted(b) {
-        let (mut i, mut j) = (0, 0);
-        while i < a.len() || j < b.len() {
-            if j == b.len() || (i < a.len() && a[i] < b[j]) {
-                rows.push((a[i], false));
-                i += 1;
-            } else {
-                rows.push((b[j], true));
-                j += 1;
-            }
-        }
-    } else {
-        rows.extend(a.iter().map(|&i| (i, false)));
-        rows.extend(b.iter().map(|&i| (i, true)));
-    }
-    let mut sums = sums_of(src, &rows, fits);
+    let merge = sorted(a) && sorted(b);
+    let mut sums = sums_of(src, a, b, merge, fits);
     let second = sums.split_off(fits.len());
     (sums, second)
 }
 
 /// Error sums over `rows` for every fit.
 pub fn error_sums(src: &Source, rows: &[usize], fits: &[(f64, Vec<f64>)]) -> Vec<(f64, f64)> {
-    let tagged: Vec<(usize, bool)> = rows.iter().map(|&i| (i, false)).collect();
-    let mut sums = sums_of(src, &tagged, fits);
+    let mut sums = sums_of(src, rows, &[], false, fits);
     sums.truncate(fits.len());
     sums
+}
+
+/// The next up to BLOCK rows of `a` (tagged false) and `b` (tagged true): merged in row order
+/// when `merge`, else all of `a` then all of `b`. Returns false when both are used up.
+#[inline(always)]
+fn next_rows(
+    a: &[usize],
+    b: &[usize],
+    merge: bool,
+    at: &mut (usize, usize),
+    out: &mut Vec<(usize, bool)>,
+) -> bool {
+    out.clear();
+    while out.len() < BLOCK && (at.0 < a.len() || at.1 < b.len()) {
+        let from_a = at.1 == b.len() || (at.0 < a.len() && (!merge || a[at.0] < b[at.1]));
+        if from_a {
+            out.push((a[at.0], false));
+            at.0 += 1;
+        } else {
+            out.push((b[at.1], true));
+            at.1 += 1;
+        }
+    }
+    !out.is_empty()
 }
 
 /// Sums per fit for the rows tagged false, then for those tagged true.
 #[inline(always)]
 fn error_sums_body(
     src: &Source,
-    rows: &[(usize, bool)],
+    a: &[usize],
+    b: &[usize],
+    merge: bool,
     fits: &[(f64, Vec<f64>)],
 ) -> Vec<(f64, f64)> {
     let p = src.columns.len();
@@ -364,7 +380,8 @@ fn error_sums_body(
     let mut sse = vec![[0.0f64; FITS]; 2 * groups];
     let mut sae = vec![[0.0f64; FITS]; 2 * groups];
     let mut idx = Vec::with_capacity(BLOCK);
-    for chunk in rows.chunks(BLOCK) {
+    let (mut at, mut chunk) = ((0, 0), Vec::with_capacity(BLOCK));
+    while next_rows(a, b, merge, &mut at, &mut chunk) {
         let nb = chunk.len();
         idx.clear();
         idx.extend(chunk.iter().map(|r| r.0));
