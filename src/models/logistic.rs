@@ -469,6 +469,15 @@ fn newton_binary(z: &Matrix, y: &[f64], lambda: f64, start: Option<Vec<Vec<f64>>
 }
 
 impl Logistic {
+    fn check_classes(&self) -> Result<()> {
+        if self.classes < 2 {
+            return Err(Error::Input(
+                "logistic needs a classification task with at least two classes".into(),
+            ));
+        }
+        Ok(())
+    }
+
     fn fit_one(
         &self,
         x: &Design,
@@ -477,11 +486,7 @@ impl Logistic {
         notes: &mut Notes,
         start: Option<Vec<Vec<f64>>>,
     ) -> Result<Fitted> {
-        if self.classes < 2 {
-            return Err(Error::Input(
-                "logistic needs a classification task with at least two classes".into(),
-            ));
-        }
+        self.check_classes()?;
         let (center, scale) = mean_sd(&x.x);
         let z = standardize(&x.x, &center, &scale);
         self.fit_standardized(&z, center, scale, y, lambda, notes, start)
@@ -541,11 +546,7 @@ impl Model for Logistic {
         });
         let mut out = vec![Vec::new(); grid.len()];
         let mut start = None;
-        if self.classes < 2 {
-            return Err(Error::Input(
-                "logistic needs a classification task with at least two classes".into(),
-            ));
-        }
+        self.check_classes()?;
         // One standardisation for the whole path: the same fitting rows every time.
         let (center, scale) = mean_sd(&x.x);
         let z = standardize(&x.x, &center, &scale);
