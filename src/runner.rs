@@ -9,8 +9,8 @@ use crate::data::{Table, Values};
 use crate::error::{Error, Result};
 use crate::guard::Sealed;
 use crate::metrics::{Metric, Truth, mean_se, score_all};
-use crate::models::encode::{Encoder, Notes};
-use crate::models::gram::{Gram, Source, error_sums_both};
+use crate::models::encode::{Encoder, Feature, Notes};
+use crate::models::gram::{FITS, Gram, LaneGroup, Source, error_sums_both, fold_error_sums};
 use crate::models::{Design, Fitted, Params, model_for};
 use crate::spec::{Family, Missing, ModelSpec, Named, Rule, Spec, SplitMethod, hex};
 use crate::split::rng::{Domain, derive_seed};
@@ -791,26 +791,8 @@ fn run_task(
             None => Gram::of(&src, &fold.fit),
         };
         if let Some(fits) = gram.solve(&lambdas) {
-            let tf = Truth::of_rows(&prep.target, fold.fit.iter().copied());
-            let ts = Truth::of_rows(&prep.target, fold.score.iter().copied());
             let (on_fit, on_score) = error_sums_both(&src, &fold.fit, &fold.score, &fits);
-            let mut scores = Vec::with_capacity(grid.len());
-            for (g, (f, s)) in on_fit.iter().zip(&on_score).enumerate() {
-                if ![f.0, f.1, s.0, s.1].iter().all(|v| v.is_finite()) {
-                    return Err(not_finite(entry, &grid[g]));
-                }
-                let of = |t: &Truth, sums: &(f64, f64)| -> Scores {
-                    prep.metrics
-                        .iter()
-                        .map(|&m| t.score(m, sums.0, sums.1))
-                        .collect()
-                };
-                scores.push(Ok((of(&tf, f), of(&ts, s))));
-            }
-            return Ok(TaskOut {
-                scores,
-                notes: Notes::new(),
-            });
+            return gram_task(prep, entry, grid, fold, &on_fit, &on_score);
         }
     }
     let model = model_for(entry, nc);
@@ -879,29 +861,152 @@ fn run_task(
     Ok(TaskOut { scores, notes })
 }
 
-/// The Gram matrix of each fold's fitting rows for the sufficient-statistics path, as the
-/// development rows' total minus the fold's held-out rows: one pass over the development rows
-/// instead of one over each fold's fitting rows. Only when some entry takes that path and the
-/// folds of each repeat split the development rows (every row held out exactly once, fitting
-/// rows = the rest); otherwise `None` per fold, and each task makes its own.
+/// A fold's scores from its error sums on the fitting and held-out rows (per grid point:
+/// squared, absolute).
+fn gram_task(
+    prep: &Prepared,
+    entry: &ModelSpec,
+    grid: &[Params],
+    fold: &crate::split::Fold,
+    on_fit: &[(f64, f64)],
+    on_score: &[(f64, f64)],
+) -> Result<TaskOut> {
+    let tf = Truth::of_rows(&prep.target, fold.fit.iter().copied());
+    let ts = Truth::of_rows(&prep.target, fold.score.iter().copied());
+    let mut scores = Vec::with_capacity(grid.len());
+    for (g, (f, s)) in on_fit.iter().zip(on_score).enumerate() {
+        if ![f.0, f.1, s.0, s.1].iter().all(|v| v.is_finite()) {
+            return Err(not_finite(entry, &grid[g]));
+        }
+        let of = |t: &Truth, sums: &(f64, f64)| -> Scores {
+            prep.metrics
+                .iter()
+                .map(|&m| t.score(m, sums.0, sums.1))
+                .collect()
+        };
+        scores.push(Ok((of(&tf, f), of(&ts, s))));
+    }
+    Ok(TaskOut {
+        scores,
+        notes: Notes::new(),
+    })
+}
+
+/// (intercept, weights) per penalty of one fold.
+type Fits = Vec<(f64, Vec<f64>)>;
+
+/// Most folds `sweep_folds` takes (one bit each in a row's held-out mask).
+const SWEEP_MAX_FOLDS: usize = 64;
+
+/// The (fold, entry) tasks of every grid on the sufficient-statistics path whose fold Grams
+/// `fold_grams` made, scored together: one solve per fold, then one pass over the development
+/// rows predicts every fold's fits at once (`gram::fold_error_sums`; each row is read once
+/// instead of once per fold), the lane groups cut into one chunk per thread. The sums are the
+/// bits `run_task` would get. Slot `f * entries.len() + e`; `None` where the task runs alone.
 #[allow(clippy::too_many_arguments)]
-fn fold_grams(
+fn sweep_folds(
     table: &Table,
     prep: &Prepared,
     entries: &[ModelSpec],
     grids: &[Vec<Params>],
     folds: &[crate::split::Fold],
+    pre: &[Option<Gram>],
     threads: usize,
     impute: bool,
-) -> Vec<Option<Gram>> {
-    let none = || vec![None; folds.len()];
-    let wanted = entries
-        .iter()
-        .zip(grids)
-        .any(|(e, g)| gram_lambdas(table, prep, e, g, impute).is_some());
+) -> Vec<Option<Result<TaskOut>>> {
+    let mut out: Vec<Option<Result<TaskOut>>> =
+        (0..folds.len() * entries.len()).map(|_| None).collect();
+    let sorted = |v: &[usize]| v.windows(2).all(|w| w[0] < w[1]);
+    if folds.is_empty()
+        || folds.len() > SWEEP_MAX_FOLDS
+        || pre.iter().any(Option::is_none)
+        || !folds.iter().all(|f| sorted(&f.fit) && sorted(&f.score))
+    {
+        return out;
+    }
+    // (entry, per fold: its fits)
+    let mut solved: Vec<(usize, Vec<Fits>)> = Vec::new();
+    for (e, entry) in entries.iter().enumerate() {
+        let Some(lambdas) = gram_lambdas(table, prep, entry, &grids[e], impute) else {
+            continue;
+        };
+        let fits: Option<Vec<_>> = pre
+            .iter()
+            .map(|g| g.as_ref().and_then(|g| g.solve(&lambdas)))
+            .collect();
+        if let Some(fits) = fits {
+            solved.push((e, fits));
+        }
+    }
+    if solved.is_empty() {
+        return out;
+    }
     let dev = prep.sealed.development();
-    if !wanted || dev.is_empty() {
-        return none();
+    let held: Vec<u64> = {
+        let mut mask = vec![0u64; prep.rows.len()];
+        for (f, fold) in folds.iter().enumerate() {
+            fold.score.iter().for_each(|&i| mask[i] |= 1 << f);
+        }
+        dev.iter().map(|&i| mask[i]).collect()
+    };
+    let p = prep.features.len();
+    // The lane groups of every (entry, fold), and where each one's groups start.
+    let mut groups = Vec::new();
+    let mut starts = Vec::new();
+    for (_, fits) in &solved {
+        for (f, fold_fits) in fits.iter().enumerate() {
+            starts.push(groups.len());
+            groups.extend(LaneGroup::of(f as u32, fold_fits, p));
+        }
+    }
+    let columns = numeric_columns(table, &prep.features);
+    let src = source(prep, &columns);
+    let k = threads.clamp(1, groups.len().max(1));
+    let parts = parallel(k, threads, |c| {
+        let (lo, hi) = (c * groups.len() / k, (c + 1) * groups.len() / k);
+        fold_error_sums(&src, &dev, &held, &groups[lo..hi])
+    });
+    let sums: Vec<_> = parts.into_iter().flatten().collect();
+    if sums.len() != groups.len() {
+        // A worker panicked: leave every task to run alone.
+        return out;
+    }
+    let mut next = starts.iter();
+    for (e, fits) in &solved {
+        for (f, fold_fits) in fits.iter().enumerate() {
+            let start = next.next().copied().unwrap_or(0);
+            let lane = |k: usize| &sums[start + k / FITS];
+            let on_fit: Vec<(f64, f64)> = (0..fold_fits.len())
+                .map(|k| (lane(k)[0][k % FITS], lane(k)[1][k % FITS]))
+                .collect();
+            let on_score: Vec<(f64, f64)> = (0..fold_fits.len())
+                .map(|k| (lane(k)[2][k % FITS], lane(k)[3][k % FITS]))
+                .collect();
+            out[f * entries.len() + e] = Some(gram_task(
+                prep,
+                &entries[*e],
+                &grids[*e],
+                &folds[f],
+                &on_fit,
+                &on_score,
+            ));
+        }
+    }
+    out
+}
+
+/// Each fold's held-out Gram, about the shift of the first development row, when the folds of
+/// each repeat split the development rows (every row held out exactly once, fitting rows = the
+/// rest); `None` otherwise.
+fn held_grams(
+    table: &Table,
+    prep: &Prepared,
+    folds: &[crate::split::Fold],
+    threads: usize,
+) -> Option<Vec<Gram>> {
+    let dev = prep.sealed.development();
+    if dev.is_empty() || folds.is_empty() {
+        return None;
     }
     const NONE: u32 = u32::MAX;
     let mut in_dev = vec![false; prep.rows.len()];
@@ -915,23 +1020,23 @@ fn fold_grams(
         owner.iter_mut().for_each(|o| *o = NONE);
         for (f, fold) in folds.iter().enumerate().filter(|(_, x)| x.repeat == r) {
             if fold.fit.len() + fold.score.len() != dev.len() {
-                return none();
+                return None;
             }
             for &i in &fold.score {
                 if owner[i] != NONE {
-                    return none();
+                    return None;
                 }
                 owner[i] = f as u32;
             }
         }
         if dev.iter().any(|&i| owner[i] == NONE) {
-            return none();
+            return None;
         }
         for (f, fold) in folds.iter().enumerate().filter(|(_, x)| x.repeat == r) {
             // Fitting rows: development rows, none held out by this fold, none repeated.
             for &i in &fold.fit {
                 if !in_dev[i] || owner[i] == f as u32 || seen[i] == f as u32 {
-                    return none();
+                    return None;
                 }
                 seen[i] = f as u32;
             }
@@ -941,13 +1046,82 @@ fn fold_grams(
     let columns = numeric_columns(table, &prep.features);
     let src = source(prep, &columns);
     let shift = Gram::row(&src, dev[0]);
-    let held: Vec<Gram> = parallel(folds.len(), threads, |f| {
-        Gram::of_shifted(&src, &folds[f].score, &shift)
-    });
-    if held.len() != folds.len() {
+    // Each fold's held-out Gram (the bits of `Gram::of_shifted` on its sorted rows), from passes
+    // over the development rows that each serve a range of folds: one per thread, not one per
+    // fold. Per repeat, every development row has one owner.
+    let sorted = folds
+        .iter()
+        .all(|f| f.score.windows(2).all(|w| w[0] < w[1]))
+        && folds.windows(2).all(|w| w[0].repeat <= w[1].repeat);
+    let held: Vec<Gram> = if sorted {
+        let mut held = Vec::with_capacity(folds.len());
+        let mut owner = vec![u32::MAX; prep.rows.len()];
+        for r in folds
+            .iter()
+            .map(|f| f.repeat)
+            .collect::<std::collections::BTreeSet<_>>()
+        {
+            let first = folds.iter().position(|f| f.repeat == r).unwrap_or(0);
+            let end = first + folds[first..].iter().take_while(|f| f.repeat == r).count();
+            for (f, fold) in folds.iter().enumerate().take(end).skip(first) {
+                fold.score.iter().for_each(|&i| owner[i] = f as u32);
+            }
+            let own: Vec<u32> = dev.iter().map(|&i| owner[i]).collect();
+            let n = end - first;
+            let k = threads.clamp(1, n.max(1));
+            let parts = parallel(k, threads, |c| {
+                let (lo, hi) = (first + c * n / k, first + (c + 1) * n / k);
+                crate::models::gram::of_sets(&src, &dev, &own, lo as u32..hi as u32, &shift)
+            });
+            held.extend(parts.into_iter().flatten());
+        }
+        held
+    } else {
+        parallel(folds.len(), threads, |f| {
+            Gram::of_shifted(&src, &folds[f].score, &shift)
+        })
+    };
+    (held.len() == folds.len()).then_some(held)
+}
+
+/// The folds of the first repeat (a prefix of the run's folds).
+fn first_repeat(folds: &[crate::split::Fold]) -> &[crate::split::Fold] {
+    let n = folds
+        .iter()
+        .take_while(|f| Some(f.repeat) == folds.first().map(|x| x.repeat))
+        .count();
+    &folds[..n]
+}
+
+/// The Gram matrix of each fold's fitting rows for the sufficient-statistics path, as the
+/// development rows' total minus the fold's held-out rows: one pass over the development rows
+/// instead of one over each fold's fitting rows. Only when some entry takes that path and the
+/// folds of each repeat split the development rows; otherwise `None` per fold, and each task
+/// makes its own. Also the development rows' Gram (the first repeat's held-out Grams added in
+/// fold order, as `development_gram` forms it) for the refit.
+#[allow(clippy::too_many_arguments)]
+fn fold_grams(
+    table: &Table,
+    prep: &Prepared,
+    entries: &[ModelSpec],
+    grids: &[Vec<Params>],
+    folds: &[crate::split::Fold],
+    threads: usize,
+    impute: bool,
+) -> (Vec<Option<Gram>>, Option<Gram>) {
+    let none = || (vec![None; folds.len()], None);
+    let wanted = entries
+        .iter()
+        .zip(grids)
+        .any(|(e, g)| gram_lambdas(table, prep, e, g, impute).is_some());
+    if !wanted {
         return none();
     }
-    folds
+    let Some(held) = held_grams(table, prep, folds, threads) else {
+        return none();
+    };
+    let dev_total = Gram::total(&held[..first_repeat(folds).len()]);
+    let per_fold = folds
         .iter()
         .enumerate()
         .map(|(f, fold)| {
@@ -959,7 +1133,16 @@ fn fold_grams(
                 .collect();
             Gram::total(&parts).map(|t| t.minus(&held[f]))
         })
-        .collect()
+        .collect();
+    (per_fold, dev_total)
+}
+
+/// The development rows' Gram as `fold_grams` forms it (the first repeat's held-out Grams added
+/// in fold order), so a later refit (reveal, predict) gets the run's bits; `None` when the folds
+/// do not split the development rows.
+fn development_gram(table: &Table, prep: &Prepared, threads: usize) -> Option<Gram> {
+    let folds = first_repeat(prep.sealed.folds());
+    held_grams(table, prep, folds, threads).and_then(|h| Gram::total(&h))
 }
 
 fn not_finite(entry: &ModelSpec, params: &Params) -> Error {
@@ -1081,7 +1264,7 @@ pub fn run_reporting(
     for cmd in entries.iter().filter_map(|e| e.command.as_ref()) {
         inputs.extend(crate::external::input_hashes(cmd).map_err(Error::Input)?);
     }
-    let candidates = cross_validate(
+    let (candidates, dev_gram) = cross_validate(
         spec, table, &prep, &entries, &grids, &folds, threads, &mut notes, progress,
     )?;
     let metric = spec.select.metric;
@@ -1096,6 +1279,8 @@ pub fn run_reporting(
         &entries[chosen.entry],
         &chosen.params,
         &dev_rows,
+        dev_gram.as_ref().map_or(DevGram::Make, DevGram::Made),
+        threads,
         &mut notes,
     )?;
     let refit = StoredModel {
@@ -1183,7 +1368,19 @@ pub fn run_reporting(
     })
 }
 
+/// What `fit_on` knows of the development rows' Gram.
+#[derive(Clone, Copy)]
+enum DevGram<'a> {
+    /// The fitting rows are not the development rows.
+    Not,
+    /// They are; make their Gram as `fold_grams` does (`development_gram`).
+    Make,
+    /// They are, and `fold_grams` made it (`None`: the folds do not split them).
+    Made(&'a Gram),
+}
+
 /// Fit one grid point on `fit` (positions among the kept rows); returns the encoder and model.
+#[allow(clippy::too_many_arguments)]
 fn fit_on(
     spec: &Spec,
     table: &Table,
@@ -1191,29 +1388,36 @@ fn fit_on(
     entry: &ModelSpec,
     params: &Params,
     fit: &[usize],
+    dev: DevGram,
+    threads: usize,
     notes: &mut Notes,
 ) -> Result<(Encoder, Fitted)> {
-    let rows: Vec<usize> = fit.iter().map(|&i| prep.rows[i]).collect();
-    let y: Vec<f64> = fit.iter().map(|&i| prep.target[i]).collect();
     let model = model_for(entry, prep.classes.len());
-    let encoder = Encoder::fit(
-        table,
-        &prep.features,
-        &rows,
-        model.drops_first_level(),
-        spec.data.missing == Missing::Mean,
-    );
-    if let Some(lambdas) = gram_lambdas(
-        table,
-        prep,
-        entry,
-        std::slice::from_ref(params),
-        spec.data.missing == Missing::Mean,
-    ) {
+    let impute = spec.data.missing == Missing::Mean;
+    if let Some(lambdas) = gram_lambdas(table, prep, entry, std::slice::from_ref(params), impute) {
         let columns = numeric_columns(table, &prep.features);
         let src = source(prep, &columns);
-        if let Some(mut fits) = Gram::of(&src, fit).solve(&lambdas) {
+        let gram = match dev {
+            DevGram::Made(g) => Some(g.clone()),
+            DevGram::Make => development_gram(table, prep, threads),
+            DevGram::Not => None,
+        }
+        .unwrap_or_else(|| Gram::of(&src, fit));
+        if let Some(mut fits) = gram.solve(&lambdas) {
             let (intercept, weights) = fits.remove(0);
+            // Numeric columns only, nothing imputed: the encoder's means come from the Gram.
+            let encoder = Encoder {
+                features: prep
+                    .features
+                    .iter()
+                    .zip(gram.means())
+                    .map(|(&c, fill)| Feature::Numeric {
+                        name: table.columns[c].name.clone(),
+                        fill,
+                    })
+                    .collect(),
+                impute,
+            };
             let fitted = Fitted::Linear {
                 intercept,
                 weights,
@@ -1222,6 +1426,15 @@ fn fit_on(
             return Ok((encoder, fitted));
         }
     }
+    let rows: Vec<usize> = fit.iter().map(|&i| prep.rows[i]).collect();
+    let y: Vec<f64> = fit.iter().map(|&i| prep.target[i]).collect();
+    let encoder = Encoder::fit(
+        table,
+        &prep.features,
+        &rows,
+        model.drops_first_level(),
+        impute,
+    );
     let x = design(table, &encoder, &rows, notes)?;
     let fitted = model.fit(&x, &y, params, notes)?;
     Ok((encoder, fitted))
@@ -1240,16 +1453,30 @@ fn cross_validate(
     threads: usize,
     notes: &mut Notes,
     progress: &(dyn Fn(usize, usize) + Sync),
-) -> Result<Vec<CandidateResult>> {
+) -> Result<(Vec<CandidateResult>, Option<Gram>)> {
     let impute = spec.data.missing == Missing::Mean;
+    let (pre, dev_gram) = fold_grams(table, prep, entries, grids, folds, threads, impute);
+    let swept: Vec<Mutex<Option<Result<TaskOut>>>> =
+        sweep_folds(table, prep, entries, grids, folds, &pre, threads, impute)
+            .into_iter()
+            .map(Mutex::new)
+            .collect();
     // A grid on the sufficient-statistics path is cut into one chunk of fits per thread: each
     // fit's sums are its own, so the cut changes no bit and keeps every thread busy. Other
     // grids stay whole (they share a decomposition or warm starts).
     let chunks: Vec<usize> = entries
         .iter()
         .zip(grids)
-        .map(|(e, g)| {
-            if gram_lambdas(table, prep, e, g, impute).is_some() {
+        .enumerate()
+        .map(|(i, (e, g))| {
+            let ready = (0..folds.len()).all(|f| {
+                swept[f * entries.len() + i]
+                    .lock()
+                    .is_ok_and(|s| s.is_some())
+            });
+            if ready {
+                1
+            } else if gram_lambdas(table, prep, e, g, impute).is_some() {
                 threads.min(g.len() / 8).max(1)
             } else {
                 1
@@ -1275,22 +1502,27 @@ fn cross_validate(
             Some(first)
         })
         .collect();
-    let pre = fold_grams(table, prep, entries, grids, folds, threads, impute);
     let done = AtomicUsize::new(0);
     let outs = parallel(tasks.len(), threads, |t| {
         let (f, e, lo, hi) = tasks[t];
-        let out = run_task(
-            spec,
-            table,
-            prep,
-            &entries[e],
-            &grids[e][lo..hi],
-            &folds[f],
-            impute,
-            first_ids[e] + lo,
-            f as u32,
-            pre[f].as_ref(),
-        );
+        let ready = swept[f * entries.len() + e]
+            .lock()
+            .ok()
+            .and_then(|mut s| s.take());
+        let out = ready.unwrap_or_else(|| {
+            run_task(
+                spec,
+                table,
+                prep,
+                &entries[e],
+                &grids[e][lo..hi],
+                &folds[f],
+                impute,
+                first_ids[e] + lo,
+                f as u32,
+                pre[f].as_ref(),
+            )
+        });
         progress(done.fetch_add(1, Ordering::Relaxed) + 1, tasks.len());
         out
     });
@@ -1394,7 +1626,7 @@ fn cross_validate(
             });
         }
     }
-    Ok(candidates)
+    Ok((candidates, dev_gram))
 }
 
 /// The nested cross-validation estimate of the whole selection procedure.
@@ -1445,7 +1677,8 @@ fn nested_cv(
             notes,
             &|_, _| {},
         )
-        .map_err(wrap)?;
+        .map_err(wrap)?
+        .0;
         let (_, chosen) = select(&cands, metric, spec.select.rule, entries).map_err(wrap)?;
         let c = &cands[chosen - 1];
         let (encoder, fitted) = fit_on(
@@ -1455,6 +1688,8 @@ fn nested_cv(
             &entries[c.entry],
             &c.params,
             &outer.fit,
+            DevGram::Not,
+            threads,
             notes,
         )
         .map_err(wrap)?;
@@ -1556,8 +1791,17 @@ pub fn refit_prepared(
             id += 1;
             if id == candidate {
                 let dev = prep.sealed.development();
-                let (encoder, fitted) =
-                    fit_on(spec, table, prep, entry, &params, &dev, &mut Notes::new())?;
+                let (encoder, fitted) = fit_on(
+                    spec,
+                    table,
+                    prep,
+                    entry,
+                    &params,
+                    &dev,
+                    DevGram::Make,
+                    crate::data::all_cores(),
+                    &mut Notes::new(),
+                )?;
                 return Ok(StoredModel {
                     candidate,
                     classes: prep.classes.clone(),
@@ -1667,5 +1911,60 @@ impl StoredModel {
                 _ => None,
             })
             .collect()
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use std::path::Path;
+
+    /// Ridge on the sufficient-statistics path: the run takes the development rows' Gram from
+    /// its fold passes, a later refit (`reveal`, `predict --candidate`) forms it on its own;
+    /// both must give the same model bits, whatever the thread count.
+    #[test]
+    fn a_later_refit_gives_the_run_s_model_bits() {
+        // Values with long expansions, so sums taken in another order round differently.
+        let mut csv = String::from("x1,x2,y\n");
+        for i in 0..2000u32 {
+            let t = f64::from(i);
+            let x1 = (t * 0.731).sin() * 3.7;
+            let x2 = (t * 1.37).cos() * 11.3 + 40.0;
+            let y = 1.9 * x1 - 0.23 * x2 + (t * 2.9).sin();
+            csv.push_str(&format!("{x1},{x2},{y}\n"));
+        }
+        let table =
+            crate::data::parse(csv.as_bytes(), Path::new("r.csv"), "0".into(), &[]).unwrap();
+        let text = "name = \"r\"\ntask = \"regression\"\n[data]\npath = \"r.csv\"\ntarget = \"y\"\n\
+            [split]\nmethod = \"random\"\nseed = 3\ntest = 0.2\nfolds = 5\n\
+            [[model]]\nkind = \"ridge\"\nlambda = [0.01, 1, 100]\n";
+        let spec = crate::spec::parse(text, Path::new("r.toml"), Path::new(".")).unwrap();
+        let out = run(&spec, &table, 2).unwrap();
+        for threads in [1, 3] {
+            let prep = prepare(&spec, &table, threads).unwrap();
+            let dev = prep.sealed.development();
+            let chosen = &out.candidates[out.selected - 1];
+            let (entry, params) = (&entries(&spec)[chosen.entry], &chosen.params);
+            assert_eq!(entry.family, Family::Ridge);
+            let refit = |dev_gram| {
+                fit_on(
+                    &spec,
+                    &table,
+                    &prep,
+                    entry,
+                    params,
+                    &dev,
+                    dev_gram,
+                    threads,
+                    &mut Notes::new(),
+                )
+                .unwrap()
+            };
+            let (encoder, fitted) = refit(DevGram::Make);
+            assert_eq!(encoder, out.refit.encoder);
+            assert_eq!(fitted, out.refit.fitted);
+            // The direct pass over the development rows is another sum, with other bits.
+            assert_ne!(refit(DevGram::Not).1, out.refit.fitted);
+        }
     }
 }

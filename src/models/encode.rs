@@ -53,13 +53,17 @@ impl Encoder {
             let col = &table.columns[c];
             match &col.values {
                 Values::Numeric(v) => {
-                    let present: Vec<f64> =
-                        rows.iter().map(|&r| v[r]).filter(|x| !x.is_nan()).collect();
-                    let fill = if present.is_empty() {
-                        0.0
-                    } else {
-                        present.iter().sum::<f64>() / present.len() as f64
-                    };
+                    // The mean of the present values, summed in row order from -0.0 (as
+                    // `Iterator::sum` does), without a copy of the column.
+                    let (mut sum, mut n) = (-0.0f64, 0usize);
+                    for &r in rows {
+                        let x = v[r];
+                        if !x.is_nan() {
+                            sum += x;
+                            n += 1;
+                        }
+                    }
+                    let fill = if n == 0 { 0.0 } else { sum / n as f64 };
                     features.push(Feature::Numeric {
                         name: col.name.clone(),
                         fill,

@@ -25,7 +25,7 @@ pub const MAX_CONDITION: f64 = 1e8;
 const BLOCK: usize = 256;
 
 /// Fits predicted together in the error sweep (one AVX-512 register of predictions).
-const FITS: usize = 8;
+pub const FITS: usize = 8;
 
 /// Rows predicted together in the error sweep (BLOCK is a multiple of it).
 const ROWS: usize = 4;
@@ -158,6 +158,14 @@ impl Gram {
         out
     }
 
+    /// The mean of each column (features, then the target).
+    pub fn means(&self) -> Vec<f64> {
+        let n = self.n as f64;
+        (0..self.dim)
+            .map(|j| self.shift[j] + self.sum[j] / n)
+            .collect()
+    }
+
     /// (intercept, weights) in the original units for each lambda, as `ridge` defines them
     /// (features centred and scaled by their population standard deviation, intercept not
     /// penalised); `None` when the problem is too ill-conditioned for this path.
@@ -167,7 +175,7 @@ impl Gram {
         if self.n == 0 || lambdas.iter().any(|&l| !(l > 0.0 && l.is_finite())) {
             return None;
         }
-        let mean: Vec<f64> = (0..dim).map(|j| self.shift[j] + self.sum[j] / n).collect();
+        let mean = self.means();
         // Centred cross-products.
         let c = |j: usize, k: usize| self.cross[j * dim + k] - self.sum[j] * self.sum[k] / n;
         let sd: Vec<f64> = (0..p)
@@ -214,43 +222,139 @@ impl Gram {
     }
 }
 
-#[inline(always)]
-fn gram_of_body(src: &Source, rows: &[usize], shift: &[f64]) -> Gram {
-    let p = src.columns.len();
-    let dim = p + 1;
-    let shift = shift.to_vec();
-    let mut sum = vec![0.0; dim];
-    let mut cross = vec![0.0; dim * dim];
-    let mut block = vec![0.0; dim * BLOCK];
-    for chunk in rows.chunks(BLOCK) {
-        let nb = chunk.len();
-        gather(src, chunk, &mut block, true);
+/// Running sums of one Gram (about its shift).
+struct Acc {
+    n: usize,
+    sum: Vec<f64>,
+    cross: Vec<f64>,
+}
+
+impl Acc {
+    fn new(dim: usize) -> Acc {
+        Acc {
+            n: 0,
+            sum: vec![0.0; dim],
+            cross: vec![0.0; dim * dim],
+        }
+    }
+
+    /// Add the first `nb` rows of a gathered block (column-major, BLOCK per column).
+    #[inline(always)]
+    fn add(&mut self, block: &mut [f64], nb: usize, shift: &[f64]) {
+        let dim = shift.len();
+        self.n += nb;
         for j in 0..dim {
             let col = &mut block[j * BLOCK..j * BLOCK + nb];
             col.iter_mut().for_each(|v| *v -= shift[j]);
-            sum[j] += col.iter().sum::<f64>();
+            self.sum[j] += col.iter().sum::<f64>();
         }
         for j in 0..dim {
             for k in j..dim {
-                cross[j * dim + k] += dot(
+                self.cross[j * dim + k] += dot(
                     &block[j * BLOCK..j * BLOCK + nb],
                     &block[k * BLOCK..k * BLOCK + nb],
                 );
             }
         }
     }
-    for j in 0..dim {
-        for k in 0..j {
-            cross[j * dim + k] = cross[k * dim + j];
+
+    fn finish(mut self, shift: &[f64]) -> Gram {
+        let dim = shift.len();
+        for j in 0..dim {
+            for k in 0..j {
+                self.cross[j * dim + k] = self.cross[k * dim + j];
+            }
+        }
+        Gram {
+            n: self.n,
+            dim,
+            shift: shift.to_vec(),
+            sum: self.sum,
+            cross: self.cross,
         }
     }
-    Gram {
-        n: rows.len(),
-        dim,
-        shift,
-        sum,
-        cross,
+}
+
+#[inline(always)]
+fn gram_of_body(src: &Source, rows: &[usize], shift: &[f64]) -> Gram {
+    let dim = src.columns.len() + 1;
+    let mut acc = Acc::new(dim);
+    let mut block = vec![0.0; dim * BLOCK];
+    for chunk in rows.chunks(BLOCK) {
+        gather(src, chunk, &mut block, true);
+        acc.add(&mut block, chunk.len(), shift);
     }
+    acc.finish(shift)
+}
+
+/// The Grams of disjoint row sets `sets` (a range of set numbers) in one pass over `rows`
+/// (sorted kept-row positions): row `rows[k]` belongs to set `owner[k]`, and rows of sets outside
+/// the range are skipped. Each set's rows are taken in blocks of BLOCK of its
+/// own rows, in row order, so set `s` gets the bits of `Gram::of_shifted` on its rows; but the
+/// columns are read once for all sets instead of once per set.
+pub fn of_sets(
+    src: &Source,
+    rows: &[usize],
+    owner: &[u32],
+    sets: std::ops::Range<u32>,
+    shift: &[f64],
+) -> Vec<Gram> {
+    gram_sets(src, rows, owner, sets, shift)
+}
+
+widest!(
+    gram_sets,
+    fn(
+        src: &Source,
+        rows: &[usize],
+        owner: &[u32],
+        sets: std::ops::Range<u32>,
+        shift: &[f64],
+    ) -> Vec<Gram>,
+    gram_sets_body
+);
+
+#[inline(always)]
+fn gram_sets_body(
+    src: &Source,
+    rows: &[usize],
+    owner: &[u32],
+    range: std::ops::Range<u32>,
+    shift: &[f64],
+) -> Vec<Gram> {
+    let sets = range.len();
+    let p = src.columns.len();
+    let dim = p + 1;
+    let mut accs: Vec<Acc> = (0..sets).map(|_| Acc::new(dim)).collect();
+    let mut blocks: Vec<Vec<f64>> = (0..sets).map(|_| vec![0.0; dim * BLOCK]).collect();
+    let mut fill = vec![0usize; sets];
+    for (&i, &o) in rows.iter().zip(owner) {
+        if !range.contains(&o) {
+            continue;
+        }
+        let s = (o - range.start) as usize;
+        let (b, at) = (&mut blocks[s], fill[s]);
+        let t = src.table_row[i];
+        for (j, col) in src.columns.iter().enumerate() {
+            b[j * BLOCK + at] = col[t];
+        }
+        b[p * BLOCK + at] = src.target[i];
+        fill[s] += 1;
+        if fill[s] == BLOCK {
+            accs[s].add(b, BLOCK, shift);
+            fill[s] = 0;
+        }
+    }
+    accs.into_iter()
+        .zip(blocks.iter_mut())
+        .zip(fill)
+        .map(|((mut acc, b), nb)| {
+            if nb > 0 {
+                acc.add(b, nb, shift);
+            }
+            acc.finish(shift)
+        })
+        .collect()
 }
 
 /// Eigenvalues and eigenvectors (columns of the row-major p x p result) of a symmetric matrix,
@@ -430,6 +534,114 @@ fn error_sums_body(
     out
 }
 
+/// The fits of one fold, FITS at a time (the last group padded with zero fits): the lanes of
+/// `fold_error_sums`.
+#[derive(Debug, Clone)]
+pub struct LaneGroup {
+    /// The fold's bit in a row's held-out mask.
+    pub bit: u32,
+    pub intercepts: [f64; FITS],
+    /// One entry per feature.
+    pub weights: Vec<[f64; FITS]>,
+}
+
+impl LaneGroup {
+    /// The fits of the fold with mask bit `bit`, in groups of FITS.
+    pub fn of(bit: u32, fits: &[(f64, Vec<f64>)], p: usize) -> Vec<LaneGroup> {
+        fits.chunks(FITS)
+            .map(|chunk| {
+                let mut g = LaneGroup {
+                    bit,
+                    intercepts: [0.0; FITS],
+                    weights: vec![[0.0; FITS]; p],
+                };
+                for (l, (b, w)) in chunk.iter().enumerate() {
+                    g.intercepts[l] = *b;
+                    for (j, wj) in w.iter().enumerate().take(p) {
+                        g.weights[j][l] = *wj;
+                    }
+                }
+                g
+            })
+            .collect()
+    }
+}
+
+/// Per lane: [squared errors on the fitting rows, absolute errors on the fitting rows,
+/// squared errors on the held-out rows, absolute errors on the held-out rows].
+pub type LaneSums = [[f64; FITS]; 4];
+
+/// Error sums of many folds' fits in one pass over `rows` (sorted kept-row positions, each row
+/// a fitting row of every fold that does not hold it out): `held[k]` has bit `b` set when the
+/// fold of bit `b` holds `rows[k]` out. Each row is read once for every fold instead of once
+/// per fold. Per lane the arithmetic and the row order are those of `error_sums_both` on that
+/// fold's (sorted) fitting and held-out rows, so the sums are the same bits.
+pub fn fold_error_sums(
+    src: &Source,
+    rows: &[usize],
+    held: &[u64],
+    groups: &[LaneGroup],
+) -> Vec<LaneSums> {
+    fold_sums_of(src, rows, held, groups)
+}
+
+widest!(
+    fold_sums_of,
+    fn(src: &Source, rows: &[usize], held: &[u64], groups: &[LaneGroup]) -> Vec<LaneSums>,
+    fold_sums_body
+);
+
+#[inline(always)]
+fn fold_sums_body(
+    src: &Source,
+    rows: &[usize],
+    held: &[u64],
+    groups: &[LaneGroup],
+) -> Vec<LaneSums> {
+    let p = src.columns.len();
+    let mut out: Vec<LaneSums> = vec![[[0.0; FITS]; 4]; groups.len()];
+    let mut block = vec![0.0; (p + 1) * BLOCK];
+    for (chunk, masks) in rows.chunks(BLOCK).zip(held.chunks(BLOCK)) {
+        let nb = chunk.len();
+        gather(src, chunk, &mut block, true);
+        for (grp, sums) in groups.iter().zip(out.iter_mut()) {
+            let mut s = *sums;
+            let mut r = 0;
+            while r < nb {
+                let take = (nb - r).min(ROWS);
+                // Predictions as `Fitted::predict` forms them: intercept, then weight times
+                // feature in column order (see `error_sums_body`).
+                let mut acc = [grp.intercepts; ROWS];
+                for (j, wj) in grp.weights.iter().enumerate() {
+                    let xs = &block[j * BLOCK + r..j * BLOCK + r + ROWS];
+                    for (a, &xv) in acc.iter_mut().zip(xs) {
+                        for l in 0..FITS {
+                            a[l] += wj[l] * xv;
+                        }
+                    }
+                }
+                for (rr, a) in acc.iter().enumerate().take(take) {
+                    let y = block[p * BLOCK + r + rr];
+                    let side = 2 * ((masks[r + rr] >> grp.bit) & 1) as usize;
+                    let mut e = [0.0; FITS];
+                    for l in 0..FITS {
+                        e[l] = y - a[l];
+                    }
+                    let (q, t) = s.split_at_mut(side + 1);
+                    let (q, t) = (&mut q[side], &mut t[0]);
+                    for l in 0..FITS {
+                        q[l] += e[l] * e[l];
+                        t[l] += e[l].abs();
+                    }
+                }
+                r += take;
+            }
+            *sums = s;
+        }
+    }
+    out
+}
+
 /// A linear model's predictions on `rows`, formed exactly as `Fitted::predict` forms them
 /// (intercept, then each non-zero weight times its column, in column order), without building
 /// the design matrix.
@@ -465,6 +677,113 @@ mod tests {
                 assert!((r - a[i * p + j]).abs() < 1e-14, "{i} {j}: {r}");
                 let o: f64 = (0..p).map(|k| v[k * p + i] * v[k * p + j]).sum();
                 assert!((o - if i == j { 1.0 } else { 0.0 }).abs() < 1e-14);
+            }
+        }
+    }
+
+    /// Rows from a fixed generator: 3 columns on different scales, a target, a table that
+    /// holds the rows out of order (so `table_row` matters), and 3 folds of uneven sizes.
+    struct Fixture {
+        cols: Vec<Vec<f64>>,
+        y: Vec<f64>,
+        table_row: Vec<usize>,
+        owner: Vec<u32>,
+    }
+
+    fn fixture(n: usize) -> Fixture {
+        let mut state = 11u64;
+        let mut next = || {
+            state = state
+                .wrapping_mul(6364136223846793005)
+                .wrapping_add(1442695040888963407);
+            (state >> 11) as f64 / (1u64 << 53) as f64
+        };
+        let cols: Vec<Vec<f64>> = (0..3)
+            .map(|j| {
+                (0..n)
+                    .map(|_| 10.0 * j as f64 + next() * (1.0 + j as f64))
+                    .collect()
+            })
+            .collect();
+        let y = (0..n)
+            .map(|i| cols[1][i] - 0.5 * cols[2][i] + next())
+            .collect();
+        let table_row = (0..n).map(|i| (i * 7) % n).collect();
+        let owner = (0..n).map(|_| (next() * 3.0) as u32).collect();
+        Fixture {
+            cols,
+            y,
+            table_row,
+            owner,
+        }
+    }
+
+    /// `of_sets` gives each set the bits of `of_shifted` on that set's rows, whatever range of
+    /// sets one pass serves (n = 1,000 rows: blocks of 256 fill and flush per set).
+    #[test]
+    fn one_pass_over_sets_equals_one_pass_per_set() {
+        let n = 1000; // coprime with 7, so table_row is a permutation
+        let fx = fixture(n);
+        let refs: Vec<&[f64]> = fx.cols.iter().map(|c| c.as_slice()).collect();
+        let src = Source {
+            columns: &refs,
+            target: &fx.y,
+            table_row: &fx.table_row,
+        };
+        let rows: Vec<usize> = (0..n).collect();
+        let shift = Gram::row(&src, 0);
+        let all = of_sets(&src, &rows, &fx.owner, 0..3, &shift);
+        let last = of_sets(&src, &rows, &fx.owner, 2..3, &shift);
+        for f in 0..3u32 {
+            let mine: Vec<usize> = (0..n).filter(|&i| fx.owner[i] == f).collect();
+            let direct = Gram::of_shifted(&src, &mine, &shift);
+            let got = &all[f as usize];
+            assert_eq!(got.n, direct.n);
+            assert_eq!(got.sum, direct.sum, "fold {f}");
+            assert_eq!(got.cross, direct.cross, "fold {f}");
+        }
+        assert_eq!(last[0].cross, all[2].cross);
+    }
+
+    /// `fold_error_sums` (every fold's fits in one pass, lanes padded) gives the bits of
+    /// `error_sums_both` on each fold's fitting and held-out rows.
+    #[test]
+    fn one_sweep_for_all_folds_equals_one_sweep_per_fold() {
+        let n = 1000;
+        let fx = fixture(n);
+        let refs: Vec<&[f64]> = fx.cols.iter().map(|c| c.as_slice()).collect();
+        let src = Source {
+            columns: &refs,
+            target: &fx.y,
+            table_row: &fx.table_row,
+        };
+        let rows: Vec<usize> = (0..n).collect();
+        let held: Vec<u64> = fx.owner.iter().map(|&o| 1u64 << o).collect();
+        // 11 fits per fold: one full group of 8 and one padded group.
+        let fits: Vec<Vec<(f64, Vec<f64>)>> = (0..3)
+            .map(|f| {
+                let fit: Vec<usize> = (0..n).filter(|&i| fx.owner[i] != f).collect();
+                let lambdas: Vec<f64> = (0..11).map(|k| 0.01 * 3f64.powi(k)).collect();
+                Gram::of(&src, &fit).solve(&lambdas).unwrap()
+            })
+            .collect();
+        let groups: Vec<LaneGroup> = fits
+            .iter()
+            .enumerate()
+            .flat_map(|(f, fs)| LaneGroup::of(f as u32, fs, 3))
+            .collect();
+        assert_eq!(groups.len(), 6);
+        let sums = fold_error_sums(&src, &rows, &held, &groups);
+        for (f, fs) in fits.iter().enumerate() {
+            let fit: Vec<usize> = (0..n).filter(|&i| fx.owner[i] != f as u32).collect();
+            let score: Vec<usize> = (0..n).filter(|&i| fx.owner[i] == f as u32).collect();
+            let (on_fit, on_score) = error_sums_both(&src, &fit, &score, fs);
+            for k in 0..fs.len() {
+                let s = &sums[2 * f + k / FITS];
+                let l = k % FITS;
+                assert_eq!((s[0][l], s[1][l]), on_fit[k], "fold {f} fit {k}");
+                assert_eq!((s[2][l], s[3][l]), on_score[k], "fold {f} fit {k}");
+                assert!(on_score[k].0 > 0.0);
             }
         }
     }
