@@ -13,9 +13,12 @@ pub mod guard;
 pub mod ledger;
 pub mod metrics;
 pub mod models;
+pub mod par;
 pub mod report;
 pub mod runner;
 pub mod spec;
 pub mod split;
+#[cfg(test)]
+pub(crate) mod testgen;
 
 pub use error::{Error, Result};

@@ -962,7 +962,7 @@ fn sweep_folds(
     let columns = numeric_columns(table, &prep.features);
     let src = source(prep, &columns);
     let k = threads.clamp(1, groups.len().max(1));
-    let parts = parallel(k, threads, |c| {
+    let parts = crate::par::jobs(k, threads, |c| {
         let (lo, hi) = (c * groups.len() / k, (c + 1) * groups.len() / k);
         fold_error_sums(&src, &dev, &held, &groups[lo..hi])
     });
@@ -1069,7 +1069,7 @@ fn held_grams(
             let own: Vec<u32> = dev.iter().map(|&i| owner[i]).collect();
             let n = end - first;
             let k = threads.clamp(1, n.max(1));
-            let parts = parallel(k, threads, |c| {
+            let parts = crate::par::jobs(k, threads, |c| {
                 let (lo, hi) = (first + c * n / k, first + (c + 1) * n / k);
                 crate::models::gram::of_sets(&src, &dev, &own, lo as u32..hi as u32, &shift)
             });
@@ -1077,7 +1077,7 @@ fn held_grams(
         }
         held
     } else {
-        parallel(folds.len(), threads, |f| {
+        crate::par::jobs(folds.len(), threads, |f| {
             Gram::of_shifted(&src, &folds[f].score, &shift)
         })
     };
@@ -1212,35 +1212,6 @@ pub fn fmt_params(p: &Params) -> String {
         .join(" ")
 }
 
-/// Run `f` over `0..n` on `threads` threads; results come back in index order.
-fn parallel<T: Send>(n: usize, threads: usize, f: impl Fn(usize) -> T + Sync) -> Vec<T> {
-    let slots: Mutex<Vec<Option<T>>> = Mutex::new((0..n).map(|_| None).collect());
-    let next = AtomicUsize::new(0);
-    let workers = threads.clamp(1, n.max(1));
-    std::thread::scope(|s| {
-        for _ in 0..workers {
-            s.spawn(|| {
-                loop {
-                    let i = next.fetch_add(1, Ordering::Relaxed);
-                    if i >= n {
-                        break;
-                    }
-                    let out = f(i);
-                    if let Ok(mut g) = slots.lock() {
-                        g[i] = Some(out);
-                    }
-                }
-            });
-        }
-    });
-    slots
-        .into_inner()
-        .unwrap_or_default()
-        .into_iter()
-        .flatten()
-        .collect()
-}
-
 /// Run the experiment. `threads` only changes speed, never a result.
 pub fn run(spec: &Spec, table: &Table, threads: usize) -> Result<RunOutcome> {
     run_reporting(spec, table, threads, &|_, _| {})
@@ -1272,17 +1243,20 @@ pub fn run_reporting(
     let chosen = &candidates[selected - 1];
     // Refit the selected candidate on every development row.
     let dev_rows: Vec<usize> = prep.sealed.development();
-    let (encoder, fitted) = fit_on(
-        spec,
-        table,
-        &prep,
-        &entries[chosen.entry],
-        &chosen.params,
-        &dev_rows,
-        dev_gram.as_ref().map_or(DevGram::Make, DevGram::Made),
-        threads,
-        &mut notes,
-    )?;
+    // Nothing else runs now: the refit's passes may use every core.
+    let (encoder, fitted) = crate::par::lend(threads.saturating_sub(1), || {
+        fit_on(
+            spec,
+            table,
+            &prep,
+            &entries[chosen.entry],
+            &chosen.params,
+            &dev_rows,
+            dev_gram.as_ref().map_or(DevGram::Make, DevGram::Made),
+            threads,
+            &mut notes,
+        )
+    })?;
     let refit = StoredModel {
         candidate: chosen.id,
         classes: prep.classes.clone(),
@@ -1503,7 +1477,7 @@ fn cross_validate(
         })
         .collect();
     let done = AtomicUsize::new(0);
-    let outs = parallel(tasks.len(), threads, |t| {
+    let outs = crate::par::jobs(tasks.len(), threads, |t| {
         let (f, e, lo, hi) = tasks[t];
         let ready = swept[f * entries.len() + e]
             .lock()
@@ -1791,17 +1765,20 @@ pub fn refit_prepared(
             id += 1;
             if id == candidate {
                 let dev = prep.sealed.development();
-                let (encoder, fitted) = fit_on(
-                    spec,
-                    table,
-                    prep,
-                    entry,
-                    &params,
-                    &dev,
-                    DevGram::Make,
-                    crate::data::all_cores(),
-                    &mut Notes::new(),
-                )?;
+                let threads = crate::data::all_cores();
+                let (encoder, fitted) = crate::par::lend(threads - 1, || {
+                    fit_on(
+                        spec,
+                        table,
+                        prep,
+                        entry,
+                        &params,
+                        &dev,
+                        DevGram::Make,
+                        threads,
+                        &mut Notes::new(),
+                    )
+                })?;
                 return Ok(StoredModel {
                     candidate,
                     classes: prep.classes.clone(),

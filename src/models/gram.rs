@@ -691,13 +691,8 @@ mod tests {
     }
 
     fn fixture(n: usize) -> Fixture {
-        let mut state = 11u64;
-        let mut next = || {
-            state = state
-                .wrapping_mul(6364136223846793005)
-                .wrapping_add(1442695040888963407);
-            (state >> 11) as f64 / (1u64 << 53) as f64
-        };
+        let mut rng = crate::testgen::Lcg(11);
+        let mut next = || rng.unit();
         let cols: Vec<Vec<f64>> = (0..3)
             .map(|j| {
                 (0..n)
@@ -793,13 +788,8 @@ mod tests {
     #[test]
     fn total_minus_fold_equals_a_direct_pass() {
         let n = 600;
-        let mut state = 7u64;
-        let mut next = || {
-            state = state
-                .wrapping_mul(6364136223846793005)
-                .wrapping_add(1442695040888963407);
-            (state >> 11) as f64 / (1u64 << 53) as f64
-        };
+        let mut rng = crate::testgen::Lcg(7);
+        let mut next = || rng.unit();
         let cols: Vec<Vec<f64>> = (0..3)
             .map(|j| {
                 (0..n)

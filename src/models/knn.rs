@@ -266,13 +266,8 @@ mod tests {
     #[test]
     fn tiled_kernel_equals_sorting_every_distance() {
         for (n, p) in [(37, 7), (64, 4), (9, 1), (100, 20)] {
-            let mut state = 12345u64 + n as u64;
-            let mut next = || {
-                state = state
-                    .wrapping_mul(6364136223846793005)
-                    .wrapping_add(1442695040888963407);
-                ((state >> 11) as f64 / (1u64 << 53) as f64 - 0.5) * 4.0
-            };
+            let mut rng = crate::testgen::Lcg(12345 + n as u64);
+            let mut next = || (rng.unit() - 0.5) * 4.0;
             let mut points: Vec<f64> = (0..n * p).map(|_| next()).collect();
             for j in 0..p {
                 points[5 * p + j] = points[2 * p + j];
