@@ -54,6 +54,14 @@ impl Column {
         }
     }
 
+    /// Whether any cell of the column is missing.
+    pub fn has_missing(&self) -> bool {
+        match &self.values {
+            Values::Numeric(v) => v.iter().any(|x| x.is_nan()),
+            Values::Text { codes, .. } => codes.contains(&MISSING_CODE),
+        }
+    }
+
     /// The cell as text (numbers in shortest round-trip form), or "" when missing.
     pub fn text(&self, row: usize) -> String {
         match &self.values {

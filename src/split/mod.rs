@@ -178,15 +178,31 @@ fn count_of(frac: f64, n: usize) -> usize {
     ((frac * n as f64).round() as usize).min(n)
 }
 
+/// 0..n shuffled (`rng::shuffle`). The same swaps on 32-bit indices when they fit: half the
+/// memory for the random accesses of a large shuffle, the same order.
+fn shuffled_range(n: usize, rng: &mut rand_chacha::ChaCha20Rng) -> Vec<usize> {
+    match u32::try_from(n) {
+        Ok(n32) => {
+            let mut order: Vec<u32> = (0..n32).collect();
+            shuffle(rng, &mut order);
+            order.into_iter().map(|i| i as usize).collect()
+        }
+        Err(_) => {
+            let mut order: Vec<usize> = (0..n).collect();
+            shuffle(rng, &mut order);
+            order
+        }
+    }
+}
+
 fn assign(input: &SplitInput, n: usize) -> Result<Vec<Part>> {
     let n_test = count_of(input.test, n);
     let n_val = count_of(input.validation, n).min(n - n_test);
     let mut parts = vec![Part::Train; n];
     match &input.method {
         Method::Random => {
-            let mut order: Vec<usize> = (0..n).collect();
-            shuffle(&mut stream(input.seed, Domain::Partition, 0), &mut order);
-            for (pos, &row) in order.iter().enumerate() {
+            let order = shuffled_range(n, &mut stream(input.seed, Domain::Partition, 0));
+            for (pos, row) in order.into_iter().enumerate() {
                 parts[row] = if pos < n_test {
                     Part::Test
                 } else if pos < n_test + n_val {
@@ -616,11 +632,11 @@ pub fn folds_of(
                     .collect()
             }
             _ => {
-                let mut perm: Vec<usize> = (0..m).collect();
-                let mut rng = stream(input.seed, domain, ridx);
-                if !loo {
-                    shuffle(&mut rng, &mut perm);
-                }
+                let perm: Vec<usize> = if loo {
+                    (0..m).collect()
+                } else {
+                    shuffled_range(m, &mut stream(input.seed, domain, ridx))
+                };
                 let mut f = vec![0usize; m];
                 let mut pos = 0;
                 for (fold, size) in chunk_sizes(m, k).into_iter().enumerate() {
@@ -632,11 +648,13 @@ pub fn folds_of(
                 f
             }
         };
-        for fold in 0..k {
-            let mut fit = Vec::new();
-            let mut score = Vec::new();
-            for (pos, &row) in dev.iter().enumerate() {
-                if fold_of[pos] == fold {
+        let mut sizes = vec![0usize; k];
+        fold_of.iter().for_each(|&f| sizes[f] += 1);
+        for (fold, &size) in sizes.iter().enumerate() {
+            let mut fit = Vec::with_capacity(m - size);
+            let mut score = Vec::with_capacity(size);
+            for (&row, &f) in dev.iter().zip(&fold_of) {
+                if f == fold {
                     score.push(row);
                 } else {
                     fit.push(row);
