@@ -9,6 +9,7 @@ use crate::error::{Error, Result};
 use crate::runner::{RunOutcome, Scores};
 use crate::split::Part;
 use rusqlite::types::Value as Sql;
+use rusqlite::types::{ToSqlOutput, ValueRef};
 use rusqlite::{Connection, OptionalExtension, params};
 use serde_json::Value;
 use std::collections::BTreeMap;
@@ -254,9 +255,16 @@ impl Ledger {
             };
             let mut full = tx.prepare(&many(KEYS_PER_STATEMENT)).map_err(fail)?;
             for chunk in keys.chunks(KEYS_PER_STATEMENT) {
-                let mut vals: Vec<Sql> = Vec::with_capacity(chunk.len() + 1);
-                vals.push(Sql::Text(prep.partition_id.clone()));
-                vals.extend(chunk.iter().map(|k| Sql::Blob(k.to_vec())));
+                // Borrowed values: no copy of each key.
+                let mut vals: Vec<ToSqlOutput> = Vec::with_capacity(chunk.len() + 1);
+                vals.push(ToSqlOutput::Borrowed(ValueRef::Text(
+                    prep.partition_id.as_bytes(),
+                )));
+                vals.extend(
+                    chunk
+                        .iter()
+                        .map(|k| ToSqlOutput::Borrowed(ValueRef::Blob(&k[..]))),
+                );
                 if chunk.len() == KEYS_PER_STATEMENT {
                     full.execute(rusqlite::params_from_iter(vals.iter()))
                 } else {
@@ -342,7 +350,13 @@ impl Ledger {
                     tuples(2 * nm, 6)
                 ))
                 .map_err(fail)?;
-            let real = |v: Option<f64>| v.map_or(Sql::Null, Sql::Real);
+            // Borrowed text and plain numbers: no allocation per value. Rows go in primary-key
+            // order (parts and metrics by name), so each lands beside the one before.
+            let real = |v: Option<f64>| ToSqlOutput::Owned(v.map_or(Sql::Null, Sql::Real));
+            let int = |v: i64| ToSqlOutput::Owned(Sql::Integer(v));
+            let text = |t: &'static str| ToSqlOutput::Borrowed(ValueRef::Text(t.as_bytes()));
+            let mut by_name: Vec<usize> = (0..nm).collect();
+            by_name.sort_by_key(|&k| out.prepared.metrics[k].name());
             for c in &out.candidates {
                 let p: serde_json::Map<String, Value> = c
                     .params
@@ -358,18 +372,18 @@ impl Ledger {
                     c.seed.to_string()
                 ])
                 .map_err(fail)?;
-                let mut vals: Vec<Sql> = Vec::with_capacity(14 * nm);
+                let mut vals: Vec<ToSqlOutput> = Vec::with_capacity(14 * nm);
                 for f in &c.folds {
                     vals.clear();
                     for (part, sc) in [("train", &f.train), ("validation", &f.validation)] {
-                        for (k, m) in out.prepared.metrics.iter().enumerate() {
+                        for &k in &by_name {
                             vals.extend([
-                                Sql::Integer(run),
-                                Sql::Integer(c.id as i64),
-                                Sql::Integer(f.repeat as i64),
-                                Sql::Integer(f.fold as i64),
-                                Sql::Text(part.into()),
-                                Sql::Text(m.name().into()),
+                                int(run),
+                                int(c.id as i64),
+                                int(f.repeat as i64),
+                                int(f.fold as i64),
+                                text(part),
+                                text(out.prepared.metrics[k].name()),
                                 real(sc[k]),
                             ]);
                         }
@@ -384,12 +398,12 @@ impl Ledger {
                 ];
                 vals.clear();
                 for (part, mean, se) in sets {
-                    for (k, m) in out.prepared.metrics.iter().enumerate() {
+                    for &k in &by_name {
                         vals.extend([
-                            Sql::Integer(run),
-                            Sql::Integer(c.id as i64),
-                            Sql::Text(part.into()),
-                            Sql::Text(m.name().into()),
+                            int(run),
+                            int(c.id as i64),
+                            text(part),
+                            text(out.prepared.metrics[k].name()),
                             real(mean[k]),
                             real(se[k]),
                         ]);
