@@ -65,42 +65,7 @@ pub fn predict_many(
     ks: &[usize],
     classes: usize,
 ) -> Vec<Vec<f64>> {
-    predict_wide(points, targets, p, queries, ks, classes)
-}
-
-widest!(
-    predict_wide,
-    fn(
-        points: &[f64],
-        targets: &[f64],
-        p: usize,
-        queries: &Matrix,
-        ks: &[usize],
-        classes: usize,
-    ) -> Vec<Vec<f64>>,
-    predict_body
-);
-
-#[inline(always)]
-fn predict_body(
-    points: &[f64],
-    targets: &[f64],
-    p: usize,
-    queries: &Matrix,
-    ks: &[usize],
-    classes: usize,
-) -> Vec<Vec<f64>> {
     let n = targets.len();
-    let kmax = ks.iter().copied().max().unwrap_or(1).min(n);
-    let q = row_major(queries);
-    let mut out = vec![Vec::with_capacity(queries.rows); ks.len()];
-    // The kmax nearest so far per query, sorted by (distance, row): a point enters only when it
-    // beats the worst kept one. Rows are scanned in order, so an equal distance never displaces
-    // an earlier row: the same neighbours as a full sort by (distance, row). Queries go in
-    // blocks of 8 per pass over the points, so each point is read from memory once per block.
-    const BLOCK: usize = 8;
-    let mut nears: Vec<Vec<(f64, usize)>> =
-        (0..BLOCK).map(|_| Vec::with_capacity(kmax + 1)).collect();
     // Points in tiles of TILE, stored feature by feature, so one query's distances to a whole
     // tile are computed lane by lane; each lane repeats `sq_dist`'s operations exactly.
     let tiles = n.div_ceil(TILE);
@@ -110,9 +75,65 @@ fn predict_body(
             tiled[(i / TILE) * p + j][i % TILE] = points[i * p + j];
         }
     }
+    let q = row_major(queries);
+    // Queries are independent: jobs of QUERY_JOB rows, on the calling thread and any lent
+    // cores (`par`), joined in order; a query's neighbours do not depend on its job.
+    let nq = queries.rows;
+    let parts = crate::par::chunks(nq.div_ceil(QUERY_JOB), |c| {
+        let (lo, hi) = (c * QUERY_JOB, ((c + 1) * QUERY_JOB).min(nq));
+        predict_wide(&tiled, targets, p, &q[lo * p..hi * p], hi - lo, ks, classes)
+    });
+    let mut out = vec![Vec::with_capacity(nq * classes.max(1)); ks.len()];
+    for part in parts {
+        for (slot, preds) in out.iter_mut().zip(part) {
+            slot.extend(preds);
+        }
+    }
+    out
+}
+
+/// Queries per job of `predict_many` (a multiple of the kernel's blocks of 8).
+const QUERY_JOB: usize = 256;
+
+widest!(
+    predict_wide,
+    fn(
+        tiled: &[[f64; TILE]],
+        targets: &[f64],
+        p: usize,
+        q: &[f64],
+        nq: usize,
+        ks: &[usize],
+        classes: usize,
+    ) -> Vec<Vec<f64>>,
+    predict_body
+);
+
+/// Predictions for `nq` row-major queries `q` from the tiled points, per k.
+#[inline(always)]
+fn predict_body(
+    tiled: &[[f64; TILE]],
+    targets: &[f64],
+    p: usize,
+    q: &[f64],
+    nq: usize,
+    ks: &[usize],
+    classes: usize,
+) -> Vec<Vec<f64>> {
+    let n = targets.len();
+    let kmax = ks.iter().copied().max().unwrap_or(1).min(n);
+    let mut out = vec![Vec::with_capacity(nq); ks.len()];
+    // The kmax nearest so far per query, sorted by (distance, row): a point enters only when it
+    // beats the worst kept one. Rows are scanned in order, so an equal distance never displaces
+    // an earlier row: the same neighbours as a full sort by (distance, row). Queries go in
+    // blocks of 8 per pass over the points, so each point is read from memory once per block.
+    const BLOCK: usize = 8;
+    let mut nears: Vec<Vec<(f64, usize)>> =
+        (0..BLOCK).map(|_| Vec::with_capacity(kmax + 1)).collect();
+    let tiles = n.div_ceil(TILE);
     let quads = p / 4;
-    for r0 in (0..queries.rows).step_by(BLOCK) {
-        let r1 = (r0 + BLOCK).min(queries.rows);
+    for r0 in (0..nq).step_by(BLOCK) {
+        let r1 = (r0 + BLOCK).min(nq);
         for near in nears.iter_mut() {
             near.clear();
         }
@@ -273,11 +294,12 @@ mod tests {
                 points[5 * p + j] = points[2 * p + j];
             }
             let targets: Vec<f64> = (0..n).map(|_| next()).collect();
-            let nq = 13;
+            // More queries than one job (QUERY_JOB), with cores lent: jobs run side by side.
+            let nq = if n == 100 { 600 } else { 13 };
             let qcols: Vec<Vec<f64>> = (0..p).map(|_| (0..nq).map(|_| next()).collect()).collect();
             let queries = Matrix::from_cols(nq, &qcols);
             let ks = [1, 2, 3, 8];
-            let got = predict_many(&points, &targets, p, &queries, &ks, 0);
+            let got = crate::par::lend(2, || predict_many(&points, &targets, p, &queries, &ks, 0));
             for r in 0..nq {
                 let q: Vec<f64> = (0..p).map(|j| qcols[j][r]).collect();
                 let mut all: Vec<(f64, usize)> = (0..n)
