@@ -605,10 +605,7 @@ fn fold_sums_body(
         let nb = chunk.len();
         gather(src, chunk, &mut block, true);
         for (grp, sums) in groups.iter().zip(out.iter_mut()) {
-            // The four sums live in registers; each row adds its errors to one side and +0 to
-            // the other (a bit mask, no branch). Adding +0 to a sum of squares or of absolute
-            // values, which is never -0, changes no bit.
-            let [mut fq, mut fa, mut hq, mut ha] = *sums;
+            let mut s = *sums;
             let mut r = 0;
             while r < nb {
                 let take = (nb - r).min(ROWS);
@@ -625,21 +622,21 @@ fn fold_sums_body(
                 }
                 for (rr, a) in acc.iter().enumerate().take(take) {
                     let y = block[p * BLOCK + r + rr];
-                    // All ones when this fold holds the row out, else zero.
-                    let out_mask = ((masks[r + rr] >> grp.bit) & 1).wrapping_neg();
-                    let in_mask = !out_mask;
+                    let side = 2 * ((masks[r + rr] >> grp.bit) & 1) as usize;
+                    let mut e = [0.0; FITS];
                     for l in 0..FITS {
-                        let e = y - a[l];
-                        let (q, t) = ((e * e).to_bits(), e.abs().to_bits());
-                        fq[l] += f64::from_bits(q & in_mask);
-                        fa[l] += f64::from_bits(t & in_mask);
-                        hq[l] += f64::from_bits(q & out_mask);
-                        ha[l] += f64::from_bits(t & out_mask);
+                        e[l] = y - a[l];
+                    }
+                    let (q, t) = s.split_at_mut(side + 1);
+                    let (q, t) = (&mut q[side], &mut t[0]);
+                    for l in 0..FITS {
+                        q[l] += e[l] * e[l];
+                        t[l] += e[l].abs();
                     }
                 }
                 r += take;
             }
-            *sums = [fq, fa, hq, ha];
+            *sums = s;
         }
     }
     out
