@@ -456,6 +456,30 @@ fn next_rows(
     !out.is_empty()
 }
 
+/// The predictions of FITS fits (lanes) for the ROWS gathered rows from `r` on: as
+/// `Fitted::predict` forms them, the intercept, then each weight times its feature in column
+/// order. (`Fitted::predict` skips a zero weight; adding its +-0 product changes at most the
+/// sign of a zero prediction, which no error sum can see.) Shared by both sweeps, so their
+/// arithmetic is the same by construction.
+#[inline(always)]
+fn predict_rows(
+    intercepts: [f64; FITS],
+    weights: &[[f64; FITS]],
+    block: &[f64],
+    r: usize,
+) -> [[f64; FITS]; ROWS] {
+    let mut acc = [intercepts; ROWS];
+    for (j, wj) in weights.iter().enumerate() {
+        let xs = &block[j * BLOCK + r..j * BLOCK + r + ROWS];
+        for (a, &xv) in acc.iter_mut().zip(xs) {
+            for l in 0..FITS {
+                a[l] += wj[l] * xv;
+            }
+        }
+    }
+    acc
+}
+
 /// Sums per fit for the rows tagged false, then for those tagged true.
 #[inline(always)]
 fn error_sums_body(
@@ -496,17 +520,7 @@ fn error_sums_body(
         while r < nb {
             let take = (nb - r).min(ROWS);
             for g in 0..groups {
-                // `Fitted::predict` skips a zero weight; adding its +-0 product changes at most
-                // the sign of a zero prediction, which no error sum can see.
-                let mut acc = [intercepts[g]; ROWS];
-                for (j, wj) in w[g * p..(g + 1) * p].iter().enumerate() {
-                    let xs = &block[j * BLOCK + r..j * BLOCK + r + ROWS];
-                    for (a, &xv) in acc.iter_mut().zip(xs) {
-                        for l in 0..FITS {
-                            a[l] += wj[l] * xv;
-                        }
-                    }
-                }
+                let acc = predict_rows(intercepts[g], &w[g * p..(g + 1) * p], &block, r);
                 for (rr, a) in acc.iter().enumerate().take(take) {
                     let y = block[p * BLOCK + r + rr];
                     let side = usize::from(chunk[r + rr].1);
@@ -609,17 +623,7 @@ fn fold_sums_body(
             let mut r = 0;
             while r < nb {
                 let take = (nb - r).min(ROWS);
-                // Predictions as `Fitted::predict` forms them: intercept, then weight times
-                // feature in column order (see `error_sums_body`).
-                let mut acc = [grp.intercepts; ROWS];
-                for (j, wj) in grp.weights.iter().enumerate() {
-                    let xs = &block[j * BLOCK + r..j * BLOCK + r + ROWS];
-                    for (a, &xv) in acc.iter_mut().zip(xs) {
-                        for l in 0..FITS {
-                            a[l] += wj[l] * xv;
-                        }
-                    }
-                }
+                let acc = predict_rows(grp.intercepts, &grp.weights, &block, r);
                 for (rr, a) in acc.iter().enumerate().take(take) {
                     let y = block[p * BLOCK + r + rr];
                     let side = 2 * ((masks[r + rr] >> grp.bit) & 1) as usize;
