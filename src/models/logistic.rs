@@ -12,6 +12,7 @@
 //! `CHUNK` rows added in job order, so lent cores (`par`) change no bit; along a penalty path
 //! each fit starts one tangent step away from the previous solution.
 
+use super::elementary::{exp_nonpositive, log1p_unit};
 use super::encode::{Notes, note};
 use super::linalg::{Matrix, mean_sd, standardize, svd_solve_prep};
 use super::{Design, Fitted, Model, Params, param};
@@ -388,15 +389,17 @@ fn eval_part_body(
             }
         }
     }
-    let mut loss = -0.0;
-    let mut r = vec![0.0; hi - lo];
-    let mut w = vec![0.0; hi - lo];
-    for (k, (&e, &yi)) in eta.iter().zip(&y[lo..hi]).enumerate() {
-        let ex = (-e.abs()).exp();
+    let len = hi - lo;
+    let (mut r, mut w, mut term) = (vec![0.0; len], vec![0.0; len], vec![0.0; len]);
+    // Row by row with no running sum, so the loop vectorises; the loss is summed after.
+    for k in 0..len {
+        let (e, positive) = (eta[k], y[lo + k] as usize == 1);
+        // exp and log1p in plain arithmetic (`elementary`).
+        let ex = exp_nonpositive(-e.abs());
         // log(1 + exp(eta)) without overflow on either side.
-        let softplus = if e > 0.0 { e + ex.ln_1p() } else { ex.ln_1p() };
-        let positive = yi as usize == 1;
-        loss += softplus - if positive { e } else { 0.0 };
+        let lp = log1p_unit(ex);
+        let softplus = if e > 0.0 { e + lp } else { lp };
+        term[k] = softplus - if positive { e } else { 0.0 };
         let prob = if e >= 0.0 {
             1.0 / (1.0 + ex)
         } else {
@@ -405,6 +408,7 @@ fn eval_part_body(
         r[k] = prob - if positive { 1.0 } else { 0.0 };
         w[k] = prob * (1.0 - prob);
     }
+    let loss = lane_sum(&term);
     let mut g = vec![lane_sum(&r); z.cols + 1];
     for j in 0..z.cols {
         g[j + 1] = dot(&r, &z.col(j)[lo..hi]);

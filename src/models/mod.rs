@@ -34,6 +34,7 @@ macro_rules! widest {
     };
 }
 
+pub mod elementary;
 pub mod encode;
 pub mod gram;
 pub mod knn;
