@@ -3,9 +3,12 @@
 //! library's version. Accurate to about 1 ulp (a unit test checks 2 ulp against the standard
 //! library over a million arguments); exp is 0 below exp's normal range.
 
-/// ln 2 split so that k * LN2_HI is exact for |k| < 2^11 (Cody and Waite's reduction).
-const LN2_HI: f64 = 6.931_471_803_691_238_164_90e-1;
-const LN2_LO: f64 = 1.908_214_929_270_587_700_02e-10;
+/// ln 2 split so that k * LN2_HI is exact for |k| < 2^11 (Cody and Waite's reduction): the
+/// split fdlibm uses (recalled from memory, then checked: LN2_HI ends in 21 zero bits, and
+/// LN2_HI + LN2_LO is ln 2 to 1.2e-26, by Python's `decimal`; a unit test checks what f64
+/// can).
+const LN2_HI: f64 = f64::from_bits(0x3fe6_2e42_fee0_0000);
+const LN2_LO: f64 = f64::from_bits(0x3dea_39ef_3579_3c76);
 const INV_LN2: f64 = std::f64::consts::LOG2_E;
 /// 1.5 x 2^52: adding and subtracting it rounds to the nearest integer (ties to even) for
 /// |v| < 2^51, in plain arithmetic.
@@ -86,6 +89,16 @@ mod tests {
             return 0;
         }
         (a.to_bits() as i64 - b.to_bits() as i64).unsigned_abs()
+    }
+
+    #[test]
+    fn the_split_of_ln2_is_exact_enough() {
+        assert_eq!(LN2_HI.to_bits().trailing_zeros(), 21);
+        // The sum is ln 2 rounded, and the low part carries what the high part drops.
+        assert_eq!(LN2_HI + LN2_LO, std::f64::consts::LN_2);
+        // LN_2 - LN2_HI is exact; it differs from LN2_LO only by LN_2's own rounding.
+        let tail = std::f64::consts::LN_2 - LN2_HI;
+        assert!((tail - LN2_LO).abs() <= 0.5 * f64::EPSILON * std::f64::consts::LN_2);
     }
 
     /// Against the standard library (glibc here) on a million arguments each and the edges.
