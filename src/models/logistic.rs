@@ -66,12 +66,14 @@ fn probs_from_scores(s: &[f64], n: usize, k: usize, classes: usize) -> Vec<f64> 
     for i in 0..n {
         let row = &s[i * k..(i + 1) * k];
         if classes == 2 {
-            // p = 1 / (1 + exp(-eta)), computed without overflow on either side.
+            // p = 1 / (1 + exp(-eta)), computed without overflow on either side, with the
+            // same exp as the fitting passes (`elementary`).
             let eta = row[0];
+            let ex = exp_nonpositive(-eta.abs());
             let p = if eta >= 0.0 {
-                1.0 / (1.0 + (-eta).exp())
+                1.0 / (1.0 + ex)
             } else {
-                eta.exp() / (1.0 + eta.exp())
+                ex / (1.0 + ex)
             };
             out.push(1.0 - p);
             out.push(p);
