@@ -27,8 +27,10 @@ const BLOCK: usize = 256;
 /// Fits predicted together in the error sweep (one AVX-512 register of predictions).
 pub const FITS: usize = 8;
 
-/// Rows predicted together in the error sweep (BLOCK is a multiple of it).
-const ROWS: usize = 4;
+/// Rows predicted together in the error sweep (BLOCK is a multiple of it): eight independent
+/// chains of additions per group of fits, enough to hide the addition's latency on a core with
+/// separate multiply and add pipes. Rows are independent, so this changes no bit.
+const ROWS: usize = 8;
 
 /// Accumulator lanes of the dot products (fixed, so the sums do not depend on the machine).
 const LANES: usize = 8;
