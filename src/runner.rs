@@ -1022,7 +1022,9 @@ fn held_grams(
     let mut owner = vec![NONE; prep.rows.len()];
     let mut seen = vec![NONE; prep.rows.len()];
     let repeats: std::collections::BTreeSet<usize> = folds.iter().map(|f| f.repeat).collect();
-    for r in repeats {
+    // Per repeat (in `repeats` order): the owning fold of each development row, in `dev` order.
+    let mut owners: Vec<Vec<u32>> = Vec::with_capacity(repeats.len());
+    for &r in &repeats {
         owner.iter_mut().for_each(|o| *o = NONE);
         for (f, fold) in folds.iter().enumerate().filter(|(_, x)| x.repeat == r) {
             if fold.fit.len() + fold.score.len() != dev.len() {
@@ -1038,6 +1040,7 @@ fn held_grams(
         if dev.iter().any(|&i| owner[i] == NONE) {
             return None;
         }
+        owners.push(dev.iter().map(|&i| owner[i]).collect());
         for (f, fold) in folds.iter().enumerate().filter(|(_, x)| x.repeat == r) {
             // Fitting rows: development rows, none held out by this fold, none repeated.
             for &i in &fold.fit {
@@ -1061,23 +1064,14 @@ fn held_grams(
         && folds.windows(2).all(|w| w[0].repeat <= w[1].repeat);
     let held: Vec<Gram> = if sorted {
         let mut held = Vec::with_capacity(folds.len());
-        let mut owner = vec![u32::MAX; prep.rows.len()];
-        for r in folds
-            .iter()
-            .map(|f| f.repeat)
-            .collect::<std::collections::BTreeSet<_>>()
-        {
+        for (&r, own) in repeats.iter().zip(&owners) {
             let first = folds.iter().position(|f| f.repeat == r).unwrap_or(0);
             let end = first + folds[first..].iter().take_while(|f| f.repeat == r).count();
-            for (f, fold) in folds.iter().enumerate().take(end).skip(first) {
-                fold.score.iter().for_each(|&i| owner[i] = f as u32);
-            }
-            let own: Vec<u32> = dev.iter().map(|&i| owner[i]).collect();
             let n = end - first;
             let k = threads.clamp(1, n.max(1));
             let parts = crate::par::jobs(k, threads, |c| {
                 let (lo, hi) = (first + c * n / k, first + (c + 1) * n / k);
-                crate::models::gram::of_sets(&src, &dev, &own, lo as u32..hi as u32, &shift)
+                crate::models::gram::of_sets(&src, &dev, own, lo as u32..hi as u32, &shift)
             });
             held.extend(parts.into_iter().flatten());
         }
@@ -1372,7 +1366,6 @@ fn fit_on(
     threads: usize,
     notes: &mut Notes,
 ) -> Result<(Encoder, Fitted)> {
-    let model = model_for(entry, prep.classes.len());
     let impute = spec.data.missing == Missing::Mean;
     if let Some(lambdas) = gram_lambdas(table, prep, entry, std::slice::from_ref(params), impute) {
         let columns = numeric_columns(table, &prep.features);
@@ -1406,6 +1399,7 @@ fn fit_on(
             return Ok((encoder, fitted));
         }
     }
+    let model = model_for(entry, prep.classes.len());
     let rows: Vec<usize> = fit.iter().map(|&i| prep.rows[i]).collect();
     let y: Vec<f64> = fit.iter().map(|&i| prep.target[i]).collect();
     let encoder = Encoder::fit(
