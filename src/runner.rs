@@ -55,6 +55,13 @@ pub struct Prepared {
 }
 
 impl Prepared {
+    /// The identities of the test rows (Ryu text and SHA-256 of every cell: the costly part of
+    /// preparing a large split, so `run_recording` does it beside the grid).
+    pub fn hash_test_keys(&self, table: &Table, threads: usize) -> Vec<crate::data::RowKey> {
+        self.sealed
+            .test_row_keys(table, &self.rows, self.key, threads)
+    }
+
     /// Identities of the development rows (computed on demand: hashing every row costs time).
     /// Inner folds over `rows` (positions among the kept rows) for outer fold `outer`, by the
     /// run's split method, from their own seeded stream.
@@ -169,6 +176,14 @@ fn named_col(spec: &Spec, table: &Table, n: &Named, role: &str) -> Result<usize>
 /// Resolve the spec's columns against the table, handle missing values and split.
 /// `threads` only changes speed (the row identities are hashed on them).
 pub fn prepare(spec: &Spec, table: &Table, threads: usize) -> Result<Prepared> {
+    let mut prep = prepare_unkeyed(spec, table)?;
+    prep.test_keys = prep.hash_test_keys(table, threads);
+    Ok(prep)
+}
+
+/// `prepare` without the test rows' identities (`test_keys` is empty until
+/// `hash_test_keys` fills it).
+fn prepare_unkeyed(spec: &Spec, table: &Table) -> Result<Prepared> {
     let d = &spec.data;
     if let Some((want, loc)) = &d.sha256
         && *want != table.sha256
@@ -456,12 +471,6 @@ pub fn prepare(spec: &Spec, table: &Table, threads: usize) -> Result<Prepared> {
     h.update(b"\n");
     h.update(&assignment);
     let partition_id = hex(&h.finalize())[..16].to_string();
-    let test_rows: Vec<usize> = partition
-        .rows_in(Part::Test)
-        .iter()
-        .map(|&i| rows[i])
-        .collect();
-    let test_keys = crate::data::row_keys(table, key, &test_rows, threads);
     let mut warnings = Vec::new();
     if dropped > 0 {
         warnings.push(format!(
@@ -483,7 +492,7 @@ pub fn prepare(spec: &Spec, table: &Table, threads: usize) -> Result<Prepared> {
         dropped,
         warnings,
         key,
-        test_keys,
+        test_keys: Vec::new(),
         method,
         metrics: Metric::for_task(spec.task == crate::spec::Task::Classification).to_vec(),
         classes,
@@ -600,8 +609,35 @@ pub fn entries(spec: &Spec) -> Vec<ModelSpec> {
     out
 }
 
-/// Check the grid against the data before any fitting (poly features must be numeric features).
-fn check_grid(spec: &Spec, table: &Table, prep: &Prepared, entries: &[ModelSpec]) -> Result<()> {
+/// Check the grid against the data before any fitting: poly features must be numeric
+/// features, no k of knn may exceed a fold's fitting rows, and every fold's fitting rows must
+/// hold every class. (Nested cross-validation's inner folds are checked as they are made.)
+pub fn check_grid(
+    spec: &Spec,
+    table: &Table,
+    prep: &Prepared,
+    entries: &[ModelSpec],
+) -> Result<()> {
+    let folds = prep.sealed.folds();
+    if let Some(fewest) = folds.iter().map(|f| f.fit.len()).min() {
+        for e in entries.iter().filter(|e| e.family == Family::Knn) {
+            for params in e.expand() {
+                let k = crate::models::param(&params, "k").map_or(0.0, |v| v.as_f64());
+                if k > fewest as f64 {
+                    return Err(Error::spec(
+                        &spec.file,
+                        Some(e.loc),
+                        format!(
+                            "knn: k = {k} is larger than the {fewest} fitting rows of the smallest fold; lower k or use fewer folds"
+                        ),
+                    ));
+                }
+            }
+        }
+    }
+    for fold in folds {
+        check_classes(prep, &fold.fit)?;
+    }
     for e in entries.iter().filter(|e| e.family == Family::Poly) {
         for params in e.expand() {
             let f = crate::models::param(&params, "feature")
@@ -624,6 +660,26 @@ fn check_grid(spec: &Spec, table: &Table, prep: &Prepared, entries: &[ModelSpec]
         }
     }
     Ok(())
+}
+
+/// Every class of a classification task must have a row among `fit` (positions among the kept
+/// rows): a model cannot learn a class it never saw.
+fn check_classes(prep: &Prepared, fit: &[usize]) -> Result<()> {
+    let nc = prep.classes.len();
+    if nc == 0 {
+        return Ok(());
+    }
+    let mut seen = vec![false; nc];
+    for &i in fit {
+        seen[prep.target[i] as usize] = true;
+    }
+    match seen.iter().position(|s| !s) {
+        Some(c) => Err(Error::Input(format!(
+            "the fitting rows of a fold hold no row of class '{}', so no model can learn it; use method = \"stratified\", fewer folds, or more data for that class",
+            prep.classes[c]
+        ))),
+        None => Ok(()),
+    }
 }
 
 struct TaskOut {
@@ -748,18 +804,7 @@ fn run_task(
     pre: Option<&Gram>,
 ) -> Result<TaskOut> {
     let nc = prep.classes.len();
-    if nc > 0 {
-        let mut seen = vec![false; nc];
-        for &i in &fold.fit {
-            seen[prep.target[i] as usize] = true;
-        }
-        if let Some(c) = seen.iter().position(|s| !s) {
-            return Err(Error::Input(format!(
-                "the fitting rows hold no row of class '{}', so no model can learn it; use method = \"stratified\", fewer folds, or more data for that class",
-                prep.classes[c]
-            )));
-        }
-    }
+    check_classes(prep, &fold.fit)?;
     if let Some(cmd) = &entry.command {
         // The held-out rows, then the fitting rows again (for training scores), in one call.
         let mut rows: Vec<usize> = fold.score.iter().map(|&i| prep.rows[i]).collect();
@@ -1225,7 +1270,24 @@ pub fn run_reporting(
     threads: usize,
     progress: &(dyn Fn(usize, usize) + Sync),
 ) -> Result<RunOutcome> {
-    let prep = prepare(spec, table, threads)?;
+    run_recording(spec, table, threads, progress, None)
+}
+
+/// Called with the prepared split and its test rows' identities once the spec has passed every
+/// check, on a thread of its own while the grid runs (the CLI stores the partition then).
+pub type Recorder<'a> = dyn FnMut(&Prepared, &[crate::data::RowKey]) -> Result<()> + Send + 'a;
+
+/// `run_reporting`, handing `record` the partition beside the grid: hashing the test rows and
+/// storing them then costs no time of their own on a machine with a core to spare. The
+/// recorder sees nothing of the grid, so it changes no result.
+pub fn run_recording(
+    spec: &Spec,
+    table: &Table,
+    threads: usize,
+    progress: &(dyn Fn(usize, usize) + Sync),
+    record: Option<&mut Recorder>,
+) -> Result<RunOutcome> {
+    let mut prep = prepare_unkeyed(spec, table)?;
     let entries = entries(spec);
     check_grid(spec, table, &prep, &entries)?;
     let grids: Vec<Vec<Params>> = entries.iter().map(ModelSpec::expand).collect();
@@ -1235,9 +1297,37 @@ pub fn run_reporting(
     for cmd in entries.iter().filter_map(|e| e.command.as_ref()) {
         inputs.extend(crate::external::input_hashes(cmd).map_err(Error::Input)?);
     }
-    let (candidates, dev_gram) = cross_validate(
-        spec, table, &prep, &entries, &grids, &folds, threads, &mut notes, progress,
-    )?;
+    let (cv, keys) = match record {
+        None => {
+            let keys = prep.hash_test_keys(table, threads);
+            let cv = cross_validate(
+                spec, table, &prep, &entries, &grids, &folds, threads, &mut notes, progress,
+            );
+            (cv, Ok(keys))
+        }
+        Some(record) => std::thread::scope(|s| {
+            let shared = &prep;
+            let side = s.spawn(move || -> Result<Vec<crate::data::RowKey>> {
+                let mut keys = shared.hash_test_keys(table, threads);
+                // In key order, as the ledger stores them (it need not sort a copy).
+                keys.sort_unstable();
+                record(shared, &keys)?;
+                Ok(keys)
+            });
+            let cv = cross_validate(
+                spec, table, shared, &entries, &grids, &folds, threads, &mut notes, progress,
+            );
+            let keys = side.join().unwrap_or_else(|_| {
+                Err(Error::Internal(
+                    "the thread recording the partition panicked".into(),
+                ))
+            });
+            (cv, keys)
+        }),
+    };
+    // The grid's error first: it is the user's to fix.
+    let (candidates, dev_gram) = cv?;
+    prep.test_keys = keys?;
     let metric = spec.select.metric;
     let (best, selected) = select(&candidates, metric, spec.select.rule, &entries)?;
     let chosen = &candidates[selected - 1];
@@ -1280,7 +1370,9 @@ pub fn run_reporting(
                 && !refit.encoder.impute =>
             {
                 let src = source(&prep, &columns);
-                crate::models::gram::predictions(&src, &dev_rows, *intercept, weights)
+                crate::par::lend(threads.saturating_sub(1), || {
+                    crate::models::gram::predictions(&src, &dev_rows, *intercept, weights)
+                })
             }
             _ => {
                 let rows: Vec<usize> = dev_rows.iter().map(|&i| prep.rows[i]).collect();

@@ -22,6 +22,7 @@ pub fn run(_g: &Global, a: Args) -> Result<i32> {
     let (spec, table) = load_inputs(&a.spec, crate::data::all_cores())?;
     let prep = crate::runner::prepare(&spec, &table, crate::data::all_cores())?;
     let entries = crate::runner::entries(&spec);
+    crate::runner::check_grid(&spec, &table, &prep, &entries)?;
     let n_cands: usize = entries.iter().map(|e| e.expand().len()).sum();
     let s = &prep.sealed;
     let folds: Vec<serde_json::Value> =

@@ -51,11 +51,44 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
             ),
         });
     }
-    let mut outcome =
-        crate::runner::run_reporting(&spec, &table, threads, &|d, t| progress.tasks(d, t))?;
+    // The partition is stored in its own transaction while the grid runs (once the spec has
+    // passed every check, so a refused spec still leaves no ledger behind).
+    let mut slot = early;
+    let mut fresh: Option<String> = None;
+    let mut record = |prep: &crate::runner::Prepared, keys: &[crate::data::RowKey]| -> Result<()> {
+        let ledger = match &mut slot {
+            Some(l) => l,
+            None => slot.insert(open_for_write(g)?),
+        };
+        if ledger.record_partition(&spec, &table, prep, keys)? {
+            fresh = Some(prep.partition_id.clone());
+        }
+        Ok(())
+    };
+    let outcome = crate::runner::run_recording(
+        &spec,
+        &table,
+        threads,
+        &|d, t| progress.tasks(d, t),
+        Some(&mut record),
+    );
+    let mut outcome = match outcome {
+        Ok(o) => o,
+        Err(e) => {
+            // A run that failed leaves no partition it brought in; keep the first error.
+            if let (Some(l), Some(id)) = (slot.as_mut(), &fresh)
+                && let Err(f) = l.forget_partition(id)
+            {
+                warn(&format!(
+                    "the partition {id} stays in the ledger unused: {f}"
+                ));
+            }
+            return Err(e);
+        }
+    };
     progress.phase("writing the ledger");
     phases.mark("run");
-    let mut ledger = match early {
+    let mut ledger = match slot {
         Some(l) => l,
         None => open_for_write(g)?,
     };

@@ -36,6 +36,24 @@ impl Sealed {
         self.partition.count(p)
     }
 
+    /// The identities of the test rows (`kept[i]` is the table row of position `i`). Hashes
+    /// only: the accounting needs them, and they carry no value of a row.
+    pub fn test_row_keys(
+        &self,
+        table: &crate::data::Table,
+        kept: &[usize],
+        key: Option<usize>,
+        threads: usize,
+    ) -> Vec<crate::data::RowKey> {
+        let rows: Vec<usize> = self
+            .partition
+            .rows_in(Part::Test)
+            .iter()
+            .map(|&i| kept[i])
+            .collect();
+        crate::data::row_keys(table, key, &rows, threads)
+    }
+
     /// Per-row partition codes (for the ledger's compact assignment); reveals nothing but
     /// membership, which the ledger must record anyway.
     pub fn codes(&self) -> Vec<u8> {

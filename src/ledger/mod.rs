@@ -196,7 +196,7 @@ impl Ledger {
             .map_err(sql_err("enable foreign keys"))?;
         // A run is written in one transaction; a cache that holds it all keeps SQLite from
         // spilling pages mid-transaction (64 MiB, allocated only as used).
-        conn.pragma_update(None, "cache_size", -65536)
+        conn.pragma_update(None, "cache_size", -CACHE_KIB)
             .map_err(sql_err("set cache size"))?;
         migrate::migrate(&mut conn, path)?;
         Ok(Ledger {
@@ -227,52 +227,7 @@ impl Ledger {
             .map_err(fail)?;
         let prep = &out.prepared;
         let s = &prep.sealed;
-        tx.execute(
-            "INSERT OR IGNORE INTO partitions (id, data_sha256, settings, assignment, n_train, n_validation, n_test) VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7)",
-            params![
-                prep.partition_id,
-                table.sha256,
-                spec.split_canonical(),
-                prep.assignment,
-                s.count(Part::Train) as i64,
-                s.count(Part::Validation) as i64,
-                s.count(Part::Test) as i64
-            ],
-        )
-        .map_err(fail)?;
-        // A new partition brings its test rows' identities (exposure follows rows).
-        if tx.changes() == 1 {
-            // In key order, so the table and its index grow at their ends, and many rows per
-            // statement: a large test partition holds hundreds of thousands of rows.
-            let mut keys = prep.test_keys.clone();
-            keys.sort_unstable();
-            let many = |n: usize| {
-                let tuples: Vec<String> = (0..n).map(|i| format!("(?1, ?{})", i + 2)).collect();
-                format!(
-                    "INSERT OR IGNORE INTO partition_rows (partition_id, row_key) VALUES {}",
-                    tuples.join(", ")
-                )
-            };
-            let mut full = tx.prepare(&many(KEYS_PER_STATEMENT)).map_err(fail)?;
-            for chunk in keys.chunks(KEYS_PER_STATEMENT) {
-                // Borrowed values: no copy of each key.
-                let mut vals: Vec<ToSqlOutput> = Vec::with_capacity(chunk.len() + 1);
-                vals.push(ToSqlOutput::Borrowed(ValueRef::Text(
-                    prep.partition_id.as_bytes(),
-                )));
-                vals.extend(
-                    chunk
-                        .iter()
-                        .map(|k| ToSqlOutput::Borrowed(ValueRef::Blob(&k[..]))),
-                );
-                if chunk.len() == KEYS_PER_STATEMENT {
-                    full.execute(rusqlite::params_from_iter(vals.iter()))
-                } else {
-                    tx.execute(&many(chunk.len()), rusqlite::params_from_iter(vals.iter()))
-                }
-                .map_err(fail)?;
-            }
-        }
+        insert_partition(&tx, spec, table, prep, &prep.test_keys).map_err(fail)?;
         let model_json = serde_json::to_string(&out.refit)
             .map_err(|e| Error::Internal(format!("serialise model: {e}")))?;
         tx.execute(
@@ -460,6 +415,62 @@ impl Ledger {
         chain::append(&tx, "run", run, None)?;
         tx.commit().map_err(fail)?;
         Ok(run)
+    }
+
+    /// Store a run's partition and its test rows' identities in a transaction of their own,
+    /// while the grid still runs; true when the partition was new. Partitions are named by
+    /// their content, so storing one again changes nothing, and `write_run` stores it too when
+    /// it is missing.
+    pub fn record_partition(
+        &mut self,
+        spec: &crate::spec::Spec,
+        table: &crate::data::Table,
+        prep: &crate::runner::Prepared,
+        test_keys: &[crate::data::RowKey],
+    ) -> Result<bool> {
+        let path = self.path.clone();
+        let fail = |e: rusqlite::Error| migrate::refuse_or_fail(&path, e, "record partition");
+        // The grid holds its memory meanwhile: a small cache, spilling to the log as it fills
+        // (rows arrive in key order, so few pages are touched twice).
+        self.conn
+            .pragma_update(None, "cache_size", -RECORD_CACHE_KIB)
+            .map_err(fail)?;
+        let tx = self
+            .conn
+            .transaction_with_behavior(rusqlite::TransactionBehavior::Immediate)
+            .map_err(fail)?;
+        let fresh = insert_partition(&tx, spec, table, prep, test_keys).map_err(fail)?;
+        tx.commit().map_err(fail)?;
+        self.conn
+            .pragma_update(None, "cache_size", -CACHE_KIB)
+            .map_err(fail)?;
+        Ok(fresh)
+    }
+
+    /// Remove a partition that `record_partition` stored for a run that then failed, unless a
+    /// run or a reveal refers to it by now.
+    pub fn forget_partition(&mut self, id: &str) -> Result<()> {
+        let path = self.path.clone();
+        let fail = |e: rusqlite::Error| migrate::refuse_or_fail(&path, e, "forget partition");
+        let tx = self
+            .conn
+            .transaction_with_behavior(rusqlite::TransactionBehavior::Immediate)
+            .map_err(fail)?;
+        let used: bool = tx
+            .query_row(
+                "SELECT EXISTS (SELECT 1 FROM runs WHERE partition_id = ?1)
+                     OR EXISTS (SELECT 1 FROM reveals WHERE partition_id = ?1)",
+                [id],
+                |r| r.get(0),
+            )
+            .map_err(fail)?;
+        if !used {
+            tx.execute("DELETE FROM partition_rows WHERE partition_id = ?1", [id])
+                .map_err(fail)?;
+            tx.execute("DELETE FROM partitions WHERE id = ?1", [id])
+                .map_err(fail)?;
+        }
+        tx.commit().map_err(fail)
     }
 
     /// Every run, oldest first.
@@ -1328,6 +1339,71 @@ impl Ledger {
     }
 }
 
+/// The page cache of a connection, and of `record_partition`'s transaction (KiB).
+const CACHE_KIB: i64 = 65536;
+const RECORD_CACHE_KIB: i64 = 2048;
+
 fn json_str(s: &str) -> Value {
     Value::String(s.to_string())
+}
+
+/// Store a partition and, when it is new, its test rows' identities; true when it was new.
+fn insert_partition(
+    tx: &rusqlite::Transaction,
+    spec: &crate::spec::Spec,
+    table: &crate::data::Table,
+    prep: &crate::runner::Prepared,
+    test_keys: &[crate::data::RowKey],
+) -> rusqlite::Result<bool> {
+    let s = &prep.sealed;
+    tx.execute(
+        "INSERT OR IGNORE INTO partitions (id, data_sha256, settings, assignment, n_train, n_validation, n_test) VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7)",
+        params![
+            prep.partition_id,
+            table.sha256,
+            spec.split_canonical(),
+            prep.assignment,
+            s.count(Part::Train) as i64,
+            s.count(Part::Validation) as i64,
+            s.count(Part::Test) as i64
+        ],
+    )
+    ?;
+    // A new partition brings its test rows' identities (exposure follows rows).
+    let fresh = tx.changes() == 1;
+    if fresh {
+        // In key order, so the table and its index grow at their ends, and many rows per
+        // statement: a large test partition holds hundreds of thousands of rows.
+        let mut sorted = std::borrow::Cow::Borrowed(test_keys);
+        if !test_keys.is_sorted() {
+            sorted.to_mut().sort_unstable();
+        }
+        let keys = &*sorted;
+        let many = |n: usize| {
+            let tuples: Vec<String> = (0..n).map(|i| format!("(?1, ?{})", i + 2)).collect();
+            format!(
+                "INSERT OR IGNORE INTO partition_rows (partition_id, row_key) VALUES {}",
+                tuples.join(", ")
+            )
+        };
+        let mut full = tx.prepare(&many(KEYS_PER_STATEMENT))?;
+        for chunk in keys.chunks(KEYS_PER_STATEMENT) {
+            // Borrowed values: no copy of each key.
+            let mut vals: Vec<ToSqlOutput> = Vec::with_capacity(chunk.len() + 1);
+            vals.push(ToSqlOutput::Borrowed(ValueRef::Text(
+                prep.partition_id.as_bytes(),
+            )));
+            vals.extend(
+                chunk
+                    .iter()
+                    .map(|k| ToSqlOutput::Borrowed(ValueRef::Blob(&k[..]))),
+            );
+            if chunk.len() == KEYS_PER_STATEMENT {
+                full.execute(rusqlite::params_from_iter(vals.iter()))
+            } else {
+                tx.execute(&many(chunk.len()), rusqlite::params_from_iter(vals.iter()))
+            }?;
+        }
+    }
+    Ok(fresh)
 }

@@ -651,7 +651,17 @@ fn fold_sums_body(
 /// A linear model's predictions on `rows`, formed exactly as `Fitted::predict` forms them
 /// (intercept, then each non-zero weight times its column, in column order), without building
 /// the design matrix.
+/// Rows are independent, so they go in fixed jobs that lent cores may take (`par::chunks`).
 pub fn predictions(src: &Source, rows: &[usize], intercept: f64, weights: &[f64]) -> Vec<f64> {
+    const JOB: usize = 1 << 15;
+    crate::par::chunks(rows.len().div_ceil(JOB), |c| {
+        let part = &rows[c * JOB..rows.len().min((c + 1) * JOB)];
+        predictions_of(src, part, intercept, weights)
+    })
+    .concat()
+}
+
+fn predictions_of(src: &Source, rows: &[usize], intercept: f64, weights: &[f64]) -> Vec<f64> {
     let mut out = vec![intercept; rows.len()];
     for (col, &w) in src.columns.iter().zip(weights) {
         if w != 0.0 {

@@ -671,3 +671,60 @@ fn ridge_grid_chunks_change_no_bit() {
         assert_eq!(r["selected"], runs[0]["selected"]);
     }
 }
+
+#[test]
+fn a_run_that_fails_after_its_partition_was_stored_leaves_nothing_behind() {
+    // The partition is stored beside the grid. Here the outer folds pass every check (k = 20 of
+    // about 22 fitting rows), but nested cross-validation's inner folds have about 16 fitting
+    // rows, which only the run finds: the partition it brought in must go again.
+    let d = small_dir("late-failure");
+    d.probity(&["run", "small.toml"]).expect(0);
+    let before = d.counts();
+    d.write(
+        "nested.toml",
+        &SMALL_SPEC
+            .replace("seed = 5", "seed = 6")
+            .replace("k = [1, 3]", "k = [1, 20]")
+            .replace("folds = 4", "folds = 4\n[select]\nnested = true"),
+    );
+    let r = d.probity(&["run", "nested.toml"]).expect(2);
+    assert!(
+        r.stderr().contains("k = 20 is larger than"),
+        "{}",
+        r.stderr()
+    );
+    assert_eq!(d.counts(), before, "the failed run left rows behind");
+}
+
+#[test]
+fn check_finds_a_fold_without_a_class() {
+    // One row of class 'rare', kept out of the test rows by this seed: the fold that holds it
+    // out has no 'rare' row to fit. `check` says so before any run.
+    let d = Dir::new("rare-class");
+    let mut csv = String::from("x,label\n");
+    for i in 0..30 {
+        csv.push_str(&format!(
+            "{},{}\n",
+            i as f64 * 0.5,
+            if i % 2 == 1 { "a" } else { "b" }
+        ));
+    }
+    csv.push_str("7.25,rare\n");
+    d.write("rare.csv", &csv);
+    d.write(
+        "rare.toml",
+        "name = \"rare\"\ntask = \"classification\"\n\n[data]\npath = \"rare.csv\"\ntarget = \"label\"\n\n[split]\nmethod = \"random\"\nseed = 1\ntest = 0.2\nfolds = 3\n\n[[model]]\nkind = \"knn\"\nk = [1, 3]\n",
+    );
+    for cmd in ["check", "run"] {
+        let r = d.probity(&[cmd, "rare.toml"]).expect(2);
+        assert!(
+            r.stderr().contains("hold no row of class 'rare'"),
+            "{cmd}: {}",
+            r.stderr()
+        );
+    }
+    assert!(
+        !d.path.join(".probity").exists(),
+        "a refused run made a ledger"
+    );
+}
