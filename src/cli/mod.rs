@@ -3,6 +3,7 @@
 
 mod audit;
 mod check;
+mod export;
 mod history;
 mod merge;
 mod note;
@@ -54,6 +55,7 @@ pub enum Command {
     Note(note::Args),
     Pack(pack::Args),
     Merge(merge::Args),
+    Export(export::Args),
 }
 
 /// Parse the process arguments, run, print any error; returns the exit code.
@@ -78,6 +80,7 @@ pub fn main() -> i32 {
         Command::Note(a) => note::run(&cli.global, a),
         Command::Pack(a) => pack::run(&cli.global, a),
         Command::Merge(a) => merge::run(&cli.global, a),
+        Command::Export(a) => export::run(&cli.global, a),
     };
     match result {
         Ok(code) => code,
@@ -87,6 +90,60 @@ pub fn main() -> i32 {
             e.exit_code()
         }
     }
+}
+
+/// Which runs a listing covers.
+#[derive(clap::Args, Debug, Clone)]
+pub struct RunSelect {
+    /// Only runs of this experiment (the spec's `name`)
+    #[arg(long, value_name = "NAME")]
+    pub experiment: Option<String>,
+    /// Only runs started at or after this time: a UTC date (2026-11-30) or an RFC 3339 time
+    /// (2026-11-30T14:00:00Z, 2026-11-30T15:00:00+01:00)
+    #[arg(long, value_name = "WHEN")]
+    pub since: Option<String>,
+}
+
+impl RunSelect {
+    /// The ledger filter; an unknown experiment or an unreadable time is a usage error.
+    pub(crate) fn filter(
+        &self,
+        ledger: &crate::ledger::Ledger,
+    ) -> Result<crate::ledger::RunFilter> {
+        if let Some(name) = &self.experiment {
+            let names = ledger.experiments()?;
+            if !names.contains(name) {
+                return Err(Error::Input(format!(
+                    "--experiment: no run of an experiment named '{name}' in the ledger{}",
+                    crate::error::did_you_mean(name, names.iter().map(String::as_str))
+                )));
+            }
+        }
+        let since = self.since.as_deref().map(since_utc).transpose()?;
+        Ok(crate::ledger::RunFilter {
+            experiment: self.experiment.clone(),
+            since,
+        })
+    }
+}
+
+/// A `--since` value as the ledger stores times (RFC 3339, UTC, milliseconds), so that text
+/// order is time order.
+fn since_utc(text: &str) -> Result<String> {
+    let t = text.trim();
+    let at = if let Ok(d) = chrono::NaiveDate::parse_from_str(t, "%Y-%m-%d") {
+        d.and_hms_opt(0, 0, 0).map(|n| n.and_utc())
+    } else {
+        chrono::DateTime::parse_from_rfc3339(t)
+            .ok()
+            .map(|d| d.with_timezone(&chrono::Utc))
+    };
+    at.map(|d| d.to_rfc3339_opts(chrono::SecondsFormat::Millis, true))
+        .ok_or_else(|| {
+            Error::Input(format!(
+                "--since '{text}' is not a date or a time; write a UTC date (2026-11-30) or an RFC 3339 time (2026-11-30T14:00:00Z)"
+            ))
+        })
 }
 
 /// Write to stdout; a closed pipe ends quietly.

@@ -72,6 +72,14 @@ pub struct RunSummary {
     pub note: Option<String>,
 }
 
+/// Which runs a listing keeps: an experiment name, and a start time (RFC 3339 UTC with
+/// milliseconds, as stored: the runs started at or after it).
+#[derive(Debug, Clone, Default)]
+pub struct RunFilter {
+    pub experiment: Option<String>,
+    pub since: Option<String>,
+}
+
 /// A stored score: mean over folds and its standard error.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct Stat {
@@ -475,15 +483,33 @@ impl Ledger {
 
     /// Every run, oldest first.
     pub fn history(&self) -> Result<Vec<RunSummary>> {
+        self.history_where(&RunFilter::default())
+    }
+
+    /// The runs `filter` keeps, oldest first.
+    pub fn history_where(&self, filter: &RunFilter) -> Result<Vec<RunSummary>> {
         let mut stmt = self
             .conn
-            .prepare(&format!("{SUMMARY_SQL} ORDER BY r.id"))
+            .prepare(&format!(
+                "{SUMMARY_SQL} WHERE (?1 IS NULL OR r.experiment = ?1) AND (?2 IS NULL OR r.started_at >= ?2) ORDER BY r.id"
+            ))
             .map_err(sql_err("list runs"))?;
         let rows = stmt
-            .query_map([], summary_row)
+            .query_map(params![filter.experiment, filter.since], summary_row)
             .map_err(sql_err("list runs"))?;
         rows.collect::<rusqlite::Result<Vec<_>>>()
             .map_err(sql_err("list runs"))
+    }
+
+    /// The experiment names in the ledger, sorted.
+    pub fn experiments(&self) -> Result<Vec<String>> {
+        let mut st = self
+            .conn
+            .prepare("SELECT DISTINCT experiment FROM runs ORDER BY experiment")
+            .map_err(sql_err("list experiments"))?;
+        st.query_map([], |r| r.get(0))
+            .and_then(|rows| rows.collect())
+            .map_err(sql_err("list experiments"))
     }
 
     /// One run in full, or `None` when there is no such run.
@@ -654,6 +680,23 @@ impl Ledger {
             out.insert(t.to_string(), n);
         }
         Ok(out)
+    }
+
+    /// Every fold score of a run: (candidate, (repeat, fold, part, metric, value)), in primary
+    /// key order.
+    pub fn run_fold_scores(&self, run: i64) -> Result<Vec<(i64, FoldScore)>> {
+        let mut st = self
+            .conn
+            .prepare("SELECT candidate, repeat, fold, part, metric, value FROM fold_scores WHERE run_id = ?1 ORDER BY candidate, repeat, fold, part, metric")
+            .map_err(sql_err("read fold scores"))?;
+        st.query_map([run], |r| {
+            Ok((
+                r.get(0)?,
+                (r.get(1)?, r.get(2)?, r.get(3)?, r.get(4)?, r.get(5)?),
+            ))
+        })
+        .and_then(|rows| rows.collect())
+        .map_err(sql_err("read fold scores"))
     }
 
     /// Per-fold scores of one candidate, in (repeat, fold, part, metric) order.

@@ -1,6 +1,7 @@
 //! Rendering of stored runs: comfy-table text and the `--json` documents. Everything here is
 //! built from ledger rows, so what `run` prints is what the ledger holds.
 
+pub mod export;
 pub mod json;
 pub mod table;
 

@@ -5,6 +5,7 @@ mod classification;
 mod commands;
 mod fixtures;
 mod guard;
+mod listing;
 mod reference;
 mod replay;
 mod run;
