@@ -6,6 +6,7 @@
 //! spec -> data -> split -> guard -> models/metrics -> runner -> ledger -> report -> cli.
 
 pub mod cli;
+pub mod compare;
 pub mod data;
 pub mod error;
 pub mod external;

@@ -3,6 +3,7 @@
 
 mod audit;
 mod check;
+mod compare;
 mod export;
 mod history;
 mod merge;
@@ -56,6 +57,7 @@ pub enum Command {
     Pack(pack::Args),
     Merge(merge::Args),
     Export(export::Args),
+    Compare(compare::Args),
 }
 
 /// Parse the process arguments, run, print any error; returns the exit code.
@@ -81,6 +83,7 @@ pub fn main() -> i32 {
         Command::Pack(a) => pack::run(&cli.global, a),
         Command::Merge(a) => merge::run(&cli.global, a),
         Command::Export(a) => export::run(&cli.global, a),
+        Command::Compare(a) => compare::run(&cli.global, a),
     };
     match result {
         Ok(code) => code,

@@ -208,3 +208,192 @@ mod tests {
         assert_eq!((lo, hi), (25.0, 975.0));
     }
 }
+
+/// P(|T| < t) for Student's t with `df` (a whole number >= 1) degrees of freedom, by the finite
+/// series in theta = atan(t / sqrt(df)) (Abramowitz & Stegun 1964, 26.7.3 for odd and 26.7.4 for
+/// even df). Exact up to rounding for every df; no special function is needed.
+pub fn student_t_central(t: f64, df: u64) -> f64 {
+    if t.is_nan() || df == 0 {
+        return f64::NAN;
+    }
+    let t = t.abs();
+    if t.is_infinite() {
+        return 1.0;
+    }
+    let theta = (t / (df as f64).sqrt()).atan();
+    let (s, c) = theta.sin_cos();
+    let c2 = c * c;
+    if df % 2 == 1 {
+        // (2/pi) [theta + sin cos (1 + (2/3) cos^2 + (2 4)/(3 5) cos^4 + ...)], df - 2 terms' worth
+        let mut term = 1.0;
+        let mut sum = if df > 1 { 1.0 } else { 0.0 };
+        let mut k = 1u64;
+        while 2 * k + 1 < df {
+            term *= (2 * k) as f64 / (2 * k + 1) as f64 * c2;
+            sum += term;
+            k += 1;
+        }
+        (2.0 / std::f64::consts::PI * (theta + s * c * sum)).min(1.0)
+    } else {
+        // sin [1 + (1/2) cos^2 + (1 3)/(2 4) cos^4 + ...]
+        let mut term = 1.0;
+        let mut sum = 1.0;
+        let mut k = 1u64;
+        while 2 * k < df {
+            term *= (2 * k - 1) as f64 / (2 * k) as f64 * c2;
+            sum += term;
+            k += 1;
+        }
+        (s * sum).min(1.0)
+    }
+}
+
+/// Two-sided p-value of Student's t: P(|T| >= |t|).
+pub fn student_t_two_sided_p(t: f64, df: u64) -> f64 {
+    (1.0 - student_t_central(t, df)).max(0.0)
+}
+
+/// The t with P(|T| < t) = `central` (for example 0.95 for a 95 % interval), by bisection to
+/// the last bit.
+pub fn student_t_quantile(central: f64, df: u64) -> f64 {
+    if !(central > 0.0 && central < 1.0) || df == 0 {
+        return f64::NAN;
+    }
+    let (mut lo, mut hi) = (0.0f64, 1.0f64);
+    while student_t_central(hi, df) < central {
+        hi *= 2.0;
+        if hi > 1e300 {
+            return f64::INFINITY;
+        }
+    }
+    for _ in 0..200 {
+        let mid = 0.5 * (lo + hi);
+        if mid <= lo || mid >= hi {
+            break;
+        }
+        if student_t_central(mid, df) < central {
+            lo = mid;
+        } else {
+            hi = mid;
+        }
+    }
+    0.5 * (lo + hi)
+}
+
+/// The corrected resampled t-test of two models scored on the same J resamples (Nadeau & Bengio
+/// 2003, Machine Learning 52; the repeated k-fold form of Bouckaert & Frank 2004).
+#[derive(Debug, Clone, PartialEq)]
+pub struct ResampledT {
+    /// Number of paired differences J.
+    pub resamples: usize,
+    /// Mean difference (first minus second).
+    pub mean: f64,
+    /// Sample variance of the differences (J - 1 denominator).
+    pub variance: f64,
+    /// Scored rows over fitting rows per resample, n2 / n1.
+    pub ratio: f64,
+    /// sqrt((1/J + n2/n1) s^2): the corrected standard error of the mean difference.
+    pub se: f64,
+    pub t: f64,
+    pub df: u64,
+    /// Two-sided.
+    pub p: f64,
+    /// 95 % interval of the mean difference: mean -/+ t(0.975, df) se.
+    pub low: f64,
+    pub high: f64,
+}
+
+/// `None` with fewer than two differences, a non-finite one, or no spread (every difference
+/// equal: the test is undefined).
+pub fn resampled_t(diffs: &[f64], ratio: f64) -> Option<ResampledT> {
+    let j = diffs.len();
+    if j < 2
+        || !diffs.iter().all(|d| d.is_finite())
+        || diffs.iter().all(|d| *d == diffs[0])
+        || ratio.is_nan()
+        || ratio < 0.0
+    {
+        return None;
+    }
+    let mean = diffs.iter().sum::<f64>() / j as f64;
+    let variance = diffs.iter().map(|d| (d - mean) * (d - mean)).sum::<f64>() / (j - 1) as f64;
+    if variance.is_nan() || variance <= 0.0 {
+        return None;
+    }
+    let se = ((1.0 / j as f64 + ratio) * variance).sqrt();
+    let t = mean / se;
+    let df = (j - 1) as u64;
+    let q = student_t_quantile(0.95, df);
+    Some(ResampledT {
+        resamples: j,
+        mean,
+        variance,
+        ratio,
+        se,
+        t,
+        df,
+        p: student_t_two_sided_p(t, df),
+        low: mean - q * se,
+        high: mean + q * se,
+    })
+}
+
+#[cfg(test)]
+mod t_tests {
+    use super::*;
+
+    #[test]
+    fn corrected_resampled_t_matches_the_check_values() {
+        // ../shared/METHODS.md section 7, check values (computed there): J = 10, n1 = 900,
+        // n2 = 100.
+        let d = [
+            0.021, 0.015, 0.030, 0.008, 0.012, 0.025, 0.018, 0.005, 0.022, 0.014,
+        ];
+        let r = resampled_t(&d, 100.0 / 900.0).unwrap();
+        assert!((r.mean - 0.017).abs() < 1e-12);
+        assert!((r.variance - 5.97778e-5).abs() < 1e-9);
+        assert!((r.t - 4.785458).abs() < 5e-7, "{}", r.t);
+        assert!((r.p - 0.000994).abs() < 5e-7, "{}", r.p);
+        assert_eq!(r.df, 9);
+        // The naive paired t (ratio 0) of the same differences.
+        let naive = resampled_t(&d, 0.0).unwrap();
+        assert!((naive.t - 6.953109).abs() < 5e-7, "{}", naive.t);
+        assert!((naive.p - 6.662e-5).abs() < 5e-9, "{}", naive.p);
+        // Critical values from the same section.
+        assert!((student_t_quantile(0.95, 9) - 2.262157).abs() < 5e-7);
+        assert!((student_t_quantile(0.95, 99) - 1.984217).abs() < 5e-7);
+        // 5x2cv's t = 1.754116 on 5 df has p = 0.139779.
+        assert!((student_t_two_sided_p(1.754116, 5) - 0.139779).abs() < 5e-7);
+        // No spread, too few differences: no test.
+        assert!(resampled_t(&[0.1, 0.1, 0.1], 0.25).is_none());
+        assert!(resampled_t(&[0.1], 0.25).is_none());
+    }
+
+    #[test]
+    fn student_t_matches_scipy() {
+        // tests/reference/student_t.json: scipy.stats.t.sf (scipy 1.17.1), written by
+        // tests/reference/make_student_t.py.
+        let text = include_str!("../../tests/reference/student_t.json");
+        let v: serde_json::Value = serde_json::from_str(text).unwrap();
+        let cases = v["cases"].as_array().unwrap();
+        assert!(cases.len() > 50);
+        for c in cases {
+            let t = c["t"].as_f64().unwrap();
+            let df = c["df"].as_u64().unwrap();
+            let want = c["p_two_sided"].as_f64().unwrap();
+            let got = student_t_two_sided_p(t, df);
+            // Absolute 1e-14 (the series sums in double precision), and relative 1e-9 above 1e-6.
+            let ok = (got - want).abs() <= 1e-14 + 1e-9 * want;
+            assert!(ok, "t = {t}, df = {df}: {got} vs scipy {want}");
+        }
+        for c in v["quantiles"].as_array().unwrap() {
+            let df = c["df"].as_u64().unwrap();
+            let want = c["t_0975"].as_f64().unwrap();
+            let got = student_t_quantile(0.95, df);
+            assert!(
+                (got - want).abs() <= 1e-12 * want,
+                "df = {df}: {got} vs {want}"
+            );
+        }
+    }
+}

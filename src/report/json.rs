@@ -111,3 +111,45 @@ pub fn history(runs: &[RunSummary]) -> Value {
         })).collect::<Vec<_>>()
     })
 }
+
+/// `compare --json`.
+pub fn compare(c: &crate::compare::Comparison) -> Value {
+    let test = c.test.as_ref().map(|t| {
+        let r = t.result.as_ref();
+        json!({
+            "a": t.a,
+            "b": t.b,
+            "a_mean": t.a_mean,
+            "b_mean": t.b_mean,
+            "difference": r.map(|r| r.mean),
+            "resamples": r.map(|r| r.resamples),
+            "variance": r.map(|r| r.variance),
+            "ratio": r.map(|r| r.ratio),
+            "se": r.map(|r| r.se),
+            "t": r.map(|r| r.t),
+            "df": r.map(|r| r.df),
+            "p": r.map(|r| r.p),
+            "low": r.map(|r| r.low),
+            "high": r.map(|r| r.high),
+            "reason": t.reason,
+        })
+    });
+    json!({
+        "a": c.a,
+        "b": c.b,
+        "fields": c.fields.iter().map(|f| json!({"name": f.name, "a": f.a, "b": f.b, "same": f.same})).collect::<Vec<_>>(),
+        "spec_diff": c.spec_diff.iter().filter(|(k, _)| *k != ' ').map(|(k, l)| json!({"side": if *k == '-' { "a" } else { "b" }, "line": l})).collect::<Vec<_>>(),
+        "metric": c.metric,
+        "higher_is_better": c.higher_is_better,
+        "matched": c.matched.iter().map(|m| json!({
+            "model": m.family, "params": m.params, "a": m.a, "b": m.b,
+            "a_validation": m.a_score, "b_validation": m.b_score, "difference": m.difference(),
+        })).collect::<Vec<_>>(),
+        "only_a": c.only_a.iter().map(|(id, f, p)| json!({"candidate": id, "model": f, "params": p})).collect::<Vec<_>>(),
+        "only_b": c.only_b.iter().map(|(id, f, p)| json!({"candidate": id, "model": f, "params": p})).collect::<Vec<_>>(),
+        "same_folds": c.same_folds,
+        "test": test,
+        "no_test": c.no_test,
+        "verdict": crate::report::table::verdict(c),
+    })
+}

@@ -490,3 +490,142 @@ pub fn chain(c: &serde_json::Value) -> String {
     }
     out
 }
+
+/// What a paired test says, in words (the significance level is the conventional 5 %).
+pub fn verdict(c: &crate::compare::Comparison) -> Option<String> {
+    let t = c.test.as_ref()?;
+    let Some(r) = &t.result else {
+        return t.reason.clone();
+    };
+    let m = &c.metric;
+    Some(if r.p < 0.05 {
+        let b_better = (r.mean > 0.0) == c.higher_is_better;
+        let (win, lose) = if b_better {
+            (
+                format!("B's candidate {}", t.b),
+                format!("A's candidate {}", t.a),
+            )
+        } else {
+            (
+                format!("A's candidate {}", t.a),
+                format!("B's candidate {}", t.b),
+            )
+        };
+        format!(
+            "{win} is better than {lose} by {} {m} (p = {}): more than the noise of cross-validation",
+            num(Some(r.mean.abs())),
+            num(Some(r.p))
+        )
+    } else {
+        format!(
+            "the difference is within the noise of cross-validation (p = {}): this evidence prefers neither",
+            num(Some(r.p))
+        )
+    })
+}
+
+/// `compare`.
+pub fn compare(c: &crate::compare::Comparison) -> String {
+    let mut out = format!("run {} (A) against run {} (B)\n\n", c.a, c.b);
+    let mut t = new_table(vec!["", "A", "B", ""]);
+    // Long values (the split settings) wrap instead of widening the table past a terminal.
+    t.set_content_arrangement(comfy_table::ContentArrangement::Dynamic)
+        .set_width(120);
+    // Hashes to 16 digits and settings as name=value pairs here; JSON carries them whole.
+    let show = |name: &str, v: &str| -> String {
+        if name.ends_with("sha256") {
+            v.chars().take(16).collect()
+        } else if let Ok(obj @ serde_json::Value::Object(_)) = serde_json::from_str(v) {
+            params_text(&obj)
+        } else {
+            v.to_string()
+        }
+    };
+    for f in &c.fields {
+        t.add_row(vec![
+            f.name.to_string(),
+            show(f.name, &f.a),
+            show(f.name, &f.b),
+            if f.same { "same" } else { "differs" }.to_string(),
+        ]);
+    }
+    out.push_str(&format!("{t}\n"));
+    let changed: Vec<&(char, String)> = c.spec_diff.iter().filter(|(k, _)| *k != ' ').collect();
+    if changed.is_empty() {
+        out.push_str("\nspec texts: identical\n");
+    } else {
+        out.push_str("\nspec text lines only in A (-) and only in B (+):\n");
+        for (k, line) in changed {
+            out.push_str(&format!("  {k} {line}\n"));
+        }
+    }
+    out.push_str(&format!(
+        "\ncandidates in both runs: {} (validation {}, mean over folds; B - A)\n",
+        c.matched.len(),
+        c.metric
+    ));
+    if !c.matched.is_empty() {
+        let mut t = new_table(vec!["model", "params", "A id", "A", "B id", "B", "B - A"]);
+        for m in &c.matched {
+            t.add_row(vec![
+                m.family.clone(),
+                params_text(&m.params),
+                m.a.to_string(),
+                num(m.a_score),
+                m.b.to_string(),
+                num(m.b_score),
+                num(m.difference()),
+            ]);
+        }
+        right(&mut t, 2);
+        out.push_str(&format!("{t}\n"));
+    }
+    for (label, list) in [("only in A", &c.only_a), ("only in B", &c.only_b)] {
+        if !list.is_empty() {
+            let items: Vec<String> = list
+                .iter()
+                .map(|(id, f, p)| {
+                    format!("{id} {f} {}", params_text(p))
+                        .trim_end()
+                        .to_string()
+                })
+                .collect();
+            out.push_str(&format!("{label}: {}\n", items.join("; ")));
+        }
+    }
+    out.push('\n');
+    match (&c.test, &c.no_test) {
+        (Some(t), _) => {
+            out.push_str(&format!(
+                "paired test of A's candidate {} and B's candidate {} on the same folds (corrected resampled t, Nadeau & Bengio 2003):\n",
+                t.a, t.b
+            ));
+            out.push_str(&format!(
+                "  mean validation {}: A {}, B {}\n",
+                c.metric,
+                num(Some(t.a_mean)),
+                num(Some(t.b_mean))
+            ));
+            if let Some(r) = &t.result {
+                out.push_str(&format!(
+                    "  B - A = {} (95% interval {} to {}), corrected se {}, t = {} on {} df, p = {}\n  ({} folds; the variance is inflated by 1/J + n2/n1 with n2/n1 = {}, because the folds' fitting rows overlap)\n",
+                    num(Some(r.mean)),
+                    num(Some(r.low)),
+                    num(Some(r.high)),
+                    num(Some(r.se)),
+                    num(Some(r.t)),
+                    r.df,
+                    num(Some(r.p)),
+                    r.resamples,
+                    num(Some(r.ratio))
+                ));
+            }
+            if let Some(v) = verdict(c) {
+                out.push_str(&format!("  {v}\n"));
+            }
+        }
+        (None, Some(why)) => out.push_str(&format!("no paired test: {why}\n")),
+        (None, None) => out.push_str("no paired test: no two candidates to compare\n"),
+    }
+    out
+}

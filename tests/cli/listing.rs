@@ -171,3 +171,130 @@ fn export_writes_what_the_ledger_holds() {
     let r = d.probity(&["export", "runs", "--run", "9"]).expect(2);
     assert!(r.stderr().contains("no such run"), "{}", r.stderr());
 }
+
+/// Validation scores of `metric` per (repeat, fold) of one candidate, from `export folds`.
+fn fold_scores(d: &crate::util::Dir, run: i64, candidate: i64, metric: &str) -> Vec<f64> {
+    let text = d
+        .probity(&["export", "folds", "--run", &run.to_string()])
+        .expect(0)
+        .stdout();
+    let (_, rows) = read_csv(&text);
+    rows.iter()
+        .filter(|r| r[1] == candidate.to_string() && r[4] == "validation" && r[5] == metric)
+        .map(|r| r[6].parse().unwrap())
+        .collect()
+}
+
+#[test]
+fn compare_tests_two_candidates_on_the_same_folds() {
+    let d = small_dir("compare");
+    // Run 2: the same split with another grid (ridge 10 dropped, ridge 100 added).
+    d.write(
+        "wider.toml",
+        &SMALL_SPEC.replace("lambda = [0.1, 1, 10]", "lambda = [0.1, 1, 100]"),
+    );
+    d.probity(&["run", "small.toml"]).expect(0);
+    d.probity(&["run", "wider.toml"]).expect(0);
+    let j = d.probity(&["compare", "1", "2", "--json"]).expect(0).json();
+    assert_eq!(j["same_folds"], true);
+    let fields = j["fields"].as_array().unwrap();
+    let field = |name: &str| fields.iter().find(|f| f["name"] == name).unwrap().clone();
+    assert_eq!(field("data sha256")["same"], true);
+    assert_eq!(field("partition")["same"], true);
+    assert_eq!(field("grid")["same"], false);
+    let diff = j["spec_diff"].as_array().unwrap();
+    assert_eq!(diff.len(), 2, "{diff:?}");
+    assert_eq!(diff[0]["side"], "a");
+    assert!(diff[1]["line"].as_str().unwrap().contains("100"));
+    // mean, ridge 0.1, ridge 1, knn 1, knn 3 in both; ridge 10 only in A, ridge 100 only in B.
+    assert_eq!(j["matched"].as_array().unwrap().len(), 5);
+    assert_eq!(j["only_a"][0]["params"]["lambda"], 10.0);
+    assert_eq!(j["only_b"][0]["params"]["lambda"], 100.0);
+
+    // The paired test of the mean baseline (A's 1) against ridge 0.1 (B's 2), recomputed here
+    // from the exported fold scores and the fold sizes that `check` reports.
+    let t = d
+        .probity(&["compare", "1", "2", "--candidates", "1", "2", "--json"])
+        .expect(0)
+        .json();
+    let a = fold_scores(&d, 1, 1, "rmse");
+    let b = fold_scores(&d, 2, 2, "rmse");
+    assert_eq!(a.len(), 4);
+    let diffs: Vec<f64> = a.iter().zip(&b).map(|(x, y)| y - x).collect();
+    let n = diffs.len() as f64;
+    let mean = diffs.iter().sum::<f64>() / n;
+    let var = diffs.iter().map(|x| (x - mean).powi(2)).sum::<f64>() / (n - 1.0);
+    let check = d
+        .probity(&["check", "small.toml", "--json"])
+        .expect(0)
+        .json();
+    let folds = check["folds"].as_array().unwrap();
+    let fit: f64 = folds.iter().map(|f| f["fit"].as_f64().unwrap()).sum();
+    let score: f64 = folds.iter().map(|f| f["score"].as_f64().unwrap()).sum();
+    let want_t = mean / ((1.0 / n + score / fit) * var).sqrt();
+    let test = &t["test"];
+    let got_t = test["t"].as_f64().unwrap();
+    assert!(
+        (got_t - want_t).abs() <= 1e-12 * want_t.abs(),
+        "{got_t} vs {want_t}"
+    );
+    assert_eq!(test["df"], 3);
+    // Ridge is far better than the mean on this data: a clear verdict for B.
+    assert!(test["p"].as_f64().unwrap() < 0.05, "{test}");
+    assert!(
+        t["verdict"]
+            .as_str()
+            .unwrap()
+            .starts_with("B's candidate 2 is better"),
+        "{}",
+        t["verdict"]
+    );
+    // One run against itself: its selected candidate against the runner-up.
+    let same = d.probity(&["compare", "1", "1", "--json"]).expect(0).json();
+    let show = d.probity(&["show", "1", "--json"]).expect(0).json();
+    assert_eq!(same["test"]["a"], show["selected"]);
+    assert_ne!(same["test"]["b"], show["selected"]);
+    // Another split: no pairing, and the table says why.
+    d.write("other.toml", &SMALL_SPEC.replace("seed = 5", "seed = 6"));
+    d.probity(&["run", "other.toml"]).expect(0);
+    let j = d.probity(&["compare", "1", "3", "--json"]).expect(0).json();
+    assert_eq!(j["same_folds"], false);
+    assert!(j["test"].is_null());
+    let text = d.probity(&["compare", "1", "3"]).expect(0).stdout();
+    assert!(
+        text.contains("no paired test: the runs did not score the same folds"),
+        "{text}"
+    );
+    // Bad candidates and metrics are usage errors.
+    let r = d
+        .probity(&["compare", "1", "2", "--candidates", "1", "99"])
+        .expect(2);
+    assert!(r.stderr().contains("no candidate 99"), "{}", r.stderr());
+    let r = d
+        .probity(&["compare", "1", "2", "--metric", "auc"])
+        .expect(2);
+    assert!(
+        r.stderr().contains("no such validation score"),
+        "{}",
+        r.stderr()
+    );
+}
+
+#[test]
+fn compare_table_matches_golden() {
+    let d = small_dir("compare-golden");
+    d.write(
+        "wider.toml",
+        &SMALL_SPEC.replace("lambda = [0.1, 1, 10]", "lambda = [0.1, 1, 100]"),
+    );
+    d.probity(&["run", "small.toml"]).expect(0);
+    d.probity(&["run", "wider.toml"]).expect(0);
+    let out = d.probity(&["compare", "1", "2"]).expect(0).stdout();
+    // The tool version row changes with every release; the rest is fixed by the data and seeds.
+    let table: String = out
+        .lines()
+        .filter(|l| !l.contains("┆ tool "))
+        .map(|l| format!("{l}\n"))
+        .collect();
+    crate::util::check_golden("small-compare.txt", &table);
+}
