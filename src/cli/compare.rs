@@ -25,15 +25,10 @@ pub struct Args {
 
 pub fn run(g: &Global, a: Args) -> Result<i32> {
     let ledger = open_existing(g)?;
-    let load = |id: i64| {
-        ledger.run(id)?.ok_or_else(|| {
-            Error::Input(format!(
-                "no run {id} in {}; `probity history` lists the runs",
-                ledger.path().display()
-            ))
-        })
-    };
-    let (ra, rb) = (load(a.a)?, load(a.b)?);
+    let (ra, rb) = (
+        super::stored_run(&ledger, a.a)?,
+        super::stored_run(&ledger, a.b)?,
+    );
     let name = a
         .metric
         .clone()

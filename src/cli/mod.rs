@@ -9,6 +9,7 @@ mod history;
 mod merge;
 mod note;
 mod pack;
+mod plot;
 mod predict;
 mod progress;
 mod replay;
@@ -58,6 +59,7 @@ pub enum Command {
     Merge(merge::Args),
     Export(export::Args),
     Compare(compare::Args),
+    Plot(plot::Args),
 }
 
 /// Parse the process arguments, run, print any error; returns the exit code.
@@ -84,6 +86,7 @@ pub fn main() -> i32 {
         Command::Merge(a) => merge::run(&cli.global, a),
         Command::Export(a) => export::run(&cli.global, a),
         Command::Compare(a) => compare::run(&cli.global, a),
+        Command::Plot(a) => plot::run(&cli.global, a),
     };
     match result {
         Ok(code) => code,
@@ -197,6 +200,19 @@ pub(crate) fn open_existing(g: &Global) -> Result<crate::ledger::Ledger> {
         )));
     }
     crate::ledger::Ledger::open(&path, false)
+}
+
+/// One stored run, or a usage error that says where to find the run ids.
+pub(crate) fn stored_run(
+    ledger: &crate::ledger::Ledger,
+    id: i64,
+) -> Result<crate::ledger::RunDetail> {
+    ledger.run(id)?.ok_or_else(|| {
+        Error::Input(format!(
+            "no run {id} in {}; `probity history` lists the runs",
+            ledger.path().display()
+        ))
+    })
 }
 
 /// Open the ledger for writing, creating `.probity/` on first use.

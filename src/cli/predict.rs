@@ -28,12 +28,7 @@ pub struct Args {
 
 pub fn run(g: &Global, a: Args) -> Result<i32> {
     let ledger = open_existing(g)?;
-    let d = ledger.run(a.run)?.ok_or_else(|| {
-        Error::Input(format!(
-            "no run {}; `probity history` lists the runs",
-            a.run
-        ))
-    })?;
+    let d = super::stored_run(&ledger, a.run)?;
     let stored: StoredModel = serde_json::from_str(&d.model_json)
         .map_err(|e| Error::Internal(format!("stored model of run {}: {e}", a.run)))?;
     let model = match a.candidate {

@@ -28,12 +28,7 @@ pub struct Args {
 
 pub fn run(g: &Global, a: Args) -> Result<i32> {
     let mut ledger = open_existing(g)?;
-    let d = ledger.run(a.run)?.ok_or_else(|| {
-        Error::Input(format!(
-            "no run {}; `probity history` lists the runs",
-            a.run
-        ))
-    })?;
+    let d = super::stored_run(&ledger, a.run)?;
     // The spec comes from the ledger, not from the file on disk, which may have changed.
     let (spec, table) = super::reveal::reload(&d, a.data.as_deref())?;
     // A replay runs what the ledger says; external commands only with explicit consent.

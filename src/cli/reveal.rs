@@ -102,12 +102,7 @@ pub(crate) fn count(n: usize) -> String {
 
 pub fn run(g: &Global, a: Args) -> Result<i32> {
     let mut ledger = open_existing(g)?;
-    let d = ledger.run(a.run)?.ok_or_else(|| {
-        Error::Input(format!(
-            "no run {}; `probity history` lists the runs",
-            a.run
-        ))
-    })?;
+    let d = super::stored_run(&ledger, a.run)?;
     let candidate = a.candidate.unwrap_or(d.summary.selected);
     let cand = d
         .candidates

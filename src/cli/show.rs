@@ -1,7 +1,7 @@
 //! `probity show RUN`: one stored run in full.
 
 use super::{Global, open_existing, out, out_json};
-use crate::error::{Error, Result};
+use crate::error::Result;
 
 /// Show one run: provenance, partition, every candidate's scores, warnings
 #[derive(clap::Args, Debug)]
@@ -18,13 +18,7 @@ pub struct Args {
 
 pub fn run(g: &Global, a: Args) -> Result<i32> {
     let ledger = open_existing(g)?;
-    let d = ledger.run(a.run)?.ok_or_else(|| {
-        Error::Input(format!(
-            "no run {} in {}; `probity history` lists the runs",
-            a.run,
-            ledger.path().display()
-        ))
-    })?;
+    let d = super::stored_run(&ledger, a.run)?;
     let notes = ledger.notes(a.run)?;
     if a.json {
         let mut doc = crate::report::json::show(&d);

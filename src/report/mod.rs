@@ -3,6 +3,7 @@
 
 pub mod export;
 pub mod json;
+pub mod plot;
 pub mod table;
 
 /// A number with 6 significant digits for tables (JSON always carries the exact value).

@@ -6,6 +6,7 @@ mod commands;
 mod fixtures;
 mod guard;
 mod listing;
+mod plots;
 mod reference;
 mod replay;
 mod run;

@@ -1,0 +1,58 @@
+//! `probity plot RUN --out FILE.svg`: a stored run drawn as SVG.
+
+use super::{Global, open_existing, out};
+use crate::error::{Error, Result};
+use std::path::PathBuf;
+
+#[derive(clap::ValueEnum, Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Kind {
+    /// Train and validation score against each family's ordered parameter
+    Complexity,
+}
+
+/// Draw a stored run as an SVG file
+#[derive(clap::Args, Debug)]
+pub struct Args {
+    /// Run id (as `history` lists)
+    pub run: i64,
+    /// The SVG file to write
+    #[arg(long, value_name = "FILE.svg")]
+    pub out: PathBuf,
+    #[arg(long, value_enum, default_value = "complexity")]
+    pub kind: Kind,
+    /// The metric drawn [default: the run's selection metric]
+    #[arg(long, value_name = "NAME")]
+    pub metric: Option<String>,
+}
+
+pub fn run(g: &Global, a: Args) -> Result<i32> {
+    let ledger = open_existing(g)?;
+    let d = super::stored_run(&ledger, a.run)?;
+    let metric = a.metric.clone().unwrap_or_else(|| d.summary.metric.clone());
+    if !d
+        .candidates
+        .iter()
+        .any(|c| c.validation.contains_key(&metric))
+    {
+        let known: Vec<String> = d
+            .candidates
+            .first()
+            .map(|c| c.validation.keys().cloned().collect())
+            .unwrap_or_default();
+        return Err(Error::Input(format!(
+            "--metric {metric}: run {} has no such score; it has {}",
+            a.run,
+            known.join(", ")
+        )));
+    }
+    let svg = match a.kind {
+        Kind::Complexity => crate::report::plot::complexity_svg(&d, &metric)?,
+    };
+    std::fs::write(&a.out, svg).map_err(|e| Error::Io {
+        action: "cannot write",
+        path: a.out.clone(),
+        source: e,
+    })?;
+    out(&format!("wrote {}\n", a.out.display()))?;
+    Ok(0)
+}

@@ -1,0 +1,153 @@
+//! `plot`: the SVG parses, labels its axes, and draws one point per candidate at the ledger's
+//! values (checked through the plotted points the SVG lists in its metadata, and the circles
+//! drawn at their pixel positions).
+
+use crate::fixtures::{SMALL_SPEC, small_dir};
+use serde_json::Value;
+
+fn svg_of(d: &crate::util::Dir, args: &[&str]) -> String {
+    let out = d.path.join("plot.svg");
+    let mut all = vec!["plot"];
+    all.extend_from_slice(args);
+    all.extend_from_slice(&["--out", out.to_str().unwrap()]);
+    d.probity(&all).expect(0);
+    std::fs::read_to_string(out).unwrap()
+}
+
+#[test]
+fn complexity_plot_draws_every_candidate_at_its_stored_score() {
+    let d = small_dir("plot");
+    d.probity(&["run", "small.toml"]).expect(0);
+    let svg = svg_of(&d, &["1"]);
+    let doc = roxmltree::Document::parse(&svg).expect("the SVG is well-formed XML");
+    let root = doc.root_element();
+    assert_eq!(root.tag_name().name(), "svg");
+    let texts: Vec<String> = root
+        .descendants()
+        .filter(|n| n.has_tag_name("text"))
+        .map(|n| n.text().unwrap_or("").trim().to_string())
+        .collect();
+    for label in ["lambda (log scale)", "k", "rmse"] {
+        assert!(
+            texts.iter().any(|t| t == label),
+            "no axis label '{label}' in {texts:?}"
+        );
+    }
+    let meta: Value = serde_json::from_str(
+        root.descendants()
+            .find(|n| n.has_tag_name("metadata"))
+            .and_then(|n| n.text())
+            .expect("plotted points in the metadata"),
+    )
+    .unwrap();
+    let points = meta["points"].as_array().unwrap();
+    // ridge x3 and knn x2 have an ordered parameter; the mean baseline has none.
+    let show = d.probity(&["show", "1", "--json"]).expect(0).json();
+    let cands = show["candidates"].as_array().unwrap();
+    let ordered: Vec<&Value> = cands.iter().filter(|c| c["model"] != "mean").collect();
+    assert_eq!(points.len(), ordered.len());
+    let circles: Vec<(i64, i64, String)> = root
+        .descendants()
+        .filter(|n| n.has_tag_name("circle"))
+        .map(|n| {
+            let num = |a: &str| n.attribute(a).unwrap().parse::<f64>().unwrap() as i64;
+            (num("cx"), num("cy"), n.attribute("r").unwrap().to_string())
+        })
+        .collect();
+    for c in ordered {
+        let p = points
+            .iter()
+            .find(|p| p["candidate"] == c["id"])
+            .unwrap_or_else(|| panic!("candidate {} not plotted", c["id"]));
+        for (key, part) in [("validation", "validation"), ("train", "train")] {
+            let want = c[part]["rmse"].as_f64().unwrap();
+            assert_eq!(
+                p[key].as_f64().unwrap().to_bits(),
+                want.to_bits(),
+                "{key} of {}",
+                c["id"]
+            );
+        }
+        assert_eq!(
+            p["validation_se"].as_f64().unwrap().to_bits(),
+            c["validation_se"]["rmse"].as_f64().unwrap().to_bits()
+        );
+        let param = if c["model"] == "knn" { "k" } else { "lambda" };
+        assert_eq!(p["x"].as_f64(), c["params"][param].as_f64());
+        let at = (p["px"].as_i64().unwrap(), p["py"].as_i64().unwrap());
+        assert!(
+            circles.iter().any(|(x, y, r)| (*x, *y) == at && r == "3"),
+            "no point drawn at {at:?} for candidate {}",
+            c["id"]
+        );
+    }
+    // The selected candidate is ringed.
+    let sel = points
+        .iter()
+        .find(|p| p["candidate"] == show["selected"])
+        .unwrap();
+    let at = (sel["px"].as_i64().unwrap(), sel["py"].as_i64().unwrap());
+    assert!(circles.iter().any(|(x, y, r)| (*x, *y) == at && r == "8"));
+    assert!(texts.iter().any(|t| t.starts_with("selected (candidate")));
+}
+
+#[test]
+fn complexity_plot_shows_the_one_se_choice_and_takes_other_metrics() {
+    let d = small_dir("plot-one-se");
+    d.write(
+        "onese.toml",
+        &SMALL_SPEC
+            .replace(
+                "[[model]]\nkind = \"ridge\"",
+                "[select]\nrule = \"one-se\"\n\n[[model]]\nkind = \"ridge\"",
+            )
+            .replace(
+                "lambda = [0.1, 1, 10]",
+                "lambda = [0.001, 0.01, 0.1, 1, 10, 100]",
+            ),
+    );
+    d.probity(&["run", "onese.toml"]).expect(0);
+    let show = d.probity(&["show", "1", "--json"]).expect(0).json();
+    let texts_of = |svg: &str| -> Vec<String> {
+        roxmltree::Document::parse(svg)
+            .unwrap()
+            .descendants()
+            .filter(|n| n.has_tag_name("text"))
+            .map(|n| n.text().unwrap_or("").trim().to_string())
+            .collect()
+    };
+    // Another metric: its own axis, and no one-SE marks (the rule was applied to rmse).
+    let texts = texts_of(&svg_of(&d, &["1", "--metric", "mae"]));
+    assert!(texts.iter().any(|t| t == "mae"), "{texts:?}");
+    assert!(!texts.iter().any(|t| t == "one-SE threshold"), "{texts:?}");
+    let texts = texts_of(&svg_of(&d, &["1"]));
+    // On this grid the one-SE rule picks a simpler candidate than the best mean (checked), so
+    // both are marked, with the threshold.
+    assert_ne!(show["selected"], show["best"]);
+    assert!(texts.iter().any(|t| t == "one-SE threshold"), "{texts:?}");
+    assert!(
+        texts
+            .iter()
+            .any(|t| *t == format!("best mean (candidate {})", show["best"])),
+        "{texts:?}"
+    );
+    // Usage errors: an unknown metric; a run with nothing ordered to plot.
+    let r = d
+        .probity(&["plot", "1", "--metric", "auc", "--out", "x.svg"])
+        .expect(2);
+    assert!(r.stderr().contains("no such score"), "{}", r.stderr());
+    d.write(
+        "flat.toml",
+        &SMALL_SPEC
+            .replace("kind = \"ridge\"\nlambda = [0.1, 1, 10]", "kind = \"ols\"")
+            .replace("[[model]]\nkind = \"knn\"\nk = [1, 3]\n", ""),
+    );
+    d.probity(&["run", "flat.toml"]).expect(0);
+    let r = d.probity(&["plot", "2", "--out", "y.svg"]).expect(2);
+    assert!(
+        r.stderr().contains("no family with an ordered parameter"),
+        "{}",
+        r.stderr()
+    );
+    assert!(!d.path.join("y.svg").exists());
+}
