@@ -8,6 +8,8 @@ use std::path::PathBuf;
 pub enum Kind {
     /// Train and validation score against each family's ordered parameter
     Complexity,
+    /// Each reveal of the run's test partition against the development estimate
+    Reveals,
 }
 
 /// Draw a stored run as an SVG file
@@ -47,6 +49,13 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
     }
     let svg = match a.kind {
         Kind::Complexity => crate::report::plot::complexity_svg(&d, &metric)?,
+        Kind::Reveals => {
+            let partition = &d.summary.partition_id;
+            let points = ledger.reveal_points(partition)?;
+            let higher = crate::metrics::Metric::parse(&metric)
+                .is_some_and(crate::metrics::Metric::higher_is_better);
+            crate::report::plot::reveals_svg(partition, &points, &metric, higher)?
+        }
     };
     std::fs::write(&a.out, svg).map_err(|e| Error::Io {
         action: "cannot write",

@@ -1001,7 +1001,50 @@ impl Ledger {
     }
 }
 
+/// One reveal as the reveals plot draws it.
+#[derive(Debug, Clone)]
+pub struct RevealPoint {
+    pub reveal: RevealSummary,
+    /// The exact test score of the reveal's metric (stored even when the mode showed another
+    /// answer).
+    pub test: Option<f64>,
+    /// The revealed candidate's cross-validated (development) estimate of that metric.
+    pub development: Option<f64>,
+    /// The optimism estimate shown with the reveal, in the metric's units.
+    pub optimism: Option<f64>,
+}
+
 impl Ledger {
+    /// Every reveal of a partition, oldest first, with its test score, the development estimate
+    /// of the candidate revealed, and the optimism estimate shown.
+    pub fn reveal_points(&self, partition: &str) -> Result<Vec<RevealPoint>> {
+        let reveals = self.reveals_of_partition(partition)?;
+        let mut out = Vec::with_capacity(reveals.len());
+        for r in reveals {
+            let (test, development, optimism): (Option<f64>, Option<f64>, String) = self
+                .conn
+                .query_row(
+                    "SELECT (SELECT value FROM reveal_scores WHERE reveal_id = v.id AND metric = v.metric),
+                            (SELECT mean FROM scores WHERE run_id = v.run_id AND candidate = v.candidate AND part = 'validation' AND metric = v.metric),
+                            v.optimism
+                     FROM reveals v WHERE v.id = ?1",
+                    [r.id],
+                    |row| Ok((row.get(0)?, row.get(1)?, row.get(2)?)),
+                )
+                .map_err(sql_err("read reveal"))?;
+            let optimism = serde_json::from_str::<Value>(&optimism)
+                .ok()
+                .and_then(|v| v["estimate"].as_f64());
+            out.push(RevealPoint {
+                reveal: r,
+                test,
+                development,
+                optimism,
+            });
+        }
+        Ok(out)
+    }
+
     /// Revealed rows that appear in other partitions' test sets, and runs that warned about
     /// exposed development rows: one sentence each.
     pub fn overlap_findings(&self) -> Result<Vec<String>> {

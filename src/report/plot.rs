@@ -455,6 +455,152 @@ pub fn complexity_svg(d: &RunDetail, metric: &str) -> Result<String> {
     Ok(with_metadata(&svg, &doc))
 }
 
+/// The reveals plot: for one partition, each reveal's test score in reveal order against the
+/// development (cross-validated) estimate of the candidate revealed, with a band from the test
+/// score to the test score corrected by the optimism estimate shown with it (up for a loss,
+/// down for a score where higher is better). Reveals in another metric than `metric` are left
+/// out of the picture (and of the metadata).
+pub fn reveals_svg(
+    partition: &str,
+    points: &[crate::ledger::RevealPoint],
+    metric: &str,
+    higher_is_better: bool,
+) -> Result<String> {
+    let shown: Vec<(usize, &crate::ledger::RevealPoint)> = points
+        .iter()
+        .enumerate()
+        .filter(|(_, p)| p.reveal.metric == metric && p.test.is_some())
+        .map(|(i, p)| (i + 1, p))
+        .collect();
+    if shown.is_empty() {
+        return Err(Error::Input(format!(
+            "partition {partition} has no reveal scored in {metric}; `probity reveal RUN` makes one, `probity audit` lists the partitions"
+        )));
+    }
+    let sign = if higher_is_better { -1.0 } else { 1.0 };
+    let corrected =
+        |p: &crate::ledger::RevealPoint| p.test.map(|t| t + sign * p.optimism.unwrap_or(0.0));
+    let (x0, x1) = (
+        0.5,
+        shown.len().max(shown.last().map_or(1, |s| s.0)) as f64 + 0.5,
+    );
+    let (y0, y1) = range_of(
+        shown
+            .iter()
+            .flat_map(|(_, p)| [p.test, p.development, corrected(p)].into_iter().flatten()),
+    );
+    let mut meta = Vec::new();
+    let mut svg = String::new();
+    {
+        let root =
+            SVGBackend::with_string(&mut svg, (WIDTH, PANEL_HEIGHT + 40)).into_drawing_area();
+        root.fill(&WHITE).map_err(plot_err)?;
+        let mut chart = ChartBuilder::on(&root)
+            .caption(
+                format!("partition {partition}: test {metric} at each reveal against the development estimate"),
+                ("sans-serif", 16),
+            )
+            .margin(14)
+            .x_label_area_size(44)
+            .y_label_area_size(70)
+            .build_cartesian_2d(x0..x1, y0..y1)
+            .map_err(plot_err)?;
+        chart
+            .configure_mesh()
+            .x_desc("reveal (in the order made)")
+            .y_desc(metric.to_string())
+            .x_label_formatter(&|v: &f64| {
+                if (v - v.round()).abs() < 1e-9 && *v >= 1.0 {
+                    format!("{}", v.round() as i64)
+                } else {
+                    String::new()
+                }
+            })
+            .y_label_formatter(&|v: &f64| tick(*v))
+            .light_line_style(WHITE.mix(0.0))
+            .bold_line_style(BLACK.mix(0.08))
+            .label_style(("sans-serif", 13))
+            .axis_desc_style(("sans-serif", 14))
+            .draw()
+            .map_err(plot_err)?;
+        let (test_c, dev_c, band_c) = (PALETTE[3], PALETTE[0], PALETTE[1]);
+        // The optimism band: one bar per reveal from the test score to the corrected score.
+        chart
+            .draw_series(shown.iter().filter_map(|(i, p)| {
+                let (t, c) = (p.test?, corrected(p)?);
+                let x = *i as f64;
+                Some(Rectangle::new(
+                    [(x - 0.18, t.min(c)), (x + 0.18, t.max(c))],
+                    band_c.mix(0.35).filled(),
+                ))
+            }))
+            .map_err(plot_err)?
+            .label("test score corrected for optimism (band)")
+            .legend(move |(x, y)| {
+                Rectangle::new([(x, y - 4), (x + 14, y + 4)], band_c.mix(0.35).filled())
+            });
+        let dev: Vec<(f64, f64)> = shown
+            .iter()
+            .filter_map(|(i, p)| Some((*i as f64, p.development?)))
+            .collect();
+        chart
+            .draw_series(dev.iter().map(|p| Cross::new(*p, 5, dev_c.stroke_width(2))))
+            .map_err(plot_err)?
+            .label("development estimate (cross-validated)")
+            .legend(move |(x, y)| Cross::new((x + 7, y), 4, dev_c.stroke_width(2)));
+        let test: Vec<(f64, f64)> = shown
+            .iter()
+            .filter_map(|(i, p)| Some((*i as f64, p.test?)))
+            .collect();
+        chart
+            .draw_series(LineSeries::new(test.clone(), test_c.stroke_width(2)))
+            .map_err(plot_err)?
+            .label("test score")
+            .legend(move |(x, y)| {
+                PathElement::new(vec![(x, y), (x + 18, y)], test_c.stroke_width(2))
+            });
+        chart
+            .draw_series(test.iter().map(|p| Circle::new(*p, 4, test_c.filled())))
+            .map_err(plot_err)?;
+        for (i, p) in &shown {
+            let (px, py) = p
+                .test
+                .map(|t| chart.backend_coord(&(*i as f64, t)))
+                .map_or((None, None), |(a, b)| (Some(a), Some(b)));
+            meta.push(json!({
+                "reveal": p.reveal.id,
+                "order": i,
+                "at": p.reveal.at,
+                "user": p.reveal.user,
+                "run": p.reveal.run,
+                "candidate": p.reveal.candidate,
+                "test": p.test,
+                "development": p.development,
+                "optimism": p.optimism,
+                "corrected": corrected(p),
+                "px": px,
+                "py": py,
+            }));
+        }
+        chart
+            .configure_series_labels()
+            .position(SeriesLabelPosition::UpperLeft)
+            .background_style(WHITE.mix(0.85))
+            .border_style(BLACK.mix(0.3))
+            .label_font(("sans-serif", 12))
+            .draw()
+            .map_err(plot_err)?;
+        root.present().map_err(plot_err)?;
+    }
+    let doc = json!({
+        "kind": "reveals",
+        "partition": partition,
+        "metric": metric,
+        "points": meta,
+    });
+    Ok(with_metadata(&svg, &doc))
+}
+
 /// An axis label: at most 4 significant digits, no trailing zeros.
 fn tick(v: f64) -> String {
     if v == 0.0 || !v.is_finite() {

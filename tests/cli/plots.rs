@@ -151,3 +151,73 @@ fn complexity_plot_shows_the_one_se_choice_and_takes_other_metrics() {
     );
     assert!(!d.path.join("y.svg").exists());
 }
+
+#[test]
+fn reveals_plot_draws_each_reveal_against_its_development_estimate() {
+    let d = small_dir("plot-reveals");
+    d.probity(&["run", "small.toml"]).expect(0);
+    // Nothing revealed yet: nothing to draw.
+    let r = d
+        .probity(&["plot", "1", "--kind", "reveals", "--out", "r.svg"])
+        .expect(2);
+    assert!(r.stderr().contains("has no reveal"), "{}", r.stderr());
+    let first = d
+        .probity(&["reveal", "1", "--yes", "--json"])
+        .expect(0)
+        .json();
+    let second = d
+        .probity(&["reveal", "1", "--candidate", "2", "--yes", "--json"])
+        .expect(0)
+        .json();
+    let show = d.probity(&["show", "1", "--json"]).expect(0).json();
+    let svg = svg_of(&d, &["1", "--kind", "reveals"]);
+    let doc = roxmltree::Document::parse(&svg).expect("well-formed SVG");
+    let texts: Vec<String> = doc
+        .descendants()
+        .filter(|n| n.has_tag_name("text"))
+        .map(|n| n.text().unwrap_or("").trim().to_string())
+        .collect();
+    for label in ["rmse", "reveal (in the order made)"] {
+        assert!(
+            texts.iter().any(|t| t == label),
+            "no '{label}' in {texts:?}"
+        );
+    }
+    let meta: Value = serde_json::from_str(
+        doc.descendants()
+            .find(|n| n.has_tag_name("metadata"))
+            .and_then(|n| n.text())
+            .unwrap(),
+    )
+    .unwrap();
+    let points = meta["points"].as_array().unwrap();
+    assert_eq!(points.len(), 2);
+    let circles: Vec<(i64, i64)> = doc
+        .descendants()
+        .filter(|n| n.has_tag_name("circle"))
+        .map(|n| {
+            let num = |a: &str| n.attribute(a).unwrap().parse::<f64>().unwrap() as i64;
+            (num("cx"), num("cy"))
+        })
+        .collect();
+    for (p, rev) in points.iter().zip([&first, &second]) {
+        assert_eq!(p["candidate"], rev["candidate"]);
+        assert_eq!(
+            p["test"].as_f64().unwrap().to_bits(),
+            rev["test"]["rmse"].as_f64().unwrap().to_bits()
+        );
+        assert_eq!(p["optimism"], rev["optimism"]["estimate"]);
+        let cand = show["candidates"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .find(|c| c["id"] == rev["candidate"])
+            .unwrap();
+        assert_eq!(p["development"], cand["validation"]["rmse"]);
+        // rmse is a loss: the corrected score is the test score plus the optimism estimate.
+        let want = p["test"].as_f64().unwrap() + p["optimism"].as_f64().unwrap();
+        assert_eq!(p["corrected"].as_f64().unwrap(), want);
+        let at = (p["px"].as_i64().unwrap(), p["py"].as_i64().unwrap());
+        assert!(circles.contains(&at), "no point at {at:?}");
+    }
+}
