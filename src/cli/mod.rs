@@ -13,6 +13,7 @@ mod plot;
 mod predict;
 mod progress;
 mod replay;
+mod report;
 mod reveal;
 mod run;
 mod show;
@@ -60,6 +61,7 @@ pub enum Command {
     Export(export::Args),
     Compare(compare::Args),
     Plot(plot::Args),
+    Report(report::Args),
 }
 
 /// Parse the process arguments, run, print any error; returns the exit code.
@@ -87,6 +89,7 @@ pub fn main() -> i32 {
         Command::Export(a) => export::run(&cli.global, a),
         Command::Compare(a) => compare::run(&cli.global, a),
         Command::Plot(a) => plot::run(&cli.global, a),
+        Command::Report(a) => report::run(&cli.global, a),
     };
     match result {
         Ok(code) => code,
@@ -200,6 +203,16 @@ pub(crate) fn open_existing(g: &Global) -> Result<crate::ledger::Ledger> {
         )));
     }
     crate::ledger::Ledger::open(&path, false)
+}
+
+/// Write a report file and say where it went.
+pub(crate) fn write_file(path: &Path, text: &str) -> Result<()> {
+    std::fs::write(path, text).map_err(|e| Error::Io {
+        action: "cannot write",
+        path: path.to_path_buf(),
+        source: e,
+    })?;
+    out(&format!("wrote {}\n", path.display()))
 }
 
 /// One stored run, or a usage error that says where to find the run ids.

@@ -1,6 +1,6 @@
 //! `probity plot RUN --out FILE.svg`: a stored run drawn as SVG.
 
-use super::{Global, open_existing, out};
+use super::{Global, open_existing};
 use crate::error::{Error, Result};
 use std::path::PathBuf;
 
@@ -57,11 +57,6 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
             crate::report::plot::reveals_svg(partition, &points, &metric, higher)?
         }
     };
-    std::fs::write(&a.out, svg).map_err(|e| Error::Io {
-        action: "cannot write",
-        path: a.out.clone(),
-        source: e,
-    })?;
-    out(&format!("wrote {}\n", a.out.display()))?;
+    super::write_file(&a.out, &svg)?;
     Ok(0)
 }

@@ -1001,6 +1001,9 @@ impl Ledger {
     }
 }
 
+/// A replay record: (replay run, run replayed, identical, values compared, values differing).
+pub type ReplayRow = (i64, i64, bool, i64, i64);
+
 /// One reveal as the reveals plot draws it.
 #[derive(Debug, Clone)]
 pub struct RevealPoint {
@@ -1015,6 +1018,43 @@ pub struct RevealPoint {
 }
 
 impl Ledger {
+    /// Replays involving `run`: (replay run, the run it replays, identical, compared, differing),
+    /// the replays of it and, if it is itself a replay, its own record; oldest first.
+    pub fn replays_involving(&self, run: i64) -> Result<Vec<ReplayRow>> {
+        let mut st = self
+            .conn
+            .prepare("SELECT run_id, replay_of, identical, compared, differing FROM replays WHERE replay_of = ?1 OR run_id = ?1 ORDER BY run_id")
+            .map_err(sql_err("read replays"))?;
+        st.query_map([run], |r| {
+            Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?, r.get(4)?))
+        })
+        .and_then(|rows| rows.collect())
+        .map_err(sql_err("read replays"))
+    }
+
+    /// The digest of a run's refitted model's predictions on the development rows.
+    pub fn predictions_digest(&self, run: i64) -> Result<Option<String>> {
+        self.conn
+            .query_row(
+                "SELECT predictions_digest FROM runs WHERE id = ?1",
+                [run],
+                |r| r.get(0),
+            )
+            .map_err(sql_err("read run"))
+    }
+
+    /// A run's link in the hash chain: (position, entry hash); `None` before it is chained.
+    pub fn run_chain_entry(&self, run: i64) -> Result<Option<(i64, String)>> {
+        self.conn
+            .query_row(
+                "SELECT seq, entry_hash FROM chain WHERE kind = 'run' AND ref_id = ?1",
+                [run],
+                |r| Ok((r.get(0)?, r.get(1)?)),
+            )
+            .optional()
+            .map_err(sql_err("read chain"))
+    }
+
     /// Every reveal of a partition, oldest first, with its test score, the development estimate
     /// of the candidate revealed, and the optimism estimate shown.
     pub fn reveal_points(&self, partition: &str) -> Result<Vec<RevealPoint>> {

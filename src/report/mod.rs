@@ -2,6 +2,7 @@
 //! built from ledger rows, so what `run` prints is what the ledger holds.
 
 pub mod export;
+pub mod html;
 pub mod json;
 pub mod plot;
 pub mod table;
@@ -17,6 +18,30 @@ pub fn num(v: Option<f64>) -> String {
         }
         Some(x) => format!("{x:.5e}"),
     }
+}
+
+/// A run's candidates, best first by its selection metric (undefined scores last, ties by id).
+pub fn ranked(d: &crate::ledger::RunDetail) -> Vec<&crate::ledger::CandidateRow> {
+    let metric = d.summary.metric.as_str();
+    let higher = crate::metrics::Metric::parse(metric).is_some_and(|m| m.higher_is_better());
+    let mut rows: Vec<&crate::ledger::CandidateRow> = d.candidates.iter().collect();
+    let key = |c: &crate::ledger::CandidateRow| c.validation.get(metric).and_then(|s| s.mean);
+    rows.sort_by(|a, b| {
+        let ord = match (key(a), key(b)) {
+            (Some(x), Some(y)) => {
+                if higher {
+                    y.total_cmp(&x)
+                } else {
+                    x.total_cmp(&y)
+                }
+            }
+            (Some(_), None) => std::cmp::Ordering::Less,
+            (None, Some(_)) => std::cmp::Ordering::Greater,
+            (None, None) => std::cmp::Ordering::Equal,
+        };
+        ord.then(a.id.cmp(&b.id))
+    });
+    rows
 }
 
 /// `name=value` pairs of a params JSON object.

@@ -7,7 +7,8 @@
 //! with the common colour-vision deficiencies tell apart (Okabe & Ito 2008, "Color Universal
 //! Design"; common practice).
 //!
-//! Every plotted candidate is also listed in the SVG's `<metadata>` (JSON: candidate, values,
+//! Every plotted candidate is also listed in the SVG's `<metadata id="probity-KIND">` (JSON:
+//! candidate, values,
 //! and the pixel position of its validation point), so tests and other tools can check the
 //! drawing against the ledger without reading pixels.
 
@@ -635,8 +636,9 @@ fn with_metadata(svg: &str, doc: &Value) -> String {
         .and_then(|at| svg[at..].find('>').map(|e| at + e));
     match open {
         Some(end) => format!(
-            "{}\n<metadata id=\"probity-data\">{text}</metadata>{}",
+            "{}\n<metadata id=\"probity-{}\">{text}</metadata>{}",
             &svg[..=end],
+            doc["kind"].as_str().unwrap_or("plot"),
             &svg[end + 1..]
         ),
         None => svg.to_string(),

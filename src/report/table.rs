@@ -1,7 +1,7 @@
 //! Text tables for the terminal.
 
 use super::{num, params_text};
-use crate::ledger::{CandidateRow, RunDetail, RunSummary};
+use crate::ledger::{RunDetail, RunSummary};
 use comfy_table::{CellAlignment, Table, presets::UTF8_FULL_CONDENSED};
 
 fn new_table(header: Vec<&str>) -> Table {
@@ -25,25 +25,7 @@ fn right(t: &mut Table, from: usize) {
 pub fn leaderboard(d: &RunDetail, limit: Option<usize>) -> String {
     let metric = d.summary.metric.as_str();
     let parsed = crate::metrics::Metric::parse(metric);
-    let higher = parsed.is_some_and(|m| m.higher_is_better());
-    let mut rows: Vec<&CandidateRow> = d.candidates.iter().collect();
-    let key = |c: &CandidateRow| c.validation.get(metric).and_then(|s| s.mean);
-    rows.sort_by(|a, b| {
-        let (x, y) = (key(a), key(b));
-        let ord = match (x, y) {
-            (Some(x), Some(y)) => {
-                if higher {
-                    y.total_cmp(&x)
-                } else {
-                    x.total_cmp(&y)
-                }
-            }
-            (Some(_), None) => std::cmp::Ordering::Less,
-            (None, Some(_)) => std::cmp::Ordering::Greater,
-            (None, None) => std::cmp::Ordering::Equal,
-        };
-        ord.then(a.id.cmp(&b.id))
-    });
+    let rows = super::ranked(d);
     let se_label = if d.holdout { "" } else { "± se" };
     let mut header = vec!["", "id", "model", "params", "train", "validation"];
     if !d.holdout {

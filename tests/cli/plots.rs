@@ -221,3 +221,101 @@ fn reveals_plot_draws_each_reveal_against_its_development_estimate() {
         assert!(circles.contains(&at), "no point at {at:?}");
     }
 }
+
+#[test]
+fn report_is_one_well_formed_page_with_what_the_ledger_holds() {
+    let d = small_dir("report");
+    d.probity(&["run", "small.toml", "--note", "first try"])
+        .expect(0);
+    d.probity(&["reveal", "1", "--yes"]).expect(0);
+    d.probity(&["replay", "1"]).expect(0);
+    let out = d.path.join("r.html");
+    d.probity(&["report", "1", "--out", out.to_str().unwrap()])
+        .expect(0);
+    let html = std::fs::read_to_string(&out).unwrap();
+    // Well-formed: a strict XML parser reads the whole page (it is written as polyglot XHTML).
+    let doc = roxmltree::Document::parse_with_options(
+        &html,
+        roxmltree::ParsingOptions {
+            allow_dtd: true,
+            ..Default::default()
+        },
+    )
+    .expect("the report parses as XML");
+    // Self-contained: no script, no stylesheet link, no external source.
+    for n in doc.descendants().filter(|n| n.is_element()) {
+        assert!(!["script", "link", "img", "iframe"].contains(&n.tag_name().name()));
+        for a in ["src", "href"] {
+            assert!(n.attribute(a).is_none(), "{} has {a}", n.tag_name().name());
+        }
+    }
+    let by_id = |id: &str| {
+        doc.descendants()
+            .find(|n| n.attribute("id") == Some(id))
+            .unwrap_or_else(|| panic!("no #{id}"))
+    };
+    // The leaderboard: one row per candidate, the selected one marked, its scores as `show`.
+    let show = d.probity(&["show", "1", "--json"]).expect(0).json();
+    let rows: Vec<roxmltree::Node> = by_id("leaderboard-table")
+        .children()
+        .filter(|n| n.has_attribute("data-candidate"))
+        .collect();
+    assert_eq!(rows.len(), show["candidates"].as_array().unwrap().len());
+    let sel = rows
+        .iter()
+        .find(|r| r.attribute("class") == Some("sel"))
+        .expect("the selected candidate is marked");
+    assert_eq!(
+        sel.attribute("data-candidate"),
+        Some(show["selected"].to_string().as_str())
+    );
+    let cells: Vec<String> = sel
+        .children()
+        .filter(|n| n.has_tag_name("td"))
+        .map(|n| n.text().unwrap_or("").to_string())
+        .collect();
+    let chosen = show["candidates"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|c| c["id"] == show["selected"])
+        .unwrap();
+    assert_eq!(
+        cells[5],
+        probity::report::num(chosen["validation"]["rmse"].as_f64())
+    );
+    // Both plots inline, as SVG.
+    let svgs = doc.descendants().filter(|n| n.has_tag_name("svg")).count();
+    assert_eq!(svgs, 2, "complexity and reveals plots");
+    // The reveal, the replay, the chain hash and the spec, as stored.
+    let reveal_rows = by_id("reveals-table")
+        .children()
+        .filter(|n| n.has_tag_name("tr"))
+        .count();
+    assert_eq!(reveal_rows, 2, "a header and one reveal");
+    let replays = by_id("replays-table")
+        .descendants()
+        .filter_map(|n| n.text())
+        .collect::<String>();
+    assert!(replays.contains("identical"), "{replays}");
+    let conn = rusqlite::Connection::open(d.ledger()).unwrap();
+    let hash: String = conn
+        .query_row(
+            "SELECT entry_hash FROM chain WHERE kind = 'run' AND ref_id = 1",
+            [],
+            |r| r.get(0),
+        )
+        .unwrap();
+    assert_eq!(by_id("chain-hash").text(), Some(hash.as_str()));
+    let spec = doc
+        .descendants()
+        .find(|n| n.has_tag_name("pre"))
+        .and_then(|n| n.text())
+        .unwrap();
+    assert_eq!(spec, SMALL_SPEC);
+    assert!(html.contains("first try"));
+    // An unknown run is a usage error and writes nothing.
+    let r = d.probity(&["report", "7", "--out", "x.html"]).expect(2);
+    assert!(r.stderr().contains("no run 7"), "{}", r.stderr());
+    assert!(!d.path.join("x.html").exists());
+}
