@@ -1871,20 +1871,103 @@ pub fn refit_prepared(
                         &mut Notes::new(),
                     )
                 })?;
-                return Ok(StoredModel {
-                    candidate,
-                    classes: prep.classes.clone(),
-                    target: spec.data.target.name.clone(),
-                    key: spec.data.key.as_ref().map(|k| k.name.clone()),
-                    encoder,
-                    fitted,
-                });
+                return Ok(StoredModel::of(spec, prep, candidate, encoder, fitted));
             }
         }
     }
     Err(Error::Input(format!(
         "the run has no candidate {candidate}; `probity show RUN` lists them"
     )))
+}
+
+impl StoredModel {
+    /// Candidate `candidate`'s fitted model with what predicting needs of the run.
+    fn of(
+        spec: &Spec,
+        prep: &Prepared,
+        candidate: usize,
+        encoder: Encoder,
+        fitted: Fitted,
+    ) -> StoredModel {
+        StoredModel {
+            candidate,
+            classes: prep.classes.clone(),
+            target: spec.data.target.name.clone(),
+            key: spec.data.key.as_ref().map(|k| k.name.clone()),
+            encoder,
+            fitted,
+        }
+    }
+}
+
+/// Out-of-fold predictions of one candidate on the development rows.
+#[derive(Debug, Clone)]
+pub struct OutOfFold {
+    /// Per scored row, in fold order then row order: (fold, kept-row position, target,
+    /// prediction: one value, or one probability per class).
+    pub rows: Vec<(usize, usize, f64, Vec<f64>)>,
+    pub classes: Vec<String>,
+}
+
+/// Refit `candidate` (1-based) on each fold's fitting rows of the first repeat, as the run did,
+/// and predict that fold's held-out rows: every development row once (for a fixed validation
+/// partition, its rows). Encoders are fitted on each fold's fitting rows only. Test rows are
+/// never touched.
+pub fn out_of_fold(
+    spec: &Spec,
+    table: &Table,
+    prep: &Prepared,
+    candidate: usize,
+) -> Result<OutOfFold> {
+    let (entry, params) = candidate_entry(spec, candidate)?;
+    if entry.command.is_some() {
+        return Err(Error::Input(format!(
+            "candidate {candidate} is an external command family: its out-of-fold predictions would mean running the command again on every fold, which `plot` does not do; plot a built-in candidate"
+        )));
+    }
+    let threads = crate::data::all_cores();
+    let width = prep.classes.len().max(1);
+    let mut rows = Vec::new();
+    for fold in first_repeat(prep.sealed.folds()) {
+        let mut notes = Notes::new();
+        let (encoder, fitted) = crate::par::lend(threads.saturating_sub(1), || {
+            fit_on(
+                spec,
+                table,
+                prep,
+                &entry,
+                &params,
+                &fold.fit,
+                DevGram::Not,
+                threads,
+                &mut notes,
+            )
+        })?;
+        let model = StoredModel::of(spec, prep, candidate, encoder, fitted);
+        let score_rows: Vec<usize> = fold.score.iter().map(|&i| prep.rows[i]).collect();
+        let p = predict_with(
+            spec,
+            table,
+            prep,
+            &model,
+            &fold.fit,
+            table,
+            &score_rows,
+            &mut notes,
+        )?;
+        for (k, &i) in fold.score.iter().enumerate() {
+            rows.push((
+                fold.index,
+                i,
+                prep.target[i],
+                p[k * width..(k + 1) * width].to_vec(),
+            ));
+        }
+    }
+    Ok(OutOfFold {
+        rows,
+        classes: prep.classes.clone(),
+    })
 }
 
 /// One candidate scored once on the test rows, with bootstrap intervals.

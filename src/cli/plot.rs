@@ -10,6 +10,8 @@ pub enum Kind {
     Complexity,
     /// Each reveal of the run's test partition against the development estimate
     Reveals,
+    /// Out-of-fold residuals (regression) or calibration (classification) of a candidate
+    Residuals,
 }
 
 /// Draw a stored run as an SVG file
@@ -25,6 +27,12 @@ pub struct Args {
     /// The metric drawn [default: the run's selection metric]
     #[arg(long, value_name = "NAME")]
     pub metric: Option<String>,
+    /// residuals: the candidate drawn [default: the run's selected candidate]
+    #[arg(long, value_name = "ID")]
+    pub candidate: Option<i64>,
+    /// residuals: the data file, when it moved since the run (its SHA-256 must match)
+    #[arg(long, value_name = "PATH")]
+    pub data: Option<PathBuf>,
 }
 
 pub fn run(g: &Global, a: Args) -> Result<i32> {
@@ -55,6 +63,24 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
             let higher = crate::metrics::Metric::parse(&metric)
                 .is_some_and(crate::metrics::Metric::higher_is_better);
             crate::report::plot::reveals_svg(partition, &points, &metric, higher)?
+        }
+        Kind::Residuals => {
+            let candidate = a.candidate.unwrap_or(d.summary.selected);
+            if !d.candidates.iter().any(|c| c.id == candidate) {
+                return Err(Error::Input(format!(
+                    "run {} has no candidate {candidate}; `probity show {}` lists them",
+                    a.run, a.run
+                )));
+            }
+            // The fits are made again from the stored spec and the checked data file.
+            let (spec, table) = super::reveal::reload(&d, a.data.as_deref())?;
+            let prep = crate::runner::prepare(&spec, &table, crate::data::all_cores())?;
+            let oof = crate::runner::out_of_fold(&spec, &table, &prep, candidate as usize)?;
+            if oof.classes.is_empty() {
+                crate::report::plot::residuals_svg(a.run, candidate, &oof)?
+            } else {
+                crate::report::plot::calibration_svg(a.run, candidate, &oof)?
+            }
         }
     };
     super::write_file(&a.out, &svg)?;

@@ -12,6 +12,9 @@ pub struct Args {
     /// The HTML file to write
     #[arg(long, value_name = "FILE.html")]
     pub out: PathBuf,
+    /// The data file, when it moved since the run (its SHA-256 must match; for the residuals)
+    #[arg(long, value_name = "PATH")]
+    pub data: Option<PathBuf>,
 }
 
 pub fn run(g: &Global, a: Args) -> Result<i32> {
@@ -31,6 +34,25 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
     if let Ok(svg) = crate::report::plot::reveals_svg(&partition, &reveals, &metric, higher) {
         plots.push((format!("Reveals of partition {partition}"), svg));
     }
+    // The residuals (or calibration) plot refits the selected candidate on each fold, from the
+    // stored spec and the data file, which must still be there with the same SHA-256.
+    let selected = d.summary.selected;
+    let oof = super::reveal::reload(&d, a.data.as_deref()).and_then(|(spec, table)| {
+        let prep = crate::runner::prepare(&spec, &table, crate::data::all_cores())?;
+        crate::runner::out_of_fold(&spec, &table, &prep, selected as usize)
+    });
+    let mut missing = None;
+    match oof {
+        Ok(o) if o.classes.is_empty() => plots.push((
+            format!("Out-of-fold residuals of candidate {selected}"),
+            crate::report::plot::residuals_svg(a.run, selected, &o)?,
+        )),
+        Ok(o) => plots.push((
+            format!("Calibration of candidate {selected} (out-of-fold)"),
+            crate::report::plot::calibration_svg(a.run, selected, &o)?,
+        )),
+        Err(e) => missing = Some(format!("no residuals plot: {e}")),
+    }
     let (entries, breaks) = ledger.verify()?;
     let digest = ledger.predictions_digest(a.run)?;
     let extras = crate::report::html::Extras {
@@ -42,6 +64,7 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
         notes: ledger.notes(a.run)?,
         plots,
         chain_state: (entries, breaks.is_empty()),
+        missing,
     };
     let page = crate::report::html::page(&d, &extras);
     super::write_file(&a.out, &page)?;

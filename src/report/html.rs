@@ -23,6 +23,8 @@ pub struct Extras {
     pub plots: Vec<(String, String)>,
     /// The chain's state when the report was made: (entries, intact).
     pub chain_state: (usize, bool),
+    /// Why a plot is missing (the data file could not be read again), if one is.
+    pub missing: Option<String>,
 }
 
 /// Text for an HTML/XML text node or attribute value.
@@ -226,6 +228,9 @@ pub fn page(d: &RunDetail, x: &Extras) -> String {
             esc(title),
             strip_xml_decl(svg)
         ));
+    }
+    if let Some(m) = &x.missing {
+        h.push_str(&format!("<p class=\"warn\">{}</p>\n", esc(m)));
     }
     h.push_str("<h2 id=\"reveals\">Reveals of the test partition</h2>\n");
     if x.reveals.is_empty() {

@@ -14,6 +14,7 @@
 
 use crate::error::{Error, Result};
 use crate::ledger::{CandidateRow, RunDetail};
+use plotters::coord::types::RangedCoordf64;
 use plotters::prelude::*;
 use serde_json::{Value, json};
 
@@ -217,19 +218,15 @@ pub fn complexity_svg(d: &RunDetail, metric: &str) -> Result<String> {
             } else {
                 panel.parameter.clone()
             };
-            let mut chart = ChartBuilder::on(area)
-                .caption(
-                    format!(
-                        "{}: {metric} by {} (mean over folds; band: validation +/- 1 standard error)",
-                        panel.family, panel.parameter
-                    ),
-                    ("sans-serif", 16),
-                )
-                .margin(14)
-                .x_label_area_size(44)
-                .y_label_area_size(70)
-                .build_cartesian_2d(x0..x1, y0..y1)
-                .map_err(plot_err)?;
+            let mut chart = chart_on(
+                area,
+                format!(
+                    "{}: {metric} by {} (mean over folds; band: validation +/- 1 standard error)",
+                    panel.family, panel.parameter
+                ),
+                x0..x1,
+                y0..y1,
+            )?;
             let log_x = panel.log_x;
             // Whole-number parameters (k, degree) get ticks at whole numbers only.
             let whole = panel
@@ -251,18 +248,7 @@ pub fn complexity_svg(d: &RunDetail, metric: &str) -> Result<String> {
                     tick(*v)
                 }
             };
-            chart
-                .configure_mesh()
-                .x_desc(x_desc)
-                .y_desc(metric.to_string())
-                .x_label_formatter(&fmt_x)
-                .y_label_formatter(&|v: &f64| tick(*v))
-                .light_line_style(WHITE.mix(0.0))
-                .bold_line_style(BLACK.mix(0.08))
-                .label_style(("sans-serif", 13))
-                .axis_desc_style(("sans-serif", 14))
-                .draw()
-                .map_err(plot_err)?;
+            draw_mesh(&mut chart, x_desc, metric.to_string(), &fmt_x)?;
             for (ci, curve) in panel.curves.iter().enumerate() {
                 let colour = PALETTE[ci % PALETTE.len()];
                 let suffix = if curve.label.is_empty() {
@@ -435,14 +421,7 @@ pub fn complexity_svg(d: &RunDetail, metric: &str) -> Result<String> {
                 .min_by_key(|(_, n)| *n)
                 .map_or(SeriesLabelPosition::UpperRight, |(pos, _)| pos)
             };
-            chart
-                .configure_series_labels()
-                .position(corner)
-                .background_style(WHITE.mix(0.85))
-                .border_style(BLACK.mix(0.3))
-                .label_font(("sans-serif", 12))
-                .draw()
-                .map_err(plot_err)?;
+            draw_legend(&mut chart, corner)?;
         }
         root.present().map_err(plot_err)?;
     }
@@ -496,34 +475,26 @@ pub fn reveals_svg(
         let root =
             SVGBackend::with_string(&mut svg, (WIDTH, PANEL_HEIGHT + 40)).into_drawing_area();
         root.fill(&WHITE).map_err(plot_err)?;
-        let mut chart = ChartBuilder::on(&root)
-            .caption(
-                format!("partition {partition}: test {metric} at each reveal against the development estimate"),
-                ("sans-serif", 16),
-            )
-            .margin(14)
-            .x_label_area_size(44)
-            .y_label_area_size(70)
-            .build_cartesian_2d(x0..x1, y0..y1)
-            .map_err(plot_err)?;
-        chart
-            .configure_mesh()
-            .x_desc("reveal (in the order made)")
-            .y_desc(metric.to_string())
-            .x_label_formatter(&|v: &f64| {
+        let mut chart = chart_on(
+            &root,
+            format!(
+                "partition {partition}: test {metric} at each reveal against the development estimate"
+            ),
+            x0..x1,
+            y0..y1,
+        )?;
+        draw_mesh(
+            &mut chart,
+            "reveal (in the order made)",
+            metric,
+            &|v: &f64| {
                 if (v - v.round()).abs() < 1e-9 && *v >= 1.0 {
                     format!("{}", v.round() as i64)
                 } else {
                     String::new()
                 }
-            })
-            .y_label_formatter(&|v: &f64| tick(*v))
-            .light_line_style(WHITE.mix(0.0))
-            .bold_line_style(BLACK.mix(0.08))
-            .label_style(("sans-serif", 13))
-            .axis_desc_style(("sans-serif", 14))
-            .draw()
-            .map_err(plot_err)?;
+            },
+        )?;
         let (test_c, dev_c, band_c) = (PALETTE[3], PALETTE[0], PALETTE[1]);
         // The optimism band: one bar per reveal from the test score to the corrected score.
         chart
@@ -553,16 +524,7 @@ pub fn reveals_svg(
             .iter()
             .filter_map(|(i, p)| Some((*i as f64, p.test?)))
             .collect();
-        chart
-            .draw_series(LineSeries::new(test.clone(), test_c.stroke_width(2)))
-            .map_err(plot_err)?
-            .label("test score")
-            .legend(move |(x, y)| {
-                PathElement::new(vec![(x, y), (x + 18, y)], test_c.stroke_width(2))
-            });
-        chart
-            .draw_series(test.iter().map(|p| Circle::new(*p, 4, test_c.filled())))
-            .map_err(plot_err)?;
+        line_with_points(&mut chart, &test, test_c, "test score")?;
         for (i, p) in &shown {
             let (px, py) = p
                 .test
@@ -583,14 +545,7 @@ pub fn reveals_svg(
                 "py": py,
             }));
         }
-        chart
-            .configure_series_labels()
-            .position(SeriesLabelPosition::UpperLeft)
-            .background_style(WHITE.mix(0.85))
-            .border_style(BLACK.mix(0.3))
-            .label_font(("sans-serif", 12))
-            .draw()
-            .map_err(plot_err)?;
+        draw_legend(&mut chart, SeriesLabelPosition::UpperLeft)?;
         root.present().map_err(plot_err)?;
     }
     let doc = json!({
@@ -600,6 +555,293 @@ pub fn reveals_svg(
         "points": meta,
     });
     Ok(with_metadata(&svg, &doc))
+}
+
+/// Most points the residuals plot draws (evenly spaced over the rows beyond that; the
+/// metadata says how many were shown).
+pub const MAX_POINTS: usize = 4000;
+
+/// Residuals (observed minus predicted) against the out-of-fold predictions of one candidate.
+pub fn residuals_svg(run: i64, candidate: i64, oof: &crate::runner::OutOfFold) -> Result<String> {
+    let n = oof.rows.len();
+    if n == 0 {
+        return Err(Error::Input(format!(
+            "run {run} has no held-out rows to draw"
+        )));
+    }
+    let pick: Vec<usize> = if n > MAX_POINTS {
+        (0..MAX_POINTS).map(|i| i * n / MAX_POINTS).collect()
+    } else {
+        (0..n).collect()
+    };
+    let pts: Vec<(usize, usize, f64, f64)> = pick
+        .iter()
+        .map(|&k| {
+            let (fold, row, y, p) = &oof.rows[k];
+            (*fold, *row, p[0], y - p[0])
+        })
+        .collect();
+    let (x0, x1) = range_of(pts.iter().map(|p| p.2));
+    let (y0, y1) = {
+        let (lo, hi) = range_of(pts.iter().map(|p| p.3));
+        let m = lo.abs().max(hi.abs());
+        (-m, m)
+    };
+    let mut meta = Vec::new();
+    let mut svg = String::new();
+    {
+        let root =
+            SVGBackend::with_string(&mut svg, (WIDTH, PANEL_HEIGHT + 80)).into_drawing_area();
+        root.fill(&WHITE).map_err(plot_err)?;
+        let shown = if pts.len() < n {
+            format!(", {} of {n} rows evenly spaced", pts.len())
+        } else {
+            String::new()
+        };
+        let mut chart = chart_on(
+            &root,
+            format!(
+                "run {run}, candidate {candidate}: out-of-fold residuals on the development rows{shown}"
+            ),
+            x0..x1,
+            y0..y1,
+        )?;
+        draw_mesh(
+            &mut chart,
+            "prediction (target units)",
+            "residual = observed - predicted",
+            &|v: &f64| tick(*v),
+        )?;
+        chart
+            .draw_series(std::iter::once(PathElement::new(
+                vec![(x0, 0.0), (x1, 0.0)],
+                BLACK.mix(0.6).stroke_width(1),
+            )))
+            .map_err(plot_err)?;
+        let colour = PALETTE[0];
+        chart
+            .draw_series(
+                pts.iter()
+                    .map(|p| Circle::new((p.2, p.3), 2, colour.mix(0.55).filled())),
+            )
+            .map_err(plot_err)?;
+        for p in &pts {
+            let (px, py) = chart.backend_coord(&(p.2, p.3));
+            meta.push(json!({"fold": p.0, "row": p.1, "prediction": p.2, "residual": p.3, "px": px, "py": py}));
+        }
+        root.present().map_err(plot_err)?;
+    }
+    let doc = json!({
+        "kind": "residuals",
+        "run": run,
+        "candidate": candidate,
+        "rows": n,
+        "shown": meta.len(),
+        "points": meta,
+    });
+    Ok(with_metadata(&svg, &doc))
+}
+
+/// Bins of the calibration plot.
+pub const BINS: usize = 10;
+
+/// A calibration (reliability) plot of out-of-fold probabilities: for two classes the predicted
+/// probability of the positive (second) class in 10 equal bins against the observed share of
+/// that class; for more, the probability of the predicted class against the share predicted
+/// right. The diagonal is perfect calibration.
+pub fn calibration_svg(run: i64, candidate: i64, oof: &crate::runner::OutOfFold) -> Result<String> {
+    let nc = oof.classes.len();
+    let binary = nc == 2;
+    // (probability, hit) per row.
+    let obs: Vec<(f64, bool)> = oof
+        .rows
+        .iter()
+        .map(|(_, _, y, p)| {
+            if binary {
+                (p[1], *y as usize == 1)
+            } else {
+                let (best, pb) =
+                    p.iter()
+                        .enumerate()
+                        .fold((0, f64::NEG_INFINITY), |(bi, bp), (i, &v)| {
+                            if v > bp { (i, v) } else { (bi, bp) }
+                        });
+                (pb, best == *y as usize)
+            }
+        })
+        .collect();
+    let mut bins = vec![(0usize, 0.0f64, 0usize); BINS];
+    for (p, hit) in &obs {
+        let b = ((p * BINS as f64).floor() as usize).min(BINS - 1);
+        bins[b].0 += 1;
+        bins[b].1 += p;
+        bins[b].2 += usize::from(*hit);
+    }
+    let what = if binary {
+        format!("share of class '{}'", oof.classes[1])
+    } else {
+        "share predicted right".to_string()
+    };
+    let x_desc = if binary {
+        format!("predicted probability of '{}'", oof.classes[1])
+    } else {
+        "predicted probability of the predicted class".to_string()
+    };
+    let mut meta = Vec::new();
+    let mut svg = String::new();
+    {
+        let root = SVGBackend::with_string(&mut svg, (WIDTH, WIDTH - 120)).into_drawing_area();
+        root.fill(&WHITE).map_err(plot_err)?;
+        let mut chart = chart_on(
+            &root,
+            format!(
+                "run {run}, candidate {candidate}: calibration of out-of-fold probabilities ({} rows)",
+                obs.len()
+            ),
+            0.0f64..1.0,
+            0.0f64..1.0,
+        )?;
+        draw_mesh(
+            &mut chart,
+            x_desc,
+            format!("observed {what}"),
+            &|v: &f64| tick(*v),
+        )?;
+        chart
+            .draw_series(DashedLineSeries::new(
+                vec![(0.0, 0.0), (1.0, 1.0)],
+                5,
+                4,
+                BLACK.mix(0.5).stroke_width(1),
+            ))
+            .map_err(plot_err)?
+            .label("perfect calibration")
+            .legend(|(x, y)| {
+                PathElement::new(vec![(x, y), (x + 18, y)], BLACK.mix(0.5).stroke_width(1))
+            });
+        let colour = PALETTE[3];
+        let line: Vec<(f64, f64)> = bins
+            .iter()
+            .filter(|b| b.0 > 0)
+            .map(|b| (b.1 / b.0 as f64, b.2 as f64 / b.0 as f64))
+            .collect();
+        line_with_points(
+            &mut chart,
+            &line,
+            colour,
+            "bins of 0.1: mean predicted against observed (numbers: rows)",
+        )?;
+        for (i, b) in bins.iter().enumerate() {
+            if b.0 == 0 {
+                continue;
+            }
+            let at = (b.1 / b.0 as f64, b.2 as f64 / b.0 as f64);
+            chart
+                .draw_series(std::iter::once(Text::new(
+                    format!("{}", b.0),
+                    (at.0, (at.1 + 0.03).min(0.98)),
+                    ("sans-serif", 11),
+                )))
+                .map_err(plot_err)?;
+            let (px, py) = chart.backend_coord(&at);
+            meta.push(json!({
+                "bin": i, "low": i as f64 / BINS as f64, "high": (i + 1) as f64 / BINS as f64,
+                "rows": b.0, "mean_predicted": at.0, "observed": at.1, "px": px, "py": py,
+            }));
+        }
+        draw_legend(&mut chart, SeriesLabelPosition::UpperLeft)?;
+        root.present().map_err(plot_err)?;
+    }
+    // The rows behind the bins (evenly spaced beyond MAX_POINTS), so the picture can be checked.
+    let n = oof.rows.len();
+    let points: Vec<Value> = (0..n.min(MAX_POINTS))
+        .map(|i| {
+            let (fold, row, y, p) = &oof.rows[if n > MAX_POINTS {
+                i * n / MAX_POINTS
+            } else {
+                i
+            }];
+            json!({"fold": fold, "row": row, "class": *y as usize, "probabilities": p})
+        })
+        .collect();
+    let doc = json!({
+        "kind": "calibration",
+        "run": run,
+        "candidate": candidate,
+        "rows": obs.len(),
+        "classes": oof.classes,
+        "bins": meta,
+        "points": points,
+    });
+    Ok(with_metadata(&svg, &doc))
+}
+
+/// A chart on `area` with a caption and room for the axis labels.
+fn chart_on<'a, 'b>(
+    area: &'a DrawingArea<SVGBackend<'b>, plotters::coord::Shift>,
+    caption: impl Into<String>,
+    x: std::ops::Range<f64>,
+    y: std::ops::Range<f64>,
+) -> Result<Chart<'a, 'b>> {
+    ChartBuilder::on(area)
+        .caption(caption.into(), ("sans-serif", 16))
+        .margin(14)
+        .x_label_area_size(44)
+        .y_label_area_size(70)
+        .build_cartesian_2d(x, y)
+        .map_err(plot_err)
+}
+
+type Chart<'a, 'b> = ChartContext<'a, SVGBackend<'b>, Cartesian2d<RangedCoordf64, RangedCoordf64>>;
+
+/// Axes with their descriptions, light grid lines, short tick labels.
+fn draw_mesh(
+    chart: &mut Chart,
+    x_desc: impl Into<String>,
+    y_desc: impl Into<String>,
+    fmt_x: &dyn Fn(&f64) -> String,
+) -> Result<()> {
+    chart
+        .configure_mesh()
+        .x_desc(x_desc.into())
+        .y_desc(y_desc.into())
+        .x_label_formatter(fmt_x)
+        .y_label_formatter(&|v: &f64| tick(*v))
+        .light_line_style(WHITE.mix(0.0))
+        .bold_line_style(BLACK.mix(0.08))
+        .label_style(("sans-serif", 13))
+        .axis_desc_style(("sans-serif", 14))
+        .draw()
+        .map_err(plot_err)
+}
+
+/// A solid line through `pts` with a dot at each, in the legend as `label`.
+fn line_with_points<'a, 'b: 'a>(
+    chart: &mut Chart<'a, 'b>,
+    pts: &[(f64, f64)],
+    colour: RGBColor,
+    label: &str,
+) -> Result<()> {
+    chart
+        .draw_series(LineSeries::new(pts.to_vec(), colour.stroke_width(2)))
+        .map_err(plot_err)?
+        .label(label)
+        .legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 18, y)], colour.stroke_width(2)));
+    chart
+        .draw_series(pts.iter().map(|p| Circle::new(*p, 4, colour.filled())))
+        .map_err(plot_err)?;
+    Ok(())
+}
+
+fn draw_legend<'a, 'b: 'a>(chart: &mut Chart<'a, 'b>, position: SeriesLabelPosition) -> Result<()> {
+    chart
+        .configure_series_labels()
+        .position(position)
+        .background_style(WHITE.mix(0.85))
+        .border_style(BLACK.mix(0.3))
+        .label_font(("sans-serif", 12))
+        .draw()
+        .map_err(plot_err)
 }
 
 /// An axis label: at most 4 significant digits, no trailing zeros.

@@ -286,7 +286,7 @@ fn report_is_one_well_formed_page_with_what_the_ledger_holds() {
     );
     // Both plots inline, as SVG.
     let svgs = doc.descendants().filter(|n| n.has_tag_name("svg")).count();
-    assert_eq!(svgs, 2, "complexity and reveals plots");
+    assert_eq!(svgs, 3, "complexity, residuals and reveals plots");
     // The reveal, the replay, the chain hash and the spec, as stored.
     let reveal_rows = by_id("reveals-table")
         .children()
@@ -314,8 +314,152 @@ fn report_is_one_well_formed_page_with_what_the_ledger_holds() {
         .unwrap();
     assert_eq!(spec, SMALL_SPEC);
     assert!(html.contains("first try"));
+    // Without the data file the report is still written, and says what is missing.
+    std::fs::rename(d.path.join("small.csv"), d.path.join("moved.csv")).unwrap();
+    d.probity(&["report", "1", "--out", out.to_str().unwrap()])
+        .expect(0);
+    let html = std::fs::read_to_string(&out).unwrap();
+    assert!(
+        html.contains("no residuals plot"),
+        "the missing plot is explained"
+    );
+    let moved = d.path.join("moved.csv");
+    d.probity(&[
+        "report",
+        "1",
+        "--data",
+        moved.to_str().unwrap(),
+        "--out",
+        out.to_str().unwrap(),
+    ])
+    .expect(0);
+    assert!(
+        !std::fs::read_to_string(&out)
+            .unwrap()
+            .contains("no residuals plot")
+    );
     // An unknown run is a usage error and writes nothing.
     let r = d.probity(&["report", "7", "--out", "x.html"]).expect(2);
     assert!(r.stderr().contains("no run 7"), "{}", r.stderr());
     assert!(!d.path.join("x.html").exists());
+}
+
+/// The metadata document of a plot.
+fn meta_of(svg: &str) -> Value {
+    let doc = roxmltree::Document::parse(svg).expect("well-formed SVG");
+    serde_json::from_str(
+        doc.descendants()
+            .find(|n| n.has_tag_name("metadata"))
+            .and_then(|n| n.text())
+            .unwrap(),
+    )
+    .unwrap()
+}
+
+/// Stored validation scores of `metric` of one candidate in the first repeat, by fold.
+fn stored_folds(d: &crate::util::Dir, run: &str, candidate: &str, metric: &str) -> Vec<f64> {
+    let text = d
+        .probity(&["export", "folds", "--run", run])
+        .expect(0)
+        .stdout();
+    let mut r = csv::Reader::from_reader(text.as_bytes());
+    r.records()
+        .map(|x| x.unwrap())
+        .filter(|x| &x[1] == candidate && &x[2] == "0" && &x[4] == "validation" && &x[5] == metric)
+        .map(|x| x[6].parse().unwrap())
+        .collect()
+}
+
+#[test]
+fn residuals_are_the_out_of_fold_errors_the_run_scored() {
+    let d = small_dir("plot-residuals");
+    d.probity(&["run", "small.toml"]).expect(0);
+    let show = d.probity(&["show", "1", "--json"]).expect(0).json();
+    let selected = show["selected"].to_string();
+    let meta = meta_of(&svg_of(&d, &["1", "--kind", "residuals"]));
+    let points = meta["points"].as_array().unwrap();
+    // Every development row once (30 of 40 rows; 10 are sealed test rows).
+    assert_eq!(points.len(), 30);
+    let mut rows: Vec<i64> = points.iter().map(|p| p["row"].as_i64().unwrap()).collect();
+    rows.sort();
+    rows.dedup();
+    assert_eq!(rows.len(), 30);
+    // Per fold, the root mean square of the plotted residuals is the rmse the run stored for
+    // that fold (the same fits made again; only the order of the sum may differ).
+    let stored = stored_folds(&d, "1", &selected, "rmse");
+    assert_eq!(stored.len(), 4);
+    for (fold, want) in stored.iter().enumerate() {
+        let r: Vec<f64> = points
+            .iter()
+            .filter(|p| p["fold"] == fold)
+            .map(|p| p["residual"].as_f64().unwrap())
+            .collect();
+        let got = (r.iter().map(|x| x * x).sum::<f64>() / r.len() as f64).sqrt();
+        assert!(
+            (got - want).abs() <= 1e-12 * want,
+            "fold {fold}: {got} vs {want}"
+        );
+    }
+    // Another candidate, by id; an unknown one is refused.
+    let meta = meta_of(&svg_of(
+        &d,
+        &["1", "--kind", "residuals", "--candidate", "5"],
+    ));
+    assert_eq!(meta["candidate"], 5);
+    let r = d
+        .probity(&[
+            "plot",
+            "1",
+            "--kind",
+            "residuals",
+            "--candidate",
+            "99",
+            "--out",
+            "z.svg",
+        ])
+        .expect(2);
+    assert!(r.stderr().contains("no candidate 99"), "{}", r.stderr());
+}
+
+#[test]
+fn calibration_bins_hold_the_out_of_fold_probabilities_the_run_scored() {
+    let d = crate::util::Dir::new("plot-calibration");
+    let ex = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("experiments");
+    d.copy(&ex.join("bays.csv"), "bays.csv");
+    d.copy(&ex.join("outbreak.toml"), "outbreak.toml");
+    d.probity(&["run", "outbreak.toml"]).expect(0);
+    let show = d.probity(&["show", "1", "--json"]).expect(0).json();
+    let selected = show["selected"].to_string();
+    let meta = meta_of(&svg_of(&d, &["1", "--kind", "residuals"]));
+    assert_eq!(meta["kind"], "calibration");
+    let points = meta["points"].as_array().unwrap();
+    let bins = meta["bins"].as_array().unwrap();
+    let in_bins: i64 = bins.iter().map(|b| b["rows"].as_i64().unwrap()).sum();
+    assert_eq!(in_bins as usize, points.len());
+    for b in bins {
+        let m = b["mean_predicted"].as_f64().unwrap();
+        assert!(m >= b["low"].as_f64().unwrap() && m <= b["high"].as_f64().unwrap());
+    }
+    // Per fold, the log-loss of the listed probabilities is the one the run stored.
+    let stored = stored_folds(&d, "1", &selected, "log_loss");
+    assert!(stored.len() >= 2, "{stored:?}");
+    for (fold, want) in stored.iter().enumerate() {
+        let ll: Vec<f64> = points
+            .iter()
+            .filter(|p| p["fold"] == fold)
+            .map(|p| {
+                let c = p["class"].as_u64().unwrap() as usize;
+                -p["probabilities"][c]
+                    .as_f64()
+                    .unwrap()
+                    .clamp(1e-15, 1.0 - 1e-15)
+                    .ln()
+            })
+            .collect();
+        let got = ll.iter().sum::<f64>() / ll.len() as f64;
+        assert!(
+            (got - want).abs() <= 1e-12 * want,
+            "fold {fold}: {got} vs {want}"
+        );
+    }
 }
