@@ -185,16 +185,22 @@ fn fold_scores(d: &crate::util::Dir, run: i64, candidate: i64, metric: &str) -> 
         .collect()
 }
 
-#[test]
-fn compare_tests_two_candidates_on_the_same_folds() {
-    let d = small_dir("compare");
-    // Run 2: the same split with another grid (ridge 10 dropped, ridge 100 added).
+/// Run 1: the small spec. Run 2: the same split with another grid (ridge 10 dropped, ridge 100
+/// added).
+fn same_split_two_grids(name: &str) -> crate::util::Dir {
+    let d = small_dir(name);
     d.write(
         "wider.toml",
         &SMALL_SPEC.replace("lambda = [0.1, 1, 10]", "lambda = [0.1, 1, 100]"),
     );
     d.probity(&["run", "small.toml"]).expect(0);
     d.probity(&["run", "wider.toml"]).expect(0);
+    d
+}
+
+#[test]
+fn compare_tests_two_candidates_on_the_same_folds() {
+    let d = same_split_two_grids("compare");
     let j = d.probity(&["compare", "1", "2", "--json"]).expect(0).json();
     assert_eq!(j["same_folds"], true);
     let fields = j["fields"].as_array().unwrap();
@@ -282,13 +288,7 @@ fn compare_tests_two_candidates_on_the_same_folds() {
 
 #[test]
 fn compare_table_matches_golden() {
-    let d = small_dir("compare-golden");
-    d.write(
-        "wider.toml",
-        &SMALL_SPEC.replace("lambda = [0.1, 1, 10]", "lambda = [0.1, 1, 100]"),
-    );
-    d.probity(&["run", "small.toml"]).expect(0);
-    d.probity(&["run", "wider.toml"]).expect(0);
+    let d = same_split_two_grids("compare-golden");
     let out = d.probity(&["compare", "1", "2"]).expect(0).stdout();
     // The tool version row changes with every release; the rest is fixed by the data and seeds.
     let table: String = out
