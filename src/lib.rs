@@ -5,6 +5,10 @@
 //! the test partition stays sealed. Data flows one way through the modules, in reading order:
 //! spec -> data -> split -> guard -> models/metrics -> runner -> ledger -> report -> cli.
 
+// Panics are bugs: library code returns errors. Tests may unwrap.
+#![deny(clippy::unwrap_used, clippy::expect_used)]
+#![cfg_attr(test, allow(clippy::unwrap_used, clippy::expect_used))]
+
 pub mod cli;
 pub mod compare;
 pub mod data;

@@ -1317,11 +1317,8 @@ pub fn run_recording(
             let cv = cross_validate(
                 spec, table, shared, &entries, &grids, &folds, threads, &mut notes, progress,
             );
-            let keys = side.join().unwrap_or_else(|_| {
-                Err(Error::Internal(
-                    "the thread recording the partition panicked".into(),
-                ))
-            });
+            // A panic there is a bug: carry it on rather than turn it into an error.
+            let keys = side.join().unwrap_or_else(|e| std::panic::resume_unwind(e));
             (cv, keys)
         }),
     };

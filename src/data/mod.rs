@@ -215,7 +215,8 @@ pub fn row_keys(table: &Table, key: Option<usize>, rows: &[usize], threads: usiz
             .collect();
         parts
             .into_iter()
-            .flat_map(|h| h.join().unwrap_or_default())
+            // A worker's panic is a bug: carry it on, never return fewer identities.
+            .flat_map(|h| h.join().unwrap_or_else(|e| std::panic::resume_unwind(e)))
             .collect()
     })
 }
