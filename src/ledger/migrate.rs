@@ -51,9 +51,17 @@ pub fn migrate(conn: &mut Connection, path: &Path) -> Result<()> {
     if version == latest() {
         return Ok(());
     }
+    // IMMEDIATE takes the write lock first (waiting on the busy timeout), and the version is read
+    // again under it: two processes opening a new ledger at once migrate it once, not twice.
     let tx = conn
-        .transaction()
+        .transaction_with_behavior(rusqlite::TransactionBehavior::Immediate)
         .map_err(|e| refuse_or_fail(path, e, "begin migration"))?;
+    let version: i64 = tx
+        .query_row("PRAGMA user_version", [], |r| r.get(0))
+        .map_err(|e| refuse_or_fail(path, e, "read schema version"))?;
+    if version >= latest() {
+        return Ok(());
+    }
     for (name, sql) in &MIGRATIONS[version as usize..] {
         tx.execute_batch(sql).map_err(|e| Error::Ledger {
             context: format!("apply migration {name}"),

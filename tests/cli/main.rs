@@ -3,6 +3,7 @@
 mod bad_input;
 mod classification;
 mod commands;
+mod concurrency;
 mod fixtures;
 mod guard;
 mod listing;
