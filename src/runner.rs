@@ -1909,13 +1909,9 @@ pub struct OutOfFold {
 /// Refit `candidate` (1-based) on each fold's fitting rows of the first repeat, as the run did,
 /// and predict that fold's held-out rows: every development row once (for a fixed validation
 /// partition, its rows). Encoders are fitted on each fold's fitting rows only. Test rows are
-/// never touched.
-pub fn out_of_fold(
-    spec: &Spec,
-    table: &Table,
-    prep: &Prepared,
-    candidate: usize,
-) -> Result<OutOfFold> {
+/// never touched (nor hashed: the split is prepared without the test rows' identities).
+pub fn out_of_fold(spec: &Spec, table: &Table, candidate: usize) -> Result<OutOfFold> {
+    let prep = &prepare_unkeyed(spec, table)?;
     let (entry, params) = candidate_entry(spec, candidate)?;
     if entry.command.is_some() {
         return Err(Error::Input(format!(

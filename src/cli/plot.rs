@@ -74,8 +74,7 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
             }
             // The fits are made again from the stored spec and the checked data file.
             let (spec, table) = super::reveal::reload(&d, a.data.as_deref())?;
-            let prep = crate::runner::prepare(&spec, &table, crate::data::all_cores())?;
-            let oof = crate::runner::out_of_fold(&spec, &table, &prep, candidate as usize)?;
+            let oof = crate::runner::out_of_fold(&spec, &table, candidate as usize)?;
             if oof.classes.is_empty() {
                 crate::report::plot::residuals_svg(a.run, candidate, &oof)?
             } else {

@@ -37,10 +37,8 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
     // The residuals (or calibration) plot refits the selected candidate on each fold, from the
     // stored spec and the data file, which must still be there with the same SHA-256.
     let selected = d.summary.selected;
-    let oof = super::reveal::reload(&d, a.data.as_deref()).and_then(|(spec, table)| {
-        let prep = crate::runner::prepare(&spec, &table, crate::data::all_cores())?;
-        crate::runner::out_of_fold(&spec, &table, &prep, selected as usize)
-    });
+    let oof = super::reveal::reload(&d, a.data.as_deref())
+        .and_then(|(spec, table)| crate::runner::out_of_fold(&spec, &table, selected as usize));
     let mut missing = None;
     match oof {
         Ok(o) if o.classes.is_empty() => plots.push((

@@ -22,24 +22,14 @@ fn complexity_plot_draws_every_candidate_at_its_stored_score() {
     let doc = roxmltree::Document::parse(&svg).expect("the SVG is well-formed XML");
     let root = doc.root_element();
     assert_eq!(root.tag_name().name(), "svg");
-    let texts: Vec<String> = root
-        .descendants()
-        .filter(|n| n.has_tag_name("text"))
-        .map(|n| n.text().unwrap_or("").trim().to_string())
-        .collect();
+    let texts = texts_of(&svg);
     for label in ["lambda (log scale)", "k", "rmse"] {
         assert!(
             texts.iter().any(|t| t == label),
             "no axis label '{label}' in {texts:?}"
         );
     }
-    let meta: Value = serde_json::from_str(
-        root.descendants()
-            .find(|n| n.has_tag_name("metadata"))
-            .and_then(|n| n.text())
-            .expect("plotted points in the metadata"),
-    )
-    .unwrap();
+    let meta = meta_of(&svg);
     let points = meta["points"].as_array().unwrap();
     // ridge x3 and knn x2 have an ordered parameter; the mean baseline has none.
     let show = d.probity(&["show", "1", "--json"]).expect(0).json();
@@ -108,14 +98,6 @@ fn complexity_plot_shows_the_one_se_choice_and_takes_other_metrics() {
     );
     d.probity(&["run", "onese.toml"]).expect(0);
     let show = d.probity(&["show", "1", "--json"]).expect(0).json();
-    let texts_of = |svg: &str| -> Vec<String> {
-        roxmltree::Document::parse(svg)
-            .unwrap()
-            .descendants()
-            .filter(|n| n.has_tag_name("text"))
-            .map(|n| n.text().unwrap_or("").trim().to_string())
-            .collect()
-    };
     // Another metric: its own axis, and no one-SE marks (the rule was applied to rmse).
     let texts = texts_of(&svg_of(&d, &["1", "--metric", "mae"]));
     assert!(texts.iter().any(|t| t == "mae"), "{texts:?}");
@@ -172,24 +154,14 @@ fn reveals_plot_draws_each_reveal_against_its_development_estimate() {
     let show = d.probity(&["show", "1", "--json"]).expect(0).json();
     let svg = svg_of(&d, &["1", "--kind", "reveals"]);
     let doc = roxmltree::Document::parse(&svg).expect("well-formed SVG");
-    let texts: Vec<String> = doc
-        .descendants()
-        .filter(|n| n.has_tag_name("text"))
-        .map(|n| n.text().unwrap_or("").trim().to_string())
-        .collect();
+    let texts = texts_of(&svg);
     for label in ["rmse", "reveal (in the order made)"] {
         assert!(
             texts.iter().any(|t| t == label),
             "no '{label}' in {texts:?}"
         );
     }
-    let meta: Value = serde_json::from_str(
-        doc.descendants()
-            .find(|n| n.has_tag_name("metadata"))
-            .and_then(|n| n.text())
-            .unwrap(),
-    )
-    .unwrap();
+    let meta = meta_of(&svg);
     let points = meta["points"].as_array().unwrap();
     assert_eq!(points.len(), 2);
     let circles: Vec<(i64, i64)> = doc
@@ -342,6 +314,16 @@ fn report_is_one_well_formed_page_with_what_the_ledger_holds() {
     let r = d.probity(&["report", "7", "--out", "x.html"]).expect(2);
     assert!(r.stderr().contains("no run 7"), "{}", r.stderr());
     assert!(!d.path.join("x.html").exists());
+}
+
+/// Every text element of an SVG, trimmed.
+fn texts_of(svg: &str) -> Vec<String> {
+    roxmltree::Document::parse(svg)
+        .expect("well-formed SVG")
+        .descendants()
+        .filter(|n| n.has_tag_name("text"))
+        .map(|n| n.text().unwrap_or("").trim().to_string())
+        .collect()
 }
 
 /// The metadata document of a plot.
