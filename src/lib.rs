@@ -14,6 +14,7 @@ pub mod compare;
 pub mod data;
 pub mod error;
 pub mod external;
+pub mod failpoint;
 pub mod guard;
 pub mod ledger;
 pub mod metrics;

@@ -99,8 +99,7 @@ impl Metric {
         }
         match self {
             Metric::Mse | Metric::Rmse | Metric::Mae | Metric::R2 => {
-                let sae = y.iter().zip(pred).map(|(a, b)| (a - b).abs()).sum::<f64>();
-                Truth::of(y).score(self, sse(y, pred), sae)
+                Truth::of(y).score_sums(self, &ErrorSums::of(y, pred))
             }
             Metric::Accuracy => {
                 let hits = y
@@ -268,8 +267,47 @@ fn radix_sort(v: &mut Vec<u64>) {
     }
 }
 
-fn sse(y: &[f64], pred: &[f64]) -> f64 {
-    y.iter().zip(pred).map(|(a, b)| (a - b) * (a - b)).sum()
+/// Sums of squared and absolute errors, each of the errors divided by `scale`. The scale is 1
+/// unless a plain sum overflows (errors near 1e154 and beyond square past the largest f64);
+/// then it is the largest error, so RMSE, MAE and R2 stay finite and the ordinary case keeps
+/// its bits.
+#[derive(Debug, Clone, Copy)]
+pub struct ErrorSums {
+    pub sse: f64,
+    pub sae: f64,
+    pub scale: f64,
+}
+
+impl ErrorSums {
+    pub fn of(y: &[f64], pred: &[f64]) -> ErrorSums {
+        let sse: f64 = y.iter().zip(pred).map(|(a, b)| (a - b) * (a - b)).sum();
+        let sae: f64 = y.iter().zip(pred).map(|(a, b)| (a - b).abs()).sum();
+        if sse.is_finite() && sae.is_finite() {
+            return ErrorSums {
+                sse,
+                sae,
+                scale: 1.0,
+            };
+        }
+        // An error that is itself infinite (or NaN) stays so: scaling cannot rescue it.
+        let big = y
+            .iter()
+            .zip(pred)
+            .fold(0.0f64, |m, (a, b)| m.max((a - b).abs()));
+        if !(big.is_finite() && big > 0.0) {
+            return ErrorSums {
+                sse,
+                sae,
+                scale: 1.0,
+            };
+        }
+        let e = |a: &f64, b: &f64| (a - b) / big;
+        ErrorSums {
+            sse: y.iter().zip(pred).map(|(a, b)| e(a, b) * e(a, b)).sum(),
+            sae: y.iter().zip(pred).map(|(a, b)| e(a, b).abs()).sum(),
+            scale: big,
+        }
+    }
 }
 
 /// What the regression metrics need from the true values of a set of rows besides the sums
@@ -278,8 +316,11 @@ fn sse(y: &[f64], pred: &[f64]) -> f64 {
 #[derive(Debug, Clone, Copy)]
 pub struct Truth {
     pub n: usize,
-    /// Total sum of squares about the mean; `None` when the rows hold one distinct value.
+    /// Total sum of squares about the mean, of the deviations divided by `scale`; `None` when
+    /// the rows hold one distinct value.
     pub sst: Option<f64>,
+    /// 1 unless the plain sum overflows; then the largest deviation (as in `ErrorSums`).
+    pub scale: f64,
 }
 
 impl Truth {
@@ -290,8 +331,22 @@ impl Truth {
     /// `of` for the rows `rows` of `y` (in that order), without copying them out.
     pub fn of_rows(y: &[f64], rows: impl Iterator<Item = usize> + Clone) -> Truth {
         let n = rows.clone().count();
-        let mean = rows.clone().map(|i| y[i]).sum::<f64>() / n.max(1) as f64;
-        let sst: f64 = rows.clone().map(|i| (y[i] - mean) * (y[i] - mean)).sum();
+        let nf = n.max(1) as f64;
+        let mut mean = rows.clone().map(|i| y[i]).sum::<f64>() / nf;
+        if !mean.is_finite() {
+            // The sum overflowed (values near the largest f64); the mean itself is in range.
+            mean = rows.clone().map(|i| y[i] / nf).sum::<f64>();
+        }
+        let mut sst: f64 = rows.clone().map(|i| (y[i] - mean) * (y[i] - mean)).sum();
+        let mut scale = 1.0;
+        if !sst.is_finite() {
+            let big = rows.clone().fold(0.0f64, |m, i| m.max((y[i] - mean).abs()));
+            if big.is_finite() && big > 0.0 {
+                let d = |i: usize| (y[i] - mean) / big;
+                sst = rows.clone().map(|i| d(i) * d(i)).sum();
+                scale = big;
+            }
+        }
         // One distinct value among the scored rows (always so with leave-one-out).
         let mut values = rows.map(|i| y[i]);
         let first = values.next();
@@ -299,20 +354,43 @@ impl Truth {
         Truth {
             n,
             sst: (!constant).then_some(sst),
+            scale,
         }
     }
 
     /// A regression metric from the sums of squared and absolute errors, taken in row order.
     pub fn score(&self, m: Metric, sse: f64, sae: f64) -> Option<f64> {
+        self.score_sums(
+            m,
+            &ErrorSums {
+                sse,
+                sae,
+                scale: 1.0,
+            },
+        )
+    }
+
+    /// `score` from sums that may be scaled. With both scales 1 (every ordinary case) this is
+    /// the plain formula, bit for bit.
+    pub fn score_sums(&self, m: Metric, e: &ErrorSums) -> Option<f64> {
         if self.n == 0 {
             return None;
         }
         let n = self.n as f64;
+        let s = e.scale;
         match m {
-            Metric::Mse => Some(sse / n),
-            Metric::Rmse => Some((sse / n).sqrt()),
-            Metric::Mae => Some(sae / n),
-            Metric::R2 => self.sst.map(|sst| 1.0 - sse / sst),
+            // Absent when it exceeds the largest f64 (errors near 1e154 and beyond): an
+            // infinite score would turn every mean and standard error built on it into NaN.
+            Metric::Mse => Some(s * s * (e.sse / n)).filter(|v| v.is_finite()),
+            Metric::Rmse if s == 1.0 => Some((e.sse / n).sqrt()),
+            Metric::Rmse => Some(s * (e.sse / n).sqrt()),
+            Metric::Mae if s == 1.0 => Some(e.sae / n),
+            Metric::Mae => Some(s * (e.sae / n)),
+            Metric::R2 if s == 1.0 && self.scale == 1.0 => self.sst.map(|sst| 1.0 - e.sse / sst),
+            Metric::R2 => self.sst.map(|sst| {
+                let ratio = s / self.scale;
+                1.0 - (e.sse * ratio) * ratio / sst
+            }),
             _ => None,
         }
     }
@@ -323,9 +401,11 @@ pub fn score_all(metrics: &[Metric], y: &[f64], pred: &[f64], classes: usize) ->
     if classes == 0 && metrics.iter().all(|m| !m.is_classification()) {
         // The regression metrics share their sums: take them once.
         let truth = Truth::of(y);
-        let sae = y.iter().zip(pred).map(|(a, b)| (a - b).abs()).sum::<f64>();
-        let sse = sse(y, pred);
-        return metrics.iter().map(|&m| truth.score(m, sse, sae)).collect();
+        let sums = ErrorSums::of(y, pred);
+        return metrics
+            .iter()
+            .map(|&m| truth.score_sums(m, &sums))
+            .collect();
     }
     metrics.iter().map(|m| m.score(y, pred, classes)).collect()
 }
@@ -338,12 +418,32 @@ pub fn mean_se(values: &[Option<f64>]) -> (Option<f64>, Option<f64>) {
         return (None, None);
     }
     let n = v.len() as f64;
-    let mean = v.iter().sum::<f64>() / n;
+    let mut mean = v.iter().sum::<f64>() / n;
+    if !mean.is_finite() {
+        // The sum overflowed (values near the largest f64); the mean itself is in range.
+        mean = v.iter().map(|x| x / n).sum::<f64>();
+    }
     if v.len() < 2 {
         return (Some(mean), None);
     }
-    let var = v.iter().map(|x| (x - mean) * (x - mean)).sum::<f64>() / (n - 1.0);
-    (Some(mean), Some((var / n).sqrt()))
+    let (var, scale) = scaled_variance(&v, mean, n - 1.0);
+    (Some(mean), Some(scale * (var / n).sqrt()))
+}
+
+/// The sum of squared deviations from `mean` over `divisor`, as (that / scale^2, scale). The
+/// scale is 1 unless the plain sum overflows (deviations near 1e154 and beyond); then it is the
+/// largest deviation, so `scale * sqrt(value)` stays finite and ordinary values keep their bits.
+pub fn scaled_variance(v: &[f64], mean: f64, divisor: f64) -> (f64, f64) {
+    let var = v.iter().map(|x| (x - mean) * (x - mean)).sum::<f64>() / divisor;
+    if var.is_finite() || !mean.is_finite() {
+        return (var, 1.0);
+    }
+    let big = v.iter().fold(0.0f64, |b, x| b.max((x - mean).abs()));
+    if !(big.is_finite() && big > 0.0) {
+        return (var, 1.0);
+    }
+    let d = |x: &f64| (x - mean) / big;
+    (v.iter().map(|x| d(x) * d(x)).sum::<f64>() / divisor, big)
 }
 
 #[cfg(test)]

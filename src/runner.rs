@@ -843,7 +843,9 @@ fn run_task(
         };
         if let Some(fits) = gram.solve(&lambdas) {
             let (on_fit, on_score) = error_sums_both(&src, &fold.fit, &fold.score, &fits);
-            return gram_task(prep, entry, grid, fold, &on_fit, &on_score);
+            if let Some(out) = gram_task(prep, grid, fold, &on_fit, &on_score) {
+                return Ok(out);
+            }
         }
     }
     let model = model_for(entry, nc);
@@ -913,22 +915,26 @@ fn run_task(
 }
 
 /// A fold's scores from its error sums on the fitting and held-out rows (per grid point:
-/// squared, absolute).
+/// squared, absolute); `None` when a sum overflowed (errors near 1e154 and beyond), so the
+/// task runs alone and its metrics take the scaled sums.
 fn gram_task(
     prep: &Prepared,
-    entry: &ModelSpec,
     grid: &[Params],
     fold: &crate::split::Fold,
     on_fit: &[(f64, f64)],
     on_score: &[(f64, f64)],
-) -> Result<TaskOut> {
+) -> Option<TaskOut> {
+    if on_fit
+        .iter()
+        .chain(on_score)
+        .any(|s| !(s.0.is_finite() && s.1.is_finite()))
+    {
+        return None;
+    }
     let tf = Truth::of_rows(&prep.target, fold.fit.iter().copied());
     let ts = Truth::of_rows(&prep.target, fold.score.iter().copied());
     let mut scores = Vec::with_capacity(grid.len());
-    for (g, (f, s)) in on_fit.iter().zip(on_score).enumerate() {
-        if ![f.0, f.1, s.0, s.1].iter().all(|v| v.is_finite()) {
-            return Err(not_finite(entry, &grid[g]));
-        }
+    for (f, s) in on_fit.iter().zip(on_score) {
         let of = |t: &Truth, sums: &(f64, f64)| -> Scores {
             prep.metrics
                 .iter()
@@ -937,7 +943,7 @@ fn gram_task(
         };
         scores.push(Ok((of(&tf, f), of(&ts, s))));
     }
-    Ok(TaskOut {
+    Some(TaskOut {
         scores,
         notes: Notes::new(),
     })
@@ -1033,14 +1039,8 @@ fn sweep_folds(
             let on_score: Vec<(f64, f64)> = (0..fold_fits.len())
                 .map(|k| (lane(k)[2][k % FITS], lane(k)[3][k % FITS]))
                 .collect();
-            out[f * entries.len() + e] = Some(gram_task(
-                prep,
-                &entries[*e],
-                &grids[*e],
-                &folds[f],
-                &on_fit,
-                &on_score,
-            ));
+            out[f * entries.len() + e] =
+                gram_task(prep, &grids[*e], &folds[f], &on_fit, &on_score).map(Ok);
         }
     }
     out
@@ -1273,9 +1273,15 @@ pub fn run_reporting(
     run_recording(spec, table, threads, progress, None)
 }
 
-/// Called with the prepared split and its test rows' identities once the spec has passed every
-/// check, on a thread of its own while the grid runs (the CLI stores the partition then).
-pub type Recorder<'a> = dyn FnMut(&Prepared, &[crate::data::RowKey]) -> Result<()> + Send + 'a;
+/// What the CLI stores while a run goes on: its start once the spec has passed every check,
+/// before the grid; then, on a thread of its own while the grid runs, the prepared split and
+/// its test rows' identities.
+pub trait Recorder: Send {
+    /// Every check has passed and the grid is about to begin (the place to record a start).
+    fn started(&mut self, prep: &Prepared) -> Result<()>;
+    /// The test rows' identities, in key order, while the grid runs.
+    fn partition(&mut self, prep: &Prepared, keys: &[crate::data::RowKey]) -> Result<()>;
+}
 
 /// `run_reporting`, handing `record` the partition beside the grid: hashing the test rows and
 /// storing them then costs no time of their own on a machine with a core to spare. The
@@ -1285,7 +1291,7 @@ pub fn run_recording(
     table: &Table,
     threads: usize,
     progress: &(dyn Fn(usize, usize) + Sync),
-    record: Option<&mut Recorder>,
+    record: Option<&mut dyn Recorder>,
 ) -> Result<RunOutcome> {
     let mut prep = prepare_unkeyed(spec, table)?;
     let entries = entries(spec);
@@ -1305,22 +1311,26 @@ pub fn run_recording(
             );
             (cv, Ok(keys))
         }
-        Some(record) => std::thread::scope(|s| {
-            let shared = &prep;
-            let side = s.spawn(move || -> Result<Vec<crate::data::RowKey>> {
-                let mut keys = shared.hash_test_keys(table, threads);
-                // In key order, as the ledger stores them (it need not sort a copy).
-                keys.sort_unstable();
-                record(shared, &keys)?;
-                Ok(keys)
-            });
-            let cv = cross_validate(
-                spec, table, shared, &entries, &grids, &folds, threads, &mut notes, progress,
-            );
-            // A panic there is a bug: carry it on rather than turn it into an error.
-            let keys = side.join().unwrap_or_else(|e| std::panic::resume_unwind(e));
-            (cv, keys)
-        }),
+        Some(record) => {
+            record.started(&prep)?;
+            std::thread::scope(|s| {
+                let shared = &prep;
+                let side = s.spawn(move || -> Result<Vec<crate::data::RowKey>> {
+                    let mut keys = shared.hash_test_keys(table, threads);
+                    // In key order, as the ledger stores them (it need not sort a copy).
+                    keys.sort_unstable();
+                    record.partition(shared, &keys)?;
+                    Ok(keys)
+                });
+                crate::failpoint::pause("run:grid");
+                let cv = cross_validate(
+                    spec, table, shared, &entries, &grids, &folds, threads, &mut notes, progress,
+                );
+                // A panic there is a bug: carry it on rather than turn it into an error.
+                let keys = side.join().unwrap_or_else(|e| std::panic::resume_unwind(e));
+                (cv, keys)
+            })
+        }
     };
     // The grid's error first: it is the user's to fix.
     let (candidates, dev_gram) = cv?;

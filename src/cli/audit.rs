@@ -21,6 +21,8 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
     let ledger = open_existing(g)?;
     let (entries, breaks) = ledger.verify()?;
     let head = ledger.head()?;
+    // Reported, never counted against the chain: an interrupted run stored nothing.
+    let starts = ledger.unfinished()?;
     let chain = json!({
         "entries": entries,
         "head": head,
@@ -29,9 +31,13 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
     });
     if a.verify {
         if a.json {
-            out_json(&json!({"chain": chain}))?;
+            out_json(
+                &json!({"chain": chain, "unfinished": crate::report::json::unfinished(&starts)}),
+            )?;
         } else {
-            out(&crate::report::table::chain(&chain))?;
+            let mut text = crate::report::table::chain(&chain);
+            text.push_str(&crate::report::table::unfinished(&starts));
+            out(&text)?;
         }
         return Ok(if breaks.is_empty() { 0 } else { 4 });
     }
@@ -80,10 +86,13 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
     }
     let warnings = ledger.overlap_findings()?;
     if a.json {
-        out_json(&json!({"partitions": rows, "warnings": warnings, "chain": chain}))?;
+        out_json(
+            &json!({"partitions": rows, "warnings": warnings, "chain": chain, "unfinished": crate::report::json::unfinished(&starts)}),
+        )?;
     } else {
         let mut text = crate::report::table::audit(&rows, &warnings);
         text.push_str(&crate::report::table::chain(&chain));
+        text.push_str(&crate::report::table::unfinished(&starts));
         out(&text)?;
     }
     // A broken chain outranks a spent budget: nothing else in the ledger can be trusted.

@@ -17,16 +17,32 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
     let ledger = open_existing(g)?;
     let filter = a.select.filter(&ledger)?;
     let runs = ledger.history_where(&filter)?;
+    let starts: Vec<_> = ledger
+        .unfinished()?
+        .into_iter()
+        .filter(|u| {
+            filter
+                .experiment
+                .as_ref()
+                .is_none_or(|e| *e == u.experiment)
+                && filter.since.as_ref().is_none_or(|s| u.started_at >= *s)
+        })
+        .collect();
     if a.json {
-        out_json(&crate::report::json::history(&runs))?;
-    } else if runs.is_empty() {
-        out(if filter.since.is_some() || filter.experiment.is_some() {
+        out_json(&crate::report::json::history(&runs, &starts))?;
+        return Ok(0);
+    }
+    let mut text = if runs.is_empty() {
+        (if filter.since.is_some() || filter.experiment.is_some() {
             "no run matches\n"
         } else {
             "no runs yet\n"
-        })?;
+        })
+        .to_string()
     } else {
-        out(&crate::report::table::history(&runs))?;
-    }
+        crate::report::table::history(&runs)
+    };
+    text.push_str(&crate::report::table::unfinished(&starts));
+    out(&text)?;
     Ok(0)
 }

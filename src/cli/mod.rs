@@ -66,6 +66,10 @@ pub enum Command {
 
 /// Parse the process arguments, run, print any error; returns the exit code.
 pub fn main() -> i32 {
+    // The crash tests' pause points (src/failpoint.rs); unset in ordinary use.
+    if let Ok(point) = std::env::var("PROBITY_PAUSE_AT") {
+        crate::failpoint::arm(point);
+    }
     let cli = match Cli::try_parse() {
         Ok(c) => c,
         Err(e) => {
@@ -273,6 +277,24 @@ pub(crate) fn load_inputs(
     }
     let table = crate::data::load(&spec.data.path, &text, threads)?;
     Ok((spec, table))
+}
+
+/// What a run's start records (`Ledger::begin_run`).
+pub(crate) fn start_info(
+    spec: &crate::spec::Spec,
+    table: &crate::data::Table,
+    spec_path: String,
+    started: &chrono::DateTime<chrono::Utc>,
+) -> crate::ledger::starts::StartInfo {
+    crate::ledger::starts::StartInfo {
+        experiment: spec.name.clone(),
+        started_at: started.to_rfc3339_opts(chrono::SecondsFormat::Millis, true),
+        user: user(),
+        host: host(),
+        spec_path,
+        spec_hash: spec.canonical_hash(),
+        data_sha256: table.sha256.clone(),
+    }
 }
 
 pub(crate) fn host() -> String {

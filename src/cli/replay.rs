@@ -55,9 +55,61 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
         .unwrap_or_else(|| std::thread::available_parallelism().map_or(1, |n| n.get()))
         .max(1);
     let started = chrono::Utc::now();
+    // A replay is a run: its start is recorded, so a killed replay shows as interrupted.
+    let start = ledger.begin_run(&super::start_info(
+        &spec,
+        &table,
+        d.spec_path.clone(),
+        &started,
+    ))?;
+    let stored = replay_and_store(
+        &mut ledger,
+        &a,
+        &d,
+        &spec,
+        &table,
+        threads,
+        started,
+        start.id,
+    );
+    match stored {
+        Ok(doc) => {
+            start.release();
+            let identical = doc["identical"] == json!(true);
+            if a.json {
+                out_json(&doc)?;
+            } else {
+                out(&crate::report::table::replay(&doc))?;
+            }
+            Ok(if identical { 0 } else { 5 })
+        }
+        Err(e) => {
+            if let Err(f) = ledger.abandon_run(start) {
+                super::warn(&format!(
+                    "the start of this replay stays in the ledger (shown as interrupted): {f}"
+                ));
+            }
+            Err(e)
+        }
+    }
+}
+
+/// Run the stored spec again, compare, and store the replay with its verdict; the JSON
+/// document both outputs are made from.
+#[allow(clippy::too_many_arguments)]
+fn replay_and_store(
+    ledger: &mut crate::ledger::Ledger,
+    a: &Args,
+    d: &crate::ledger::RunDetail,
+    spec: &crate::spec::Spec,
+    table: &crate::data::Table,
+    threads: usize,
+    started: chrono::DateTime<chrono::Utc>,
+    start: i64,
+) -> Result<serde_json::Value> {
     let outcome = {
         let progress = super::progress::Progress::start(a.json);
-        crate::runner::run_reporting(&spec, &table, threads, &|d, t| progress.tasks(d, t))?
+        crate::runner::run_reporting(spec, table, threads, &|d, t| progress.tasks(d, t))?
     };
     let cmp = ledger.compare(a.run, &spec.canonical_hash(), &outcome)?;
     let identical = cmp.differences.is_empty();
@@ -88,8 +140,9 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
             differences: serde_json::to_string(&shown)
                 .map_err(|e| Error::Internal(e.to_string()))?,
         }),
+        start: Some(start),
     };
-    let id = ledger.write_run(&spec, &table, &outcome, &meta)?;
+    let id = ledger.write_run(spec, table, &outcome, &meta)?;
     let doc = json!({
         "run": id,
         "replay_of": a.run,
@@ -101,10 +154,5 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
         "stored": {"tool_version": stored_version, "tool_commit": stored_commit, "target": stored_target, "threads": stored_threads},
         "replayed": {"tool_version": env!("CARGO_PKG_VERSION"), "tool_commit": env!("PROBITY_GIT_COMMIT"), "target": env!("PROBITY_TARGET"), "threads": threads},
     });
-    if a.json {
-        out_json(&doc)?;
-    } else {
-        out(&crate::report::table::replay(&doc))?;
-    }
-    Ok(if identical { 0 } else { 5 })
+    Ok(doc)
 }

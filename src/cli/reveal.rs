@@ -267,6 +267,7 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
     };
     // Written before anything is printed: a score the user saw is never missing from the count.
     let id = ledger.write_reveal(&record)?;
+    crate::failpoint::pause("reveal:print");
 
     let exact = matches!(spec.guard.mode, crate::spec::GuardMode::Count);
     let mut warnings = Vec::new();

@@ -2,8 +2,12 @@
 //! leaderboard and the run id.
 
 use super::{Global, absolute, load_inputs, open_for_write, out, out_json, warn};
+use crate::data::{RowKey, Table};
 use crate::error::Result;
-use crate::ledger::RunMeta;
+use crate::ledger::starts::{RunStart, StartInfo};
+use crate::ledger::{Ledger, RunMeta};
+use crate::runner::Prepared;
+use crate::spec::Spec;
 use std::path::PathBuf;
 
 /// Run an experiment: every candidate on every fold, stored in the ledger
@@ -22,6 +26,72 @@ pub struct Args {
     pub json: bool,
 }
 
+/// What a run stores while its grid goes on: the start (its own small transaction, before the
+/// grid), then the partition (its own transaction, beside the grid). A new ledger is created
+/// only here, once the spec has passed every check, so a refused spec leaves no trace on disk.
+struct Store<'a> {
+    g: &'a Global,
+    spec: &'a Spec,
+    table: &'a Table,
+    info: StartInfo,
+    ledger: Option<Ledger>,
+    start: Option<RunStart>,
+    /// The partition's id when this run brought it into the ledger.
+    fresh: Option<String>,
+}
+
+impl Store<'_> {
+    fn ledger(&mut self) -> Result<&mut Ledger> {
+        if self.ledger.is_none() {
+            self.ledger = Some(open_for_write(self.g)?);
+        }
+        self.ledger
+            .as_mut()
+            .ok_or_else(|| crate::error::Error::Internal("no ledger".into()))
+    }
+
+    /// Undo what a failed run stored: its start and a partition nothing else uses. The run's
+    /// own error is the one reported; a failure here is only a warning.
+    fn forget(&mut self) {
+        let (start, fresh) = (self.start.take(), self.fresh.take());
+        let Some(l) = self.ledger.as_mut() else {
+            return;
+        };
+        if let Some(id) = fresh
+            && let Err(f) = l.forget_partition(&id)
+        {
+            warn(&format!(
+                "the partition {id} stays in the ledger unused: {f}"
+            ));
+        }
+        if let Some(s) = start {
+            let id = s.id;
+            if let Err(f) = l.abandon_run(s) {
+                warn(&format!(
+                    "the start {id} of this run stays in the ledger (shown as interrupted): {f}"
+                ));
+            }
+        }
+    }
+}
+
+impl crate::runner::Recorder for Store<'_> {
+    fn started(&mut self, _prep: &Prepared) -> Result<()> {
+        let info = self.info.clone();
+        let start = self.ledger()?.begin_run(&info)?;
+        self.start = Some(start);
+        Ok(())
+    }
+
+    fn partition(&mut self, prep: &Prepared, keys: &[RowKey]) -> Result<()> {
+        let (spec, table) = (self.spec, self.table);
+        if self.ledger()?.record_partition(spec, table, prep, keys)? {
+            self.fresh = Some(prep.partition_id.clone());
+        }
+        Ok(())
+    }
+}
+
 pub fn run(g: &Global, a: Args) -> Result<i32> {
     let started = chrono::Utc::now();
     let mut phases = super::Phases::start();
@@ -31,8 +101,7 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
     let (spec, table) = load_inputs(&a.spec, threads)?;
     phases.mark("load");
     // An existing ledger is opened (and migrated) before the long work, so a bad ledger fails
-    // fast; a new one is created only once the run has succeeded, so a refused spec leaves no
-    // trace on disk.
+    // fast; a new one is created only once the checks have passed (`Store`).
     let (path, _) = crate::ledger::locate(g.ledger.as_deref(), &super::cwd()?);
     let early = if path.exists() {
         Some(open_for_write(g)?)
@@ -51,65 +120,56 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
             ),
         });
     }
-    // The partition is stored in its own transaction while the grid runs (once the spec has
-    // passed every check, so a refused spec still leaves no ledger behind).
-    let mut slot = early;
-    let mut fresh: Option<String> = None;
-    let mut record = |prep: &crate::runner::Prepared, keys: &[crate::data::RowKey]| -> Result<()> {
-        let ledger = match &mut slot {
-            Some(l) => l,
-            None => slot.insert(open_for_write(g)?),
-        };
-        if ledger.record_partition(&spec, &table, prep, keys)? {
-            fresh = Some(prep.partition_id.clone());
-        }
-        Ok(())
+    let mut store = Store {
+        g,
+        spec: &spec,
+        table: &table,
+        info: super::start_info(&spec, &table, absolute(&a.spec), &started),
+        ledger: early,
+        start: None,
+        fresh: None,
     };
     let outcome = crate::runner::run_recording(
         &spec,
         &table,
         threads,
         &|d, t| progress.tasks(d, t),
-        Some(&mut record),
+        Some(&mut store),
     );
-    let mut outcome = match outcome {
-        Ok(o) => o,
+    let stored = outcome.and_then(|mut outcome| {
+        progress.phase("writing the ledger");
+        phases.mark("run");
+        let meta = RunMeta {
+            started_at: started.to_rfc3339_opts(chrono::SecondsFormat::Millis, true),
+            finished_at: chrono::Utc::now().to_rfc3339_opts(chrono::SecondsFormat::Millis, true),
+            tool_version: env!("CARGO_PKG_VERSION").to_string(),
+            user: super::user(),
+            host: super::host(),
+            threads,
+            spec_path: absolute(&a.spec),
+            data_path: absolute(&spec.data.path),
+            note: a.note.clone(),
+            tool_commit: env!("PROBITY_GIT_COMMIT").to_string(),
+            target_triple: env!("PROBITY_TARGET").to_string(),
+            replay: None,
+            start: store.start.as_ref().map(|s| s.id),
+        };
+        let ledger = store.ledger()?;
+        exposure_warnings(ledger, &table, &mut outcome)?;
+        phases.mark("exposure");
+        ledger.write_run(&spec, &table, &outcome, &meta)
+    });
+    let id = match stored {
+        Ok(id) => id,
         Err(e) => {
-            // A run that failed leaves no partition it brought in; keep the first error.
-            if let (Some(l), Some(id)) = (slot.as_mut(), &fresh)
-                && let Err(f) = l.forget_partition(id)
-            {
-                warn(&format!(
-                    "the partition {id} stays in the ledger unused: {f}"
-                ));
-            }
+            store.forget();
             return Err(e);
         }
     };
-    progress.phase("writing the ledger");
-    phases.mark("run");
-    let mut ledger = match slot {
-        Some(l) => l,
-        None => open_for_write(g)?,
-    };
-    let finished = chrono::Utc::now();
-    let meta = RunMeta {
-        started_at: started.to_rfc3339_opts(chrono::SecondsFormat::Millis, true),
-        finished_at: finished.to_rfc3339_opts(chrono::SecondsFormat::Millis, true),
-        tool_version: env!("CARGO_PKG_VERSION").to_string(),
-        user: super::user(),
-        host: super::host(),
-        threads,
-        spec_path: absolute(&a.spec),
-        data_path: absolute(&spec.data.path),
-        note: a.note.clone(),
-        tool_commit: env!("PROBITY_GIT_COMMIT").to_string(),
-        target_triple: env!("PROBITY_TARGET").to_string(),
-        replay: None,
-    };
-    exposure_warnings(&ledger, &table, &mut outcome)?;
-    phases.mark("exposure");
-    let id = ledger.write_run(&spec, &table, &outcome, &meta)?;
+    if let Some(s) = store.start.take() {
+        s.release();
+    }
+    let ledger = store.ledger()?;
     drop(progress);
     phases.mark("ledger");
     let detail = ledger

@@ -90,9 +90,13 @@ pub fn percentile_interval(mut reps: Vec<f64>, confidence: f64) -> Option<(f64, 
     // A small guard keeps 2000 * 0.025 = 50 from landing on 51 through rounding.
     let lo = ((b as f64 * a) - 1e-9).ceil().max(1.0) as usize;
     let hi = ((b as f64 * (1.0 - a)) - 1e-9).ceil().clamp(1.0, b as f64) as usize;
-    let mean = reps.iter().sum::<f64>() / b as f64;
-    let sd = (reps.iter().map(|v| (v - mean) * (v - mean)).sum::<f64>() / (b as f64 - 1.0)).sqrt();
-    Some((reps[lo - 1], reps[hi - 1], sd))
+    let mut mean = reps.iter().sum::<f64>() / b as f64;
+    if !mean.is_finite() {
+        // The sum overflowed (values near the largest f64); the mean itself is in range.
+        mean = reps.iter().map(|v| v / b as f64).sum::<f64>();
+    }
+    let (var, scale) = crate::metrics::scaled_variance(&reps, mean, b as f64 - 1.0);
+    Some((reps[lo - 1], reps[hi - 1], scale * var.sqrt()))
 }
 
 /// Laplace(0, scale) from a uniform u in (0, 1) by the inverse CDF:

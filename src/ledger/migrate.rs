@@ -27,6 +27,10 @@ pub const MIGRATIONS: &[(&str, &str)] = &[
         "0005_scores_without_rowid.sql",
         include_str!("../../migrations/0005_scores_without_rowid.sql"),
     ),
+    (
+        "0006_run_starts.sql",
+        include_str!("../../migrations/0006_run_starts.sql"),
+    ),
 ];
 
 /// The schema version this binary writes.

@@ -4,6 +4,7 @@
 pub mod bundle;
 pub mod chain;
 pub mod migrate;
+pub mod starts;
 
 use crate::error::{Error, Result};
 use crate::runner::{RunOutcome, Scores};
@@ -41,6 +42,8 @@ pub struct RunMeta {
     pub target_triple: String,
     /// Set when this run is the replay of another, with the comparison's result.
     pub replay: Option<ReplayRecord>,
+    /// The start this run recorded (`Ledger::begin_run`), deleted as the run is stored.
+    pub start: Option<i64>,
 }
 
 /// The outcome of a replay, stored with the replay's own run.
@@ -421,6 +424,12 @@ impl Ledger {
             .map_err(fail)?;
         }
         chain::append(&tx, "run", run, None)?;
+        if let Some(start) = meta.start {
+            // The start and the stored run are never both present, nor both absent.
+            tx.execute("DELETE FROM run_starts WHERE id = ?1", [start])
+                .map_err(fail)?;
+        }
+        crate::failpoint::pause("run:commit");
         tx.commit().map_err(fail)?;
         Ok(run)
     }
@@ -672,6 +681,7 @@ impl Ledger {
             "replays",
             "notes",
             "chain",
+            "run_starts",
         ] {
             let n: i64 = self
                 .conn
@@ -819,6 +829,7 @@ impl Ledger {
             }
         }
         chain::append(&tx, "reveal", id, None)?;
+        crate::failpoint::pause("reveal:commit");
         tx.commit().map_err(fail)?;
         Ok(id)
     }

@@ -50,10 +50,22 @@ pub fn mean_sd(x: &Matrix) -> (Vec<f64>, Vec<f64>) {
     let mut sds = Vec::with_capacity(x.cols);
     for j in 0..x.cols {
         let c = x.col(j);
-        let m = c.iter().sum::<f64>() / n;
+        let mut m = c.iter().sum::<f64>() / n;
+        if !m.is_finite() {
+            // The sum overflowed (values near the largest f64); the mean itself is in range.
+            m = c.iter().map(|v| v / n).sum::<f64>();
+        }
         // Two-pass variance: exact enough for the reference checks, no cancellation.
         let v = c.iter().map(|v| (v - m) * (v - m)).sum::<f64>() / n;
-        let sd = v.sqrt();
+        let mut sd = v.sqrt();
+        if !sd.is_finite() {
+            // Deviations near 1e154 and beyond square past the largest f64: divide by the
+            // largest first (only here, so ordinary columns keep their bits).
+            let big = c.iter().fold(0.0f64, |b, v| b.max((v - m).abs()));
+            if big.is_finite() {
+                sd = big * (c.iter().map(|v| ((v - m) / big).powi(2)).sum::<f64>() / n).sqrt();
+            }
+        }
         means.push(m);
         sds.push(if sd > 0.0 && sd.is_finite() { sd } else { 1.0 });
     }

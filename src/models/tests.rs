@@ -244,6 +244,13 @@ fn huge_values_do_not_overflow() {
             .unwrap();
         let pred = f.predict(&Matrix::from_cols(10, std::slice::from_ref(&x)));
         assert!(pred.iter().all(|v| v.is_finite()), "{family:?}: {pred:?}");
+        if family == Family::Ols {
+            // y = x - 1e300 exactly: least squares must find it, not treat x as constant
+            // (its squared deviations overflow unless scaled first).
+            for (p, t) in pred.iter().zip(&y) {
+                assert!((p - t).abs() <= 1e-9 * 1e300, "{p} vs {t}");
+            }
+        }
     }
 }
 

@@ -92,8 +92,31 @@ pub fn show(d: &RunDetail) -> Value {
 }
 
 /// `history --json`.
-pub fn history(runs: &[RunSummary]) -> Value {
+/// Runs that recorded a start but were never stored (`history --json` and `audit --json`).
+pub fn unfinished(starts: &[crate::ledger::starts::Unfinished]) -> Value {
+    Value::Array(
+        starts
+            .iter()
+            .map(|u| {
+                json!({
+                    "start": u.id,
+                    "experiment": u.experiment,
+                    "started_at": u.started_at,
+                    "state": u.state.name(),
+                    "user": u.user,
+                    "host": u.host,
+                    "pid": u.pid,
+                    "data_sha256": u.data_sha256,
+                    "spec_path": u.spec_path,
+                })
+            })
+            .collect(),
+    )
+}
+
+pub fn history(runs: &[RunSummary], starts: &[crate::ledger::starts::Unfinished]) -> Value {
     json!({
+        "unfinished": unfinished(starts),
         "runs": runs.iter().map(|r| json!({
             "run": r.id,
             "experiment": r.experiment,

@@ -96,6 +96,42 @@ pub fn leaderboard(d: &RunDetail, limit: Option<usize>) -> String {
 }
 
 /// The `history` table.
+/// Runs that recorded a start but were never stored: still going, or killed. Empty when none.
+pub fn unfinished(starts: &[crate::ledger::starts::Unfinished]) -> String {
+    if starts.is_empty() {
+        return String::new();
+    }
+    let mut t = new_table(vec![
+        "start",
+        "experiment",
+        "started (UTC)",
+        "state",
+        "by",
+        "pid",
+        "data",
+        "spec",
+    ]);
+    for u in starts {
+        t.add_row(vec![
+            u.id.to_string(),
+            u.experiment.clone(),
+            u.started_at
+                .chars()
+                .take(19)
+                .collect::<String>()
+                .replace('T', " "),
+            u.state.name().to_string(),
+            format!("{}@{}", u.user, u.host),
+            u.pid.to_string(),
+            u.data_sha256.chars().take(12).collect(),
+            u.spec_path.clone(),
+        ]);
+    }
+    format!(
+        "runs started but not stored (running: still going; interrupted: the process ended before storing anything, so none of its results are in the ledger):\n{t}\n"
+    )
+}
+
 pub fn history(runs: &[RunSummary]) -> String {
     let mut t = new_table(vec![
         "run",
