@@ -15,6 +15,8 @@ pub mod data;
 pub mod error;
 pub mod external;
 pub mod failpoint;
+#[doc(hidden)]
+pub mod fuzzing;
 pub mod guard;
 pub mod ledger;
 pub mod metrics;

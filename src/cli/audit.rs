@@ -2,7 +2,7 @@
 //! up again, and the tamper-evident chain. Exit 4 when the chain is broken, 3 when any partition
 //! is over budget, so a team can gate on it.
 
-use super::{Global, open_existing, out, out_json};
+use super::{Global, open_reading, out, out_json};
 use crate::error::Result;
 use serde_json::{Value, json};
 
@@ -18,7 +18,7 @@ pub struct Args {
 }
 
 pub fn run(g: &Global, a: Args) -> Result<i32> {
-    let ledger = open_existing(g)?;
+    let ledger = open_reading(g)?;
     let (entries, breaks) = ledger.verify()?;
     let head = ledger.head()?;
     // Reported, never counted against the chain: an interrupted run stored nothing.

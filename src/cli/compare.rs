@@ -1,7 +1,7 @@
 //! `probity compare RUN RUN`: two runs side by side, with the corrected resampled t-test of two
 //! candidates scored on the same folds.
 
-use super::{Global, open_existing, out, out_json};
+use super::{Global, open_reading, out, out_json};
 use crate::error::{Error, Result};
 use crate::metrics::Metric;
 
@@ -24,7 +24,7 @@ pub struct Args {
 }
 
 pub fn run(g: &Global, a: Args) -> Result<i32> {
-    let ledger = open_existing(g)?;
+    let ledger = open_reading(g)?;
     let (ra, rb) = (
         super::stored_run(&ledger, a.a)?,
         super::stored_run(&ledger, a.b)?,

@@ -1,6 +1,6 @@
 //! `probity export WHAT`: runs, candidates or fold scores as CSV or JSON.
 
-use super::{Global, RunSelect, open_existing, out};
+use super::{Global, RunSelect, open_reading, out};
 use crate::error::{Error, Result};
 use crate::report::export::{self, RunExport};
 use std::path::PathBuf;
@@ -40,7 +40,7 @@ pub struct Args {
 }
 
 pub fn run(g: &Global, a: Args) -> Result<i32> {
-    let ledger = open_existing(g)?;
+    let ledger = open_reading(g)?;
     let filter = a.select.filter(&ledger)?;
     let mut ids: Vec<i64> = ledger
         .history_where(&filter)?

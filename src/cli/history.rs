@@ -1,6 +1,6 @@
 //! `probity history`: one line per stored run.
 
-use super::{Global, RunSelect, open_existing, out, out_json};
+use super::{Global, RunSelect, open_reading, out, out_json};
 use crate::error::Result;
 
 /// List the runs in the ledger, oldest first
@@ -14,7 +14,7 @@ pub struct Args {
 }
 
 pub fn run(g: &Global, a: Args) -> Result<i32> {
-    let ledger = open_existing(g)?;
+    let ledger = open_reading(g)?;
     let filter = a.select.filter(&ledger)?;
     let runs = ledger.history_where(&filter)?;
     let starts: Vec<_> = ledger

@@ -199,6 +199,16 @@ pub(crate) fn cwd() -> Result<PathBuf> {
 
 /// Open the ledger for reading (it must exist).
 pub(crate) fn open_existing(g: &Global) -> Result<crate::ledger::Ledger> {
+    crate::ledger::Ledger::open(&existing(g)?, false)
+}
+
+/// `open_existing` for a command that only reads: a read-only ledger (an archived copy, a
+/// read-only medium) opens too.
+pub(crate) fn open_reading(g: &Global) -> Result<crate::ledger::Ledger> {
+    crate::ledger::Ledger::open_read(&existing(g)?)
+}
+
+fn existing(g: &Global) -> Result<PathBuf> {
     let (path, found) = crate::ledger::locate(g.ledger.as_deref(), &cwd()?);
     if !found {
         return Err(Error::Input(format!(
@@ -206,7 +216,7 @@ pub(crate) fn open_existing(g: &Global) -> Result<crate::ledger::Ledger> {
             path.display()
         )));
     }
-    crate::ledger::Ledger::open(&path, false)
+    Ok(path)
 }
 
 /// Write a report file and say where it went.

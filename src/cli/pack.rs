@@ -1,7 +1,7 @@
 //! `probity pack RUN... --out FILE`: write runs (with their reveals and notes) and their chain
 //! hashes to a self-contained bundle a teammate can merge.
 
-use super::{Global, open_existing};
+use super::{Global, open_reading};
 use crate::error::{Error, Result};
 use std::path::PathBuf;
 
@@ -17,7 +17,7 @@ pub struct Args {
 }
 
 pub fn run(g: &Global, a: Args) -> Result<i32> {
-    let ledger = open_existing(g)?;
+    let ledger = open_reading(g)?;
     for r in &a.runs {
         if ledger.run(*r)?.is_none() {
             return Err(Error::Input(format!(

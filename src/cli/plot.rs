@@ -1,6 +1,6 @@
 //! `probity plot RUN --out FILE.svg`: a stored run drawn as SVG.
 
-use super::{Global, open_existing};
+use super::{Global, open_reading};
 use crate::error::{Error, Result};
 use std::path::PathBuf;
 
@@ -36,7 +36,7 @@ pub struct Args {
 }
 
 pub fn run(g: &Global, a: Args) -> Result<i32> {
-    let ledger = open_existing(g)?;
+    let ledger = open_reading(g)?;
     let d = super::stored_run(&ledger, a.run)?;
     let metric = a.metric.clone().unwrap_or_else(|| d.summary.metric.clone());
     if !d

@@ -1,6 +1,6 @@
 //! `probity report RUN --out FILE.html`: one self-contained page for a model review.
 
-use super::{Global, open_existing};
+use super::{Global, open_reading};
 use crate::error::Result;
 use std::path::PathBuf;
 
@@ -18,7 +18,7 @@ pub struct Args {
 }
 
 pub fn run(g: &Global, a: Args) -> Result<i32> {
-    let ledger = open_existing(g)?;
+    let ledger = open_reading(g)?;
     let d = super::stored_run(&ledger, a.run)?;
     let (_, commit, target, _, _) = ledger.provenance(a.run)?;
     let metric = d.summary.metric.clone();

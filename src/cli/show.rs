@@ -1,6 +1,6 @@
 //! `probity show RUN`: one stored run in full.
 
-use super::{Global, open_existing, out, out_json};
+use super::{Global, open_reading, out, out_json};
 use crate::error::Result;
 
 /// Show one run: provenance, partition, every candidate's scores, warnings
@@ -17,7 +17,7 @@ pub struct Args {
 }
 
 pub fn run(g: &Global, a: Args) -> Result<i32> {
-    let ledger = open_existing(g)?;
+    let ledger = open_reading(g)?;
     let d = super::stored_run(&ledger, a.run)?;
     let notes = ledger.notes(a.run)?;
     if a.json {

@@ -309,6 +309,18 @@ pub fn load(path: &Path, text_columns: &[&str], threads: usize) -> Result<Table>
     parse(&bytes, path, sha256, text_columns)
 }
 
+/// The fast reader alone, with a chosen block size (for the fuzz checks in `crate::fuzzing`):
+/// `Ok(None)` when the file is not plain and only the general reader may read it.
+#[doc(hidden)]
+pub fn load_plain(
+    path: &Path,
+    text_columns: &[&str],
+    threads: usize,
+    block: usize,
+) -> Result<Option<Table>> {
+    fast::load(path, text_columns, threads, block)
+}
+
 /// Parse CSV bytes (a UTF-8 BOM and CRLF line ends are accepted; quoted fields may hold commas
 /// and newlines).
 pub fn parse(bytes: &[u8], path: &Path, sha256: String, text_columns: &[&str]) -> Result<Table> {

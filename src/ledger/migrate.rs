@@ -94,9 +94,13 @@ pub(super) fn refuse_or_fail(path: &Path, e: rusqlite::Error, context: &str) -> 
         Some(C::NotADatabase) => {
             Some("is not a probity ledger (not an SQLite database); pass another --ledger path")
         }
-        Some(C::ReadOnly) => Some("is read-only; make it writable or pass another --ledger path"),
-        Some(C::DiskFull) => Some("cannot be written: the disk is full; nothing was recorded"),
-        Some(C::CannotOpen) => Some("cannot be opened; check the folder exists and is writable"),
+        Some(C::ReadOnly) => Some(super::READ_ONLY),
+        Some(C::DiskFull) => Some(
+            "cannot be written: the disk is full; nothing was recorded (free some space and run the command again)",
+        ),
+        Some(C::CannotOpen) => Some(
+            "cannot be opened for writing; its folder must exist and be writable (SQLite keeps its log files beside the ledger); history, show, audit, export, compare, plot and report can still read a read-only ledger",
+        ),
         Some(C::PermissionDenied) => Some("permission denied"),
         _ => None,
     };

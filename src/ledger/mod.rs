@@ -16,6 +16,23 @@ use serde_json::Value;
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 
+/// Why a command that records refuses a ledger it can only read.
+const READ_ONLY: &str = "is read-only (the file, its folder or the disk cannot be written); nothing was recorded. Make it writable or pass another --ledger path; history, show, audit, export, compare, plot and report still read it";
+
+/// A `file:` URI for SQLite (percent-encoding what a URI cannot hold as is).
+fn url_path(path: &Path) -> String {
+    let abs = std::fs::canonicalize(path).unwrap_or_else(|_| path.to_path_buf());
+    let mut out = String::from("file:");
+    for b in abs.to_string_lossy().bytes() {
+        if b.is_ascii_alphanumeric() || b"/-_.~".contains(&b) {
+            out.push(b as char);
+        } else {
+            out.push_str(&format!("%{b:02X}"));
+        }
+    }
+    out
+}
+
 /// Test-row identities written per statement.
 const KEYS_PER_STATEMENT: usize = 500;
 
@@ -197,6 +214,18 @@ impl Ledger {
         }
         let mut conn =
             Connection::open(path).map_err(|e| migrate::refuse_or_fail(path, e, "open"))?;
+        // SQLite falls back to reading a file it cannot write; a command that records must
+        // know now, before any work, not at its first write.
+        if path.exists()
+            && conn
+                .is_readonly(rusqlite::MAIN_DB)
+                .map_err(sql_err("check write access"))?
+        {
+            return Err(Error::LedgerRefused {
+                path: path.to_path_buf(),
+                msg: READ_ONLY.into(),
+            });
+        }
         conn.busy_timeout(std::time::Duration::from_secs(10))
             .map_err(sql_err("set busy timeout"))?;
         // journal_mode answers with a row; a non-database file fails here first.
@@ -210,6 +239,64 @@ impl Ledger {
         conn.pragma_update(None, "cache_size", -CACHE_KIB)
             .map_err(sql_err("set cache size"))?;
         migrate::migrate(&mut conn, path)?;
+        Ok(Ledger {
+            conn,
+            path: path.to_path_buf(),
+        })
+    }
+
+    /// Open an existing ledger for reading only: as `open` when it is writable; otherwise (a
+    /// read-only file, folder or medium, such as an archived copy) read-only, so the listing
+    /// and report commands still work. A read-only ledger is never migrated: one from an older
+    /// probity is refused with the way out.
+    pub fn open_read(path: &Path) -> Result<Ledger> {
+        let first = match Ledger::open(path, false) {
+            Ok(l) => return Ok(l),
+            Err(e) => e,
+        };
+        if !matches!(&first, Error::LedgerRefused { .. }) || !path.is_file() {
+            return Err(first);
+        }
+        use rusqlite::OpenFlags as F;
+        let flags = F::SQLITE_OPEN_READ_ONLY | F::SQLITE_OPEN_URI | F::SQLITE_OPEN_NO_MUTEX;
+        let uri = |extra: &str| {
+            let mut u = url_path(path);
+            u.push_str(extra);
+            u
+        };
+        // mode=ro reads the log files when they exist; immutable=1 needs none, and is safe only
+        // when no log holds commits the main file lacks (nothing can write here meanwhile).
+        let wal = path.with_file_name(format!(
+            "{}-wal",
+            path.file_name()
+                .map_or_else(|| "".into(), |n| n.to_string_lossy())
+        ));
+        let wal_empty = std::fs::metadata(&wal).map_or(true, |m| m.len() == 0);
+        let conn = Connection::open_with_flags(uri("?mode=ro"), flags)
+            .and_then(|c| {
+                c.query_row("PRAGMA user_version", [], |r| r.get::<_, i64>(0))
+                    .map(|_| c)
+            })
+            .or_else(|e| {
+                if wal_empty {
+                    Connection::open_with_flags(uri("?mode=ro&immutable=1"), flags)
+                } else {
+                    Err(e)
+                }
+            })
+            .map_err(|_| first)?;
+        let version: i64 = conn
+            .query_row("PRAGMA user_version", [], |r| r.get(0))
+            .map_err(|e| migrate::refuse_or_fail(path, e, "read schema version"))?;
+        if version != migrate::latest() {
+            return Err(Error::LedgerRefused {
+                path: path.to_path_buf(),
+                msg: format!(
+                    "is read-only and has schema version {version}; this probity reads version {} (open it once where it can be written, so it is brought up to date, or use the probity that wrote it)",
+                    migrate::latest()
+                ),
+            });
+        }
         Ok(Ledger {
             conn,
             path: path.to_path_buf(),
