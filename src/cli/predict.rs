@@ -1,6 +1,6 @@
 //! `probity predict RUN --input FILE --output FILE`: apply a run's refitted model to new rows.
 
-use super::{Global, open_existing, warn};
+use super::{Global, open_existing, open_reading, warn};
 use crate::error::{Error, Result};
 use crate::metrics::Metric;
 use crate::runner::StoredModel;
@@ -27,7 +27,12 @@ pub struct Args {
 }
 
 pub fn run(g: &Global, a: Args) -> Result<i32> {
-    let ledger = open_existing(g)?;
+    // Only `--allow-sealed` may record (a reveal); plain prediction reads a read-only ledger.
+    let ledger = if a.allow_sealed {
+        open_existing(g)?
+    } else {
+        open_reading(g)?
+    };
     let d = super::stored_run(&ledger, a.run)?;
     let stored: StoredModel = serde_json::from_str(&d.model_json)
         .map_err(|e| Error::Internal(format!("stored model of run {}: {e}", a.run)))?;

@@ -113,7 +113,8 @@ fn parse_blocks(
     };
     let header = &buf[start..nl];
     let header = header.strip_suffix(b"\r").unwrap_or(header);
-    if header.contains(&b'"') {
+    // A bare CR ends a line for the general reader: the header line is not what it seems.
+    if header.contains(&b'"') || header.contains(&b'\r') {
         return Ok(None);
     }
     let Ok(header) = std::str::from_utf8(header) else {

@@ -394,14 +394,12 @@ pub fn parse(bytes: &[u8], path: &Path, sha256: String, text_columns: &[&str]) -
     let (mut counted_to, mut line) = (0usize, 1u64);
     let mut line_of = |offset: usize| -> u64 {
         let mut at = offset.min(body.len());
-        line += body[counted_to..at].iter().filter(|&&b| b == b'\n').count() as u64;
+        line += line_ends(body, counted_to, at);
         counted_to = at;
         while at < body.len() && (body[at] == b'\r' || body[at] == b'\n') {
-            if body[at] == b'\n' {
-                line += 1;
-            }
             at += 1;
         }
+        line += line_ends(body, counted_to, at);
         counted_to = counted_to.max(at);
         line
     };
@@ -539,15 +537,26 @@ fn assemble(
 
 /// The 1-based line of the record starting at `offset` (line ends before it are skipped).
 fn line_at(body: &[u8], offset: usize) -> u64 {
-    let mut at = offset.min(body.len());
-    let mut line = 1 + body[..at].iter().filter(|&&b| b == b'\n').count() as u64;
+    let from = offset.min(body.len());
+    let mut at = from;
     while at < body.len() && (body[at] == b'\r' || body[at] == b'\n') {
-        if body[at] == b'\n' {
-            line += 1;
-        }
         at += 1;
     }
-    line
+    1 + line_ends(body, 0, at)
+}
+
+/// Line ends in `body[from..to]` as the CSV reader sees them: LF, CRLF and a bare CR each end
+/// a line (a CR is looked at with the byte after it, even past `to`, so a CRLF split between
+/// two ranges counts once).
+fn line_ends(body: &[u8], from: usize, to: usize) -> u64 {
+    let mut n = 0;
+    for i in from..to {
+        let b = body[i];
+        if b == b'\n' || (b == b'\r' && body.get(i + 1) != Some(&b'\n')) {
+            n += 1;
+        }
+    }
+    n
 }
 
 /// A text column being read: codes in first-seen order, and level -> first-seen code.
@@ -651,6 +660,11 @@ mod tests {
         assert_eq!(t.columns[0].name, "a");
         assert_eq!(t.columns[1].text(0), "x, with comma\nand newline");
         assert_eq!(t.lines, vec![2, 4]);
+        // Bare CR line ends (old Mac files) are lines too, in the data and in the messages.
+        let t = p("a,b\r1,2\r3,4\r").unwrap();
+        assert_eq!(t.lines, vec![2, 3]);
+        let e = p("a,b\r1,2\r3,x\r5,6\r7\r").unwrap_err().to_string();
+        assert!(e.contains("t.csv:5"), "{e}");
     }
 
     #[test]
@@ -763,6 +777,9 @@ mod tests {
             "a,b\n1,2\n\n3,4\n",
             "a,b\n1,2\n3\n",
             "a,b\n1,2\r3,4\n",
+            // A bare CR in the header (found by the csv_loader fuzz target).
+            "a@\0\0\0\0\r\0\0\0\nx5",
+            "a,b\r1,2\n3,4\n",
             "a,a\n1,2\n",
             "a,b\n",
             // A column that turns to text after a numeric first row.

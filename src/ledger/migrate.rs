@@ -99,9 +99,12 @@ pub(super) fn refuse_or_fail(path: &Path, e: rusqlite::Error, context: &str) -> 
             "cannot be written: the disk is full; nothing was recorded (free some space and run the command again)",
         ),
         Some(C::CannotOpen) => Some(
-            "cannot be opened for writing; its folder must exist and be writable (SQLite keeps its log files beside the ledger); history, show, audit, export, compare, plot and report can still read a read-only ledger",
+            "cannot be opened for writing; its folder must exist and be writable (SQLite keeps its log files beside the ledger); history, show, audit, export, compare, plot, report and predict can still read a read-only ledger",
         ),
         Some(C::PermissionDenied) => Some("permission denied"),
+        Some(C::DatabaseBusy | C::DatabaseLocked) => Some(
+            "is busy: another probity process held its write lock for longer than the 10 s wait; nothing was recorded, run the command again",
+        ),
         _ => None,
     };
     match user {

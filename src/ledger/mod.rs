@@ -17,7 +17,7 @@ use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 
 /// Why a command that records refuses a ledger it can only read.
-const READ_ONLY: &str = "is read-only (the file, its folder or the disk cannot be written); nothing was recorded. Make it writable or pass another --ledger path; history, show, audit, export, compare, plot and report still read it";
+const READ_ONLY: &str = "is read-only (the file, its folder or the disk cannot be written); nothing was recorded. Make it writable or pass another --ledger path; history, show, audit, export, compare, plot, report and predict still read it";
 
 /// A `file:` URI for SQLite (percent-encoding what a URI cannot hold as is).
 fn url_path(path: &Path) -> String {

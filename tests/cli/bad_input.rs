@@ -120,6 +120,32 @@ fn missing_data_file() {
 }
 
 #[test]
+fn unreadable_data_and_spec_files() {
+    // A folder where the data file should be.
+    let d = with_ledger("unreadable");
+    std::fs::create_dir(d.path.join("dir.csv")).unwrap();
+    d.write(
+        "bad.toml",
+        &SMALL_SPEC.replace("path = \"small.csv\"", "path = \"dir.csv\""),
+    );
+    refused(&d, &["run", "bad.toml"], &["dir.csv", "is a folder"]);
+    // Bytes that are not UTF-8 text (a spreadsheet's legacy encoding, say), in the data and in
+    // the spec.
+    let mut bytes = small_csv().into_bytes();
+    bytes.extend_from_slice(b"r99,1,2,caf\xe9,B1,1,3\n");
+    std::fs::write(d.path.join("latin1.csv"), bytes).unwrap();
+    d.write(
+        "bad.toml",
+        &SMALL_SPEC.replace("path = \"small.csv\"", "path = \"latin1.csv\""),
+    );
+    refused(&d, &["run", "bad.toml"], &["latin1.csv", "not valid UTF-8"]);
+    let mut spec = SMALL_SPEC.as_bytes().to_vec();
+    spec.extend_from_slice(b"# caf\xe9\n");
+    std::fs::write(d.path.join("latin1.toml"), spec).unwrap();
+    refused(&d, &["run", "latin1.toml"], &["latin1.toml", "UTF-8"]);
+}
+
+#[test]
 fn missing_spec_file_and_folder_as_spec() {
     let d = with_ledger("nospec");
     refused(
