@@ -173,9 +173,10 @@ fn parse_blocks(
         let end = if more {
             match memchr::memrchr(b'\n', &buf) {
                 Some(i) => i + 1,
-                // A line longer than the block: grow the block.
+                // A line longer than the block: grow the block. (The buffer may be empty, when
+                // the header ended exactly at the end of a block: read at least a block then.)
                 None => {
-                    let want = buf.len() * 2;
+                    let want = (buf.len() * 2).max(block);
                     more = fill(&mut f, &mut buf, want, path)?;
                     continue;
                 }
