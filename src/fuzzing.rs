@@ -67,8 +67,9 @@ pub fn csv_bytes(bytes: &[u8], path: &Path) {
                 continue;
             }
         };
-        let Ok(general) = &general else {
-            panic!("the fast reader took a file the general reader refuses");
+        let general = match &general {
+            Ok(g) => g,
+            Err(e) => panic!("the fast reader took a file the general reader refuses: {e}"),
         };
         assert_eq!(fast.sha256, sha, "hash");
         assert_eq!(fast.lines, general.lines, "line numbers");

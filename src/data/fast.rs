@@ -114,7 +114,8 @@ fn parse_blocks(
     let header = &buf[start..nl];
     let header = header.strip_suffix(b"\r").unwrap_or(header);
     // A bare CR ends a line for the general reader: the header line is not what it seems.
-    if header.contains(&b'"') || header.contains(&b'\r') {
+    // A second byte-order mark: the general reader owns the message.
+    if header.contains(&b'"') || header.contains(&b'\r') || header.starts_with(b"\xEF\xBB\xBF") {
         return Ok(None);
     }
     let Ok(header) = std::str::from_utf8(header) else {

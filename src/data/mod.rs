@@ -325,6 +325,14 @@ pub fn load_plain(
 /// and newlines).
 pub fn parse(bytes: &[u8], path: &Path, sha256: String, text_columns: &[&str]) -> Result<Table> {
     let body = bytes.strip_prefix(b"\xEF\xBB\xBF").unwrap_or(bytes);
+    if body.starts_with(b"\xEF\xBB\xBF") {
+        return Err(Error::data(
+            path,
+            Some(1),
+            None,
+            "the file starts with two byte-order marks (the UTF-8 BOM twice); remove one and save it as UTF-8",
+        ));
+    }
     if body.iter().all(|b| b.is_ascii_whitespace()) {
         return Err(Error::data(
             path,
