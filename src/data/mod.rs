@@ -788,6 +788,8 @@ mod tests {
             // A bare CR in the header (found by the csv_loader fuzz target).
             "a@\0\0\0\0\r\0\0\0\nx5",
             "a,b\r1,2\n3,4\n",
+            // Two byte-order marks (also found by the fuzz target).
+            "\u{feff}\u{feff}a,b\n1,2\n",
             "a,a\n1,2\n",
             "a,b\n",
             // A column that turns to text after a numeric first row.
