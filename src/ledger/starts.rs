@@ -91,7 +91,7 @@ impl Ledger {
             })
             .map_err(fail)?;
         let file_name = format!(
-            "{}.run{id}.lock",
+            "{}.start{id}.lock",
             path.file_name()
                 .map_or_else(|| "ledger".into(), |n| n.to_string_lossy())
         );
