@@ -289,6 +289,35 @@ pub(crate) fn load_inputs(
     Ok((spec, table))
 }
 
+/// The facts about a run that come from here (clock, environment, build), with the fields a
+/// replay sets left empty.
+pub(crate) fn run_meta(
+    started: &chrono::DateTime<chrono::Utc>,
+    threads: usize,
+    spec_path: String,
+    data_path: String,
+    note: Option<String>,
+    start: Option<i64>,
+) -> crate::ledger::RunMeta {
+    let stamp =
+        |t: chrono::DateTime<chrono::Utc>| t.to_rfc3339_opts(chrono::SecondsFormat::Millis, true);
+    crate::ledger::RunMeta {
+        started_at: stamp(*started),
+        finished_at: stamp(chrono::Utc::now()),
+        tool_version: env!("CARGO_PKG_VERSION").to_string(),
+        user: user(),
+        host: host(),
+        threads,
+        spec_path,
+        data_path,
+        note,
+        tool_commit: env!("PROBITY_GIT_COMMIT").to_string(),
+        target_triple: env!("PROBITY_TARGET").to_string(),
+        replay: None,
+        start,
+    }
+}
+
 /// What a run's start records (`Ledger::begin_run`).
 pub(crate) fn start_info(
     spec: &crate::spec::Spec,

@@ -3,7 +3,7 @@
 
 use super::{Global, open_existing, out, out_json};
 use crate::error::{Error, Result};
-use crate::ledger::{ReplayRecord, RunMeta};
+use crate::ledger::ReplayRecord;
 use serde_json::json;
 use std::path::PathBuf;
 
@@ -116,32 +116,24 @@ fn replay_and_store(
     let shown: Vec<_> = cmp.differences.iter().take(100).collect();
     let (stored_version, stored_commit, stored_target, stored_threads, _) =
         ledger.provenance(a.run)?;
-    let meta = RunMeta {
-        started_at: started.to_rfc3339_opts(chrono::SecondsFormat::Millis, true),
-        finished_at: chrono::Utc::now().to_rfc3339_opts(chrono::SecondsFormat::Millis, true),
-        tool_version: env!("CARGO_PKG_VERSION").to_string(),
-        user: super::user(),
-        host: super::host(),
+    let mut meta = super::run_meta(
+        &started,
         threads,
-        spec_path: d.spec_path.clone(),
-        data_path: a
-            .data
+        d.spec_path.clone(),
+        a.data
             .as_deref()
             .map(super::absolute)
             .unwrap_or_else(|| d.data_path.clone()),
-        note: Some(format!("replay of run {}", a.run)),
-        tool_commit: env!("PROBITY_GIT_COMMIT").to_string(),
-        target_triple: env!("PROBITY_TARGET").to_string(),
-        replay: Some(ReplayRecord {
-            replay_of: a.run,
-            identical,
-            compared: cmp.compared,
-            differing: cmp.differences.len() as i64,
-            differences: serde_json::to_string(&shown)
-                .map_err(|e| Error::Internal(e.to_string()))?,
-        }),
-        start: Some(start),
-    };
+        Some(format!("replay of run {}", a.run)),
+        Some(start),
+    );
+    meta.replay = Some(ReplayRecord {
+        replay_of: a.run,
+        identical,
+        compared: cmp.compared,
+        differing: cmp.differences.len() as i64,
+        differences: serde_json::to_string(&shown).map_err(|e| Error::Internal(e.to_string()))?,
+    });
     let id = ledger.write_run(spec, table, &outcome, &meta)?;
     let doc = json!({
         "run": id,

@@ -4,8 +4,8 @@
 use super::{Global, absolute, load_inputs, open_for_write, out, out_json, warn};
 use crate::data::{RowKey, Table};
 use crate::error::Result;
+use crate::ledger::Ledger;
 use crate::ledger::starts::{RunStart, StartInfo};
-use crate::ledger::{Ledger, RunMeta};
 use crate::runner::Prepared;
 use crate::spec::Spec;
 use std::path::PathBuf;
@@ -139,21 +139,14 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
     let stored = outcome.and_then(|mut outcome| {
         progress.phase("writing the ledger");
         phases.mark("run");
-        let meta = RunMeta {
-            started_at: started.to_rfc3339_opts(chrono::SecondsFormat::Millis, true),
-            finished_at: chrono::Utc::now().to_rfc3339_opts(chrono::SecondsFormat::Millis, true),
-            tool_version: env!("CARGO_PKG_VERSION").to_string(),
-            user: super::user(),
-            host: super::host(),
+        let meta = super::run_meta(
+            &started,
             threads,
-            spec_path: absolute(&a.spec),
-            data_path: absolute(&spec.data.path),
-            note: a.note.clone(),
-            tool_commit: env!("PROBITY_GIT_COMMIT").to_string(),
-            target_triple: env!("PROBITY_TARGET").to_string(),
-            replay: None,
-            start: store.start.as_ref().map(|s| s.id),
-        };
+            absolute(&a.spec),
+            absolute(&spec.data.path),
+            a.note.clone(),
+            store.start.as_ref().map(|s| s.id),
+        );
         let ledger = store.ledger()?;
         exposure_warnings(ledger, &table, &mut outcome)?;
         phases.mark("exposure");

@@ -96,6 +96,11 @@ pub fn leaderboard(d: &RunDetail, limit: Option<usize>) -> String {
 }
 
 /// The `history` table.
+/// An RFC 3339 UTC time to the second, with a space for the T ("2026-12-02 08:12:55").
+fn seconds(t: &str) -> String {
+    t.chars().take(19).collect::<String>().replace('T', " ")
+}
+
 /// Runs that recorded a start but were never stored: still going, or killed. Empty when none.
 pub fn unfinished(starts: &[crate::ledger::starts::Unfinished]) -> String {
     if starts.is_empty() {
@@ -115,11 +120,7 @@ pub fn unfinished(starts: &[crate::ledger::starts::Unfinished]) -> String {
         t.add_row(vec![
             u.id.to_string(),
             u.experiment.clone(),
-            u.started_at
-                .chars()
-                .take(19)
-                .collect::<String>()
-                .replace('T', " "),
+            seconds(&u.started_at),
             u.state.name().to_string(),
             format!("{}@{}", u.user, u.host),
             u.pid.to_string(),
@@ -149,11 +150,7 @@ pub fn history(runs: &[RunSummary]) -> String {
         t.add_row(vec![
             r.id.to_string(),
             r.experiment.clone(),
-            r.started_at
-                .chars()
-                .take(19)
-                .collect::<String>()
-                .replace('T', " "),
+            seconds(&r.started_at),
             r.status.clone(),
             r.data_sha256.chars().take(12).collect(),
             r.candidates.to_string(),
@@ -385,7 +382,7 @@ pub fn audit(rows: &[serde_json::Value], warnings: &[String]) -> String {
             },
             r["last_reveal"]
                 .as_str()
-                .map(|x| x.chars().take(19).collect::<String>().replace('T', " "))
+                .map(seconds)
                 .unwrap_or_else(|| "-".into()),
             s("mode"),
             if opt.is_some() {
