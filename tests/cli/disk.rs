@@ -119,3 +119,34 @@ cp .probity/ledger.sqlite ../after.sqlite
         before
     );
 }
+
+#[test]
+fn a_read_only_ledger_from_an_older_probity_is_refused_with_the_way_out() {
+    if skipped() {
+        return;
+    }
+    let d = small_dir("readonly-old");
+    d.probity(&["run", "small.toml"]).expect(0);
+    // Schema 5: before run starts were recorded.
+    let c = rusqlite::Connection::open(d.ledger()).unwrap();
+    c.execute_batch("DROP TABLE run_starts; PRAGMA user_version = 5;")
+        .unwrap();
+    drop(c);
+    let out = in_namespace(
+        &d.path,
+        r#"mount --bind .probity .probity && mount -o remount,bind,ro .probity || exit 90
+$P history >/dev/null; echo rc=$?
+"#,
+    );
+    let (codes, err) = codes(&out);
+    assert_eq!(codes, vec![2], "{err}");
+    assert!(
+        err.contains("is read-only and has schema version 5")
+            && err.contains("open it once where it can be written"),
+        "{err}"
+    );
+    // Writable again, it is brought up to date and reads as before.
+    let r = d.probity(&["history", "--json"]).expect(0).json();
+    assert_eq!(r["runs"].as_array().unwrap().len(), 1);
+    d.probity(&["audit", "--verify"]).expect(0);
+}
