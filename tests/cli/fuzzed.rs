@@ -11,7 +11,12 @@ fn inputs(target: &str) -> Vec<PathBuf> {
         let Ok(entries) = std::fs::read_dir(root.join(dir).join(target)) else {
             continue;
         };
-        out.extend(entries.map(|e| e.unwrap().path()).filter(|p| p.is_file()));
+        // (Dot files keep empty folders in git.)
+        out.extend(
+            entries.map(|e| e.unwrap().path()).filter(|p| {
+                p.is_file() && !p.file_name().unwrap().to_string_lossy().starts_with('.')
+            }),
+        );
     }
     out.sort();
     out
