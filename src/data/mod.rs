@@ -776,6 +776,80 @@ mod tests {
         }
     }
 
+    /// The fast reader reads a plain number and finds its comma in one pass, with its own float
+    /// parser: every spelling, valid or not, must come out as the general reader's (which uses
+    /// `str::parse`), bit for bit or with the same message. Spellings chosen by hand: signs,
+    /// bare points, exponents, non-finite words, stray bytes, rounding boundaries, subnormals,
+    /// overflow, and mantissas beyond 19 digits (where the parsers take their slow paths).
+    #[test]
+    fn fast_number_reading_agrees_with_str_parse_on_odd_spellings() {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("n.csv");
+        let cells = [
+            "1e5",
+            "1E5",
+            "1e+5",
+            "1e-5",
+            "1.",
+            "-1.",
+            ".5",
+            "-.5",
+            "+.5",
+            "+1",
+            "-0",
+            "0",
+            "00012",
+            "1e",
+            "1e+",
+            "1.e5",
+            "e5",
+            ".",
+            "-",
+            "+",
+            "inf",
+            "-inf",
+            "+inf",
+            "infinity",
+            "NaN",
+            "nan",
+            "-nan",
+            " 1",
+            "1 ",
+            "1_0",
+            "0x10",
+            "1e400",
+            "-1e400",
+            "1e-400",
+            "4.9e-324",
+            "2.4703282292062328e-324",
+            "2.2250738585072011e-308",
+            "1.7976931348623157e308",
+            "1.7976931348623159e308",
+            "9007199254740993",
+            "123456789012345678901234567890",
+            "0.1000000000000000055511151231257827021181583404541015625",
+            "7.2057594037927933e16",
+            "1..2",
+            "1e5.5",
+            "--1",
+            "1-",
+            "\u{661}",
+            "1\t",
+            "\t1",
+            "0.0000000000000000000000000000000000001",
+            "1e-00000000000000000000000005",
+        ];
+        for cell in cells {
+            for body in [
+                format!("a,b\n1,{cell}\n2,3\n"),
+                format!("a,b\n{cell},1\n3,2\r\n"),
+                format!("a,b\n1,2\n3,{cell}"),
+            ] {
+                crate::fuzzing::csv_bytes(body.as_bytes(), &path);
+            }
+        }
+    }
+
     #[test]
     fn fast_loader_leaves_unusual_files_to_the_general_reader() {
         let dir = tempfile::tempdir().unwrap();
