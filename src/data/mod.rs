@@ -43,6 +43,11 @@ impl Column {
     /// `text` into a reused buffer (cleared first).
     pub fn write_text(&self, row: usize, buf: &mut String) {
         buf.clear();
+        self.push_text(row, buf);
+    }
+
+    /// `text` appended to `buf`.
+    pub fn push_text(&self, row: usize, buf: &mut String) {
         match &self.values {
             Values::Numeric(v) if v[row].is_nan() => {}
             Values::Numeric(v) => display_f64(v[row], buf),
@@ -76,8 +81,8 @@ impl Column {
 
 /// Append a finite number as `format!("{}", v)` writes it (the shortest digits that read back
 /// to the same number, in plain decimal notation), several times faster: the digits come from
-/// the Ryu algorithm, which finds the same shortest, closest digits as the standard library.
-/// A test holds the two equal on a million random numbers.
+/// the Żmij algorithm (the `zmij` crate), which finds the same shortest, closest digits as the
+/// standard library. A test holds the two equal on a million random numbers.
 pub fn display_f64(v: f64, out: &mut String) {
     if may_tie(v) {
         // Two shortest candidates can be equally close only when the number's exact decimal
@@ -87,7 +92,7 @@ pub fn display_f64(v: f64, out: &mut String) {
         let _ = write!(out, "{v}");
         return;
     }
-    let mut b = ryu::Buffer::new();
+    let mut b = zmij::Buffer::new();
     let s = b.format_finite(v);
     if !s.as_bytes().contains(&b'e') {
         // Plain notation already (1e-5 <= |v| < 1e16): the same text, but "12.0" is "12".
@@ -226,10 +231,9 @@ pub fn row_keys(table: &Table, key: Option<usize>, rows: &[usize], threads: usiz
 const KEY_BLOCK: usize = 128;
 
 fn keys_of(table: &Table, key: Option<usize>, order: &[usize], rows: &[usize]) -> Vec<RowKey> {
-    let mut cell = String::new();
     // Each row's canonical bytes, built in its own buffer and hashed with one call.
-    let mut bytes: Vec<Vec<u8>> = (0..KEY_BLOCK.min(rows.len()))
-        .map(|_| Vec::with_capacity(1024))
+    let mut bytes: Vec<String> = (0..KEY_BLOCK.min(rows.len()))
+        .map(|_| String::with_capacity(1024))
         .collect();
     let mut out = Vec::with_capacity(rows.len());
     for block in rows.chunks(KEY_BLOCK) {
@@ -239,32 +243,30 @@ fn keys_of(table: &Table, key: Option<usize>, order: &[usize], rows: &[usize]) -
                 let col = &table.columns[k];
                 for (b, &r) in bufs.iter_mut().zip(block) {
                     b.clear();
-                    b.extend_from_slice(b"probity-row-key\0");
-                    b.extend_from_slice(col.name.as_bytes());
-                    b.push(0);
-                    col.write_text(r, &mut cell);
-                    b.extend_from_slice(cell.as_bytes());
+                    b.push_str("probity-row-key\0");
+                    b.push_str(&col.name);
+                    b.push('\0');
+                    col.push_text(r, b);
                 }
             }
             None => {
                 bufs.iter_mut().for_each(|b| {
                     b.clear();
-                    b.extend_from_slice(b"probity-row\0");
+                    b.push_str("probity-row\0");
                 });
                 for &c in order {
                     let col = &table.columns[c];
                     for (b, &r) in bufs.iter_mut().zip(block) {
-                        b.extend_from_slice(col.name.as_bytes());
-                        b.push(0);
-                        col.write_text(r, &mut cell);
-                        b.extend_from_slice(cell.as_bytes());
-                        b.push(0x1f);
+                        b.push_str(&col.name);
+                        b.push('\0');
+                        col.push_text(r, b);
+                        b.push('\x1f');
                     }
                 }
             }
         }
         out.extend(bufs.iter().map(|b| {
-            let d = Sha256::digest(b);
+            let d = Sha256::digest(b.as_bytes());
             let mut k = [0u8; 16];
             k.copy_from_slice(&d[..16]);
             k

@@ -628,16 +628,19 @@ fn fold_sums_body(
                 let acc = predict_rows(grp.intercepts, &grp.weights, &block, r);
                 for (rr, a) in acc.iter().enumerate().take(take) {
                     let y = block[p * BLOCK + r + rr];
-                    let side = 2 * ((masks[r + rr] >> grp.bit) & 1) as usize;
-                    let mut e = [0.0; FITS];
+                    // All ones when the row is held out, else zero: each error goes to one
+                    // side's sums and +0 to the other's, which leaves a sum of non-negative
+                    // terms (never -0) bit for bit as it was. No branch and no indexed side,
+                    // so the four sums stay in registers.
+                    let held = ((masks[r + rr] >> grp.bit) & 1).wrapping_neg();
+                    let [fq, fa, hq, ha] = &mut s;
                     for l in 0..FITS {
-                        e[l] = y - a[l];
-                    }
-                    let (q, t) = s.split_at_mut(side + 1);
-                    let (q, t) = (&mut q[side], &mut t[0]);
-                    for l in 0..FITS {
-                        q[l] += e[l] * e[l];
-                        t[l] += e[l].abs();
+                        let e = y - a[l];
+                        let (q, t) = ((e * e).to_bits(), e.abs().to_bits());
+                        fq[l] += f64::from_bits(q & !held);
+                        fa[l] += f64::from_bits(t & !held);
+                        hq[l] += f64::from_bits(q & held);
+                        ha[l] += f64::from_bits(t & held);
                     }
                 }
                 r += take;
