@@ -280,8 +280,19 @@ pub struct ErrorSums {
 
 impl ErrorSums {
     pub fn of(y: &[f64], pred: &[f64]) -> ErrorSums {
-        let sse: f64 = y.iter().zip(pred).map(|(a, b)| (a - b) * (a - b)).sum();
-        let sae: f64 = y.iter().zip(pred).map(|(a, b)| (a - b).abs()).sum();
+        ErrorSums::of_pairs(y.iter().zip(pred))
+    }
+
+    /// `of` for the rows `rows` of `y` against one prediction for all of them (the mean
+    /// baseline), without copying the rows out or building the predictions: the same sums.
+    pub fn of_constant(y: &[f64], rows: &[usize], pred: f64) -> ErrorSums {
+        ErrorSums::of_pairs(rows.iter().map(|&i| (&y[i], &pred)))
+    }
+
+    /// (true value, prediction) pairs, each sum taken in their order.
+    fn of_pairs<'a>(pairs: impl Iterator<Item = (&'a f64, &'a f64)> + Clone) -> ErrorSums {
+        let sse: f64 = pairs.clone().map(|(a, b)| (a - b) * (a - b)).sum();
+        let sae: f64 = pairs.clone().map(|(a, b)| (a - b).abs()).sum();
         if sse.is_finite() && sae.is_finite() {
             return ErrorSums {
                 sse,
@@ -290,10 +301,7 @@ impl ErrorSums {
             };
         }
         // An error that is itself infinite (or NaN) stays so: scaling cannot rescue it.
-        let big = y
-            .iter()
-            .zip(pred)
-            .fold(0.0f64, |m, (a, b)| m.max((a - b).abs()));
+        let big = pairs.clone().fold(0.0f64, |m, (a, b)| m.max((a - b).abs()));
         if !(big.is_finite() && big > 0.0) {
             return ErrorSums {
                 sse,
@@ -303,8 +311,8 @@ impl ErrorSums {
         }
         let e = |a: &f64, b: &f64| (a - b) / big;
         ErrorSums {
-            sse: y.iter().zip(pred).map(|(a, b)| e(a, b) * e(a, b)).sum(),
-            sae: y.iter().zip(pred).map(|(a, b)| e(a, b).abs()).sum(),
+            sse: pairs.clone().map(|(a, b)| e(a, b) * e(a, b)).sum(),
+            sae: pairs.map(|(a, b)| e(a, b).abs()).sum(),
             scale: big,
         }
     }
@@ -553,6 +561,34 @@ mod tests {
         }
         assert!((auc(&y, &s).unwrap() - 2642.0 / 2958.0).abs() < 1e-15);
         assert!((auc(&y, &s).unwrap() - 0.893171).abs() < 5e-7);
+    }
+
+    /// The mean baseline scores a constant from the rows themselves: the same bits as the sums
+    /// over gathered true values and a materialised prediction, on ordinary values and on values
+    /// whose plain sums overflow (the scaled fallback).
+    #[test]
+    fn constant_prediction_sums_equal_the_general_sums() {
+        let ordinary: Vec<f64> = (0..1000)
+            .map(|i| ((i * 7919) % 1013) as f64 * 0.37 - 91.0)
+            .collect();
+        let huge: Vec<f64> = ordinary.iter().map(|v| v * 1e305).collect();
+        for y in [&ordinary, &huge] {
+            let rows: Vec<usize> = (0..y.len()).filter(|i| i % 3 != 1).rev().collect();
+            let gathered: Vec<f64> = rows.iter().map(|&i| y[i]).collect();
+            for pred in [0.0, 12.5, y[4], -y[9]] {
+                let a = ErrorSums::of(&gathered, &vec![pred; gathered.len()]);
+                let b = ErrorSums::of_constant(y, &rows, pred);
+                assert_eq!(
+                    (a.sse.to_bits(), a.sae.to_bits(), a.scale.to_bits()),
+                    (b.sse.to_bits(), b.sae.to_bits(), b.scale.to_bits())
+                );
+            }
+        }
+        let scaled = ErrorSums::of_constant(&huge, &[0, 1, 2], 0.0);
+        assert!(
+            scaled.scale > 1.0,
+            "the overflow case takes the scaled sums"
+        );
     }
 
     #[test]

@@ -8,7 +8,7 @@
 use crate::data::{Table, Values};
 use crate::error::{Error, Result};
 use crate::guard::Sealed;
-use crate::metrics::{Metric, Truth, mean_se, score_all};
+use crate::metrics::{ErrorSums, Metric, Truth, mean_se, score_all};
 use crate::models::encode::{Encoder, Feature, Notes};
 use crate::models::gram::{FITS, Gram, LaneGroup, Source, error_sums_both, fold_error_sums};
 use crate::models::{Design, Fitted, Params, model_for};
@@ -848,6 +848,32 @@ fn run_task(
             }
         }
     }
+    if entry.family == Family::Mean && nc == 0 && entry.command.is_none() {
+        // The regression baseline predicts one number: score it from the rows themselves,
+        // without a design or prediction vectors. The arithmetic is the general path's below
+        // (`MeanModel::fit`, then `score_all` on a constant prediction), so the same bits.
+        let mean =
+            fold.fit.iter().map(|&i| prep.target[i]).sum::<f64>() / fold.fit.len().max(1) as f64;
+        if !mean.is_finite() {
+            return Err(not_finite(entry, grid.first().unwrap_or(&Params::new())));
+        }
+        let score = |rows: &[usize]| -> Scores {
+            let truth = Truth::of_rows(&prep.target, rows.iter().copied());
+            let sums = ErrorSums::of_constant(&prep.target, rows, mean);
+            prep.metrics
+                .iter()
+                .map(|&m| truth.score_sums(m, &sums))
+                .collect()
+        };
+        let (train, validation) = (score(&fold.fit), score(&fold.score));
+        return Ok(TaskOut {
+            scores: grid
+                .iter()
+                .map(|_| Ok((train.clone(), validation.clone())))
+                .collect(),
+            notes: Notes::new(),
+        });
+    }
     let model = model_for(entry, nc);
     let fit_rows: Vec<usize> = fold.fit.iter().map(|&i| prep.rows[i]).collect();
     let score_rows: Vec<usize> = fold.score.iter().map(|&i| prep.rows[i]).collect();
@@ -1303,13 +1329,16 @@ pub fn run_recording(
     for cmd in entries.iter().filter_map(|e| e.command.as_ref()) {
         inputs.extend(crate::external::input_hashes(cmd).map_err(Error::Input)?);
     }
-    let (cv, keys) = match record {
+    let (after, keys) = match record {
         None => {
             let keys = prep.hash_test_keys(table, threads);
             let cv = cross_validate(
                 spec, table, &prep, &entries, &grids, &folds, threads, &mut notes, progress,
             );
-            (cv, Ok(keys))
+            let after = after_grid(
+                spec, table, &prep, &entries, &grids, &folds, threads, &mut notes, cv,
+            );
+            (after, Ok(keys))
         }
         Some(record) => {
             record.started(&prep)?;
@@ -1326,89 +1355,28 @@ pub fn run_recording(
                 let cv = cross_validate(
                     spec, table, shared, &entries, &grids, &folds, threads, &mut notes, progress,
                 );
+                // The refit and its digest run while the side job may still be storing the
+                // partition: its tail no longer leaves a core idle.
+                let after = after_grid(
+                    spec, table, shared, &entries, &grids, &folds, threads, &mut notes, cv,
+                );
                 // A panic there is a bug: carry it on rather than turn it into an error.
                 let keys = side.join().unwrap_or_else(|e| std::panic::resume_unwind(e));
-                (cv, keys)
+                (after, keys)
             })
         }
     };
     // The grid's error first: it is the user's to fix.
-    let (candidates, dev_gram) = cv?;
+    let AfterGrid {
+        candidates,
+        best,
+        selected,
+        metric,
+        refit,
+        predictions_digest,
+        nested,
+    } = after?;
     prep.test_keys = keys?;
-    let metric = spec.select.metric;
-    let (best, selected) = select(&candidates, metric, spec.select.rule, &entries)?;
-    let chosen = &candidates[selected - 1];
-    // Refit the selected candidate on every development row.
-    let dev_rows: Vec<usize> = prep.sealed.development();
-    // Nothing else runs now: the refit's passes may use every core.
-    let (encoder, fitted) = crate::par::lend(threads.saturating_sub(1), || {
-        fit_on(
-            spec,
-            table,
-            &prep,
-            &entries[chosen.entry],
-            &chosen.params,
-            &dev_rows,
-            dev_gram.as_ref().map_or(DevGram::Make, DevGram::Made),
-            threads,
-            &mut notes,
-        )
-    })?;
-    let refit = StoredModel {
-        candidate: chosen.id,
-        classes: prep.classes.clone(),
-        target: spec.data.target.name.clone(),
-        key: spec.data.key.as_ref().map(|k| k.name.clone()),
-        encoder,
-        fitted,
-    };
-    // The refitted model's predictions on the development rows, digested: replay compares it.
-    let predictions_digest = {
-        let columns = numeric_columns(table, &prep.features);
-        let p = match &refit.fitted {
-            // A linear model on plain numeric columns is applied straight to the table (the
-            // same arithmetic as `Fitted::predict`, without a copy of the design).
-            Fitted::Linear {
-                intercept,
-                weights,
-                poly: None,
-            } if columns.len() == prep.features.len()
-                && weights.len() == columns.len()
-                && !refit.encoder.impute =>
-            {
-                let src = source(&prep, &columns);
-                crate::par::lend(threads.saturating_sub(1), || {
-                    crate::models::gram::predictions(&src, &dev_rows, *intercept, weights)
-                })
-            }
-            _ => {
-                let rows: Vec<usize> = dev_rows.iter().map(|&i| prep.rows[i]).collect();
-                // A family that is quadratic to predict on its own fitting rows (knn) is
-                // digested on the same evenly spaced subset its training scores use.
-                let limit =
-                    model_for(&entries[chosen.entry], prep.classes.len()).train_rows_limit();
-                let scored: Vec<usize> = match limit {
-                    Some(l) if rows.len() > l => (0..l).map(|i| rows[i * rows.len() / l]).collect(),
-                    _ => rows.clone(),
-                };
-                predict_with(
-                    spec, table, &prep, &refit, &dev_rows, table, &scored, &mut notes,
-                )?
-            }
-        };
-        let mut h = Sha256::new();
-        for v in &p {
-            h.update(v.to_le_bytes());
-        }
-        hex(&h.finalize())
-    };
-    let nested = if spec.select.nested {
-        Some(nested_cv(
-            spec, table, &prep, &entries, &grids, &folds, threads, &mut notes,
-        )?)
-    } else {
-        None
-    };
     let mut warnings = prep.warnings.clone();
     for c in candidates.iter().filter(|c| c.failure.is_some()) {
         warnings.push(format!(
@@ -1438,6 +1406,115 @@ pub fn run_recording(
         inputs,
         nested,
         warnings,
+    })
+}
+
+/// What follows the grid: the selection, the refit on every development row, its predictions'
+/// digest and the nested estimate.
+struct AfterGrid {
+    candidates: Vec<CandidateResult>,
+    best: usize,
+    selected: usize,
+    metric: Metric,
+    refit: StoredModel,
+    predictions_digest: String,
+    nested: Option<NestedOutcome>,
+}
+
+#[allow(clippy::too_many_arguments)]
+fn after_grid(
+    spec: &Spec,
+    table: &Table,
+    prep: &Prepared,
+    entries: &[ModelSpec],
+    grids: &[Vec<Params>],
+    folds: &[crate::split::Fold],
+    threads: usize,
+    notes: &mut Notes,
+    cv: Result<(Vec<CandidateResult>, Option<Gram>)>,
+) -> Result<AfterGrid> {
+    let (candidates, dev_gram) = cv?;
+    let metric = spec.select.metric;
+    let (best, selected) = select(&candidates, metric, spec.select.rule, entries)?;
+    let chosen = &candidates[selected - 1];
+    // Refit the selected candidate on every development row.
+    let dev_rows: Vec<usize> = prep.sealed.development();
+    // The grid is done: the refit's passes may use every core (the side job that stores the
+    // partition, if still running, shares them).
+    let (encoder, fitted) = crate::par::lend(threads.saturating_sub(1), || {
+        fit_on(
+            spec,
+            table,
+            prep,
+            &entries[chosen.entry],
+            &chosen.params,
+            &dev_rows,
+            dev_gram.as_ref().map_or(DevGram::Make, DevGram::Made),
+            threads,
+            notes,
+        )
+    })?;
+    let refit = StoredModel {
+        candidate: chosen.id,
+        classes: prep.classes.clone(),
+        target: spec.data.target.name.clone(),
+        key: spec.data.key.as_ref().map(|k| k.name.clone()),
+        encoder,
+        fitted,
+    };
+    // The refitted model's predictions on the development rows, digested: replay compares it.
+    let predictions_digest = {
+        let columns = numeric_columns(table, &prep.features);
+        let p = match &refit.fitted {
+            // A linear model on plain numeric columns is applied straight to the table (the
+            // same arithmetic as `Fitted::predict`, without a copy of the design).
+            Fitted::Linear {
+                intercept,
+                weights,
+                poly: None,
+            } if columns.len() == prep.features.len()
+                && weights.len() == columns.len()
+                && !refit.encoder.impute =>
+            {
+                let src = source(prep, &columns);
+                crate::par::lend(threads.saturating_sub(1), || {
+                    crate::models::gram::predictions(&src, &dev_rows, *intercept, weights)
+                })
+            }
+            _ => {
+                let rows: Vec<usize> = dev_rows.iter().map(|&i| prep.rows[i]).collect();
+                // A family that is quadratic to predict on its own fitting rows (knn) is
+                // digested on the same evenly spaced subset its training scores use.
+                let limit =
+                    model_for(&entries[chosen.entry], prep.classes.len()).train_rows_limit();
+                let scored: Vec<usize> = match limit {
+                    Some(l) if rows.len() > l => (0..l).map(|i| rows[i * rows.len() / l]).collect(),
+                    _ => rows.clone(),
+                };
+                predict_with(spec, table, prep, &refit, &dev_rows, table, &scored, notes)?
+            }
+        };
+        let mut h = Sha256::new();
+        for v in &p {
+            h.update(v.to_le_bytes());
+        }
+        hex(&h.finalize())
+    };
+    let nested = if spec.select.nested {
+        Some(nested_cv(
+            spec, table, prep, entries, grids, folds, threads, notes,
+        )?)
+    } else {
+        None
+    };
+    Ok(AfterGrid {
+        candidates,
+        best,
+        selected,
+        metric,
+        refit,
+        predictions_digest,
+        nested,
     })
 }
 
