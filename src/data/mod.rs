@@ -94,7 +94,10 @@ pub fn display_f64(v: f64, out: &mut String) {
     }
     let mut b = zmij::Buffer::new();
     let s = b.format_finite(v);
-    if !s.as_bytes().contains(&b'e') {
+    // zmij's exponent is "e", a sign and one to three digits: the 'e' is third to fifth from the
+    // end (a look at three bytes, where a search would cost a call per number).
+    let tail = |k: usize| s.len() >= k && s.as_bytes()[s.len() - k] == b'e';
+    if !(tail(3) || tail(4) || tail(5)) {
         // Plain notation already (1e-5 <= |v| < 1e16): the same text, but "12.0" is "12".
         out.push_str(s.strip_suffix(".0").unwrap_or(s));
         return;

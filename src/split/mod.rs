@@ -126,7 +126,29 @@ pub fn split(input: &SplitInput) -> Result<Partition> {
     if n == 0 {
         return Err(Error::Input("the data has no rows to split".into()));
     }
-    let parts = assign(input, n)?;
+    // A random split's fold order depends only on the number of development rows, known before
+    // the assignment: its shuffles run beside the assignment's own.
+    let early = match (&input.method, input.folds) {
+        (Method::Random, Folds::K(k)) if input.validation == 0.0 => {
+            let m = n - count_of(input.test, n);
+            (k >= 2 && m > k).then_some((m, input.repeats))
+        }
+        _ => None,
+    };
+    let (parts, perms) = std::thread::scope(|s| {
+        let perms = early.map(|(m, repeats)| {
+            s.spawn(move || {
+                (0..repeats)
+                    .map(|r| shuffled_range(m, &mut stream(input.seed, Domain::Folds, r as u32)))
+                    .collect::<Vec<_>>()
+            })
+        });
+        let parts = assign(input, n);
+        // A panic there is a bug: carry it on.
+        let perms = perms.map(|h| h.join().unwrap_or_else(|e| std::panic::resume_unwind(e)));
+        (parts, perms)
+    });
+    let parts = parts?;
     let test_n = parts.iter().filter(|&&p| p == Part::Test).count();
     if input.test > 0.0 && test_n == 0 {
         return Err(Error::Input(format!(
@@ -160,7 +182,7 @@ pub fn split(input: &SplitInput) -> Result<Partition> {
             input.validation
         )));
     }
-    let folds = folds_of(input, &train, Domain::Folds, 0)?;
+    let folds = folds_with(input, &train, Domain::Folds, 0, perms)?;
     Ok(Partition {
         parts,
         folds,
@@ -523,6 +545,18 @@ pub fn folds_of(
     domain: Domain,
     index: u32,
 ) -> Result<Vec<Fold>> {
+    folds_with(input, dev, domain, index, None)
+}
+
+/// `folds_of`, with the exchangeable methods' shuffles of `0..dev.len()` per repeat already made
+/// (`split` makes them beside the assignment); they are used only when they are those.
+fn folds_with(
+    input: &SplitInput,
+    dev: &[usize],
+    domain: Domain,
+    index: u32,
+    mut perms: Option<Vec<Vec<usize>>>,
+) -> Result<Vec<Fold>> {
     let m = dev.len();
     let k = match input.folds {
         Folds::K(k) => k,
@@ -632,8 +666,14 @@ pub fn folds_of(
                     .collect()
             }
             _ => {
+                let made = perms
+                    .as_mut()
+                    .filter(|p| index == 0 && p.len() == repeats && p[r].len() == m)
+                    .map(|p| std::mem::take(&mut p[r]));
                 let perm: Vec<usize> = if loo {
                     (0..m).collect()
+                } else if let Some(perm) = made {
+                    perm
                 } else {
                     shuffled_range(m, &mut stream(input.seed, domain, ridx))
                 };
