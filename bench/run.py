@@ -11,7 +11,10 @@ A benchmark, not a test: it prints figures and is never part of CI. Scenarios (i
   d  a ledger write of 10,000 candidates (a 10,000-point ridge grid on 1,000 rows, 2 folds)
 
 probity and the peer run alternately, REPEATS times each; the table gives medians, the ratio, and
-probity's peak memory (/usr/bin/time -v, maximum resident set size).
+probity's peak memory (/usr/bin/time -v, maximum resident set size). Before every timed run of
+either side, the data file is read once, untimed (--no-warm turns this off): on a shared machine
+the kernel may evict the file's pages between runs, and a run that re-reads them from disk
+measures the disk, not the program (one such run here took 25 s instead of 1.5 s).
 
 Usage:
   python3 bench/run.py [--repeats 3] [--data DIR] [--scenarios a,b,c,d]
@@ -92,6 +95,13 @@ SPECS = {
 PEER = {"a": ["a", "c2"], "b": ["d2"], "c": ["e"], "d": []}
 
 
+def warm(path):
+    """Read `path` once, so the timed run finds it in the page cache."""
+    with open(path, "rb") as f:
+        while f.read(1 << 24):
+            pass
+
+
 def run_probity(binary, spec_path, ledger):
     if os.path.exists(ledger):
         os.remove(ledger)
@@ -132,6 +142,7 @@ def main():
     ap.add_argument("--repeats", type=int, default=3)
     ap.add_argument("--data", default=os.path.join(tempfile.gettempdir(), "probity-bench"))
     ap.add_argument("--scenarios", default="a,b,c,d")
+    ap.add_argument("--no-warm", action="store_true", help="do not read the data file before each timed run")
     args = ap.parse_args()
     os.makedirs(args.data, exist_ok=True)
     sh(["cargo", "build", "--release", "--quiet", "--manifest-path", os.path.join(ROOT, "Cargo.toml")])
@@ -145,12 +156,19 @@ def main():
             f.write(spec(f"bench-{sc}", files[key], task, models, folds))
         ledger = os.path.join(args.data, f"bench-{sc}.sqlite")
         ours, rss, peer, loads, stores = [], [], [], [], []
+        # The peer script always loads the regression file; stage e reads the binary one too.
+        peer_files = [files["reg"]] + ([files["bin"]] if "e" in PEER[sc] else [])
         for _ in range(args.repeats):
+            if not args.no_warm:
+                warm(files[key])
             w, m, ld, st = run_probity(binary, spec_path, ledger)
             ours.append(w)
             rss.append(m)
             loads.append(ld)
             stores.append(st)
+            if not args.no_warm:
+                for f in peer_files:
+                    warm(f)
             p = run_peer(files, PEER[sc], os.path.join(args.data, "peer.json"))
             if p:
                 peer.append(sum(p.values()))

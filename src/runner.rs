@@ -1341,16 +1341,24 @@ pub fn run_recording(
             (after, Ok(keys))
         }
         Some(record) => {
-            record.started(&prep)?;
-            std::thread::scope(|s| {
+            std::thread::scope(|s| -> Result<_> {
                 let shared = &prep;
+                // The recorder goes to the side job once the start is recorded; the hashing,
+                // which needs only the split, begins while the start is written.
+                let (give, take) = std::sync::mpsc::channel::<&mut dyn Recorder>();
                 let side = s.spawn(move || -> Result<Vec<crate::data::RowKey>> {
                     let mut keys = shared.hash_test_keys(table, threads);
                     // In key order, as the ledger stores them (it need not sort a copy).
                     keys.sort_unstable();
-                    record.partition(shared, &keys)?;
+                    // No recorder: recording the start failed, and the run stops with that error.
+                    if let Ok(record) = take.recv() {
+                        record.partition(shared, &keys)?;
+                    }
                     Ok(keys)
                 });
+                record.started(shared)?;
+                give.send(record)
+                    .map_err(|_| Error::Internal("the partition job ended early".into()))?;
                 crate::failpoint::pause("run:grid");
                 let cv = cross_validate(
                     spec, table, shared, &entries, &grids, &folds, threads, &mut notes, progress,
@@ -1362,8 +1370,8 @@ pub fn run_recording(
                 );
                 // A panic there is a bug: carry it on rather than turn it into an error.
                 let keys = side.join().unwrap_or_else(|e| std::panic::resume_unwind(e));
-                (after, keys)
-            })
+                Ok((after, keys))
+            })?
         }
     };
     // The grid's error first: it is the user's to fix.
