@@ -1323,7 +1323,7 @@ pub fn run_recording(
     let entries = entries(spec);
     check_grid(spec, table, &prep, &entries)?;
     let grids: Vec<Vec<Params>> = entries.iter().map(ModelSpec::expand).collect();
-    let folds = prep.sealed.folds().to_vec();
+    let folds = prep.sealed.folds();
     let mut notes = Notes::new();
     let mut inputs = Vec::new();
     for cmd in entries.iter().filter_map(|e| e.command.as_ref()) {
@@ -1333,10 +1333,10 @@ pub fn run_recording(
         None => {
             let keys = prep.hash_test_keys(table, threads);
             let cv = cross_validate(
-                spec, table, &prep, &entries, &grids, &folds, threads, &mut notes, progress,
+                spec, table, &prep, &entries, &grids, folds, threads, &mut notes, progress,
             );
             let after = after_grid(
-                spec, table, &prep, &entries, &grids, &folds, threads, &mut notes, cv,
+                spec, table, &prep, &entries, &grids, folds, threads, &mut notes, cv,
             );
             (after, Ok(keys))
         }
@@ -1361,12 +1361,12 @@ pub fn run_recording(
                     .map_err(|_| Error::Internal("the partition job ended early".into()))?;
                 crate::failpoint::pause("run:grid");
                 let cv = cross_validate(
-                    spec, table, shared, &entries, &grids, &folds, threads, &mut notes, progress,
+                    spec, table, shared, &entries, &grids, folds, threads, &mut notes, progress,
                 );
                 // The refit and its digest run while the side job may still be storing the
                 // partition: its tail no longer leaves a core idle.
                 let after = after_grid(
-                    spec, table, shared, &entries, &grids, &folds, threads, &mut notes, cv,
+                    spec, table, shared, &entries, &grids, folds, threads, &mut notes, cv,
                 );
                 // A panic there is a bug: carry it on rather than turn it into an error.
                 let keys = side.join().unwrap_or_else(|e| std::panic::resume_unwind(e));
