@@ -55,7 +55,7 @@ pub struct Prepared {
 }
 
 impl Prepared {
-    /// The identities of the test rows (Ryu text and SHA-256 of every cell: the costly part of
+    /// The identities of the test rows (shortest text and SHA-256 of every cell: the costly part of
     /// preparing a large split, so `run_recording` does it beside the grid).
     pub fn hash_test_keys(&self, table: &Table, threads: usize) -> Vec<crate::data::RowKey> {
         self.sealed
