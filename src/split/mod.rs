@@ -668,7 +668,12 @@ fn folds_with(
             _ => {
                 let made = perms
                     .as_mut()
-                    .filter(|p| index == 0 && p.len() == repeats && p[r].len() == m)
+                    .filter(|p| {
+                        domain == Domain::Folds
+                            && index == 0
+                            && p.len() == repeats
+                            && p[r].len() == m
+                    })
                     .map(|p| std::mem::take(&mut p[r]));
                 let perm: Vec<usize> = if loo {
                     (0..m).collect()
