@@ -105,7 +105,7 @@ impl Metric {
                 let hits = y
                     .iter()
                     .enumerate()
-                    .filter(|(i, c)| argmax(&pred[i * classes..(i + 1) * classes]) == **c as usize)
+                    .filter(|(i, c)| predicted(pred, *i, classes) == **c as usize)
                     .count();
                 Some(hits as f64 / n as f64)
             }
@@ -116,7 +116,7 @@ impl Metric {
                 for (i, c) in y.iter().enumerate() {
                     let c = *c as usize;
                     seen[c] += 1;
-                    if argmax(&pred[i * classes..(i + 1) * classes]) == c {
+                    if predicted(pred, i, classes) == c {
                         hit[c] += 1;
                     }
                 }
@@ -170,6 +170,16 @@ impl Metric {
                 auc(y, &scores)
             }
         }
+    }
+}
+
+/// The class predicted for row `i` of row-major probabilities: `argmax` of its row, with the
+/// two-class case as one comparison (the same answer: a tie or a NaN picks the first class).
+fn predicted(pred: &[f64], i: usize, classes: usize) -> usize {
+    if classes == 2 {
+        usize::from(pred[2 * i + 1] > pred[2 * i])
+    } else {
+        argmax(&pred[i * classes..(i + 1) * classes])
     }
 }
 
@@ -589,6 +599,17 @@ mod tests {
             scaled.scale > 1.0,
             "the overflow case takes the scaled sums"
         );
+    }
+
+    /// The two-class shortcut picks what `argmax` picks, ties and NaN included.
+    #[test]
+    fn two_class_prediction_is_argmax() {
+        let values = [0.0, 0.25, 0.5, 0.75, 1.0, f64::NAN, -0.0];
+        for &a in &values {
+            for &b in &values {
+                assert_eq!(predicted(&[a, b], 0, 2), argmax(&[a, b]), "{a} {b}");
+            }
+        }
     }
 
     #[test]
