@@ -315,6 +315,37 @@ impl Ledger {
         out: &RunOutcome,
         meta: &RunMeta,
     ) -> Result<i64> {
+        self.bulk(|l| l.write_run_rows(spec, table, out, meta))
+    }
+
+    /// Run `write` with SQLite's row-by-row foreign-key checks off (a pragma, so outside any
+    /// transaction), and on again afterwards whatever happened. For the two bulk writes only:
+    /// every reference in their rows points to a row the same transaction wrote or made sure
+    /// of, and they check those references themselves with a few indexed queries before they
+    /// commit (`check_run_references`). A check per row cost more than a third of the insert
+    /// time of a 10,000-candidate run. `audit --verify` checks every reference of the whole
+    /// ledger (`orphans`).
+    fn bulk<T>(&mut self, write: impl FnOnce(&mut Ledger) -> Result<T>) -> Result<T> {
+        self.conn
+            .pragma_update(None, "foreign_keys", "OFF")
+            .map_err(sql_err("pause foreign-key checks"))?;
+        let out = write(self);
+        let back = self
+            .conn
+            .pragma_update(None, "foreign_keys", "ON")
+            .map_err(sql_err("resume foreign-key checks"));
+        let out = out?;
+        back?;
+        Ok(out)
+    }
+
+    fn write_run_rows(
+        &mut self,
+        spec: &crate::spec::Spec,
+        table: &crate::data::Table,
+        out: &RunOutcome,
+        meta: &RunMeta,
+    ) -> Result<i64> {
         let path = self.path.clone();
         let fail = |e: rusqlite::Error| migrate::refuse_or_fail(&path, e, "write run");
         // IMMEDIATE takes the write lock up front, so a concurrent writer waits on the busy
@@ -510,6 +541,7 @@ impl Ledger {
             )
             .map_err(fail)?;
         }
+        check_run_references(&tx, run)?;
         chain::append(&tx, "run", run, None)?;
         if let Some(start) = meta.start {
             // The start and the stored run are never both present, nor both absent.
@@ -532,6 +564,16 @@ impl Ledger {
         prep: &crate::runner::Prepared,
         test_keys: &[crate::data::RowKey],
     ) -> Result<bool> {
+        self.bulk(|l| l.record_partition_rows(spec, table, prep, test_keys))
+    }
+
+    fn record_partition_rows(
+        &mut self,
+        spec: &crate::spec::Spec,
+        table: &crate::data::Table,
+        prep: &crate::runner::Prepared,
+        test_keys: &[crate::data::RowKey],
+    ) -> Result<bool> {
         let path = self.path.clone();
         let fail = |e: rusqlite::Error| migrate::refuse_or_fail(&path, e, "record partition");
         // The grid holds its memory meanwhile: a small cache, spilling to the log as it fills
@@ -544,6 +586,8 @@ impl Ledger {
             .transaction_with_behavior(rusqlite::TransactionBehavior::Immediate)
             .map_err(fail)?;
         let fresh = insert_partition(&tx, spec, table, prep, test_keys).map_err(fail)?;
+        // Every row just written names this partition (one bound parameter), which exists.
+        check_partition(&tx, &prep.partition_id)?;
         tx.commit().map_err(fail)?;
         self.conn
             .pragma_update(None, "cache_size", -CACHE_KIB)
@@ -1504,7 +1548,9 @@ impl Ledger {
 
     /// Verify the chain: (entries checked, problems found).
     pub fn verify(&self) -> Result<(usize, Vec<chain::Break>)> {
-        chain::verify(&self.conn)
+        let (entries, mut breaks) = chain::verify(&self.conn)?;
+        breaks.extend(orphans(&self.conn)?);
+        Ok((entries, breaks))
     }
 
     /// The chain's head hash.
@@ -1566,6 +1612,109 @@ impl Ledger {
 /// The page cache of a connection, and of `record_partition`'s transaction (KiB).
 const CACHE_KIB: i64 = 65536;
 const RECORD_CACHE_KIB: i64 = 2048;
+
+/// Rows that refer to a row that is not there, over the whole ledger (SQLite's own check of
+/// every foreign key): one break per table and missing parent table, `kind` naming the table
+/// and `id` counting its rows. probity never leaves such rows; a hand edit can.
+fn orphans(conn: &Connection) -> Result<Vec<chain::Break>> {
+    let mut st = conn
+        .prepare("PRAGMA foreign_key_check")
+        .map_err(sql_err("check references"))?;
+    let mut found: BTreeMap<(String, String), i64> = BTreeMap::new();
+    let mut rows = st.query([]).map_err(sql_err("check references"))?;
+    while let Some(r) = rows.next().map_err(sql_err("check references"))? {
+        let table: String = r.get(0).map_err(sql_err("check references"))?;
+        let parent: String = r.get(2).map_err(sql_err("check references"))?;
+        *found.entry((table, parent)).or_default() += 1;
+    }
+    Ok(found
+        .into_iter()
+        .map(|((table, parent), n)| chain::Break {
+            seq: None,
+            kind: table.clone(),
+            id: n,
+            what: format!(
+                "{n} row(s) of {table} refer to a row of {parent} that is not there (removed or inserted outside probity)"
+            ),
+        })
+        .collect())
+}
+
+/// A reference the bulk writes checked and found missing: a bug, never the user's doing.
+fn dangling(what: String) -> Error {
+    Error::Internal(format!("{what}; nothing was recorded"))
+}
+
+fn check_partition(tx: &rusqlite::Transaction, id: &str) -> Result<()> {
+    let n: i64 = tx
+        .query_row("SELECT count(*) FROM partitions WHERE id = ?1", [id], |r| {
+            r.get(0)
+        })
+        .map_err(sql_err("check references"))?;
+    if n != 1 {
+        return Err(dangling(format!("partition {id} is missing")));
+    }
+    Ok(())
+}
+
+/// The references of a run's rows, checked with indexed queries (none reads every score row).
+/// Rows keyed by the run (folds, candidates, warnings, inputs, nested, replays) name it through
+/// one bound parameter, and its row exists; what remains is the run's partition and the run it
+/// replays, and that every score names one of the run's candidates: the candidates hold ids
+/// 1..=n, and the score tables' smallest and largest candidate lie in that range.
+fn check_run_references(tx: &rusqlite::Transaction, run: i64) -> Result<()> {
+    let (partition, replay_of): (String, Option<i64>) = tx
+        .query_row(
+            "SELECT partition_id, replay_of FROM runs WHERE id = ?1",
+            [run],
+            |r| Ok((r.get(0)?, r.get(1)?)),
+        )
+        .map_err(sql_err("check references"))?;
+    check_partition(tx, &partition)?;
+    if let Some(of) = replay_of {
+        let n: i64 = tx
+            .query_row("SELECT count(*) FROM runs WHERE id = ?1", [of], |r| {
+                r.get(0)
+            })
+            .map_err(sql_err("check references"))?;
+        if n != 1 {
+            return Err(dangling(format!(
+                "run {run} replays run {of}, which is missing"
+            )));
+        }
+    }
+    let (n, low, high): (i64, Option<i64>, Option<i64>) = tx
+        .query_row(
+            "SELECT count(*), min(id), max(id) FROM candidates WHERE run_id = ?1",
+            [run],
+            |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)),
+        )
+        .map_err(sql_err("check references"))?;
+    if n > 0 && (low != Some(1) || high != Some(n)) {
+        return Err(dangling(format!(
+            "run {run}'s {n} candidates are not numbered 1 to {n}"
+        )));
+    }
+    for t in ["fold_scores", "scores"] {
+        let (low, high): (Option<i64>, Option<i64>) = tx
+            .query_row(
+                &format!(
+                    "SELECT (SELECT min(candidate) FROM {t} WHERE run_id = ?1), (SELECT max(candidate) FROM {t} WHERE run_id = ?1)"
+                ),
+                [run],
+                |r| Ok((r.get(0)?, r.get(1)?)),
+            )
+            .map_err(sql_err("check references"))?;
+        if let (Some(low), Some(high)) = (low, high)
+            && (low < 1 || high > n)
+        {
+            return Err(dangling(format!(
+                "run {run}'s {t} name candidates {low} to {high}, but it has {n}"
+            )));
+        }
+    }
+    Ok(())
+}
 
 fn json_str(s: &str) -> Value {
     Value::String(s.to_string())
@@ -1630,4 +1779,99 @@ fn insert_partition(
         }
     }
     Ok(fresh)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn stored_run(name: &str) -> (Ledger, PathBuf) {
+        let mut csv = String::from("x1,x2,y\n");
+        for i in 0..300u32 {
+            let t = f64::from(i);
+            let (x1, x2) = ((t * 0.731).sin(), (t * 1.37).cos());
+            csv.push_str(&format!("{x1},{x2},{}\n", 2.0 * x1 - x2 + (t * 2.9).sin()));
+        }
+        let table =
+            crate::data::parse(csv.as_bytes(), Path::new("r.csv"), "0".into(), &[]).unwrap();
+        let text = "name = \"r\"\ntask = \"regression\"\n[data]\npath = \"r.csv\"\ntarget = \"y\"\n\
+            [split]\nmethod = \"random\"\nseed = 3\ntest = 0.2\nfolds = 3\n\
+            [[model]]\nkind = \"ridge\"\nlambda = [0.01, 1, 100]\n";
+        let spec = crate::spec::parse(text, Path::new("r.toml"), Path::new(".")).unwrap();
+        let out = crate::runner::run(&spec, &table, 2).unwrap();
+        let dir =
+            std::env::temp_dir().join(format!("probity-ledger-{name}-{}", std::process::id()));
+        let _ = std::fs::remove_dir_all(&dir);
+        std::fs::create_dir_all(&dir).unwrap();
+        let mut ledger = Ledger::open(&dir.join("l.sqlite"), true).unwrap();
+        let meta = RunMeta {
+            started_at: "2026-12-03T00:00:00Z".into(),
+            finished_at: "2026-12-03T00:00:01Z".into(),
+            tool_version: "0".into(),
+            user: "u".into(),
+            host: "h".into(),
+            threads: 2,
+            spec_path: "r.toml".into(),
+            data_path: "r.csv".into(),
+            note: None,
+            tool_commit: "c".into(),
+            target_triple: "t".into(),
+            replay: None,
+            start: None,
+        };
+        ledger.write_run(&spec, &table, &out, &meta).unwrap();
+        (ledger, dir)
+    }
+
+    /// The bulk write pauses SQLite's per-row checks and resumes them, leaves no row that
+    /// refers to a missing one, and its own check finds a score naming a candidate the run
+    /// does not have, and a missing partition.
+    #[test]
+    fn bulk_writes_keep_and_check_every_reference() {
+        let (mut ledger, dir) = stored_run("refs");
+        let on: i64 = ledger
+            .conn
+            .query_row("PRAGMA foreign_keys", [], |r| r.get(0))
+            .unwrap();
+        assert_eq!(on, 1);
+        assert!(orphans(&ledger.conn).unwrap().is_empty());
+        assert!(ledger.verify().unwrap().1.is_empty());
+        // 1 mean baseline + 3 ridge candidates.
+        let tx = ledger.conn.transaction().unwrap();
+        check_run_references(&tx, 1).unwrap();
+        tx.execute(
+            "INSERT INTO fold_scores VALUES (1, 5, 0, 0, 'train', 'rmse', 1.0)",
+            [],
+        )
+        .unwrap_err(); // per-row checks are on outside the bulk writes
+        tx.execute_batch("PRAGMA defer_foreign_keys = ON").unwrap();
+        tx.execute(
+            "INSERT INTO fold_scores VALUES (1, 5, 0, 0, 'train', 'rmse', 1.0)",
+            [],
+        )
+        .unwrap();
+        let e = check_run_references(&tx, 1).unwrap_err().to_string();
+        assert!(
+            e.contains("fold_scores name candidates 1 to 5, but it has 4"),
+            "{e}"
+        );
+        drop(tx);
+        ledger
+            .conn
+            .execute_batch(
+                "PRAGMA foreign_keys = OFF; DELETE FROM partition_rows; DELETE FROM partitions;",
+            )
+            .unwrap();
+        let tx = ledger.conn.transaction().unwrap();
+        let e = check_run_references(&tx, 1).unwrap_err().to_string();
+        assert!(e.contains("is missing"), "{e}");
+        drop(tx);
+        // audit's whole-ledger check names the table that lost its parent rows.
+        let o = orphans(&ledger.conn).unwrap();
+        assert_eq!(o.len(), 1, "{o:?}");
+        assert_eq!((o[0].kind.as_str(), o[0].id), ("runs", 1));
+        assert!(o[0].what.contains("row of partitions"), "{}", o[0].what);
+        drop(ledger);
+        let _ = std::fs::remove_dir_all(dir);
+    }
 }

@@ -203,6 +203,41 @@ fn tampering_is_detected_and_located() {
             && x["what"].as_str().unwrap().contains("not on the chain")),
         "{b:?}"
     );
+
+    // A deleted candidate leaves its scores pointing nowhere: the run's entry no longer hashes,
+    // and the reference check counts the rows that lost their candidate.
+    let d = setup("tamper-orphan");
+    sql(
+        &d,
+        "PRAGMA foreign_keys = OFF; DELETE FROM candidates WHERE run_id = 2 AND id = 2",
+    );
+    let b = broken(&d);
+    assert!(
+        b.iter()
+            .any(|x| x["seq"] == 4 && x["kind"] == "run" && x["id"] == 2),
+        "{b:?}"
+    );
+    let c = rusqlite::Connection::open(d.ledger()).unwrap();
+    for table in ["fold_scores", "scores"] {
+        let n: i64 = c
+            .query_row(
+                &format!("SELECT count(*) FROM {table} WHERE run_id = 2 AND candidate = 2"),
+                [],
+                |r| r.get(0),
+            )
+            .unwrap();
+        assert!(n > 0);
+        assert!(
+            b.iter().any(|x| x["seq"].is_null()
+                && x["kind"] == table
+                && x["id"] == n
+                && x["what"]
+                    .as_str()
+                    .unwrap()
+                    .contains("row of candidates that is not there")),
+            "{table} {n}: {b:?}"
+        );
+    }
 }
 
 #[test]
