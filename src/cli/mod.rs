@@ -171,7 +171,7 @@ pub(crate) fn out(text: &str) -> Result<()> {
         })
 }
 
-pub(crate) fn out_json(v: &serde_json::Value) -> Result<()> {
+pub(crate) fn out_json<T: serde::Serialize + ?Sized>(v: &T) -> Result<()> {
     // Streamed: a run of 10,000 candidates is megabytes of JSON.
     let mut o = std::io::BufWriter::new(std::io::stdout().lock());
     serde_json::to_writer_pretty(&mut o, v)

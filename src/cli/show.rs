@@ -22,11 +22,16 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
     let notes = ledger.notes(a.run)?;
     if a.json {
         let mut doc = crate::report::json::show(&d);
-        doc["notes"] = serde_json::json!(
-            notes
-                .iter()
-                .map(|(at, user, text)| serde_json::json!({"at": at, "user": user, "text": text}))
-                .collect::<Vec<_>>()
+        doc.insert(
+            "notes",
+            serde_json::json!(
+                notes
+                    .iter()
+                    .map(
+                        |(at, user, text)| serde_json::json!({"at": at, "user": user, "text": text})
+                    )
+                    .collect::<Vec<_>>()
+            ),
         );
         out_json(&doc)?;
         return Ok(0);
