@@ -158,11 +158,21 @@ fn feed(h: &mut Sha256, sections: &Sections) {
 
 /// The hash of an entry read straight from the ledger, row by row (a run's sections can hold
 /// hundreds of thousands of rows; nothing is collected). `None` when its main row is gone.
-fn stream_hash(conn: &Connection, prev: &str, kind: &str, id: i64) -> Result<Option<String>> {
+fn stream_hash(
+    conn: &Connection,
+    prev: &str,
+    kind: &str,
+    id: i64,
+    known: Option<&PartitionRows>,
+) -> Result<Option<String>> {
     let mut h = Sha256::new();
     h.update(prev.as_bytes());
     for (i, (name, sql)) in section_queries(kind).iter().enumerate() {
         put(&mut h, b'S', name.as_bytes());
+        if let Some(rows) = known.filter(|_| *name == "partition_rows") {
+            rows.feed(&mut h);
+            continue;
+        }
         let mut st = conn.prepare(sql).map_err(sql_err("read entry"))?;
         let n = st.column_count();
         let mut rows = st.query([id]).map_err(sql_err("read entry"))?;
@@ -179,6 +189,35 @@ fn stream_hash(conn: &Connection, prev: &str, kind: &str, id: i64) -> Result<Opt
         }
     }
     Ok(Some(crate::spec::hex(&h.finalize())))
+}
+
+/// A partition's test-row identities as this process stored them, so a run's entry can hash
+/// them without reading them back (a million-row run stores 200,000; reading them back was
+/// most of its chain time). Only for a partition this transaction, or this connection's
+/// previous one, inserted as new: its rows are then exactly these identities, once each, and
+/// nothing else changes a stored partition. `audit` recomputes every entry from the stored
+/// rows, so a difference would still show.
+pub struct PartitionRows<'a> {
+    pub id: &'a str,
+    /// In key order.
+    pub keys: &'a [[u8; 16]],
+}
+
+impl PartitionRows<'_> {
+    /// The section's rows as `SELECT * ... ORDER BY row_key` gives them: (partition_id TEXT,
+    /// row_key BLOB), a repeated identity stored once.
+    fn feed(&self, h: &mut Sha256) {
+        let mut last: Option<&[u8; 16]> = None;
+        for k in self.keys {
+            if last == Some(k) {
+                continue;
+            }
+            last = Some(k);
+            put(h, b'R', &2u64.to_le_bytes());
+            put_value(h, rusqlite::types::ValueRef::Text(self.id.as_bytes()));
+            put_value(h, rusqlite::types::ValueRef::Blob(k));
+        }
+    }
 }
 
 /// SHA-256(prev_hash || canonical bytes), hex.
@@ -209,8 +248,19 @@ pub fn append(
     id: i64,
     origin: Option<(&str, &str)>,
 ) -> Result<String> {
+    append_known(conn, kind, id, origin, None)
+}
+
+/// `append`, with a run's partition rows taken from `known` (see `PartitionRows`).
+pub fn append_known(
+    conn: &Connection,
+    kind: &str,
+    id: i64,
+    origin: Option<(&str, &str)>,
+    known: Option<&PartitionRows>,
+) -> Result<String> {
     let prev = head(conn)?;
-    let hash = stream_hash(conn, &prev, kind, id)?
+    let hash = stream_hash(conn, &prev, kind, id, known)?
         .ok_or_else(|| Error::Internal(format!("{kind} {id} vanished before it was chained")))?;
     conn.execute(
         "INSERT INTO chain (kind, ref_id, prev_hash, entry_hash, origin, origin_prev) VALUES (?1, ?2, ?3, ?4, ?5, ?6)",
@@ -271,7 +321,7 @@ pub fn verify(conn: &Connection) -> Result<(usize, Vec<Break>)> {
                 what: format!("links to previous hash {prev} but the entry before it has {expected_prev} (entries removed or reordered)"),
             });
         }
-        match stream_hash(conn, prev, kind, *id)? {
+        match stream_hash(conn, prev, kind, *id, None)? {
             None => breaks.push(Break {
                 seq: Some(*seq),
                 kind: kind.clone(),

@@ -40,6 +40,9 @@ const KEYS_PER_STATEMENT: usize = 500;
 pub struct Ledger {
     conn: Connection,
     path: PathBuf,
+    /// The partition `record_partition` last inserted as new, with its number of distinct
+    /// test-row identities: `write_run` hashes those rows for the chain from memory.
+    fresh: Option<(String, usize)>,
 }
 
 /// Facts about a run that come from outside the runner (the CLI reads clock and environment).
@@ -242,6 +245,7 @@ impl Ledger {
         Ok(Ledger {
             conn,
             path: path.to_path_buf(),
+            fresh: None,
         })
     }
 
@@ -300,6 +304,7 @@ impl Ledger {
         Ok(Ledger {
             conn,
             path: path.to_path_buf(),
+            fresh: None,
         })
     }
 
@@ -356,7 +361,20 @@ impl Ledger {
             .map_err(fail)?;
         let prep = &out.prepared;
         let s = &prep.sealed;
-        insert_partition(&tx, spec, table, prep, &prep.test_keys).map_err(fail)?;
+        let inserted = insert_partition(&tx, spec, table, prep, &prep.test_keys).map_err(fail)?;
+        // The partition's rows are these identities when they went in as new, here or in this
+        // connection's `record_partition` of the same partition (the same identities: the same
+        // number of distinct ones); otherwise the chain reads them back.
+        let keys = sorted_keys(&prep.test_keys);
+        let recorded = self.fresh.take();
+        let known = (inserted
+            || recorded
+                .as_ref()
+                .is_some_and(|(id, n)| *id == prep.partition_id && *n == distinct(&keys)))
+        .then(|| chain::PartitionRows {
+            id: &prep.partition_id,
+            keys: &keys,
+        });
         let model_json = serde_json::to_string(&out.refit)
             .map_err(|e| Error::Internal(format!("serialise model: {e}")))?;
         tx.execute(
@@ -542,7 +560,7 @@ impl Ledger {
             .map_err(fail)?;
         }
         check_run_references(&tx, run)?;
-        chain::append(&tx, "run", run, None)?;
+        chain::append_known(&tx, "run", run, None, known.as_ref())?;
         if let Some(start) = meta.start {
             // The start and the stored run are never both present, nor both absent.
             tx.execute("DELETE FROM run_starts WHERE id = ?1", [start])
@@ -589,6 +607,7 @@ impl Ledger {
         // Every row just written names this partition (one bound parameter), which exists.
         check_partition(&tx, &prep.partition_id)?;
         tx.commit().map_err(fail)?;
+        self.fresh = fresh.then(|| (prep.partition_id.clone(), distinct(&sorted_keys(test_keys))));
         self.conn
             .pragma_update(None, "cache_size", -CACHE_KIB)
             .map_err(fail)?;
@@ -598,6 +617,7 @@ impl Ledger {
     /// Remove a partition that `record_partition` stored for a run that then failed, unless a
     /// run or a reveal refers to it by now.
     pub fn forget_partition(&mut self, id: &str) -> Result<()> {
+        self.fresh = None;
         let path = self.path.clone();
         let fail = |e: rusqlite::Error| migrate::refuse_or_fail(&path, e, "forget partition");
         let tx = self
@@ -1720,6 +1740,20 @@ fn json_str(s: &str) -> Value {
     Value::String(s.to_string())
 }
 
+/// Test-row identities in key order (borrowed when they already are).
+fn sorted_keys(keys: &[crate::data::RowKey]) -> std::borrow::Cow<'_, [crate::data::RowKey]> {
+    let mut sorted = std::borrow::Cow::Borrowed(keys);
+    if !keys.is_sorted() {
+        sorted.to_mut().sort_unstable();
+    }
+    sorted
+}
+
+/// The number of distinct identities among sorted ones.
+fn distinct(sorted: &[crate::data::RowKey]) -> usize {
+    sorted.chunk_by(|a, b| a == b).count()
+}
+
 /// Store a partition and, when it is new, its test rows' identities; true when it was new.
 fn insert_partition(
     tx: &rusqlite::Transaction,
@@ -1747,10 +1781,7 @@ fn insert_partition(
     if fresh {
         // In key order, so the table and its index grow at their ends, and many rows per
         // statement: a large test partition holds hundreds of thousands of rows.
-        let mut sorted = std::borrow::Cow::Borrowed(test_keys);
-        if !test_keys.is_sorted() {
-            sorted.to_mut().sort_unstable();
-        }
+        let sorted = sorted_keys(test_keys);
         let keys = &*sorted;
         let many = |n: usize| {
             let tuples: Vec<String> = (0..n).map(|i| format!("(?1, ?{})", i + 2)).collect();
@@ -1786,11 +1817,24 @@ mod tests {
     use super::*;
 
     fn stored_run(name: &str) -> (Ledger, PathBuf) {
+        stored_run_with(name, 1, false, false)
+    }
+
+    /// A run stored in a new ledger: each data line `copies` times (identical rows share an
+    /// identity), its partition recorded first when `recorded`, stored a second time when
+    /// `twice`.
+    fn stored_run_with(
+        name: &str,
+        copies: usize,
+        recorded: bool,
+        twice: bool,
+    ) -> (Ledger, PathBuf) {
         let mut csv = String::from("x1,x2,y\n");
         for i in 0..300u32 {
             let t = f64::from(i);
             let (x1, x2) = ((t * 0.731).sin(), (t * 1.37).cos());
-            csv.push_str(&format!("{x1},{x2},{}\n", 2.0 * x1 - x2 + (t * 2.9).sin()));
+            let line = format!("{x1},{x2},{}\n", 2.0 * x1 - x2 + (t * 2.9).sin());
+            csv.push_str(&line.repeat(copies));
         }
         let table =
             crate::data::parse(csv.as_bytes(), Path::new("r.csv"), "0".into(), &[]).unwrap();
@@ -1819,8 +1863,60 @@ mod tests {
             replay: None,
             start: None,
         };
+        if recorded {
+            let prep = &out.prepared;
+            assert!(
+                ledger
+                    .record_partition(&spec, &table, prep, &prep.test_keys)
+                    .unwrap()
+            );
+        }
         ledger.write_run(&spec, &table, &out, &meta).unwrap();
+        if twice {
+            // The same partition again: its rows are read back for the chain.
+            ledger.write_run(&spec, &table, &out, &meta).unwrap();
+        }
         (ledger, dir)
+    }
+
+    /// The run's chain entry, hashed with its partition rows from memory, equals the hash of
+    /// the stored rows (`verify` reads them back), repeated identities included, whether the
+    /// rows went in with the run or beforehand; and a second run of the same partition, whose
+    /// rows are read back, chains as well.
+    #[test]
+    fn partition_rows_hashed_from_memory_match_the_stored_rows() {
+        for (copies, recorded) in [(1, false), (1, true), (3, false), (3, true)] {
+            let (ledger, dir) = stored_run_with(
+                &format!("known-{copies}-{recorded}"),
+                copies,
+                recorded,
+                true,
+            );
+            let keys: i64 = ledger
+                .conn
+                .query_row("SELECT count(*) FROM partition_rows", [], |r| r.get(0))
+                .unwrap();
+            let test: i64 = ledger
+                .conn
+                .query_row("SELECT n_test FROM partitions", [], |r| r.get(0))
+                .unwrap();
+            if copies > 1 {
+                assert!(keys < test, "{keys} identities of {test} test rows");
+            }
+            assert!(ledger.fresh.is_none());
+            let (entries, breaks) = ledger.verify().unwrap();
+            assert_eq!((entries, breaks.len()), (2, 0), "{breaks:?}");
+            // Remove one stored identity: both runs' entries no longer match.
+            ledger
+                .conn
+                .execute_batch(
+                    "DELETE FROM partition_rows WHERE row_key = (SELECT min(row_key) FROM partition_rows)",
+                )
+                .unwrap();
+            assert_eq!(ledger.verify().unwrap().1.len(), 2);
+            drop(ledger);
+            let _ = std::fs::remove_dir_all(dir);
+        }
     }
 
     /// The bulk write pauses SQLite's per-row checks and resumes them, leaves no row that
