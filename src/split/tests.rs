@@ -524,3 +524,34 @@ fn property_stratified_groups_never_straddle_and_keep_class_shares() {
     .unwrap();
     assert_eq!((a.parts, a.folds), (b.parts, b.folds));
 }
+
+/// A split large enough for the fold lists to be built on two threads: every fold's lists are
+/// in row order, its fit and score rows are exactly the development rows, the scores cover
+/// them once, and the sizes differ by at most one (odd and even fold counts).
+#[test]
+fn large_splits_build_each_fold_from_every_development_row() {
+    let n = 150_001;
+    let y = ys(n);
+    for k in [2, 3, 5] {
+        let p = split(&input(Method::Random, &y, 0.2, 0.0, Folds::K(k), 1, 7)).unwrap();
+        let dev = p.development();
+        assert!(dev.len() >= 100_000);
+        let mut covered = vec![0u8; n];
+        for f in &p.folds {
+            assert!(f.fit.is_sorted() && f.score.is_sorted());
+            let mut both: Vec<usize> = f.fit.iter().chain(&f.score).copied().collect();
+            both.sort_unstable();
+            assert_eq!(both, dev, "fold {} of {k}", f.index);
+            for &r in &f.score {
+                covered[r] += 1;
+            }
+        }
+        assert!(dev.iter().all(|&r| covered[r] == 1));
+        let sizes: Vec<usize> = p.folds.iter().map(|f| f.score.len()).collect();
+        assert!(sizes.iter().max().unwrap() - sizes.iter().min().unwrap() <= 1);
+        assert_eq!(
+            (0..k).collect::<Vec<_>>(),
+            p.folds.iter().map(|f| f.index).collect::<Vec<_>>()
+        );
+    }
+}
