@@ -290,7 +290,10 @@ fn prepare_unkeyed(spec: &Spec, table: &Table) -> Result<Prepared> {
             let other = s.spawn(|| none(b));
             // A panic there is a bug: carry it on.
             let first = none(a);
-            first & other.join().unwrap_or_else(|e| std::panic::resume_unwind(e))
+            first
+                & other
+                    .join()
+                    .unwrap_or_else(|e| std::panic::resume_unwind(e))
         })
     };
     if complete {

@@ -379,8 +379,10 @@ impl Ledger {
             .map_err(|e| Error::Internal(format!("serialise model: {e}")))?;
         tx.execute(
             "INSERT INTO runs (experiment, status, started_at, finished_at, tool_version, user, host, threads, seed, spec_path, spec_text, spec_hash,
-                data_path, data_sha256, data_rows, data_columns, rows_used, partition_id, holdout, metric, rule, best, selected, model_json, note)
-             VALUES (?1, 'complete', ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17, ?18, ?19, ?20, ?21, ?22, ?23, ?24)",
+                data_path, data_sha256, data_rows, data_columns, rows_used, partition_id, holdout, metric, rule, best, selected, model_json, note,
+                tool_commit, target_triple, predictions_digest, replay_of)
+             VALUES (?1, 'complete', ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17, ?18, ?19, ?20, ?21, ?22, ?23, ?24,
+                ?25, ?26, ?27, ?28)",
             params![
                 spec.name,
                 meta.started_at,
@@ -408,7 +410,11 @@ impl Ledger {
                 out.best as i64,
                 out.selected as i64,
                 model_json,
-                meta.note
+                meta.note,
+                meta.tool_commit,
+                meta.target_triple,
+                out.predictions_digest,
+                meta.replay.as_ref().map(|r| r.replay_of)
             ],
         )
         .map_err(fail)?;
@@ -521,11 +527,6 @@ impl Ledger {
                 warn.execute(params![run, i as i64, w]).map_err(fail)?;
             }
         }
-        tx.execute(
-            "UPDATE runs SET tool_commit = ?2, target_triple = ?3, predictions_digest = ?4, replay_of = ?5 WHERE id = ?1",
-            params![run, meta.tool_commit, meta.target_triple, out.predictions_digest, meta.replay.as_ref().map(|r| r.replay_of)],
-        )
-        .map_err(fail)?;
         for c in out.candidates.iter().filter(|c| c.failure.is_some()) {
             tx.execute(
                 "UPDATE candidates SET failure = ?3 WHERE run_id = ?1 AND id = ?2",
@@ -559,7 +560,12 @@ impl Ledger {
             )
             .map_err(fail)?;
         }
-        check_run_references(&tx, run)?;
+        check_run_references(
+            &tx,
+            run,
+            &prep.partition_id,
+            meta.replay.as_ref().map(|r| r.replay_of),
+        )?;
         chain::append_known(&tx, "run", run, None, known.as_ref())?;
         if let Some(start) = meta.start {
             // The start and the stored run are never both present, nor both absent.
@@ -1682,15 +1688,15 @@ fn check_partition(tx: &rusqlite::Transaction, id: &str) -> Result<()> {
 /// one bound parameter, and its row exists; what remains is the run's partition and the run it
 /// replays, and that every score names one of the run's candidates: the candidates hold ids
 /// 1..=n, and the score tables' smallest and largest candidate lie in that range.
-fn check_run_references(tx: &rusqlite::Transaction, run: i64) -> Result<()> {
-    let (partition, replay_of): (String, Option<i64>) = tx
-        .query_row(
-            "SELECT partition_id, replay_of FROM runs WHERE id = ?1",
-            [run],
-            |r| Ok((r.get(0)?, r.get(1)?)),
-        )
-        .map_err(sql_err("check references"))?;
-    check_partition(tx, &partition)?;
+/// `partition` and `replay_of` are the values the run's row was written with (reading
+/// `replay_of` back would read past the stored model, megabytes for a knn run).
+fn check_run_references(
+    tx: &rusqlite::Transaction,
+    run: i64,
+    partition: &str,
+    replay_of: Option<i64>,
+) -> Result<()> {
+    check_partition(tx, partition)?;
     if let Some(of) = replay_of {
         let n: i64 = tx
             .query_row("SELECT count(*) FROM runs WHERE id = ?1", [of], |r| {
@@ -1933,8 +1939,19 @@ mod tests {
         assert!(orphans(&ledger.conn).unwrap().is_empty());
         assert!(ledger.verify().unwrap().1.is_empty());
         // 1 mean baseline + 3 ridge candidates.
+        let pid: String = ledger
+            .conn
+            .query_row("SELECT partition_id FROM runs WHERE id = 1", [], |r| {
+                r.get(0)
+            })
+            .unwrap();
         let tx = ledger.conn.transaction().unwrap();
-        check_run_references(&tx, 1).unwrap();
+        check_run_references(&tx, 1, &pid, None).unwrap();
+        check_run_references(&tx, 1, &pid, Some(1)).unwrap();
+        let e = check_run_references(&tx, 1, &pid, Some(9))
+            .unwrap_err()
+            .to_string();
+        assert!(e.contains("replays run 9, which is missing"), "{e}");
         tx.execute(
             "INSERT INTO fold_scores VALUES (1, 5, 0, 0, 'train', 'rmse', 1.0)",
             [],
@@ -1946,7 +1963,9 @@ mod tests {
             [],
         )
         .unwrap();
-        let e = check_run_references(&tx, 1).unwrap_err().to_string();
+        let e = check_run_references(&tx, 1, &pid, None)
+            .unwrap_err()
+            .to_string();
         assert!(
             e.contains("fold_scores name candidates 1 to 5, but it has 4"),
             "{e}"
@@ -1959,7 +1978,9 @@ mod tests {
             )
             .unwrap();
         let tx = ledger.conn.transaction().unwrap();
-        let e = check_run_references(&tx, 1).unwrap_err().to_string();
+        let e = check_run_references(&tx, 1, &pid, None)
+            .unwrap_err()
+            .to_string();
         assert!(e.contains("is missing"), "{e}");
         drop(tx);
         // audit's whole-ledger check names the table that lost its parent rows.
