@@ -16,6 +16,9 @@ either side, the data file is read once, untimed (--no-warm turns this off): on 
 the kernel may evict the file's pages between runs, and a run that re-reads them from disk
 measures the disk, not the program (one such run here took 25 s instead of 1.5 s).
 
+"total/load" is given twice: the median run's time over the median load, and the median of each
+run's time over its own load (the pair saw the same state of a shared machine).
+
 Usage:
   python3 bench/run.py [--repeats 3] [--data DIR] [--scenarios a,b,c,d]
 Needs: numpy, pandas, scikit-learn, scipy, threadpoolctl (for the peer and the data generator),
@@ -176,8 +179,11 @@ def main():
         q = statistics.median(peer) if peer else None
         rows.append((sc, o, q, max(rss)))
         ld = statistics.median(loads)
+        # Each run against its own load as well: both halves of a pair saw the same machine.
+        paired = [w / l for w, l in zip(ours, loads)]
         print(f"{sc}: probity {o:.3f} s (runs {', '.join(f'{x:.3f}' for x in ours)}), peak {max(rss):.0f} MiB; "
-              + f"load (read+parse+hash) {ld:.3f} s, total/load {o / ld:.2f}, "
+              + f"load (read+parse+hash) {ld:.3f} s (runs {', '.join(f'{x:.3f}' for x in loads)}), total/load {o / ld:.2f} "
+              + f"(per run {', '.join(f'{x:.2f}' for x in paired)}: median {statistics.median(paired):.2f}), "
               + f"committed after {statistics.median(stores):.3f} s; "
               + (f"peer {'+'.join(PEER[sc])} {q:.3f} s, ratio {o / q:.2f}" if q else "no peer stage"), flush=True)
     print("\nscenario  probity_s  peer_s  ratio  probity_peak_MiB")
