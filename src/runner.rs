@@ -282,10 +282,12 @@ fn prepare_unkeyed(spec: &Spec, table: &Table) -> Result<Prepared> {
     let mut dropped = 0;
     // Column by column first (sequential reads): with nothing missing, every row is used and
     // the row-by-row search below, which finds the first missing cell for the message, is moot.
-    let complete = {
+    let none = |cols: &[usize]| cols.iter().all(|&c| !table.columns[c].has_missing());
+    let complete = if table.n_rows() < 100_000 {
+        none(&used)
+    } else {
         // Two threads, half the columns each: a million-row file's scan is memory-bound.
         let (a, b) = used.split_at(used.len() / 2);
-        let none = |cols: &[usize]| cols.iter().all(|&c| !table.columns[c].has_missing());
         std::thread::scope(|s| {
             let other = s.spawn(|| none(b));
             // A panic there is a bug: carry it on.

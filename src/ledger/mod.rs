@@ -327,7 +327,7 @@ impl Ledger {
     /// transaction), and on again afterwards whatever happened. For the two bulk writes only:
     /// every reference in their rows points to a row the same transaction wrote or made sure
     /// of, and they check those references themselves with a few indexed queries before they
-    /// commit (`check_run_references`). A check per row cost more than a third of the insert
+    /// commit (`check_run_references`). A check per row cost about a third of the insert
     /// time of a 10,000-candidate run. `audit --verify` checks every reference of the whole
     /// ledger (`orphans`).
     fn bulk<T>(&mut self, write: impl FnOnce(&mut Ledger) -> Result<T>) -> Result<T> {
