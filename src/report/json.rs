@@ -21,8 +21,10 @@ impl RunDoc<'_> {
         self.fields.insert(key.to_string(), value);
     }
 
-    /// The whole document as a value (for tests and small runs).
-    pub fn to_value(&self) -> Value {
+    /// The whole document as a tree of values: the plain definition the streamed form is
+    /// tested against.
+    #[cfg(test)]
+    fn to_value(&self) -> Value {
         let mut v = self.fields.clone();
         v.insert(
             "candidates".into(),
@@ -98,6 +100,7 @@ impl Serialize for Stats<'_> {
     }
 }
 
+#[cfg(test)]
 fn means(m: &BTreeMap<String, Stat>) -> Value {
     Value::Object(
         m.iter()
@@ -106,6 +109,7 @@ fn means(m: &BTreeMap<String, Stat>) -> Value {
     )
 }
 
+#[cfg(test)]
 fn ses(m: &BTreeMap<String, Stat>) -> Value {
     Value::Object(
         m.iter()
@@ -114,6 +118,8 @@ fn ses(m: &BTreeMap<String, Stat>) -> Value {
     )
 }
 
+/// A candidate's document as a value (the definition `CandidateDoc` is tested against).
+#[cfg(test)]
 fn candidate(c: &CandidateRow) -> Value {
     json!({
         "id": c.id,
