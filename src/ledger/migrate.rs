@@ -31,6 +31,10 @@ pub const MIGRATIONS: &[(&str, &str)] = &[
         "0006_run_starts.sql",
         include_str!("../../migrations/0006_run_starts.sql"),
     ),
+    (
+        "0007_partition_rows_without_key_index.sql",
+        include_str!("../../migrations/0007_partition_rows_without_key_index.sql"),
+    ),
 ];
 
 /// The schema version this binary writes.
@@ -167,6 +171,34 @@ mod tests {
         let e = migrate(&mut c, Path::new("x.sqlite")).unwrap_err();
         assert_eq!(e.exit_code(), 2);
         assert!(e.to_string().contains("newer"), "{e}");
+    }
+
+    /// 0007 drops partition_rows' index by identity alone from a version 6 ledger; the rows stay.
+    #[test]
+    fn the_identity_index_goes_and_the_rows_stay() {
+        let mut c = Connection::open_in_memory().unwrap();
+        c.pragma_update(None, "foreign_keys", "OFF").unwrap();
+        for (_, sql) in &MIGRATIONS[..6] {
+            c.execute_batch(sql).unwrap();
+        }
+        c.pragma_update(None, "user_version", 6).unwrap();
+        c.execute_batch("INSERT INTO partition_rows VALUES ('p', x'01'), ('p', x'02');")
+            .unwrap();
+        let index = |c: &Connection| -> i64 {
+            c.query_row(
+                "SELECT count(*) FROM sqlite_schema WHERE name = 'partition_rows_by_key'",
+                [],
+                |r| r.get(0),
+            )
+            .unwrap()
+        };
+        assert_eq!(index(&c), 1);
+        migrate(&mut c, Path::new(":memory:")).unwrap();
+        assert_eq!(index(&c), 0);
+        let n: i64 = c
+            .query_row("SELECT count(*) FROM partition_rows", [], |r| r.get(0))
+            .unwrap();
+        assert_eq!(n, 2);
     }
 
     /// 0005 rebuilds the score tables: every row survives, in the same columns and order, so

@@ -1037,28 +1037,80 @@ impl Ledger {
             .map_err(sql_err("count reveals"))
     }
 
-    /// Partitions whose test rows include any of `keys`, with how many of them: (partition, rows).
+    /// Partitions whose test rows include any of `keys`, with how many of them: (partition, rows),
+    /// by partition id. A key given twice counts twice.
+    ///
+    /// Rows are stored by (partition, identity) only, so each partition is searched on its own:
+    /// one lookup per distinct key when the keys are few beside the partition's rows, else one
+    /// pass over its rows in identity order beside the sorted keys. Either way the count is the
+    /// same; the choice only bounds the work by the smaller side.
     pub fn sealed_partitions_holding(
         &self,
         keys: &[crate::data::RowKey],
     ) -> Result<Vec<(String, i64)>> {
-        let mut st = self
-            .conn
-            .prepare(
-                "SELECT partition_id FROM partition_rows WHERE row_key = ?1 ORDER BY partition_id",
-            )
-            .map_err(sql_err("find sealed rows"))?;
-        let mut hits: BTreeMap<String, i64> = BTreeMap::new();
-        for k in keys {
-            let parts: Vec<String> = st
-                .query_map([&k[..]], |r| r.get(0))
-                .and_then(|rows| rows.collect())
-                .map_err(sql_err("find sealed rows"))?;
-            for p in parts {
-                *hits.entry(p).or_insert(0) += 1;
+        let mut sorted = keys.to_vec();
+        sorted.sort_unstable();
+        // Distinct keys with how often each was given.
+        let mut distinct: Vec<(crate::data::RowKey, i64)> = Vec::new();
+        for k in sorted {
+            match distinct.last_mut() {
+                Some((last, n)) if *last == k => *n += 1,
+                _ => distinct.push((k, 1)),
             }
         }
-        Ok(hits.into_iter().collect())
+        let err = sql_err("find sealed rows");
+        let parts: Vec<(String, i64)> = {
+            let mut st = self
+                .conn
+                .prepare("SELECT id, n_test FROM partitions ORDER BY id")
+                .map_err(err)?;
+            st.query_map([], |r| Ok((r.get(0)?, r.get(1)?)))
+                .and_then(|rows| rows.collect())
+                .map_err(sql_err("find sealed rows"))?
+        };
+        let mut probe = self
+            .conn
+            .prepare(
+                "SELECT EXISTS (SELECT 1 FROM partition_rows WHERE partition_id = ?1 AND row_key = ?2)",
+            )
+            .map_err(sql_err("find sealed rows"))?;
+        let mut scan = self
+            .conn
+            .prepare("SELECT row_key FROM partition_rows WHERE partition_id = ?1 ORDER BY row_key")
+            .map_err(sql_err("find sealed rows"))?;
+        let mut out = Vec::new();
+        for (id, n_test) in parts {
+            let mut hits = 0;
+            if (distinct.len() as i64).saturating_mul(PROBE_COST) < n_test {
+                for (k, n) in &distinct {
+                    let found: bool = probe
+                        .query_row(params![id, &k[..]], |r| r.get(0))
+                        .map_err(sql_err("find sealed rows"))?;
+                    if found {
+                        hits += n;
+                    }
+                }
+            } else {
+                let mut rows = scan.query([&id]).map_err(sql_err("find sealed rows"))?;
+                let mut at = 0;
+                while let Some(row) = rows.next().map_err(sql_err("find sealed rows"))? {
+                    let stored = row.get_ref(0).map_err(sql_err("find sealed rows"))?;
+                    let Ok(stored) = stored.as_blob() else {
+                        continue;
+                    };
+                    while at < distinct.len() && distinct[at].0[..] < *stored {
+                        at += 1;
+                    }
+                    if at < distinct.len() && distinct[at].0[..] == *stored {
+                        hits += distinct[at].1;
+                    }
+                }
+            }
+            if hits > 0 {
+                out.push((id, hits));
+            }
+        }
+        Ok(out)
     }
 
     /// The test-row identities of a partition.
@@ -1256,22 +1308,58 @@ impl Ledger {
     /// Revealed rows that appear in other partitions' test sets, and runs that warned about
     /// exposed development rows: one sentence each.
     pub fn overlap_findings(&self) -> Result<Vec<String>> {
-        let mut st = self
-            .conn
-            .prepare(
-                "SELECT a.partition_id, b.partition_id, count(*) FROM partition_rows a
-                 JOIN partition_rows b ON a.row_key = b.row_key AND a.partition_id <> b.partition_id
-                 WHERE a.partition_id IN (SELECT partition_id FROM reveals)
-                 GROUP BY a.partition_id, b.partition_id ORDER BY a.partition_id, b.partition_id",
-            )
-            .map_err(sql_err("find overlaps"))?;
-        let mut out: Vec<String> = st
-            .query_map([], |r| {
-                let (a, b, n): (String, String, i64) = (r.get(0)?, r.get(1)?, r.get(2)?);
-                Ok(format!("{n} test rows of revealed partition {a} are also test rows of partition {b}: its test score is not fresh"))
+        let err = || sql_err("find overlaps");
+        // The identities of every revealed partition, then one pass over all stored test rows
+        // (in primary-key order) counts, per pair of partitions, the rows they share.
+        let revealed: Vec<String> = {
+            let mut st = self
+                .conn
+                .prepare("SELECT DISTINCT partition_id FROM reveals ORDER BY partition_id")
+                .map_err(err())?;
+            st.query_map([], |r| r.get(0))
+                .and_then(|rows| rows.collect())
+                .map_err(err())?
+        };
+        // (identity, index in `revealed`), sorted: the revealed partitions holding a row.
+        let mut index: Vec<(crate::data::RowKey, usize)> = Vec::new();
+        for (a, id) in revealed.iter().enumerate() {
+            index.extend(self.partition_row_keys(id)?.into_iter().map(|k| (k, a)));
+        }
+        index.sort_unstable();
+        let mut shared: BTreeMap<(usize, String), i64> = BTreeMap::new();
+        if !index.is_empty() {
+            let mut st = self
+                .conn
+                .prepare("SELECT partition_id, row_key FROM partition_rows ORDER BY partition_id, row_key")
+                .map_err(err())?;
+            let mut rows = st.query([]).map_err(err())?;
+            while let Some(row) = rows.next().map_err(err())? {
+                let Ok(key) = row.get_ref(1).map_err(err())?.as_blob() else {
+                    continue;
+                };
+                let from = index.partition_point(|(k, _)| k[..] < *key);
+                let holders = index[from..].iter().take_while(|(k, _)| k[..] == *key);
+                let mut b: Option<String> = None;
+                for &(_, a) in holders {
+                    let b = match &b {
+                        Some(b) => b,
+                        None => b.insert(row.get(0).map_err(err())?),
+                    };
+                    if revealed[a] != *b {
+                        *shared.entry((a, b.clone())).or_insert(0) += 1;
+                    }
+                }
+            }
+        }
+        let mut out: Vec<String> = shared
+            .into_iter()
+            .map(|((a, b), n)| {
+                format!(
+                    "{n} test rows of revealed partition {} are also test rows of partition {b}: its test score is not fresh",
+                    revealed[a]
+                )
             })
-            .and_then(|rows| rows.collect())
-            .map_err(sql_err("find overlaps"))?;
+            .collect();
         let mut st = self
             .conn
             .prepare("SELECT run_id, message FROM warnings WHERE message LIKE '%development rows were in a test partition revealed%' ORDER BY run_id")
@@ -1638,6 +1726,10 @@ impl Ledger {
 /// The page cache of a connection, and of `record_partition`'s transaction (KiB).
 const CACHE_KIB: i64 = 65536;
 const RECORD_CACHE_KIB: i64 = 2048;
+/// `sealed_partitions_holding` looks keys up one by one while their count times this is below a
+/// partition's test rows, and passes over the partition's rows otherwise (a lookup costs a few
+/// page visits; a row of a pass, a fraction of one).
+const PROBE_COST: i64 = 16;
 
 /// Rows that refer to a row that is not there, over the whole ledger (SQLite's own check of
 /// every foreign key): one break per table and missing parent table, `kind` naming the table
@@ -1883,6 +1975,122 @@ mod tests {
             ledger.write_run(&spec, &table, &out, &meta).unwrap();
         }
         (ledger, dir)
+    }
+
+    /// The lookups by identity, which go partition by partition over the primary key, give
+    /// what one query over all rows gives (the query the dropped index served): both ways of
+    /// searching a partition (key by key, and one pass), keys given twice, partitions with no
+    /// shared row, and the pairs of partitions that share revealed rows.
+    #[test]
+    fn identity_lookups_equal_one_query_over_all_rows() {
+        let dir = std::env::temp_dir().join(format!("probity-lookups-{}", std::process::id()));
+        let _ = std::fs::remove_dir_all(&dir);
+        std::fs::create_dir_all(&dir).unwrap();
+        let ledger = Ledger::open(&dir.join("l.sqlite"), true).unwrap();
+        let key = |i: u32| -> crate::data::RowKey {
+            let d = <sha2::Sha256 as sha2::Digest>::digest(i.to_le_bytes());
+            let mut k = [0u8; 16];
+            k.copy_from_slice(&d[..16]);
+            k
+        };
+        // p1: identities 0..1000 (large: looked up key by key); p2: 250..330 (small: one pass);
+        // p3: 2000..2010 (shares nothing); p4: 0..5 and 320..330 (small).
+        let parts: [(&str, Vec<u32>); 4] = [
+            ("p1", (0..1000).collect()),
+            ("p2", (250..330).collect()),
+            ("p3", (2000..2010).collect()),
+            ("p4", (0..5).chain(320..330).collect()),
+        ];
+        ledger
+            .conn
+            .execute_batch("PRAGMA foreign_keys = OFF")
+            .unwrap();
+        for (id, rows) in &parts {
+            ledger
+                .conn
+                .execute(
+                    "INSERT INTO partitions VALUES (?1, 'd', 's', x'00', 0, 0, ?2)",
+                    params![id, rows.len() as i64],
+                )
+                .unwrap();
+            for &i in rows {
+                ledger
+                    .conn
+                    .execute(
+                        "INSERT INTO partition_rows VALUES (?1, ?2)",
+                        params![id, &key(i)[..]],
+                    )
+                    .unwrap();
+            }
+        }
+        for (n, p) in ["p2", "p4", "p2"].iter().enumerate() {
+            ledger
+                .conn
+                .execute(
+                    "INSERT INTO reveals VALUES (?1, 1, 1, ?2, 'reveal', 't', 'u', 'h', '0', 'count', 1, 'rmse', 1, 's', 1, 0.9, NULL, 'test', '{}', '{}')",
+                    params![n as i64 + 1, p],
+                )
+                .unwrap();
+        }
+        // Keys 0..20 twice, 240..260, and 5000 (in no partition): 41 distinct keys against p1's
+        // 1000 rows are looked up one by one (41 x PROBE_COST < 1000); p2, p3 and p4 are passed
+        // over.
+        let mut keys: Vec<crate::data::RowKey> =
+            (0..20).chain(0..20).chain(240..260).map(key).collect();
+        keys.push(key(5000));
+        let mut by_query: BTreeMap<String, i64> = BTreeMap::new();
+        for k in &keys {
+            let mut st = ledger
+                .conn
+                .prepare("SELECT partition_id FROM partition_rows WHERE row_key = ?1")
+                .unwrap();
+            let found: Vec<String> = st
+                .query_map([&k[..]], |r| r.get(0))
+                .unwrap()
+                .map(|r| r.unwrap())
+                .collect();
+            for p in found {
+                *by_query.entry(p).or_insert(0) += 1;
+            }
+        }
+        let got = ledger.sealed_partitions_holding(&keys).unwrap();
+        assert_eq!(got, by_query.into_iter().collect::<Vec<_>>());
+        assert_eq!(
+            got,
+            vec![("p1".into(), 60), ("p2".into(), 10), ("p4".into(), 10)]
+        );
+        assert_eq!(ledger.sealed_partitions_holding(&[]).unwrap(), vec![]);
+        let mut st = ledger
+            .conn
+            .prepare(
+                "SELECT a.partition_id, b.partition_id, count(*) FROM partition_rows a
+                 JOIN partition_rows b ON a.row_key = b.row_key AND a.partition_id <> b.partition_id
+                 WHERE a.partition_id IN (SELECT partition_id FROM reveals)
+                 GROUP BY a.partition_id, b.partition_id ORDER BY a.partition_id, b.partition_id",
+            )
+            .unwrap();
+        let pairs: Vec<(String, String, i64)> = st
+            .query_map([], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)))
+            .unwrap()
+            .map(|r| r.unwrap())
+            .collect();
+        assert_eq!(
+            pairs,
+            [
+                ("p2", "p1", 80),
+                ("p2", "p4", 10),
+                ("p4", "p1", 15),
+                ("p4", "p2", 10)
+            ]
+            .map(|(a, b, n)| (a.to_string(), b.to_string(), n))
+        );
+        let findings = ledger.overlap_findings().unwrap();
+        let expected: Vec<String> = pairs
+            .iter()
+            .map(|(a, b, n)| format!("{n} test rows of revealed partition {a} are also test rows of partition {b}: its test score is not fresh"))
+            .collect();
+        assert_eq!(findings, expected);
+        let _ = std::fs::remove_dir_all(&dir);
     }
 
     /// The run's chain entry, hashed with its partition rows from memory, equals the hash of

@@ -127,10 +127,12 @@ fn a_read_only_ledger_from_an_older_probity_is_refused_with_the_way_out() {
     }
     let d = small_dir("readonly-old");
     d.probity(&["run", "small.toml"]).expect(0);
-    // Schema 5: before run starts were recorded.
+    // Schema 5: before run starts were recorded, with partition_rows' second index.
     let c = rusqlite::Connection::open(d.ledger()).unwrap();
-    c.execute_batch("DROP TABLE run_starts; PRAGMA user_version = 5;")
-        .unwrap();
+    c.execute_batch(
+        "DROP TABLE run_starts; CREATE INDEX partition_rows_by_key ON partition_rows (row_key); PRAGMA user_version = 5;",
+    )
+    .unwrap();
     drop(c);
     let out = in_namespace(
         &d.path,
@@ -149,4 +151,13 @@ $P history >/dev/null; echo rc=$?
     let r = d.probity(&["history", "--json"]).expect(0).json();
     assert_eq!(r["runs"].as_array().unwrap().len(), 1);
     d.probity(&["audit", "--verify"]).expect(0);
+    let c = rusqlite::Connection::open(d.ledger()).unwrap();
+    let index: i64 = c
+        .query_row(
+            "SELECT count(*) FROM sqlite_schema WHERE name = 'partition_rows_by_key'",
+            [],
+            |r| r.get(0),
+        )
+        .unwrap();
+    assert_eq!(index, 0, "migration 0007 drops the second index");
 }
