@@ -163,14 +163,24 @@ fn stream_hash(
     prev: &str,
     kind: &str,
     id: i64,
-    known: Option<&PartitionRows>,
+    known: Option<&Known>,
 ) -> Result<Option<String>> {
     let mut h = Sha256::new();
     h.update(prev.as_bytes());
     for (i, (name, sql)) in section_queries(kind).iter().enumerate() {
         put(&mut h, b'S', name.as_bytes());
-        if let Some(rows) = known.filter(|_| *name == "partition_rows") {
+        if let Some(rows) = known
+            .and_then(|k| k.partition.as_ref())
+            .filter(|_| *name == "partition_rows")
+        {
             rows.feed(&mut h);
+            continue;
+        }
+        if let Some((_, rows)) = known
+            .and_then(|k| k.sections.iter().find(|(n, _)| n == name))
+            .filter(|_| i > 0)
+        {
+            rows(&mut RowSink { h: &mut h });
             continue;
         }
         let mut st = conn.prepare(sql).map_err(sql_err("read entry"))?;
@@ -220,6 +230,48 @@ impl PartitionRows<'_> {
     }
 }
 
+/// What a run's writer hands the chain from memory instead of letting it read the rows back:
+/// only rows this transaction wrote, so they are exactly what `SELECT *` would give. `audit`
+/// recomputes every entry from the stored rows, so a difference would still show.
+#[derive(Default)]
+pub struct Known<'a> {
+    pub partition: Option<PartitionRows<'a>>,
+    /// (section name, a function that gives the section's rows to the sink in the section's
+    /// order). Never the entry's first section (whose absence means a missing entry).
+    pub sections: Vec<(&'static str, RowsFn<'a>)>,
+}
+
+/// Gives a section's rows, one `RowSink::row` call each.
+pub type RowsFn<'a> = &'a dyn Fn(&mut RowSink);
+
+/// Where `Known` sections put their rows.
+pub struct RowSink<'h> {
+    h: &'h mut Sha256,
+}
+
+impl RowSink<'_> {
+    /// One row, its values in table column order.
+    pub fn row(&mut self, values: &[rusqlite::types::ValueRef<'_>]) {
+        put(self.h, b'R', &(values.len() as u64).to_le_bytes());
+        for v in values {
+            put_value(self.h, *v);
+        }
+    }
+}
+
+/// A REAL bound with `sqlite3_bind_double` as SQLite gives it back: NaN is stored as NULL, and
+/// a REAL with an integer value is stored as that integer and read back as a REAL, so -0.0
+/// comes back as 0.0. Every other value comes back with its bits.
+pub fn stored_real(v: Option<f64>) -> rusqlite::types::ValueRef<'static> {
+    use rusqlite::types::ValueRef as V;
+    match v {
+        None => V::Null,
+        Some(x) if x.is_nan() => V::Null,
+        // Both zeros are equal to 0.0: either comes back as +0.0.
+        Some(x) => V::Real(if x == 0.0 { 0.0 } else { x }),
+    }
+}
+
 /// SHA-256(prev_hash || canonical bytes), hex.
 pub fn entry_hash(prev: &str, sections: &Sections) -> String {
     let mut h = Sha256::new();
@@ -251,13 +303,13 @@ pub fn append(
     append_known(conn, kind, id, origin, None)
 }
 
-/// `append`, with a run's partition rows taken from `known` (see `PartitionRows`).
+/// `append`, with some of a run's sections taken from `known` (see `Known`).
 pub fn append_known(
     conn: &Connection,
     kind: &str,
     id: i64,
     origin: Option<(&str, &str)>,
-    known: Option<&PartitionRows>,
+    known: Option<&Known>,
 ) -> Result<String> {
     let prev = head(conn)?;
     let hash = stream_hash(conn, &prev, kind, id, known)?

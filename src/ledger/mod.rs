@@ -367,7 +367,7 @@ impl Ledger {
         // number of distinct ones); otherwise the chain reads them back.
         let keys = sorted_keys(&prep.test_keys);
         let recorded = self.fresh.take();
-        let known = (inserted
+        let partition_known = (inserted
             || recorded
                 .as_ref()
                 .is_some_and(|(id, n)| *id == prep.partition_id && *n == distinct(&keys)))
@@ -419,6 +419,9 @@ impl Ledger {
         )
         .map_err(fail)?;
         let run = tx.last_insert_rowid();
+        let nm = out.prepared.metrics.len();
+        let mut by_name: Vec<usize> = (0..nm).collect();
+        by_name.sort_by_key(|&k| out.prepared.metrics[k].name());
         {
             let mut fold_stmt = tx.prepare("INSERT INTO folds (run_id, repeat, fold, n_fit, n_score) VALUES (?1, ?2, ?3, ?4, ?5)").map_err(fail)?;
             for f in s.folds() {
@@ -435,7 +438,6 @@ impl Ledger {
             let mut cand = tx.prepare("INSERT INTO candidates (run_id, id, family, params, standardize, seed) VALUES (?1, ?2, ?3, ?4, ?5, ?6)").map_err(fail)?;
             // One statement per (candidate, fold) and per candidate, each holding every metric of
             // both parts: a 10,000-candidate grid writes 20,000 statements, not 240,000.
-            let nm = out.prepared.metrics.len();
             let tuples = |n: usize, width: usize| -> String {
                 (0..n)
                     .map(|r| {
@@ -463,8 +465,6 @@ impl Ledger {
             let real = |v: Option<f64>| ToSqlOutput::Owned(v.map_or(Sql::Null, Sql::Real));
             let int = |v: i64| ToSqlOutput::Owned(Sql::Integer(v));
             let text = |t: &'static str| ToSqlOutput::Borrowed(ValueRef::Text(t.as_bytes()));
-            let mut by_name: Vec<usize> = (0..nm).collect();
-            by_name.sort_by_key(|&k| out.prepared.metrics[k].name());
             for c in &out.candidates {
                 let p: serde_json::Map<String, Value> = c
                     .params
@@ -566,7 +566,65 @@ impl Ledger {
             &prep.partition_id,
             meta.replay.as_ref().map(|r| r.replay_of),
         )?;
-        chain::append_known(&tx, "run", run, None, known.as_ref())?;
+        // The score rows as just written, in primary-key order when candidates and folds are
+        // in order (always, from the runner; otherwise the chain reads them back): a
+        // 10,000-candidate run's 180,000 score rows are not read back to be hashed.
+        let ordered = out.candidates.windows(2).all(|w| w[0].id < w[1].id)
+            && out.candidates.iter().all(|c| {
+                c.folds
+                    .windows(2)
+                    .all(|w| (w[0].repeat, w[0].fold) < (w[1].repeat, w[1].fold))
+            });
+        let fold_rows = |sink: &mut chain::RowSink| {
+            for c in &out.candidates {
+                for f in &c.folds {
+                    for (part, sc) in [("train", &f.train), ("validation", &f.validation)] {
+                        for &k in &by_name {
+                            sink.row(&[
+                                ValueRef::Integer(run),
+                                ValueRef::Integer(c.id as i64),
+                                ValueRef::Integer(f.repeat as i64),
+                                ValueRef::Integer(f.fold as i64),
+                                ValueRef::Text(part.as_bytes()),
+                                ValueRef::Text(out.prepared.metrics[k].name().as_bytes()),
+                                chain::stored_real(sc[k]),
+                            ]);
+                        }
+                    }
+                }
+            }
+        };
+        let score_rows = |sink: &mut chain::RowSink| {
+            for c in &out.candidates {
+                let sets: [(&str, &Scores, &Scores); 2] = [
+                    ("train", &c.train, &c.train_se),
+                    ("validation", &c.validation, &c.validation_se),
+                ];
+                for (part, mean, se) in sets {
+                    for &k in &by_name {
+                        sink.row(&[
+                            ValueRef::Integer(run),
+                            ValueRef::Integer(c.id as i64),
+                            ValueRef::Text(part.as_bytes()),
+                            ValueRef::Text(out.prepared.metrics[k].name().as_bytes()),
+                            chain::stored_real(mean[k]),
+                            chain::stored_real(se[k]),
+                        ]);
+                    }
+                }
+            }
+        };
+        let mut known = chain::Known {
+            partition: partition_known,
+            sections: Vec::new(),
+        };
+        if ordered {
+            known.sections = vec![
+                ("fold_scores", &fold_rows as chain::RowsFn),
+                ("scores", &score_rows),
+            ];
+        }
+        chain::append_known(&tx, "run", run, None, Some(&known))?;
         if let Some(start) = meta.start {
             // The start and the stored run are never both present, nor both absent.
             tx.execute("DELETE FROM run_starts WHERE id = ?1", [start])
@@ -1927,6 +1985,17 @@ mod tests {
         recorded: bool,
         twice: bool,
     ) -> (Ledger, PathBuf) {
+        stored_edited(name, copies, recorded, twice, |_| {})
+    }
+
+    /// `stored_run_with`, the run's outcome changed by `edit` before it is stored.
+    fn stored_edited(
+        name: &str,
+        copies: usize,
+        recorded: bool,
+        twice: bool,
+        edit: impl FnOnce(&mut RunOutcome),
+    ) -> (Ledger, PathBuf) {
         let mut csv = String::from("x1,x2,y\n");
         for i in 0..300u32 {
             let t = f64::from(i);
@@ -1940,7 +2009,8 @@ mod tests {
             [split]\nmethod = \"random\"\nseed = 3\ntest = 0.2\nfolds = 3\n\
             [[model]]\nkind = \"ridge\"\nlambda = [0.01, 1, 100]\n";
         let spec = crate::spec::parse(text, Path::new("r.toml"), Path::new(".")).unwrap();
-        let out = crate::runner::run(&spec, &table, 2).unwrap();
+        let mut out = crate::runner::run(&spec, &table, 2).unwrap();
+        edit(&mut out);
         let dir =
             std::env::temp_dir().join(format!("probity-ledger-{name}-{}", std::process::id()));
         let _ = std::fs::remove_dir_all(&dir);
@@ -2090,6 +2160,67 @@ mod tests {
             .map(|(a, b, n)| format!("{n} test rows of revealed partition {a} are also test rows of partition {b}: its test score is not fresh"))
             .collect();
         assert_eq!(findings, expected);
+        let _ = std::fs::remove_dir_all(&dir);
+    }
+
+    /// The score sections hashed from memory equal the stored rows, whatever SQLite does to a
+    /// value on the way in: NaN stored as NULL, -0.0 read back as 0.0, infinities and the
+    /// smallest subnormal kept, absent scores NULL. `verify` rehashes the stored rows. A run
+    /// whose candidates are out of order reads its rows back, and chains as well.
+    #[test]
+    fn score_rows_hashed_from_memory_match_the_stored_rows() {
+        let odd = [
+            None,
+            Some(f64::NAN),
+            Some(-0.0),
+            Some(0.0),
+            Some(f64::INFINITY),
+            Some(f64::NEG_INFINITY),
+            Some(5e-324),
+            Some(-3.0),
+            Some(1e300),
+        ];
+        let edit = |out: &mut RunOutcome| {
+            let mut at = 0;
+            let mut next = || {
+                at += 1;
+                odd[at % odd.len()]
+            };
+            for c in &mut out.candidates {
+                for f in &mut c.folds {
+                    f.train.iter_mut().for_each(|v| *v = next());
+                    f.validation.iter_mut().for_each(|v| *v = next());
+                }
+                for s in [
+                    &mut c.train,
+                    &mut c.train_se,
+                    &mut c.validation,
+                    &mut c.validation_se,
+                ] {
+                    s.iter_mut().for_each(|v| *v = next());
+                }
+            }
+        };
+        let (ledger, dir) = stored_edited("odd-scores", 1, false, false, edit);
+        let (entries, breaks) = ledger.verify().unwrap();
+        assert_eq!(entries, 1);
+        assert!(breaks.is_empty(), "{breaks:?}");
+        let stored: i64 = ledger
+            .conn
+            .query_row(
+                "SELECT count(*) FROM fold_scores WHERE value IS NULL",
+                [],
+                |r| r.get(0),
+            )
+            .unwrap();
+        assert!(stored > 0);
+        let _ = std::fs::remove_dir_all(&dir);
+        // Candidates in reverse order: the rows are read back, not taken from memory.
+        let (ledger, dir) = stored_edited("reversed", 1, false, false, |out| {
+            out.candidates.reverse();
+        });
+        let (_, breaks) = ledger.verify().unwrap();
+        assert!(breaks.is_empty(), "{breaks:?}");
         let _ = std::fs::remove_dir_all(&dir);
     }
 
