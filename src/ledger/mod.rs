@@ -816,26 +816,41 @@ impl Ledger {
             .and_then(|rows| rows.collect())
             .map_err(sql_err("read candidates"))?;
         let mut st = self.conn.prepare("SELECT candidate, part, metric, mean, se FROM scores WHERE run_id = ?1 ORDER BY candidate, part, metric").map_err(sql_err("read scores"))?;
-        let mut stats: BTreeMap<(i64, String), BTreeMap<String, Stat>> = BTreeMap::new();
-        let rows = st
-            .query_map([id], |r| {
-                Ok((
-                    r.get::<_, i64>(0)?,
-                    r.get::<_, String>(1)?,
-                    r.get::<_, String>(2)?,
-                    r.get::<_, Option<f64>>(3)?,
-                    r.get::<_, Option<f64>>(4)?,
-                ))
-            })
-            .map_err(sql_err("read scores"))?;
-        for row in rows {
-            let (c, part, metric, mean, se) = row.map_err(sql_err("read scores"))?;
-            stats
-                .entry((c, part))
-                .or_default()
-                .insert(metric, Stat { mean, se });
+        // Rows come in candidate order, each candidate's parts in turn: one map per (candidate,
+        // part), in that order, matched to the candidates (also in id order) as they go.
+        let mut stats: Vec<(i64, bool, BTreeMap<String, Stat>)> = Vec::new();
+        let mut rows = st.query([id]).map_err(sql_err("read scores"))?;
+        while let Some(r) = rows.next().map_err(sql_err("read scores"))? {
+            let c: i64 = r.get(0).map_err(sql_err("read scores"))?;
+            let train = match r.get_ref(1).map_err(sql_err("read scores"))? {
+                ValueRef::Text(b"train") => true,
+                ValueRef::Text(b"validation") => false,
+                _ => continue,
+            };
+            let metric: String = r.get(2).map_err(sql_err("read scores"))?;
+            let stat = Stat {
+                mean: r.get(3).map_err(sql_err("read scores"))?,
+                se: r.get(4).map_err(sql_err("read scores"))?,
+            };
+            match stats.last_mut() {
+                Some((lc, lt, m)) if *lc == c && *lt == train => {
+                    m.insert(metric, stat);
+                }
+                _ => stats.push((c, train, BTreeMap::from([(metric, stat)]))),
+            }
         }
+        let mut stats = stats.into_iter().peekable();
         for (cid, family, params, standardize, seed, failure) in cands {
+            // Scores of candidates that are not listed (none, in a ledger this code wrote).
+            while stats.next_if(|(c, _, _)| *c < cid).is_some() {}
+            let mut part = |train: bool| {
+                stats
+                    .next_if(|(c, t, _)| *c == cid && *t == train)
+                    .map(|(_, _, m)| m)
+                    .unwrap_or_default()
+            };
+            let train = part(true);
+            let validation = part(false);
             d.candidates.push(CandidateRow {
                 id: cid,
                 failure,
@@ -843,12 +858,8 @@ impl Ledger {
                 params: serde_json::from_str(&params).unwrap_or(Value::Null),
                 standardize,
                 seed,
-                train: stats
-                    .remove(&(cid, "train".to_string()))
-                    .unwrap_or_default(),
-                validation: stats
-                    .remove(&(cid, "validation".to_string()))
-                    .unwrap_or_default(),
+                train,
+                validation,
             });
         }
         let mut st = self
