@@ -17,7 +17,11 @@ the kernel may evict the file's pages between runs, and a run that re-reads them
 measures the disk, not the program (one such run here took 25 s instead of 1.5 s).
 
 "total/load" is given twice: the median run's time over the median load, and the median of each
-run's time over its own load (the pair saw the same state of a shared machine).
+run's time over its own load (the pair saw the same state of a shared machine). The load phase
+reads, parses and hashes the file (SHA-256, on a job beside the parse). "total/parse" divides by
+the parse alone: in each repeat, right after the run, `PROBITY_TIMINGS=parse-only probity run`
+reads and parses the same file with the same reader, without the hash, and stops (issue 7's
+"time to merely parse the CSV"). It too is given over the medians and run by run.
 
 Usage:
   python3 bench/run.py [--repeats 3] [--data DIR] [--scenarios a,b,c,d]
@@ -131,6 +135,18 @@ def run_probity(binary, spec_path, ledger):
     return wall, rss, load, stored
 
 
+def run_parse_only(binary, spec_path):
+    """The parse floor: probity's reader on the same file, without the hash; nothing stored."""
+    env = dict(os.environ, PROBITY_TIMINGS="parse-only")
+    out = subprocess.run([binary, "run", spec_path], capture_output=True, text=True, env=env)
+    if out.returncode != 0:
+        raise SystemExit(f"probity (parse only) failed: {out.stderr[-2000:]}")
+    m = re.search(r"timing parse: ([0-9.]+) s", out.stderr)
+    if not m:
+        raise SystemExit(f"probity (parse only) printed no parse time: {out.stderr[-2000:]}")
+    return float(m.group(1))
+
+
 def run_peer(files, stages, repeats_json):
     if not stages:
         return {}
@@ -158,7 +174,7 @@ def main():
         with open(spec_path, "w") as f:
             f.write(spec(f"bench-{sc}", files[key], task, models, folds))
         ledger = os.path.join(args.data, f"bench-{sc}.sqlite")
-        ours, rss, peer, loads, stores = [], [], [], [], []
+        ours, rss, peer, loads, stores, parses = [], [], [], [], [], []
         # The peer script always loads the regression file; stage e reads the binary one too.
         peer_files = [files["reg"]] + ([files["bin"]] if "e" in PEER[sc] else [])
         for _ in range(args.repeats):
@@ -169,6 +185,9 @@ def main():
             rss.append(m)
             loads.append(ld)
             stores.append(st)
+            if not args.no_warm:
+                warm(files[key])
+            parses.append(run_parse_only(binary, spec_path))
             if not args.no_warm:
                 for f in peer_files:
                     warm(f)
@@ -181,9 +200,13 @@ def main():
         ld = statistics.median(loads)
         # Each run against its own load as well: both halves of a pair saw the same machine.
         paired = [w / l for w, l in zip(ours, loads)]
+        pa = statistics.median(parses)
+        per_parse = [w / x for w, x in zip(ours, parses)]
         print(f"{sc}: probity {o:.3f} s (runs {', '.join(f'{x:.3f}' for x in ours)}), peak {max(rss):.0f} MiB; "
               + f"load (read+parse+hash) {ld:.3f} s (runs {', '.join(f'{x:.3f}' for x in loads)}), total/load {o / ld:.2f} "
-              + f"(per run {', '.join(f'{x:.2f}' for x in paired)}: median {statistics.median(paired):.2f}), "
+              + f"(per run {', '.join(f'{x:.2f}' for x in paired)}: median {statistics.median(paired):.2f}); "
+              + f"parse alone {pa:.3f} s (runs {', '.join(f'{x:.3f}' for x in parses)}), total/parse {o / pa:.2f} "
+              + f"(per run {', '.join(f'{x:.2f}' for x in per_parse)}: median {statistics.median(per_parse):.2f}), "
               + f"committed after {statistics.median(stores):.3f} s; "
               + (f"peer {'+'.join(PEER[sc])} {q:.3f} s, ratio {o / q:.2f}" if q else "no peer stage"), flush=True)
     print("\nscenario  probity_s  peer_s  ratio  probity_peak_MiB")

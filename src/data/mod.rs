@@ -314,6 +314,21 @@ pub fn load(path: &Path, text_columns: &[&str], threads: usize) -> Result<Table>
     parse(&bytes, path, sha256, text_columns)
 }
 
+/// `load` without the file's SHA-256 (`Table::sha256` is empty): reading and parsing alone,
+/// the floor the benchmark divides by (`PROBITY_TIMINGS=parse-only`). Never for a run: a run
+/// records the hash.
+#[doc(hidden)]
+pub fn parse_only(path: &Path, text_columns: &[&str], threads: usize) -> Result<Table> {
+    if path.is_dir() {
+        return Err(Error::data(path, None, None, "is a folder, not a CSV file"));
+    }
+    if let Some(t) = fast::load_hashing(path, text_columns, threads.max(1), FAST_BLOCK, false)? {
+        return Ok(t);
+    }
+    let bytes = read(path)?;
+    parse(&bytes, path, String::new(), text_columns)
+}
+
 /// The fast reader alone, with a chosen block size (for the fuzz checks in `crate::fuzzing`):
 /// `Ok(None)` when the file is not plain and only the general reader may read it.
 #[doc(hidden)]
@@ -955,6 +970,30 @@ mod tests {
 
     /// A line longer than a block makes the fast loader grow its buffer; a quoted file goes to
     /// the general reader through `load`; both give the general reader's table.
+    /// `parse_only` (the benchmark's floor) reads the table `load` reads, without the file's
+    /// hash, through the fast reader (a plain file) and the general one (a quoted field).
+    #[test]
+    fn parse_only_reads_what_load_reads_without_the_hash() {
+        let dir = tempfile::tempdir().unwrap();
+        for (name, text, plain) in [
+            ("plain.csv", "a,b,y\n1,x,2.5\n3,y,4\n", true),
+            ("quoted.csv", "a,b,y\n1,\"x, z\",2.5\n3,y,4\n", false),
+        ] {
+            let path = dir.path().join(name);
+            std::fs::write(&path, text).unwrap();
+            assert_eq!(fast::load(&path, &[], 2, 1024).unwrap().is_some(), plain);
+            let full = load(&path, &[], 2).unwrap();
+            let bare = parse_only(&path, &[], 2).unwrap();
+            assert_eq!(bare.columns, full.columns);
+            assert_eq!(bare.lines, full.lines);
+            assert_eq!(
+                full.sha256,
+                crate::spec::hex(&Sha256::digest(text.as_bytes()))
+            );
+            assert!(bare.sha256.is_empty());
+        }
+    }
+
     #[test]
     fn long_lines_and_quoted_files_load_right() {
         let dir = tempfile::tempdir().unwrap();

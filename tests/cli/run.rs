@@ -462,6 +462,38 @@ fn check_validates_and_writes_nothing() {
     assert_eq!(j["features"][2]["kind"], "categorical");
 }
 
+/// The benchmark's parse floor (`PROBITY_TIMINGS=parse-only`) reads and parses the data, prints
+/// the time and stores nothing; `PROBITY_TIMINGS=1` times every phase of a real run.
+#[test]
+fn parse_only_timing_reads_the_data_and_stores_nothing() {
+    let d = small_dir("parse-only");
+    let run = |v: &str| {
+        let mut cmd = assert_cmd::Command::cargo_bin("probity").unwrap();
+        cmd.current_dir(&d.path)
+            .args(["run", "small.toml"])
+            .env_remove("PROBITY_LEDGER")
+            .env("PROBITY_TIMINGS", v);
+        cmd.output().unwrap()
+    };
+    let out = run("parse-only");
+    let err = String::from_utf8_lossy(&out.stderr).to_string();
+    assert_eq!(out.status.code(), Some(0), "{err}");
+    assert!(
+        err.contains("timing parse: ") && err.contains("parsed 40 rows x "),
+        "{err}"
+    );
+    assert!(!err.contains("timing run"), "{err}");
+    assert!(out.stdout.is_empty());
+    assert!(!d.path.join(".probity").exists(), "nothing is stored");
+    let out = run("1");
+    let err = String::from_utf8_lossy(&out.stderr).to_string();
+    assert_eq!(out.status.code(), Some(0), "{err}");
+    for phase in ["load", "run", "ledger"] {
+        assert!(err.contains(&format!("timing {phase}: ")), "{err}");
+    }
+    assert!(d.path.join(".probity").exists());
+}
+
 #[test]
 fn history_and_show_need_a_ledger() {
     let d = Dir::new("noledger");
