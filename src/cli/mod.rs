@@ -268,13 +268,34 @@ pub(crate) fn load_inputs(
     spec_path: &Path,
     threads: usize,
 ) -> Result<(crate::spec::Spec, crate::data::Table)> {
-    let spec = crate::spec::load(spec_path)?;
-    let text: Vec<&str> = spec
-        .data
+    inputs(spec_path, threads, true)
+}
+
+/// `load_inputs` without the data file's SHA-256 (`Table::sha256` empty): the benchmark's parse
+/// floor (`PROBITY_TIMINGS=parse-only`), never a run's input.
+pub(crate) fn parse_inputs(
+    spec_path: &Path,
+    threads: usize,
+) -> Result<(crate::spec::Spec, crate::data::Table)> {
+    inputs(spec_path, threads, false)
+}
+
+/// The columns a spec reads as text whatever they hold.
+pub(crate) fn text_columns(spec: &crate::spec::Spec) -> Vec<&str> {
+    spec.data
         .categorical
         .iter()
         .map(|n| n.name.as_str())
-        .collect();
+        .collect()
+}
+
+fn inputs(
+    spec_path: &Path,
+    threads: usize,
+    hash: bool,
+) -> Result<(crate::spec::Spec, crate::data::Table)> {
+    let spec = crate::spec::load(spec_path)?;
+    let text = text_columns(&spec);
     if !spec.data.path.exists() {
         return Err(Error::Spec {
             file: spec.file.clone(),
@@ -285,7 +306,11 @@ pub(crate) fn load_inputs(
             ),
         });
     }
-    let table = crate::data::load(&spec.data.path, &text, threads)?;
+    let table = if hash {
+        crate::data::load(&spec.data.path, &text, threads)?
+    } else {
+        crate::data::parse_only(&spec.data.path, &text, threads)?
+    };
     Ok((spec, table))
 }
 

@@ -41,12 +41,7 @@ pub(crate) fn reload(
         .map(Path::to_path_buf)
         .unwrap_or_default();
     let spec = crate::spec::parse(&d.spec_text, spec_path, &base)?;
-    let text: Vec<&str> = spec
-        .data
-        .categorical
-        .iter()
-        .map(|n| n.name.as_str())
-        .collect();
+    let text = super::text_columns(&spec);
     let path = data
         .map(Path::to_path_buf)
         .unwrap_or_else(|| PathBuf::from(&d.data_path));

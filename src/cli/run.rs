@@ -99,16 +99,9 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
     progress.phase("reading the data");
     let threads = a.threads.unwrap_or_else(crate::data::all_cores).max(1);
     if phases.parse_only {
-        // The benchmark's floor: the spec and the data file read and parsed as `load_inputs`
-        // does, without the file's SHA-256; then nothing else.
-        let spec = crate::spec::load(&a.spec)?;
-        let text: Vec<&str> = spec
-            .data
-            .categorical
-            .iter()
-            .map(|n| n.name.as_str())
-            .collect();
-        let table = crate::data::parse_only(&spec.data.path, &text, threads)?;
+        // The benchmark's floor: the spec and the data file read and parsed as for a run,
+        // without the file's SHA-256; then nothing else.
+        let (_, table) = super::parse_inputs(&a.spec, threads)?;
         phases.mark("parse");
         eprintln!(
             "parsed {} rows x {} columns",
