@@ -1,9 +1,10 @@
 //! The fast loader for plain files: no quote characters, no blank lines, one record per line.
 //!
 //! The file is read in blocks (so a large file is never held whole in memory); each block is
-//! cut at line ends into pieces parsed on several threads, while another thread computes the
-//! file's SHA-256. Pieces are joined in file order, so the table does not depend on the thread
-//! count or the block size. Anything unusual (quotes, a blank line, a ragged row, invalid UTF-8,
+//! cut at line ends into pieces parsed on several threads. With more than one thread, a thread
+//! of its own computes the file's SHA-256, each block while the next one is read, so it takes no
+//! core from the parse. Pieces are joined in file order, so the table does not depend on the
+//! thread count or the block size. Anything unusual (quotes, a blank line, a ragged row, invalid UTF-8,
 //! a bad header) returns `None`, and the general reader, which owns every error message about the
 //! file's shape, reads the file instead. The result equals the general reader's, cell for cell.
 
@@ -14,7 +15,7 @@ use std::collections::BTreeMap;
 use std::io::Read;
 use std::path::Path;
 
-/// Pieces per thread in a block: small pieces keep both cores busy beside the hash job.
+/// Pieces per thread in a block: small pieces keep every core busy to the end of a block.
 const PIECES_PER_THREAD: usize = 4;
 
 /// What one piece of lines found besides the values it wrote.
@@ -100,6 +101,58 @@ type Parsed = (
     String,
 );
 
+/// The columns, the interned texts and the row count.
+type Columns = (Vec<String>, Vec<Vec<f64>>, Vec<Option<Interned>>, usize);
+
+/// Where the reader's blocks are hashed, in file order: (bytes, how many of them to hash).
+enum Hasher {
+    /// One thread: the reader hashes each block itself.
+    Inline(Sha256),
+    /// The hash thread's channels: blocks go to it, and come back, hashed, for reuse.
+    Thread {
+        blocks: std::sync::mpsc::Sender<(Vec<u8>, usize)>,
+        hashed: std::sync::mpsc::Receiver<Vec<u8>>,
+        /// Blocks sent and not yet back.
+        out: usize,
+    },
+}
+
+impl Hasher {
+    fn send(&mut self, bytes: Vec<u8>, n: usize, pool: &mut Vec<Vec<u8>>) {
+        match self {
+            Hasher::Inline(sha) => {
+                sha.update(&bytes[..n]);
+                pool.push(bytes);
+            }
+            Hasher::Thread { blocks, out, .. } => {
+                // The thread ends only when this side closes, or by a panic, which its join
+                // carries on.
+                if blocks.send((bytes, n)).is_ok() {
+                    *out += 1;
+                }
+            }
+        }
+    }
+
+    /// Wait until every block sent is hashed; their buffers go to `pool`.
+    fn settle(&mut self, pool: &mut Vec<Vec<u8>>) {
+        if let Hasher::Thread { hashed, out, .. } = self {
+            while *out > 0 {
+                *out -= 1;
+                pool.extend(hashed.recv().ok());
+            }
+        }
+    }
+
+    /// The digest, when the reader took it itself.
+    fn finish(self) -> Option<String> {
+        match self {
+            Hasher::Inline(sha) => Some(crate::spec::hex(&sha.finalize())),
+            Hasher::Thread { .. } => None,
+        }
+    }
+}
+
 fn parse_blocks(
     path: &Path,
     text_columns: &[&str],
@@ -107,12 +160,55 @@ fn parse_blocks(
     block: usize,
     hash: bool,
 ) -> Result<Option<Parsed>> {
+    if !hash || threads == 1 {
+        // No hash (it is then empty), or one thread that hashes as it reads.
+        let hasher = hash.then(|| Hasher::Inline(Sha256::new()));
+        let parsed = read_blocks(path, text_columns, threads, block, hasher)?;
+        return Ok(parsed.map(|((h, n, t, r), d)| (h, n, t, r, d.unwrap_or_default())));
+    }
+    // The hash works while the reader reads the next block and sizes the columns for it, when
+    // one thread works and the other cores would wait; the parse of that block waits for it.
+    std::thread::scope(|s| {
+        let (blocks, queue) = std::sync::mpsc::channel::<(Vec<u8>, usize)>();
+        let (back, hashed) = std::sync::mpsc::channel();
+        let job = s.spawn(move || {
+            let mut sha = Sha256::new();
+            for (bytes, n) in queue {
+                sha.update(&bytes[..n]);
+                // The reader may have finished: then the buffer is simply freed.
+                let _ = back.send(bytes);
+            }
+            crate::spec::hex(&sha.finalize())
+        });
+        // The reader's side closes when it returns, so the hash ends with the last block (or
+        // early, with a partial digest nobody uses, when the file goes to the general reader).
+        let hasher = Hasher::Thread {
+            blocks,
+            hashed,
+            out: 0,
+        };
+        let parsed = read_blocks(path, text_columns, threads, block, Some(hasher));
+        let digest = job.join().unwrap_or_else(|e| std::panic::resume_unwind(e));
+        Ok(parsed?.map(|((h, n, t, r), _)| (h, n, t, r, digest)))
+    })
+}
+
+/// Read and parse the blocks; each block's whole lines go to `hasher` (when given) in order.
+/// Also returns the digest when the reader took it itself.
+fn read_blocks(
+    path: &Path,
+    text_columns: &[&str],
+    threads: usize,
+    block: usize,
+    mut hasher: Option<Hasher>,
+) -> Result<Option<(Columns, Option<String>)>> {
     let mut f = std::fs::File::open(path).map_err(|e| io(path, e))?;
     let size = f.metadata().map_err(|e| io(path, e))?.len() as usize;
-    let mut buf: Vec<u8> = Vec::with_capacity(block + (1 << 16));
+    let capacity = block + (1 << 16);
+    let mut buf: Vec<u8> = Vec::with_capacity(capacity);
     let mut more = fill(&mut f, &mut buf, block, path)?;
-    // The file's hash is taken block by block, as one more job beside the parse pieces.
-    let mut sha = Sha256::new();
+    // Buffers the hash thread is done with.
+    let mut pool: Vec<Vec<u8>> = Vec::new();
     let start = if buf.starts_with(b"\xEF\xBB\xBF") {
         3
     } else {
@@ -147,7 +243,9 @@ fn parse_blocks(
         .iter()
         .map(|h| text_columns.contains(&h.as_str()))
         .collect();
-    sha.update(&buf[..=nl]);
+    if let Some(h) = &mut hasher {
+        h.send(buf[..=nl].to_vec(), nl + 1, &mut pool);
+    }
     buf.drain(..=nl);
     // Columns whose first cell is not a number are interned as they are read; a column that
     // turns out to be text without that is rare, and goes to the general reader.
@@ -239,6 +337,10 @@ fn parse_blocks(
         for t in texts.iter_mut().flatten() {
             t.0.resize(rows + block_rows, MISSING_CODE);
         }
+        // The previous block's hash is done before this block's parse takes every core.
+        if let Some(h) = &mut hasher {
+            h.settle(&mut pool);
+        }
         let Some(pieces) = parse_chunk(
             chunk,
             &bounds,
@@ -247,7 +349,7 @@ fn parse_blocks(
             &layout,
             &mut nums,
             &mut texts,
-            (threads, hash.then_some(&mut sha)),
+            threads,
         ) else {
             return Ok(None);
         };
@@ -281,10 +383,22 @@ fn parse_blocks(
             at += n;
         }
         rows += block_rows;
+        match &mut hasher {
+            // The next block begins with this one's partial last line, in another buffer:
+            // this one goes to the hash while the next is read.
+            Some(h) => {
+                let mut next = pool.pop().unwrap_or_else(|| Vec::with_capacity(capacity));
+                next.clear();
+                next.extend_from_slice(&buf[end..]);
+                h.send(std::mem::replace(&mut buf, next), end, &mut pool);
+            }
+            None => {
+                buf.drain(..end);
+            }
+        }
         if !more {
             break;
         }
-        buf.drain(..end);
         more = fill(&mut f, &mut buf, block, path)?;
     }
     if rows == 0 {
@@ -302,15 +416,8 @@ fn parse_blocks(
         .map(|(t, &keep)| t.filter(|_| keep))
         .collect();
     Ok(Some((
-        headers,
-        nums,
-        texts,
-        rows,
-        if hash {
-            crate::spec::hex(&sha.finalize())
-        } else {
-            String::new()
-        },
+        (headers, nums, texts, rows),
+        hasher.and_then(Hasher::finish),
     )))
 }
 
@@ -339,7 +446,7 @@ fn parse_chunk(
     layout: &Layout,
     nums: &mut [Vec<f64>],
     texts: &mut [Option<Interned>],
-    hash: (usize, Option<&mut Sha256>),
+    threads: usize,
 ) -> Option<Vec<Piece>> {
     // Split every column's new rows into one disjoint slice per piece.
     let mut outs: Vec<Out> = piece_rows.iter().map(|_| Out::default()).collect();
@@ -368,8 +475,6 @@ fn parse_chunk(
             None => outs.iter_mut().for_each(|o| o.codes.push(None)),
         }
     }
-    let (threads, sha) = hash;
-    let sha = std::sync::Mutex::new(sha);
     let jobs: Vec<std::sync::Mutex<Option<Job>>> = bounds
         .windows(2)
         .map(|w| &chunk[w[0]..w[1]])
@@ -380,30 +485,24 @@ fn parse_chunk(
     let results: Vec<std::sync::Mutex<Option<Option<Piece>>>> =
         jobs.iter().map(|_| std::sync::Mutex::new(None)).collect();
     let next = std::sync::atomic::AtomicUsize::new(0);
-    // Job 0 hashes the chunk; job i > 0 parses piece i - 1. Each job writes only its own slot.
+    // Job j parses piece j and writes only its own slot.
     let work = || {
         loop {
             let j = next.fetch_add(1, std::sync::atomic::Ordering::Relaxed);
-            if j == 0 {
-                if let Some(h) = sha.lock().ok().and_then(|mut g| g.take()) {
-                    h.update(chunk);
-                }
-                continue;
-            }
-            let Some(job) = jobs.get(j - 1) else {
+            let Some(job) = jobs.get(j) else {
                 break;
             };
             let taken = job.lock().ok().and_then(|mut g| g.take());
             if let Some((sl, o, n)) = taken {
                 let piece = parse_piece(sl, layout, o, n);
-                if let Ok(mut g) = results[j - 1].lock() {
+                if let Ok(mut g) = results[j].lock() {
                     *g = Some(piece);
                 }
             }
         }
     };
     std::thread::scope(|s| {
-        for _ in 1..threads.min(jobs.len() + 1) {
+        for _ in 1..threads.min(jobs.len()) {
             s.spawn(work);
         }
         work();
