@@ -45,6 +45,8 @@ pub struct Prepared {
     pub key: Option<usize>,
     /// Identities of the test rows, for exposure accounting.
     pub test_keys: Vec<crate::data::RowKey>,
+    /// How the row identities are formed: the version of the ledger they go to.
+    pub identity: crate::data::Identity,
     /// The resolved split method (for nested cross-validation's inner folds).
     pub method: Method,
     /// The metrics scored for this task, in order (every `Scores` follows it).
@@ -59,7 +61,7 @@ impl Prepared {
     /// preparing a large split, so `run_recording` does it beside the grid).
     pub fn hash_test_keys(&self, table: &Table, threads: usize) -> Vec<crate::data::RowKey> {
         self.sealed
-            .test_row_keys(table, &self.rows, self.key, threads)
+            .test_row_keys(table, &self.rows, self.key, threads, self.identity)
     }
 
     /// Identities of the development rows (computed on demand: hashing every row costs time).
@@ -91,7 +93,13 @@ impl Prepared {
             .iter()
             .map(|&i| self.rows[i])
             .collect();
-        crate::data::row_keys(table, self.key, &rows, crate::data::all_cores())
+        crate::data::row_keys(
+            table,
+            self.key,
+            &rows,
+            crate::data::all_cores(),
+            self.identity,
+        )
     }
 }
 
@@ -173,10 +181,17 @@ fn named_col(spec: &Spec, table: &Table, n: &Named, role: &str) -> Result<usize>
     })
 }
 
-/// Resolve the spec's columns against the table, handle missing values and split.
-/// `threads` only changes speed (the row identities are hashed on them).
-pub fn prepare(spec: &Spec, table: &Table, threads: usize) -> Result<Prepared> {
+/// Resolve the spec's columns against the table, handle missing values and split; the test
+/// rows' identities are formed as `identity` says. `threads` only changes speed (the row
+/// identities are hashed on them).
+pub fn prepare(
+    spec: &Spec,
+    table: &Table,
+    threads: usize,
+    identity: crate::data::Identity,
+) -> Result<Prepared> {
     let mut prep = prepare_unkeyed(spec, table)?;
+    prep.identity = identity;
     prep.test_keys = prep.hash_test_keys(table, threads);
     Ok(prep)
 }
@@ -512,6 +527,7 @@ fn prepare_unkeyed(spec: &Spec, table: &Table) -> Result<Prepared> {
         warnings,
         key,
         test_keys: Vec::new(),
+        identity: crate::data::Identity::CURRENT,
         method,
         metrics: Metric::for_task(spec.task == crate::spec::Task::Classification).to_vec(),
         classes,
@@ -1322,6 +1338,8 @@ pub fn run_reporting(
 /// before the grid; then, on a thread of its own while the grid runs, the prepared split and
 /// its test rows' identities.
 pub trait Recorder: Send {
+    /// How the row identities are formed for the ledger the run goes to.
+    fn identity(&mut self) -> Result<crate::data::Identity>;
     /// Every check has passed and the grid is about to begin (the place to record a start).
     fn started(&mut self, prep: &Prepared) -> Result<()>;
     /// The test rows' identities, in key order, while the grid runs.
@@ -1360,6 +1378,7 @@ pub fn run_recording(
             (after, Ok(keys))
         }
         Some(record) => {
+            prep.identity = record.identity()?;
             std::thread::scope(|s| -> Result<_> {
                 let shared = &prep;
                 // The recorder goes to the side job once the start is recorded; the hashing,
@@ -1950,7 +1969,8 @@ fn select(
 /// Refit one candidate of a stored run on all development rows (for `predict --candidate`).
 /// The spec and data must be the run's own; the caller checks the data hash.
 pub fn refit(spec: &Spec, table: &Table, candidate: usize) -> Result<StoredModel> {
-    let prep = prepare(spec, table, crate::data::all_cores())?;
+    // A refit reads no test row and needs no row identity.
+    let prep = prepare_unkeyed(spec, table)?;
     refit_prepared(spec, table, &prep, candidate)
 }
 
@@ -2200,7 +2220,7 @@ mod tests {
         let spec = crate::spec::parse(text, Path::new("r.toml"), Path::new(".")).unwrap();
         let out = run(&spec, &table, 2).unwrap();
         for threads in [1, 3] {
-            let prep = prepare(&spec, &table, threads).unwrap();
+            let prep = prepare(&spec, &table, threads, crate::data::Identity::CURRENT).unwrap();
             let dev = prep.sealed.development();
             let chosen = &out.candidates[out.selected - 1];
             let (entry, params) = (&entries(&spec)[chosen.entry], &chosen.params);

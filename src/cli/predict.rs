@@ -56,7 +56,8 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
     let (pred, notes) = if matches!(model.fitted, crate::models::Fitted::External) {
         // An external command keeps no model: fit it again on the run's development rows.
         let (spec, table) = super::reveal::reload(&d, None)?;
-        let prep = crate::runner::prepare(&spec, &table, crate::data::all_cores())?;
+        let prep =
+            crate::runner::prepare(&spec, &table, crate::data::all_cores(), ledger.identity()?)?;
         let dev = prep.sealed.development();
         let rows: Vec<usize> = (0..input.n_rows()).collect();
         let mut notes = crate::models::encode::Notes::new();
@@ -155,7 +156,14 @@ fn guard_sealed_rows(
         return Ok(());
     }
     let key = model.key.as_deref().and_then(|k| input.index_of(k));
-    let keys = crate::data::row_keys(input, key, &rows, crate::data::all_cores());
+    // The ledger's identity version, which all its partitions share.
+    let keys = crate::data::row_keys(
+        input,
+        key,
+        &rows,
+        crate::data::all_cores(),
+        ledger.identity()?,
+    );
     let hits = ledger.sealed_partitions_holding(&keys)?;
     if hits.is_empty() {
         return Ok(());

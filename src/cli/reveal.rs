@@ -111,7 +111,8 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
         })?
         .clone();
     let (spec, table) = reload(&d, a.data.as_deref())?;
-    let prep = crate::runner::prepare(&spec, &table, crate::data::all_cores())?;
+    // The ledger's identity version: its partitions', this one's included.
+    let prep = crate::runner::prepare(&spec, &table, crate::data::all_cores(), ledger.identity()?)?;
     if prep.partition_id != d.summary.partition_id {
         return Err(Error::Internal(format!(
             "rebuilt partition {} differs from the stored {}",

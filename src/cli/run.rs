@@ -76,6 +76,14 @@ impl Store<'_> {
 }
 
 impl crate::runner::Recorder for Store<'_> {
+    fn identity(&mut self) -> Result<crate::data::Identity> {
+        // No ledger yet: the run creates one, of the current version.
+        match &self.ledger {
+            Some(l) => l.identity(),
+            None => Ok(crate::data::Identity::CURRENT),
+        }
+    }
+
     fn started(&mut self, _prep: &Prepared) -> Result<()> {
         let info = self.info.clone();
         let start = self.ledger()?.begin_run(&info)?;

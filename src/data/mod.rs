@@ -211,15 +211,62 @@ impl Table {
 /// reordering columns keeps the identity; adding or changing a column changes it).
 pub type RowKey = [u8; 16];
 
-pub fn row_keys(table: &Table, key: Option<usize>, rows: &[usize], threads: usize) -> Vec<RowKey> {
+/// How a row's identity is formed. Identities are stored in ledgers, so a ledger keeps the
+/// version its partitions were made with (see `Ledger::identity`); both versions call the same
+/// rows equal.
+///
+/// - `V1`: SHA-256 of the cells' text: `probity-row\0`, then per column in name order the name,
+///   NUL, the cell's text (numbers in shortest round-trip form, missing as empty) and US (0x1f).
+/// - `V2`: the same rows told apart by the cells' values, without writing numbers as text:
+///   `probity-row-v2\0`, then per column in name order its name (8-byte little-endian length,
+///   then the bytes), then per column in name order the cell: 0x00 when missing; 0x01 and the
+///   8 little-endian bytes of the IEEE-754 double for a number, and for a text cell that is a
+///   number's shortest round-trip text (so a column read as text and as numbers agrees, as in
+///   V1); otherwise 0x02, the text's 8-byte little-endian length and its bytes.
+///
+/// With a key column both versions hash `probity-row-key\0`, the key's name, NUL and its text.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Identity {
+    V1,
+    V2,
+}
+
+impl Identity {
+    /// The version a new ledger uses.
+    pub const CURRENT: Identity = Identity::V2;
+
+    pub fn number(self) -> i64 {
+        match self {
+            Identity::V1 => 1,
+            Identity::V2 => 2,
+        }
+    }
+}
+
+pub fn row_keys(
+    table: &Table,
+    key: Option<usize>,
+    rows: &[usize],
+    threads: usize,
+    identity: Identity,
+) -> Vec<RowKey> {
     let mut order: Vec<usize> = (0..table.columns.len()).collect();
     order.sort_by(|&a, &b| table.columns[a].name.cmp(&table.columns[b].name));
+    // The header part of a V2 identity and each text level's cell bytes, once for all rows.
+    let v2 = (identity == Identity::V2 && key.is_none()).then(|| CellBytes::of(table, &order));
     // Rows are independent: cut them into one contiguous run per thread, joined in order.
     let per = rows.len().div_ceil(threads.max(1)).max(4096);
     std::thread::scope(|s| {
         let parts: Vec<_> = rows
             .chunks(per)
-            .map(|part| s.spawn(|| keys_of(table, key, &order, part)))
+            .map(|part| {
+                let v2 = v2.as_ref();
+                let order = &order;
+                s.spawn(move || match v2 {
+                    Some(c) => keys_v2(table, c, order, part),
+                    None => keys_of(table, key, order, part),
+                })
+            })
             .collect();
         parts
             .into_iter()
@@ -270,6 +317,117 @@ fn keys_of(table: &Table, key: Option<usize>, order: &[usize], rows: &[usize]) -
         }
         out.extend(bufs.iter().map(|b| {
             let d = Sha256::digest(b.as_bytes());
+            let mut k = [0u8; 16];
+            k.copy_from_slice(&d[..16]);
+            k
+        }));
+    }
+    out
+}
+
+/// What V2 identities share across rows: the hash state after the header part, and per column
+/// in name order, for a text column, each level's cell bytes.
+struct CellBytes {
+    head: Sha256,
+    levels: Vec<Option<Vec<Vec<u8>>>>,
+    /// The most bytes a row's cells take.
+    width: usize,
+}
+
+impl CellBytes {
+    fn of(table: &Table, order: &[usize]) -> CellBytes {
+        let mut head = Sha256::new();
+        head.update(b"probity-row-v2\0");
+        for &c in order {
+            let name = table.columns[c].name.as_bytes();
+            head.update((name.len() as u64).to_le_bytes());
+            head.update(name);
+        }
+        let levels: Vec<Option<Vec<Vec<u8>>>> = order
+            .iter()
+            .map(|&c| match &table.columns[c].values {
+                Values::Numeric(_) => None,
+                Values::Text { levels, .. } => Some(levels.iter().map(|l| text_cell(l)).collect()),
+            })
+            .collect();
+        let width = levels
+            .iter()
+            .map(|l| match l {
+                None => 9,
+                Some(ls) => ls.iter().map(Vec::len).max().unwrap_or(1),
+            })
+            .sum();
+        CellBytes {
+            head,
+            levels,
+            width,
+        }
+    }
+}
+
+/// A V2 cell for a text value: a number's when the text is one's shortest round-trip form.
+fn text_cell(text: &str) -> Vec<u8> {
+    if text.is_empty() {
+        return vec![0];
+    }
+    if let Ok(x) = text.parse::<f64>()
+        && x.is_finite()
+    {
+        let mut shortest = String::new();
+        display_f64(x, &mut shortest);
+        if shortest == text {
+            let mut out = vec![1];
+            out.extend_from_slice(&x.to_bits().to_le_bytes());
+            return out;
+        }
+    }
+    let mut out = vec![2];
+    out.extend_from_slice(&(text.len() as u64).to_le_bytes());
+    out.extend_from_slice(text.as_bytes());
+    out
+}
+
+/// V2 identities without a key column: each row's cells are written column by column for a
+/// block of rows (each column read in row order), then hashed from the shared header state.
+fn keys_v2(table: &Table, cells: &CellBytes, order: &[usize], rows: &[usize]) -> Vec<RowKey> {
+    let width = cells.width;
+    let mut buf = vec![0u8; KEY_BLOCK.min(rows.len()) * width];
+    let mut lens = vec![0usize; KEY_BLOCK];
+    let mut out = Vec::with_capacity(rows.len());
+    for block in rows.chunks(KEY_BLOCK) {
+        lens.iter_mut().for_each(|l| *l = 0);
+        for (&c, levels) in order.iter().zip(&cells.levels) {
+            match (&table.columns[c].values, levels) {
+                (Values::Numeric(v), _) => {
+                    for (i, &r) in block.iter().enumerate() {
+                        let at = i * width + lens[i];
+                        let x = v[r];
+                        if x.is_nan() {
+                            buf[at] = 0;
+                            lens[i] += 1;
+                        } else {
+                            buf[at] = 1;
+                            buf[at + 1..at + 9].copy_from_slice(&x.to_bits().to_le_bytes());
+                            lens[i] += 9;
+                        }
+                    }
+                }
+                (Values::Text { codes, .. }, Some(levels)) => {
+                    for (i, &r) in block.iter().enumerate() {
+                        let at = i * width + lens[i];
+                        let cell: &[u8] = levels.get(codes[r] as usize).map_or(&[0], |l| l);
+                        buf[at..at + cell.len()].copy_from_slice(cell);
+                        lens[i] += cell.len();
+                    }
+                }
+                // `CellBytes::of` gives every text column its levels.
+                (Values::Text { .. }, None) => {}
+            }
+        }
+        out.extend((0..block.len()).map(|i| {
+            let mut h = cells.head.clone();
+            h.update(&buf[i * width..i * width + lens[i]]);
+            let d = h.finalize();
             let mut k = [0u8; 16];
             k.copy_from_slice(&d[..16]);
             k
@@ -635,18 +793,40 @@ mod tests {
 
     /// Row identities are stored in ledgers, so their bytes are pinned: the expected values
     /// were computed with Python's hashlib (3.11) from the canonical bytes the doc comment of
-    /// `RowKey` describes (columns in name order, name NUL text US, missing as empty text).
+    /// `Identity` describes (V1: columns in name order, name NUL text US, missing as empty
+    /// text; V2: the names length-prefixed, then each cell tagged, numbers as their 8 IEEE-754
+    /// bytes, little-endian, via `struct.pack('<d')`).
     #[test]
     fn row_identities_are_pinned_and_do_not_depend_on_blocks_or_threads() {
         let t = p("c,b,a\n,x,2.5\n").unwrap();
         let hexed = |k: &RowKey| crate::spec::hex(k);
         assert_eq!(
-            hexed(&row_keys(&t, None, &[0], 1)[0]),
+            hexed(&row_keys(&t, None, &[0], 1, Identity::V1)[0]),
             "6f3c245c2661cd9ec5bb6cf6d52a4655"
         );
         assert_eq!(
-            hexed(&row_keys(&t, Some(1), &[0], 1)[0]),
-            "f3df287cc36860339b767a9ce0b26779"
+            hexed(&row_keys(&t, None, &[0], 1, Identity::V2)[0]),
+            "a837af1bb2f18a018c28ad7d2de99de9"
+        );
+        // With a key column, both versions hash the key's text.
+        for v in [Identity::V1, Identity::V2] {
+            assert_eq!(
+                hexed(&row_keys(&t, Some(1), &[0], 1, v)[0]),
+                "f3df287cc36860339b767a9ce0b26779"
+            );
+        }
+        // A text column's number-shaped level is the number (as V1's texts are equal).
+        let t = parse(
+            b"k,v\nq,0\n7,1.5\n",
+            Path::new("t.csv"),
+            String::new(),
+            &["k"],
+        )
+        .unwrap();
+        assert!(matches!(t.columns[0].values, Values::Text { .. }));
+        assert_eq!(
+            hexed(&row_keys(&t, None, &[1], 1, Identity::V2)[0]),
+            "a0f1a205310ced6fa0dc6bc0ed352342"
         );
         // Many rows (several blocks, several threads) give each row its own one-row key.
         let mut text = String::from("c,b,a\n");
@@ -660,12 +840,47 @@ mod tests {
         }
         let t = p(&text).unwrap();
         let rows: Vec<usize> = (0..700).rev().step_by(2).collect();
-        for threads in [1, 3] {
-            let all = row_keys(&t, None, &rows, threads);
-            for (k, &r) in all.iter().zip(&rows) {
-                assert_eq!(*k, row_keys(&t, None, &[r], 1)[0]);
+        for v in [Identity::V1, Identity::V2] {
+            for threads in [1, 3] {
+                let all = row_keys(&t, None, &rows, threads, v);
+                for (k, &r) in all.iter().zip(&rows) {
+                    assert_eq!(*k, row_keys(&t, None, &[r], 1, v)[0]);
+                }
             }
         }
+    }
+
+    /// Both versions call the same rows equal: each row of one file against each of another,
+    /// which spells numbers differently, orders its columns differently, reads a column as
+    /// text (listed as categorical), and holds rows that differ by a sign of zero, a last digit or a missing cell.
+    #[test]
+    fn both_identity_versions_call_the_same_rows_equal() {
+        let a =
+            p("x,y,z\n1.5,7,a\n-0,7,a\n0,7,a\n0.1,,b\n0.30000000000000004,2,c\n1e3,3,d\n").unwrap();
+        let b = parse(
+            b"z,y,x\na,7,1.50\na,7.0,0\nb,,1e-1\nc,2,0.3\nd,3,1000\nd,n/a,1000\na,07,-0.0\na,7,0\n",
+            Path::new("t.csv"),
+            String::new(),
+            &["y"],
+        )
+        .unwrap();
+        assert!(matches!(b.columns[1].values, Values::Text { .. }));
+        let ra: Vec<usize> = (0..a.n_rows()).collect();
+        let rb: Vec<usize> = (0..b.n_rows()).collect();
+        let mut equal = Vec::new();
+        for v in [Identity::V1, Identity::V2] {
+            let (ka, kb) = (row_keys(&a, None, &ra, 1, v), row_keys(&b, None, &rb, 1, v));
+            let pairs: Vec<(usize, usize)> = (0..ka.len())
+                .flat_map(|i| (0..kb.len()).map(move |j| (i, j)))
+                .filter(|&(i, j)| ka[i] == kb[j])
+                .collect();
+            equal.push(pairs);
+        }
+        // "7.0" and "07" are not 7's shortest text, so as text they differ from the number,
+        // in both versions; 1.50, 1e-1 and 1000 are numbers in both files.
+        // The last row of `b` is the third of `a`, not the second (-0).
+        assert_eq!(equal[0], vec![(0, 0), (2, 7), (3, 2), (5, 4)]);
+        assert_eq!(equal[0], equal[1]);
     }
     #[test]
     fn types_columns_and_marks_missing() {

@@ -44,6 +44,7 @@ impl Sealed {
         kept: &[usize],
         key: Option<usize>,
         threads: usize,
+        identity: crate::data::Identity,
     ) -> Vec<crate::data::RowKey> {
         let rows: Vec<usize> = self
             .partition
@@ -51,7 +52,7 @@ impl Sealed {
             .iter()
             .map(|&i| kept[i])
             .collect();
-        crate::data::row_keys(table, key, &rows, threads)
+        crate::data::row_keys(table, key, &rows, threads, identity)
     }
 
     /// Per-row partition codes (for the ledger's compact assignment); reveals nothing but

@@ -157,6 +157,8 @@ pub struct RunDetail {
     pub holdout: bool,
     /// Canonical JSON of the split settings (method, seed, fractions, folds, columns).
     pub split_settings: String,
+    /// The row identity version of the run's partition (`crate::data::Identity`).
+    pub identity: i64,
     pub rule: String,
     pub best: i64,
     pub model_json: String,
@@ -737,6 +739,7 @@ impl Ledger {
                         best: r.get(18)?,
                         model_json: r.get(19)?,
                         split_settings: r.get(20)?,
+                        identity: 1,
                         folds: Vec::new(),
                         candidates: Vec::new(),
                         warnings: Vec::new(),
@@ -748,6 +751,9 @@ impl Ledger {
             )
             .map_err(sql_err("read run"))?;
         let mut d = detail;
+        // The stored settings name the identity version beside the split settings.
+        d.identity = settings_identity(&d.split_settings);
+        d.split_settings = split_only(&d.split_settings);
         let mut st = self.conn.prepare("SELECT repeat, fold, n_fit, n_score FROM folds WHERE run_id = ?1 ORDER BY repeat, fold").map_err(sql_err("read folds"))?;
         d.folds = st
             .query_map([id], |r| {
@@ -1057,6 +1063,31 @@ impl Ledger {
             }
         }
         Ok(out)
+    }
+
+    /// How this ledger forms row identities: `V1` while any partition stored without an
+    /// identity version in its settings (made before version 2) remains, else `V2`. Every
+    /// partition of a ledger has the same version, so stored identities compare with each
+    /// other and with those computed for it (`merge` refuses a bundle of the other version).
+    pub fn identity(&self) -> Result<crate::data::Identity> {
+        Ok(if self.identity_versions()?.contains(&1) {
+            crate::data::Identity::V1
+        } else {
+            crate::data::Identity::V2
+        })
+    }
+
+    /// The identity versions of the stored partitions, each once (none without partitions).
+    pub fn identity_versions(&self) -> Result<std::collections::BTreeSet<i64>> {
+        let mut st = self
+            .conn
+            .prepare("SELECT DISTINCT settings FROM partitions")
+            .map_err(sql_err("read identity version"))?;
+        let settings = st
+            .query_map([], |r| r.get::<_, String>(0))
+            .and_then(|rows| rows.collect::<rusqlite::Result<Vec<_>>>())
+            .map_err(sql_err("read identity version"))?;
+        Ok(settings.iter().map(|s| settings_identity(s)).collect())
     }
 
     /// True when any reveal is stored (exposure checks are skipped otherwise).
@@ -1881,6 +1912,42 @@ fn distinct(sorted: &[crate::data::RowKey]) -> usize {
     sorted.chunk_by(|a, b| a == b).count()
 }
 
+/// The identity version a partition's stored settings name (1 when they name none).
+pub fn settings_identity(settings: &str) -> i64 {
+    serde_json::from_str::<serde_json::Value>(settings)
+        .ok()
+        .and_then(|v| v["identity"].as_i64())
+        .unwrap_or(1)
+}
+
+/// A partition's stored settings without the identity version: the split settings alone.
+fn split_only(settings: &str) -> String {
+    match serde_json::from_str::<serde_json::Value>(settings) {
+        Ok(serde_json::Value::Object(mut m)) if m.contains_key("identity") => {
+            m.remove("identity");
+            serde_json::Value::Object(m).to_string()
+        }
+        _ => settings.to_string(),
+    }
+}
+
+/// A partition's stored settings: the canonical split settings, and from identity version 2 on,
+/// `"identity"` with the version its test rows' identities were formed with. (The partition's
+/// id hashes the split settings alone, so it does not depend on the version.)
+pub fn partition_settings(spec: &crate::spec::Spec, identity: crate::data::Identity) -> String {
+    let canonical = spec.split_canonical();
+    if identity == crate::data::Identity::V1 {
+        return canonical;
+    }
+    match serde_json::from_str::<serde_json::Value>(&canonical) {
+        Ok(serde_json::Value::Object(mut m)) => {
+            m.insert("identity".into(), identity.number().into());
+            serde_json::Value::Object(m).to_string()
+        }
+        _ => canonical,
+    }
+}
+
 /// Store a partition and, when it is new, its test rows' identities; true when it was new.
 fn insert_partition(
     tx: &rusqlite::Transaction,
@@ -1895,7 +1962,7 @@ fn insert_partition(
         params![
             prep.partition_id,
             table.sha256,
-            spec.split_canonical(),
+            partition_settings(spec, prep.identity),
             prep.assignment,
             s.count(Part::Train) as i64,
             s.count(Part::Validation) as i64,
@@ -2004,16 +2071,17 @@ mod tests {
         recorded: bool,
         twice: bool,
     ) -> (Ledger, PathBuf) {
-        stored_edited(name, copies, recorded, twice, |_| {})
+        stored_edited(name, copies, recorded, twice, |_, _| {})
     }
 
-    /// `stored_run_with`, the run's outcome changed by `edit` before it is stored.
+    /// `stored_run_with`, the run's outcome changed by `edit` (given the table) before it is
+    /// stored.
     fn stored_edited(
         name: &str,
         copies: usize,
         recorded: bool,
         twice: bool,
-        edit: impl FnOnce(&mut RunOutcome),
+        edit: impl FnOnce(&mut RunOutcome, &crate::data::Table),
     ) -> (Ledger, PathBuf) {
         let mut csv = String::from("x1,x2,y\n");
         for i in 0..300u32 {
@@ -2029,7 +2097,7 @@ mod tests {
             [[model]]\nkind = \"ridge\"\nlambda = [0.01, 1, 100]\n";
         let spec = crate::spec::parse(text, Path::new("r.toml"), Path::new(".")).unwrap();
         let mut out = crate::runner::run(&spec, &table, 2).unwrap();
-        edit(&mut out);
+        edit(&mut out, &table);
         let dir =
             std::env::temp_dir().join(format!("probity-ledger-{name}-{}", std::process::id()));
         let _ = std::fs::remove_dir_all(&dir);
@@ -2199,7 +2267,7 @@ mod tests {
             Some(-3.0),
             Some(1e300),
         ];
-        let edit = |out: &mut RunOutcome| {
+        let edit = |out: &mut RunOutcome, _: &crate::data::Table| {
             let mut at = 0;
             let mut next = || {
                 at += 1;
@@ -2235,7 +2303,7 @@ mod tests {
         assert!(stored > 0);
         let _ = std::fs::remove_dir_all(&dir);
         // Candidates in reverse order: the rows are read back, not taken from memory.
-        let (ledger, dir) = stored_edited("reversed", 1, false, false, |out| {
+        let (ledger, dir) = stored_edited("reversed", 1, false, false, |out, _| {
             out.candidates.reverse();
         });
         let (_, breaks) = ledger.verify().unwrap();
@@ -2281,6 +2349,65 @@ mod tests {
             drop(ledger);
             let _ = std::fs::remove_dir_all(dir);
         }
+    }
+
+    /// A ledger forms row identities one way: a new one as `Identity::CURRENT` (V2), named in
+    /// its partitions' settings; one whose partitions predate version 2 (no version in their
+    /// settings) keeps V1. The stored identities are those of the partition's version, the
+    /// chain holds, and a bundle merges only into a ledger of its own version.
+    #[test]
+    fn a_ledger_keeps_the_identity_version_of_its_partitions() {
+        use crate::data::Identity;
+        let as_v1 = |out: &mut RunOutcome, table: &crate::data::Table| {
+            out.prepared.identity = Identity::V1;
+            out.prepared.test_keys = out.prepared.hash_test_keys(table, 2);
+        };
+        let (mut old, old_dir) = stored_edited("ident-v1", 1, false, false, as_v1);
+        let (mut new, new_dir) = stored_run("ident-v2");
+        let stored = |l: &Ledger| -> (String, Vec<crate::data::RowKey>) {
+            let settings: String = l
+                .conn
+                .query_row("SELECT settings FROM partitions", [], |r| r.get(0))
+                .unwrap();
+            let id: String = l
+                .conn
+                .query_row("SELECT id FROM partitions", [], |r| r.get(0))
+                .unwrap();
+            (settings, l.partition_row_keys(&id).unwrap())
+        };
+        let (old_settings, old_keys) = stored(&old);
+        let (new_settings, new_keys) = stored(&new);
+        assert_eq!(old.identity().unwrap(), Identity::V1);
+        assert_eq!(new.identity().unwrap(), Identity::V2);
+        assert!(!old_settings.contains("identity"), "{old_settings}");
+        assert!(new_settings.contains("\"identity\":2"), "{new_settings}");
+        // A run read back names its version apart from the split settings.
+        for (l, v) in [(&old, 1), (&new, 2)] {
+            let d = l.run(1).unwrap().unwrap();
+            assert_eq!(d.identity, v);
+            assert_eq!(d.split_settings, old_settings);
+        }
+        // The same test rows, identified each way.
+        assert_eq!(old_keys.len(), new_keys.len());
+        assert!(old_keys.iter().all(|k| !new_keys.contains(k)));
+        for l in [&old, &new] {
+            let (entries, breaks) = l.verify().unwrap();
+            assert_eq!((entries, breaks.len()), (1, 0), "{breaks:?}");
+        }
+        // Bundles: not into a ledger of the other version; into an empty one, which takes it.
+        let bundle = old.pack(&[1], "2026-12-03T00:00:02Z").unwrap();
+        let e = new.merge(&bundle).unwrap_err().to_string();
+        assert!(e.contains("versions 1 and 2"), "{e}");
+        assert_eq!(new.verify().unwrap().0, 1);
+        let mut empty = Ledger::open(&old_dir.join("empty.sqlite"), true).unwrap();
+        assert_eq!(empty.identity().unwrap(), Identity::V2);
+        assert_eq!(empty.merge(&bundle).unwrap(), (1, 0));
+        assert_eq!(empty.identity().unwrap(), Identity::V1);
+        let back = new.pack(&[1], "2026-12-03T00:00:03Z").unwrap();
+        assert!(old.merge(&back).is_err());
+        drop((old, new, empty));
+        let _ = std::fs::remove_dir_all(old_dir);
+        let _ = std::fs::remove_dir_all(new_dir);
     }
 
     /// The bulk write pauses SQLite's per-row checks and resumes them, leaves no row that
