@@ -19,10 +19,10 @@ measures the disk, not the program (one such run here took 25 s instead of 1.5 s
 "total/load" is given twice: the median run's time over the median load, and the median of each
 run's time over its own load (the pair saw the same state of a shared machine). The load phase
 reads, parses and hashes the file (SHA-256, on a thread of its own: each block is hashed while
-the next one is read). "total/parse" divides by
-the parse alone: in each repeat, right after the run, `PROBITY_TIMINGS=parse-only probity run`
-reads and parses the same file with the same reader, without the hash, and stops (issue 7's
-"time to merely parse the CSV"). It too is given over the medians and run by run.
+the next one is read). "total/parse" divides by the parse alone: in each repeat, right after
+the run, `PROBITY_TIMINGS=parse-only probity run` reads and parses the same file with the same
+reader, without the hash, and stops (issue 7's "time to merely parse the CSV"). It too is given
+over the medians and run by run.
 
 Usage:
   python3 bench/run.py [--repeats 3] [--data DIR] [--scenarios a,b,c,d]
