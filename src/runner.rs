@@ -878,7 +878,7 @@ fn run_task(
         };
         if let Some(fits) = gram.solve(&lambdas) {
             let (on_fit, on_score) = error_sums_both(&src, &fold.fit, &fold.score, &fits);
-            if let Some(out) = gram_task(prep, grid, fold, &on_fit, &on_score) {
+            if let Some(out) = gram_task(prep, grid, &truths(prep, fold), &on_fit, &on_score) {
                 return Ok(out);
             }
         }
@@ -981,7 +981,7 @@ fn run_task(
 fn gram_task(
     prep: &Prepared,
     grid: &[Params],
-    fold: &crate::split::Fold,
+    (tf, ts): &(Truth, Truth),
     on_fit: &[(f64, f64)],
     on_score: &[(f64, f64)],
 ) -> Option<TaskOut> {
@@ -992,8 +992,6 @@ fn gram_task(
     {
         return None;
     }
-    let tf = Truth::of_rows(&prep.target, fold.fit.iter().copied());
-    let ts = Truth::of_rows(&prep.target, fold.score.iter().copied());
     let mut scores = Vec::with_capacity(grid.len());
     for (f, s) in on_fit.iter().zip(on_score) {
         let of = |t: &Truth, sums: &(f64, f64)| -> Scores {
@@ -1002,12 +1000,20 @@ fn gram_task(
                 .map(|&m| t.score(m, sums.0, sums.1))
                 .collect()
         };
-        scores.push(Ok((of(&tf, f), of(&ts, s))));
+        scores.push(Ok((of(tf, f), of(ts, s))));
     }
     Some(TaskOut {
         scores,
         notes: Notes::new(),
     })
+}
+
+/// The target's truth on a fold's fitting and held-out rows (what `gram_task` scores against).
+fn truths(prep: &Prepared, fold: &crate::split::Fold) -> (Truth, Truth) {
+    (
+        Truth::of_rows(&prep.target, fold.fit.iter().copied()),
+        Truth::of_rows(&prep.target, fold.score.iter().copied()),
+    )
 }
 
 /// (intercept, weights) per penalty of one fold.
@@ -1080,12 +1086,21 @@ fn sweep_folds(
     let columns = numeric_columns(table, &prep.features);
     let src = source(prep, &columns);
     let k = threads.clamp(1, groups.len().max(1));
-    let parts = crate::par::jobs(k, threads, |c| {
-        let (lo, hi) = (c * groups.len() / k, (c + 1) * groups.len() / k);
-        fold_error_sums(&src, &dev, &held, &groups[lo..hi])
+    // After the k chunks of lane groups, one job per fold for its truths: a worker whose chunk
+    // ends first takes them, instead of idling while the other chunks finish.
+    let parts = crate::par::jobs(k + folds.len(), threads, |c| {
+        if c < k {
+            let (lo, hi) = (c * groups.len() / k, (c + 1) * groups.len() / k);
+            (fold_error_sums(&src, &dev, &held, &groups[lo..hi]), None)
+        } else {
+            (Vec::new(), Some(truths(prep, &folds[c - k])))
+        }
     });
-    let sums: Vec<_> = parts.into_iter().flatten().collect();
-    if sums.len() != groups.len() {
+    type Sums = Vec<crate::models::gram::LaneSums>;
+    let (sums, truth): (Vec<Sums>, Vec<Option<(Truth, Truth)>>) = parts.into_iter().unzip();
+    let sums: Sums = sums.into_iter().flatten().collect();
+    let truth: Vec<(Truth, Truth)> = truth.into_iter().flatten().collect();
+    if sums.len() != groups.len() || truth.len() != folds.len() {
         // A worker panicked: leave every task to run alone.
         return out;
     }
@@ -1101,7 +1116,7 @@ fn sweep_folds(
                 .map(|k| (lane(k)[2][k % FITS], lane(k)[3][k % FITS]))
                 .collect();
             out[f * entries.len() + e] =
-                gram_task(prep, &grids[*e], &folds[f], &on_fit, &on_score).map(Ok);
+                gram_task(prep, &grids[*e], &truth[f], &on_fit, &on_score).map(Ok);
         }
     }
     out
