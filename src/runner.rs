@@ -10,7 +10,7 @@ use crate::error::{Error, Result};
 use crate::guard::Sealed;
 use crate::metrics::{ErrorSums, Metric, Truth, mean_se, score_all};
 use crate::models::encode::{Encoder, Feature, Notes};
-use crate::models::gram::{FITS, Gram, LaneGroup, Source, error_sums_both, fold_error_sums};
+use crate::models::gram::{FITS, Gram, LaneGroup, Source, error_sums_both, fold_error_sums_shared};
 use crate::models::{Design, Fitted, Params, model_for};
 use crate::spec::{Family, Missing, ModelSpec, Named, Rule, Spec, SplitMethod, hex};
 use crate::split::rng::{Domain, derive_seed};
@@ -1025,8 +1025,9 @@ const SWEEP_MAX_FOLDS: usize = 64;
 /// The (fold, entry) tasks of every grid on the sufficient-statistics path whose fold Grams
 /// `fold_grams` made, scored together: one solve per fold, then one pass over the development
 /// rows predicts every fold's fits at once (`gram::fold_error_sums`; each row is read once
-/// instead of once per fold), the lane groups cut into one chunk per thread. The sums are the
-/// bits `run_task` would get. Slot `f * entries.len() + e`; `None` where the task runs alone.
+/// instead of once per fold), the lane groups shared among the threads, which take work over
+/// from each other (`gram::fold_error_sums_shared`). The sums are the bits `run_task` would
+/// get. Slot `f * entries.len() + e`; `None` where the task runs alone.
 #[allow(clippy::too_many_arguments)]
 fn sweep_folds(
     table: &Table,
@@ -1085,21 +1086,8 @@ fn sweep_folds(
     }
     let columns = numeric_columns(table, &prep.features);
     let src = source(prep, &columns);
-    let k = threads.clamp(1, groups.len().max(1));
-    // After the k chunks of lane groups, one job per fold for its truths: a worker whose chunk
-    // ends first takes them, instead of idling while the other chunks finish.
-    let parts = crate::par::jobs(k + folds.len(), threads, |c| {
-        if c < k {
-            let (lo, hi) = (c * groups.len() / k, (c + 1) * groups.len() / k);
-            (fold_error_sums(&src, &dev, &held, &groups[lo..hi]), None)
-        } else {
-            (Vec::new(), Some(truths(prep, &folds[c - k])))
-        }
-    });
-    type Sums = Vec<crate::models::gram::LaneSums>;
-    let (sums, truth): (Vec<Sums>, Vec<Option<(Truth, Truth)>>) = parts.into_iter().unzip();
-    let sums: Sums = sums.into_iter().flatten().collect();
-    let truth: Vec<(Truth, Truth)> = truth.into_iter().flatten().collect();
+    let sums = fold_error_sums_shared(&src, &dev, &held, &groups, threads);
+    let truth = crate::par::jobs(folds.len(), threads, |f| truths(prep, &folds[f]));
     if sums.len() != groups.len() || truth.len() != folds.len() {
         // A worker panicked: leave every task to run alone.
         return out;

@@ -598,24 +598,218 @@ pub fn fold_error_sums(
     held: &[u64],
     groups: &[LaneGroup],
 ) -> Vec<LaneSums> {
-    fold_sums_of(src, rows, held, groups)
+    let mut out: Vec<LaneSums> = vec![[[0.0; FITS]; 4]; groups.len()];
+    fold_sums_of(src, rows, held, groups, &mut out);
+    out
+}
+
+/// Rows between two points where a thread of `fold_error_sums_shared` may hand over groups.
+const STEP: usize = 16 * BLOCK;
+
+/// `fold_error_sums` on `threads` threads, each starting with an equal share of the lane
+/// groups. A thread that runs out of work takes over half the groups of the thread with the
+/// most left, with their sums so far, at one of that thread's step boundaries: a thread slowed
+/// by other work (the partition being stored beside the grid) no longer leaves the others
+/// idle at the end. Each group's rows still go through in order, in the same arithmetic, so
+/// the sums are the bits of `fold_error_sums` whatever the thread count and whoever takes what.
+pub fn fold_error_sums_shared(
+    src: &Source,
+    rows: &[usize],
+    held: &[u64],
+    groups: &[LaneGroup],
+    threads: usize,
+) -> Vec<LaneSums> {
+    let k = threads.clamp(1, groups.len().max(1));
+    let bounds: Vec<usize> = (0..=k).map(|w| w * groups.len() / k).collect();
+    shared_sweep(src, rows, held, groups, &bounds).0
+}
+
+fn lock(m: &std::sync::Mutex<Slot>) -> std::sync::MutexGuard<'_, Slot> {
+    m.lock().unwrap_or_else(std::sync::PoisonError::into_inner)
+}
+
+/// One thread's place in `shared_sweep`, under its lock.
+struct Slot {
+    lo: usize,
+    hi: usize,
+    /// The next step it will sweep.
+    step: usize,
+    done: bool,
+    /// Another thread asks for half its groups.
+    asked: bool,
+    /// The answer, until the asking thread takes it: the groups handed over, or `None`
+    /// (nothing to split). No other thread may ask meanwhile.
+    given: Option<Option<Handover>>,
+}
+
+/// Groups `lo..hi` from step `step` on, with their sums over the steps before.
+struct Handover {
+    lo: usize,
+    hi: usize,
+    step: usize,
+    sums: Vec<LaneSums>,
+}
+
+/// Leaving (at the end, or by a panic): answer a pending request so no thread waits on this
+/// one.
+struct Leave<'a>(&'a (std::sync::Mutex<Slot>, std::sync::Condvar));
+
+impl Drop for Leave<'_> {
+    fn drop(&mut self) {
+        let mut s = lock(&self.0.0);
+        s.done = true;
+        if s.asked {
+            s.asked = false;
+            s.given = Some(None);
+        }
+        self.0.1.notify_all();
+    }
+}
+
+/// The sweep of `fold_error_sums_shared`, thread `w` starting with groups
+/// `bounds[w]..bounds[w + 1]`; also returns how many handovers took place.
+fn shared_sweep(
+    src: &Source,
+    rows: &[usize],
+    held: &[u64],
+    groups: &[LaneGroup],
+    bounds: &[usize],
+) -> (Vec<LaneSums>, usize) {
+    use std::sync::{Condvar, Mutex, PoisonError};
+    let k = bounds.len() - 1;
+    let steps = rows.len().div_ceil(STEP);
+    let slots: Vec<(Mutex<Slot>, Condvar)> = (0..k)
+        .map(|w| {
+            let slot = Slot {
+                lo: bounds[w],
+                hi: bounds[w + 1],
+                step: 0,
+                done: false,
+                asked: false,
+                given: None,
+            };
+            (Mutex::new(slot), Condvar::new())
+        })
+        .collect();
+    let results: Mutex<Vec<Option<LaneSums>>> = Mutex::new(vec![None; groups.len()]);
+    let handovers = std::sync::atomic::AtomicUsize::new(0);
+    // Ask the thread with the most work left for half its groups; `None` when no thread has
+    // two groups and a step left.
+    let take = |me: usize| -> Option<Handover> {
+        loop {
+            let mut best: Option<(usize, usize)> = None;
+            for (w, (m, _)) in slots.iter().enumerate().filter(|(w, _)| *w != me) {
+                let s = lock(m);
+                let left = (s.hi - s.lo) * steps.saturating_sub(s.step);
+                let free = !s.done && !s.asked && s.given.is_none();
+                let splits = s.hi - s.lo >= 2 && s.step < steps;
+                if free && splits && best.is_none_or(|(_, b)| left > b) {
+                    best = Some((w, left));
+                }
+            }
+            let (victim, _) = best?;
+            let (m, cv) = &slots[victim];
+            let mut s = lock(m);
+            if s.done || s.asked || s.given.is_some() {
+                continue;
+            }
+            s.asked = true;
+            let mut s = cv
+                .wait_while(s, |s| s.given.is_none())
+                .unwrap_or_else(PoisonError::into_inner);
+            if let Some(Some(h)) = s.given.take() {
+                return Some(h);
+            }
+        }
+    };
+    let work = |me: usize| {
+        let _leave = Leave(&slots[me]);
+        let (mut lo, mut hi, mut step) = (bounds[me], bounds[me + 1], 0);
+        let mut sums: Vec<LaneSums> = vec![[[0.0; FITS]; 4]; hi - lo];
+        loop {
+            {
+                // A step boundary: answer a request, and show where this thread is.
+                let (m, cv) = &slots[me];
+                let mut s = lock(m);
+                if s.asked {
+                    s.asked = false;
+                    let split = hi - lo >= 2 && step < steps;
+                    s.given = Some(split.then(|| {
+                        let mid = lo + (hi - lo) / 2;
+                        let theirs = sums.split_off(mid - lo);
+                        let h = Handover {
+                            lo: mid,
+                            hi,
+                            step,
+                            sums: theirs,
+                        };
+                        hi = mid;
+                        h
+                    }));
+                    cv.notify_all();
+                }
+                (s.lo, s.hi, s.step) = (lo, hi, step);
+                s.done = step >= steps;
+            }
+            if step < steps {
+                let (a, b) = (step * STEP, rows.len().min((step + 1) * STEP));
+                fold_sums_of(src, &rows[a..b], &held[a..b], &groups[lo..hi], &mut sums);
+                step += 1;
+                continue;
+            }
+            {
+                let mut r = results.lock().unwrap_or_else(PoisonError::into_inner);
+                for (g, s) in (lo..hi).zip(sums.drain(..)) {
+                    r[g] = Some(s);
+                }
+            }
+            let Some(h) = take(me) else {
+                break;
+            };
+            handovers.fetch_add(1, std::sync::atomic::Ordering::Relaxed);
+            (lo, hi, step, sums) = (h.lo, h.hi, h.step, h.sums);
+            let mut s = lock(&slots[me].0);
+            (s.lo, s.hi, s.step, s.done) = (lo, hi, step, false);
+        }
+    };
+    std::thread::scope(|s| {
+        for w in 1..k {
+            let work = &work;
+            s.spawn(move || work(w));
+        }
+        work(0);
+    });
+    let out = results
+        .into_inner()
+        .unwrap_or_else(PoisonError::into_inner)
+        .into_iter()
+        .flatten()
+        .collect();
+    (out, handovers.into_inner())
 }
 
 widest!(
     fold_sums_of,
-    fn(src: &Source, rows: &[usize], held: &[u64], groups: &[LaneGroup]) -> Vec<LaneSums>,
+    fn(
+        src: &Source,
+        rows: &[usize],
+        held: &[u64],
+        groups: &[LaneGroup],
+        out: &mut [LaneSums],
+    ) -> (),
     fold_sums_body
 );
 
+/// Adds the rows' errors to `out` (one entry per group), continuing its sums.
 #[inline(always)]
 fn fold_sums_body(
     src: &Source,
     rows: &[usize],
     held: &[u64],
     groups: &[LaneGroup],
-) -> Vec<LaneSums> {
+    out: &mut [LaneSums],
+) {
     let p = src.columns.len();
-    let mut out: Vec<LaneSums> = vec![[[0.0; FITS]; 4]; groups.len()];
     let mut block = vec![0.0; (p + 1) * BLOCK];
     for (chunk, masks) in rows.chunks(BLOCK).zip(held.chunks(BLOCK)) {
         let nb = chunk.len();
@@ -648,7 +842,6 @@ fn fold_sums_body(
             *sums = s;
         }
     }
-    out
 }
 
 /// A linear model's predictions on `rows`, formed exactly as `Fitted::predict` forms them
@@ -709,6 +902,20 @@ mod tests {
         owner: Vec<u32>,
     }
 
+    impl Fixture {
+        fn refs(&self) -> Vec<&[f64]> {
+            self.cols.iter().map(|c| c.as_slice()).collect()
+        }
+
+        fn source<'a>(&'a self, refs: &'a [&'a [f64]]) -> Source<'a> {
+            Source {
+                columns: refs,
+                target: &self.y,
+                table_row: &self.table_row,
+            }
+        }
+    }
+
     fn fixture(n: usize) -> Fixture {
         let mut rng = crate::testgen::Lcg(11);
         let mut next = || rng.unit();
@@ -738,12 +945,8 @@ mod tests {
     fn one_pass_over_sets_equals_one_pass_per_set() {
         let n = 1000; // coprime with 7, so table_row is a permutation
         let fx = fixture(n);
-        let refs: Vec<&[f64]> = fx.cols.iter().map(|c| c.as_slice()).collect();
-        let src = Source {
-            columns: &refs,
-            target: &fx.y,
-            table_row: &fx.table_row,
-        };
+        let refs = fx.refs();
+        let src = fx.source(&refs);
         let rows: Vec<usize> = (0..n).collect();
         let shift = Gram::row(&src, 0);
         let all = of_sets(&src, &rows, &fx.owner, 0..3, &shift);
@@ -765,12 +968,8 @@ mod tests {
     fn one_sweep_for_all_folds_equals_one_sweep_per_fold() {
         let n = 1000;
         let fx = fixture(n);
-        let refs: Vec<&[f64]> = fx.cols.iter().map(|c| c.as_slice()).collect();
-        let src = Source {
-            columns: &refs,
-            target: &fx.y,
-            table_row: &fx.table_row,
-        };
+        let refs = fx.refs();
+        let src = fx.source(&refs);
         let rows: Vec<usize> = (0..n).collect();
         let held: Vec<u64> = fx.owner.iter().map(|&o| 1u64 << o).collect();
         // 11 fits per fold: one full group of 8 and one padded group.
@@ -800,6 +999,46 @@ mod tests {
                 assert!(on_score[k].0 > 0.0);
             }
         }
+    }
+
+    /// The shared sweep gives the bits of the one-thread sweep, for any thread count and any
+    /// first split of the groups, whichever thread ends up sweeping which group from which step
+    /// on. A thread that starts with no group must take groups over (the test sees that
+    /// handovers happen).
+    #[test]
+    fn a_shared_sweep_with_handovers_equals_one_sweep() {
+        let n = 20_001; // five steps, the last one short; coprime with 7 (table_row)
+        let fx = fixture(n);
+        let refs = fx.refs();
+        let src = fx.source(&refs);
+        let rows: Vec<usize> = (0..n).filter(|i| i % 5 != 0).collect();
+        let held: Vec<u64> = rows.iter().map(|&i| 1u64 << fx.owner[i]).collect();
+        let groups: Vec<LaneGroup> = (0..3u32)
+            .flat_map(|f| {
+                let fit: Vec<usize> = rows.iter().copied().filter(|&i| fx.owner[i] != f).collect();
+                let lambdas: Vec<f64> = (0..11).map(|k| 0.01 * 3f64.powi(k)).collect();
+                let fits = Gram::of(&src, &fit).solve(&lambdas).unwrap();
+                LaneGroup::of(f, &fits, 3)
+            })
+            .collect();
+        assert_eq!(groups.len(), 6);
+        let want = fold_error_sums(&src, &rows, &held, &groups);
+        let bits = |v: &[LaneSums]| -> Vec<u64> {
+            v.iter().flatten().flatten().map(|x| x.to_bits()).collect()
+        };
+        for threads in 1..=4 {
+            let got = fold_error_sums_shared(&src, &rows, &held, &groups, threads);
+            assert_eq!(bits(&got), bits(&want), "{threads} threads");
+        }
+        let mut handovers = 0;
+        for _ in 0..10 {
+            for bounds in [&[0, 0, 6][..], &[0, 1, 6], &[0, 0, 0, 6], &[0, 5, 6, 6]] {
+                let (got, h) = shared_sweep(&src, &rows, &held, &groups, bounds);
+                assert_eq!(bits(&got), bits(&want), "bounds {bounds:?}");
+                handovers += h;
+            }
+        }
+        assert!(handovers > 0);
     }
 
     /// A fold's fitting-row Gram as all rows minus its held-out rows solves to the same
