@@ -57,8 +57,8 @@ pub struct Prepared {
 }
 
 impl Prepared {
-    /// The identities of the test rows (shortest text and SHA-256 of every cell: the costly part of
-    /// preparing a large split, so `run_recording` does it beside the grid).
+    /// The identities of the test rows, in the version `identity` says (SHA-256 of every cell:
+    /// the costly part of preparing a large split, so `run_recording` does it beside the grid).
     pub fn hash_test_keys(&self, table: &Table, threads: usize) -> Vec<crate::data::RowKey> {
         self.sealed
             .test_row_keys(table, &self.rows, self.key, threads, self.identity)
