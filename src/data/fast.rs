@@ -4,9 +4,10 @@
 //! cut at line ends into pieces parsed on several threads. With more than one thread, a thread
 //! of its own computes the file's SHA-256, each block while the next one is read, so it takes no
 //! core from the parse. Pieces are joined in file order, so the table does not depend on the
-//! thread count or the block size. Anything unusual (quotes, a blank line, a ragged row, invalid UTF-8,
-//! a bad header) returns `None`, and the general reader, which owns every error message about the
-//! file's shape, reads the file instead. The result equals the general reader's, cell for cell.
+//! thread count or the block size. Anything unusual (quotes, a blank line, a ragged row, invalid
+//! UTF-8, a bad header) returns `None`, and the general reader, which owns every error message
+//! about the file's shape, reads the file instead. The result equals the general reader's, cell
+//! for cell.
 
 use super::{Interned, MISSING_CODE, Table, assemble, cell_value, decide, number};
 use crate::error::{Error, Result};

@@ -167,10 +167,11 @@ impl Ledger {
         let mut versions = self.identity_versions()?;
         for (_, _, _, _, sections, columns) in &parsed {
             for ((name, rows), cols) in sections.iter().zip(columns) {
-                let Some(at) = cols.iter().position(|c| c == "settings") else {
+                let at = cols.iter().position(|c| c == "settings");
+                let Some(at) = at.filter(|_| name == "partitions") else {
                     continue;
                 };
-                for row in rows.iter().filter(|_| name == "partitions") {
+                for row in rows {
                     if let Some(Sql::Text(settings)) = row.get(at) {
                         versions.insert(super::settings_identity(settings));
                     }
