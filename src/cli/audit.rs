@@ -45,18 +45,11 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
     let mut rows = Vec::new();
     let mut any_over = false;
     for p in &parts {
-        let refused = ledger
-            .reveals_of_partition(&p.id)?
-            .iter()
-            .filter(|r| r.answer_kind == "refused")
-            .count();
-        let over = match (p.mode.as_deref(), p.budget) {
-            (Some("reusable"), _) => refused > 0,
-            (_, Some(b)) => p.reveals > b,
-            _ => false,
-        };
+        let rules = &p.seal.rules;
+        let h = &p.history;
+        let over = crate::guard::consult::over_budget(rules, h);
         any_over |= over;
-        let status = if p.reveals == 0 {
+        let status = if h.consultations() == 0 {
             "sealed"
         } else if over {
             "OVER BUDGET"
@@ -72,13 +65,17 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
             "id": p.id,
             "experiment": p.experiments.join(", "),
             "test_rows": p.test_rows,
-            "reveals": p.reveals,
-            "candidates_revealed": p.candidates,
+            "reveals": h.reveals,
+            "development_uses": h.uses.iter().map(|(run, n)| json!({"run": run, "rows": n})).collect::<Vec<_>>(),
+            "consultations": h.consultations(),
+            "candidates_revealed": h.candidates.len(),
             "people": p.people,
             "first_reveal": p.first,
             "last_reveal": p.last,
-            "mode": p.mode,
-            "budget": p.budget,
+            "mode": rules.mode.name(),
+            "budget": rules.reveals,
+            "overlap": rules.overlap.name(),
+            "sealed_by_run": p.seal.by,
             "over_budget": over,
             "optimism": optimism,
             "status": status,

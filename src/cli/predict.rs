@@ -135,8 +135,10 @@ fn write_predictions(
     std::fs::rename(&tmp, path).map_err(io)
 }
 
-/// With targets in the file, rows of a sealed test partition are a reveal by hand: refuse, or
-/// (with `--allow-sealed`) record one reveal per partition touched, scored on those rows.
+/// Rows of a sealed test partition are a look at it whether or not the file holds their
+/// targets: whoever holds the data file scores the predictions at once. Refuse them, or (with
+/// `--allow-sealed`) record one consultation of each partition touched, through its seal, in
+/// one transaction, before the predictions are written.
 fn guard_sealed_rows(
     ledger: &crate::ledger::Ledger,
     d: &crate::ledger::RunDetail,
@@ -146,17 +148,11 @@ fn guard_sealed_rows(
     allow: bool,
     file: &Path,
 ) -> Result<()> {
-    let Some(target) = input.column(&model.target) else {
-        return Ok(());
-    };
-    let rows: Vec<usize> = (0..input.n_rows())
-        .filter(|&r| !target.is_missing(r))
-        .collect();
+    let rows: Vec<usize> = (0..input.n_rows()).collect();
     if rows.is_empty() {
         return Ok(());
     }
     let key = model.key.as_deref().and_then(|k| input.index_of(k));
-    // The ledger's identity version, which all its partitions share.
     let keys = crate::data::row_keys(
         input,
         key,
@@ -168,32 +164,42 @@ fn guard_sealed_rows(
     if hits.is_empty() {
         return Ok(());
     }
+    let target = input.column(&model.target);
     if !allow {
         let (p, n) = &hits[0];
+        let more = if hits.len() > 1 {
+            format!(" (and rows of {} more partition(s))", hits.len() - 1)
+        } else {
+            String::new()
+        };
         return Err(Error::Input(format!(
-            "{}: {n} rows are test rows of sealed partition {p} and the file holds their target '{}': scoring them is a reveal. Use `probity reveal RUN` (counted), or pass --allow-sealed to record this prediction as a reveal",
+            "{}: {n} rows are test rows of sealed partition {p}{more}{}: predicting them is a look at its test set. Use `probity reveal RUN` (counted), or pass --allow-sealed to record this prediction as a consultation",
             file.display(),
-            model.target
+            if target.is_some() {
+                format!(", and the file holds their target '{}'", model.target)
+            } else {
+                " (anyone with the data file can score the predictions)".to_string()
+            }
         )));
     }
     // Truth as the model sees it: numbers, or class indices for a classifier.
     let nc = model.classes.len();
-    let y: Vec<f64> = (0..input.n_rows())
-        .map(|r| {
-            let t = target.text(r);
-            if nc > 0 {
-                model
-                    .classes
-                    .iter()
-                    .position(|c| *c == t)
-                    .map_or(f64::NAN, |i| i as f64)
-            } else {
-                t.parse().unwrap_or(f64::NAN)
-            }
-        })
-        .collect();
-    // Recording needs a writable ledger of its own.
-    let mut writer = crate::ledger::Ledger::open(ledger.path(), false)?;
+    let y: Option<Vec<f64>> = target.map(|target| {
+        (0..input.n_rows())
+            .map(|r| {
+                let t = target.text(r);
+                if nc > 0 {
+                    model
+                        .classes
+                        .iter()
+                        .position(|c| *c == t)
+                        .map_or(f64::NAN, |i| i as f64)
+                } else {
+                    t.parse().unwrap_or(f64::NAN)
+                }
+            })
+            .collect()
+    });
     let spec_path = Path::new(&d.spec_path);
     let spec = crate::spec::parse(
         &d.spec_text,
@@ -203,6 +209,12 @@ fn guard_sealed_rows(
             .map(Path::to_path_buf)
             .unwrap_or_default(),
     )?;
+    let metrics = Metric::for_task(nc > 0);
+    let width = nc.max(1);
+    // Per partition touched: its sealed rows among the file's, and the exact scores on those
+    // whose targets the file holds.
+    let mut partitions = Vec::new();
+    let mut per: Vec<(usize, Option<Vec<Option<f64>>>)> = Vec::new();
     for (partition, _) in &hits {
         let own: std::collections::BTreeSet<crate::data::RowKey> =
             ledger.partition_row_keys(partition)?.into_iter().collect();
@@ -212,50 +224,62 @@ fn guard_sealed_rows(
             .filter(|(_, k)| own.contains(*k))
             .map(|(r, _)| *r)
             .collect();
-        let idx: Vec<usize> = idx.into_iter().filter(|&r| !y[r].is_nan()).collect();
-        let ys: Vec<f64> = idx.iter().map(|&r| y[r]).collect();
-        let width = nc.max(1);
-        let ps: Vec<f64> = idx
-            .iter()
-            .flat_map(|&r| pred[r * width..(r + 1) * width].iter().copied())
-            .collect();
-        let metrics = Metric::for_task(nc > 0);
-        let scores = crate::metrics::score_all(metrics, &ys, &ps, nc);
-        let history = ledger.partition_history(partition)?;
-        let metric = spec.select.metric;
-        let mi = metrics.iter().position(|m| *m == metric).unwrap_or(0);
-        let mut seen = history.candidates.clone();
-        seen.insert((d.spec_hash.clone(), model.candidate as i64));
-        let optimism =
-            crate::guard::optimism(metric, idx.len(), seen.len(), None, spec.guard.confidence);
-        let id = writer.write_reveal(&crate::ledger::RevealRecord {
-            run_id: d.summary.id,
-            candidate: model.candidate as i64,
-            partition_id: partition.clone(),
-            source: "predict".into(),
-            revealed_at: chrono::Utc::now().to_rfc3339_opts(chrono::SecondsFormat::Millis, true),
-            user: super::user(),
-            host: super::host(),
-            tool_version: env!("CARGO_PKG_VERSION").into(),
-            mode: "count".into(),
-            budget: i64::from(spec.guard.reveals),
-            metric: metric.name().into(),
-            n_rows: idx.len() as i64,
-            seed: "0".into(),
-            resamples: 0,
-            confidence: spec.guard.confidence,
-            answer: scores[mi],
-            answer_kind: "test".into(),
-            mechanism: serde_json::json!({"mode": "count", "source": "predict --allow-sealed", "file": file.display().to_string()}).to_string(),
-            optimism: serde_json::to_string(&optimism).map_err(|e| Error::Internal(e.to_string()))?,
-            scores: metrics.iter().enumerate().map(|(i, m)| (m.name().to_string(), scores[i], None, None, None)).collect(),
-        })?;
+        let scores = y.as_ref().map(|y| {
+            let with: Vec<usize> = idx.iter().copied().filter(|&r| !y[r].is_nan()).collect();
+            let ys: Vec<f64> = with.iter().map(|&r| y[r]).collect();
+            let ps: Vec<f64> = with
+                .iter()
+                .flat_map(|&r| pred[r * width..(r + 1) * width].iter().copied())
+                .collect();
+            crate::metrics::score_all(metrics, &ys, &ps, nc)
+        });
+        partitions.push(partition.clone());
+        per.push((idx.len(), scores));
+    }
+    let who = super::reveal::who();
+    let file_text = file.display().to_string();
+    // Recording needs a writable ledger of its own.
+    let mut writer = crate::ledger::Ledger::open(ledger.path(), false)?;
+    let (ids, consultations) = writer.consult(&partitions, |states| {
+        let mut records = Vec::new();
+        let mut out = Vec::new();
+        for (((seal, history), partition), (n, scores)) in states.iter().zip(&partitions).zip(&per)
+        {
+            let q = crate::guard::consult::PredictQuery {
+                subject: crate::guard::consult::Subject {
+                    who: who.clone(),
+                    run: d.summary.id,
+                    candidate: model.candidate as i64,
+                    spec_hash: &d.spec_hash,
+                    partition,
+                    metric: spec.select.metric,
+                },
+                metrics,
+                scores: scores.as_deref(),
+                rows: *n,
+                file: file_text.clone(),
+            };
+            let c = crate::guard::consult::predict(seal, history, &q)?;
+            records.push(c.record.clone());
+            out.push(c);
+        }
+        Ok((records, out))
+    })?;
+    for ((id, c), partition) in ids.iter().zip(&consultations).zip(&partitions) {
         warn(&format!(
-            "{} rows of sealed partition {partition} were scored with their targets: recorded as reveal {id} ({} reveal(s) of the partition now, budget {})",
-            idx.len(),
-            history.reveals + 1,
-            spec.guard.reveals
+            "{} rows of sealed partition {partition} were predicted{}: recorded as reveal {id} ({} consultation(s) of the partition now, budget {})",
+            c.record.n_rows,
+            if c.record.answer_kind == "test" {
+                " and scored with their targets"
+            } else {
+                ""
+            },
+            c.consultations,
+            c.budget
         ));
+        for w in &c.warnings {
+            warn(w);
+        }
     }
     Ok(())
 }

@@ -5,7 +5,7 @@
 
 use super::{Global, open_existing, out, out_json, warn};
 use crate::error::{Error, Result};
-use crate::ledger::{Ledger, RevealRecord, RunDetail};
+use crate::ledger::{Ledger, RunDetail};
 use serde_json::{Value, json};
 use std::io::IsTerminal;
 use std::path::{Path, PathBuf};
@@ -58,41 +58,34 @@ pub(crate) fn reload(
     Ok((spec, table))
 }
 
-/// How many of `keys` were test rows of a revealed partition (other than `exclude`), the most
-/// reveals among them, and the last reveal time.
+/// How `keys` were exposed by other partitions' consultations (other than `exclude`).
 pub(crate) fn exposed(
     ledger: &Ledger,
     keys: &[crate::data::RowKey],
     exclude: Option<&str>,
-) -> Result<(usize, i64, String)> {
+) -> Result<crate::guard::consult::Exposure> {
     if !ledger.has_reveals()? {
-        return Ok((0, 0, String::new()));
+        return Ok(Default::default());
     }
-    let map = ledger.exposure(exclude)?;
-    let (mut n, mut most, mut last) = (0usize, 0i64, String::new());
-    for k in keys {
-        if let Some((count, when)) = map.get(k) {
-            n += 1;
-            most = most.max(*count);
-            if *when > last {
-                last = when.clone();
-            }
-        }
-    }
-    Ok((n, most, last))
+    Ok(crate::guard::consult::exposure(
+        keys,
+        &ledger.exposure(exclude)?,
+    ))
 }
 
 /// Thousands separators for counts in messages.
 pub(crate) fn count(n: usize) -> String {
-    let s = n.to_string();
-    let mut out = String::new();
-    for (i, c) in s.chars().enumerate() {
-        if i > 0 && (s.len() - i).is_multiple_of(3) {
-            out.push(',');
-        }
-        out.push(c);
+    crate::guard::consult::thousands(n)
+}
+
+/// Who is acting now, for a consultation's record.
+pub(crate) fn who() -> crate::guard::consult::Who {
+    crate::guard::consult::Who {
+        at: chrono::Utc::now().to_rfc3339_opts(chrono::SecondsFormat::Millis, true),
+        user: super::user(),
+        host: super::host(),
+        tool_version: env!("CARGO_PKG_VERSION").into(),
     }
-    out
 }
 
 pub fn run(g: &Global, a: Args) -> Result<i32> {
@@ -125,7 +118,10 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
             a.run
         )));
     }
-    if matches!(spec.guard.mode, crate::spec::GuardMode::Reusable { .. })
+    let partition = d.summary.partition_id.clone();
+    let seal = ledger.seal(&partition)?;
+    let rules = seal.rules;
+    if matches!(rules.mode, crate::spec::GuardMode::Reusable { .. })
         && spec.select.metric == crate::metrics::Metric::Brier
         && prep.classes.len() > 2
     {
@@ -134,20 +130,25 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
             prep.classes.len()
         )));
     }
-    let partition = d.summary.partition_id.clone();
-    let history = ledger.partition_history(&partition)?;
-    let budget = spec.guard.reveals;
-    let (rows_seen, rows_most, rows_last) = exposed(&ledger, &prep.test_keys, Some(&partition))?;
+    // For the question only: the history that counts is read again inside the write.
+    let before = ledger.partition_history(&partition)?;
+    let exposure = exposed(&ledger, &prep.test_keys, Some(&partition))?;
     let n = prep.test_keys.len();
     // Ask first: the question shows what has been spent already.
     if !a.yes {
         let question = format!(
-            "partition {partition}: revealed {} time(s) so far, budget {budget}; {} of its {} test rows were revealed in other partitions{}.\nreveal run {} candidate {} ({} {}) on {} test rows? [y/N] ",
-            history.reveals,
-            count(rows_seen),
+            "partition {partition}: consulted {} time(s) so far ({} reveal(s), {} development use(s)), budget {}; {} of its {} test rows were revealed in other partitions{}.\nreveal run {} candidate {} ({} {}) on {} test rows? [y/N] ",
+            before.consultations(),
+            before.reveals,
+            before.uses.len(),
+            rules.reveals,
+            count(exposure.rows),
             count(n),
-            if rows_seen > 0 {
-                format!(" (up to {rows_most} time(s), last on {rows_last})")
+            if exposure.rows > 0 {
+                format!(
+                    " (up to {} time(s), last on {})",
+                    exposure.most, exposure.last
+                )
             } else {
                 String::new()
             },
@@ -184,111 +185,55 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
         &prep,
         candidate as usize,
         &permit,
-        spec.guard.confidence,
+        rules.confidence,
     )?;
     let metric = spec.select.metric;
-    let mi = prep.metrics.iter().position(|m| *m == metric).unwrap_or(0);
-    let test_value = outcome.scores[mi].ok_or_else(|| {
-        Error::Input(format!("{} is undefined on these test rows", metric.name()))
-    })?;
     let development = cand
         .validation
         .get(metric.name())
         .and_then(|s| s.mean)
         .unwrap_or(f64::NAN);
-    let mut noise = crate::split::rng::stream(
-        spec.split.seed,
-        crate::split::rng::Domain::Noise,
-        history.reveals as u32,
-    );
-    let answer = crate::guard::answer(
-        spec.guard.mode,
-        budget,
-        &history,
+    let query = crate::guard::consult::RevealQuery {
+        subject: crate::guard::consult::Subject {
+            who: who(),
+            run: a.run,
+            candidate,
+            spec_hash: &d.spec_hash,
+            partition: &partition,
+            metric,
+        },
+        seed: spec.split.seed,
         development,
-        test_value,
-        metric.higher_is_better(),
-        &mut noise,
-    );
-    let mut seen = history.candidates.clone();
-    seen.insert((d.spec_hash.clone(), candidate));
-    let k = seen.len();
-    let optimism = crate::guard::optimism(
-        metric,
-        n,
-        k,
-        outcome.intervals[mi].map(|i| i.2),
-        spec.guard.confidence,
-    );
-    let reveals = history.reveals + 1;
-    let over_budget = match spec.guard.mode {
-        crate::spec::GuardMode::Reusable { .. } => answer.kind == "refused",
-        _ => reveals > budget as usize,
+        rows: n,
+        test: crate::guard::consult::TestScores {
+            metrics: &prep.metrics,
+            scores: &outcome.scores,
+            intervals: &outcome.intervals,
+            seed: outcome.seed,
+            resamples: outcome.resamples,
+        },
+        exposure,
     };
-    let now = chrono::Utc::now().to_rfc3339_opts(chrono::SecondsFormat::Millis, true);
-    let record = RevealRecord {
-        run_id: a.run,
-        candidate,
-        partition_id: partition.clone(),
-        source: "reveal".into(),
-        revealed_at: now,
-        user: super::user(),
-        host: super::host(),
-        tool_version: env!("CARGO_PKG_VERSION").into(),
-        mode: spec.guard.mode.name().into(),
-        budget: i64::from(budget),
-        metric: metric.name().into(),
-        n_rows: n as i64,
-        seed: outcome.seed.to_string(),
-        resamples: outcome.resamples as i64,
-        confidence: spec.guard.confidence,
-        answer: answer.value,
-        answer_kind: answer.kind.into(),
-        mechanism: answer.mechanism.to_string(),
-        optimism: serde_json::to_string(&optimism).map_err(|e| Error::Internal(e.to_string()))?,
-        scores: prep
-            .metrics
-            .iter()
-            .enumerate()
-            .map(|(i, m)| {
-                (
-                    m.name().to_string(),
-                    outcome.scores[i],
-                    outcome.intervals[i].map(|v| v.0),
-                    outcome.intervals[i].map(|v| v.1),
-                    outcome.intervals[i].map(|v| v.2),
-                )
-            })
-            .collect(),
-    };
-    // Written before anything is printed: a score the user saw is never missing from the count.
-    let id = ledger.write_reveal(&record)?;
+    // Decided and written in one transaction, before anything is printed: a score the user
+    // saw is never missing from the count, and two reveals at once each see the other.
+    let (ids, c) = ledger.consult(std::slice::from_ref(&partition), |states| {
+        let (seal, history) = &states[0];
+        let c = crate::guard::consult::reveal(seal, history, &query)?;
+        Ok((vec![c.record.clone()], c))
+    })?;
+    let id = ids.first().copied().unwrap_or(0);
     crate::failpoint::pause("reveal:print");
 
-    let exact = matches!(spec.guard.mode, crate::spec::GuardMode::Count);
-    let mut warnings = Vec::new();
-    if over_budget {
-        warnings.push(match spec.guard.mode {
-            crate::spec::GuardMode::Reusable { .. } => format!("partition {partition}: the reusable holdout's budget of {budget} over-threshold answers is spent; no more test answers (audit fails)"),
-            _ => format!(
-                "partition {partition} has now been revealed {reveals} times, over its budget of {budget}: its test score is no longer an unbiased estimate (audit fails)"
-            ),
-        });
-    }
-    if rows_seen > 0 {
-        warnings.push(format!(
-            "{} of these {} test rows had been revealed in other partitions (up to {rows_most} time(s), last on {rows_last}): their effective reveal count is {}",
-            count(rows_seen),
-            count(n),
-            rows_most.max(reveals as i64)
-        ));
+    let mut warnings = c.warnings.clone();
+    if let Some(w) = crate::guard::consult::rules_differ(&seal, &spec.guard, &partition) {
+        warnings.push(w);
     }
     for w in &warnings {
         warn(w);
     }
     let mut test = serde_json::Map::new();
     let mut interval = serde_json::Map::new();
-    if exact {
+    if c.exact {
         for (i, m) in prep.metrics.iter().enumerate() {
             test.insert(m.name().into(), json!(outcome.scores[i]));
             interval.insert(
@@ -297,7 +242,7 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
             );
         }
     } else {
-        test.insert(metric.name().into(), json!(answer.value));
+        test.insert(metric.name().into(), json!(c.answer.value));
     }
     let doc = json!({
         "reveal": id,
@@ -305,21 +250,23 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
         "candidate": candidate,
         "partition": partition,
         "rows": n,
-        "mode": spec.guard.mode.name(),
+        "mode": rules.mode.name(),
         "metric": metric.name(),
         "metrics": prep.metrics.iter().map(|m| m.name()).collect::<Vec<_>>(),
         "test": Value::Object(test),
         "interval": Value::Object(interval),
-        "confidence": spec.guard.confidence,
+        "confidence": rules.confidence,
         "resamples": outcome.resamples,
         "bootstrap_seed": outcome.seed.to_string(),
-        "answer": {"kind": answer.kind, "value": answer.value},
+        "answer": {"kind": c.answer.kind, "value": c.answer.value},
         "development": {metric.name(): development},
-        "reveals": reveals,
-        "budget": budget,
-        "over_budget": over_budget,
-        "rows_revealed_before": rows_seen,
-        "optimism": serde_json::to_value(&optimism).unwrap_or(Value::Null),
+        "reveals": c.position,
+        "development_uses": c.uses.iter().map(|(run, rows)| json!({"run": run, "rows": rows})).collect::<Vec<_>>(),
+        "consultations": c.consultations,
+        "budget": c.budget,
+        "over_budget": c.over_budget,
+        "rows_revealed_before": query.exposure.rows,
+        "optimism": serde_json::to_value(&c.optimism).unwrap_or(Value::Null),
         "warnings": warnings,
     });
     if a.json {

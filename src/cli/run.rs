@@ -84,7 +84,13 @@ impl crate::runner::Recorder for Store<'_> {
         }
     }
 
-    fn started(&mut self, _prep: &Prepared) -> Result<()> {
+    fn started(&mut self, prep: &Prepared) -> Result<()> {
+        // A partition sealed with overlap = "refuse" stops the run before its grid (the run's
+        // own transaction checks again, for partitions stored meanwhile).
+        if let Some(l) = &self.ledger {
+            let overlapping = l.development_overlaps(self.table, prep)?;
+            crate::guard::consult::development(prep.sealed.development().len(), &overlapping)?;
+        }
         let info = self.info.clone();
         let start = self.ledger()?.begin_run(&info)?;
         self.start = Some(start);
@@ -168,7 +174,7 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
             store.start.as_ref().map(|s| s.id),
         );
         let ledger = store.ledger()?;
-        exposure_warnings(ledger, &table, &mut outcome)?;
+        exposure_warnings(ledger, &spec, &mut outcome)?;
         phases.mark("exposure");
         ledger.write_run(&spec, &table, &outcome, &meta)
     });
@@ -208,42 +214,43 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
     Ok(0)
 }
 
-/// Warn (and store the warning) when rows of this run were test rows of a revealed partition:
-/// development rows that were revealed leak the test scores' information into the selection,
-/// and a test partition with revealed rows is not fresh.
+/// Warn (and store the warning) when this run's own test partition was consulted before, when
+/// its test rows were revealed in other partitions (it is then not fresh), and when its spec's
+/// `[guard]` differs from the rules the partition was sealed with. (Development rows that are
+/// other partitions' test rows are counted and warned in the run's own transaction.)
 fn exposure_warnings(
     ledger: &crate::ledger::Ledger,
-    table: &crate::data::Table,
+    spec: &Spec,
     outcome: &mut crate::runner::RunOutcome,
 ) -> Result<()> {
+    let prep = &outcome.prepared;
+    let seal = ledger.seal(&prep.partition_id)?;
+    if seal.by.is_some()
+        && let Some(w) = crate::guard::consult::rules_differ(&seal, &spec.guard, &prep.partition_id)
+    {
+        outcome.warnings.push(w);
+    }
     if !ledger.has_reveals()? {
         return Ok(());
     }
-    let prep = &outcome.prepared;
-    let dev = prep.development_keys(table);
-    let (n, most, last) = super::reveal::exposed(ledger, &dev, None)?;
-    if n > 0 {
-        outcome.warnings.push(format!(
-            "{} of {} development rows were in a test partition revealed {most} time(s) (last on {last}); what those reveals showed can leak into this selection",
-            super::reveal::count(n),
-            super::reveal::count(dev.len())
-        ));
-    }
-    let own = ledger.partition_history(&prep.partition_id)?.reveals;
+    let own = ledger
+        .partition_history(&prep.partition_id)?
+        .consultations();
     if own > 0 {
         outcome.warnings.push(format!(
-            "this test partition ({}) has already been revealed {own} time(s); a new reveal will count on top",
+            "this test partition ({}) has already been consulted {own} time(s); a new reveal will count on top",
             prep.partition_id
         ));
     }
-    let (n, most, last) =
-        super::reveal::exposed(ledger, &prep.test_keys, Some(&prep.partition_id))?;
-    if n > 0 {
+    let e = super::reveal::exposed(ledger, &prep.test_keys, Some(&prep.partition_id))?;
+    if e.rows > 0 {
         outcome.warnings.push(format!(
-            "{} of {} test rows were already revealed in another partition (up to {most} time(s), last on {last}); their effective reveal count is {}, so this test partition is not fresh",
-            super::reveal::count(n),
+            "{} of {} test rows were already revealed in another partition (up to {} time(s), last on {}); their effective reveal count is {}, so this test partition is not fresh",
+            super::reveal::count(e.rows),
             super::reveal::count(prep.test_keys.len()),
-            most.max(own as i64)
+            e.most,
+            e.last,
+            e.most.max(own as i64)
         ));
     }
     Ok(())

@@ -2,6 +2,7 @@
 //! rows' indices stay private here, so no code path of `run` can fit or score on them.
 //! Counted reveals, exposure and optimism bounds build on this type.
 
+pub mod consult;
 pub mod mechanism;
 pub mod stats;
 
@@ -53,6 +54,12 @@ impl Sealed {
             .map(|&i| kept[i])
             .collect();
         crate::data::row_keys(table, key, &rows, threads, identity)
+    }
+
+    /// Which kept rows are test rows (positions among the kept rows): membership only, for the
+    /// accounting, as `codes` gives it; reading a test row's values still takes a permit.
+    pub fn test_members(&self) -> Vec<usize> {
+        self.partition.rows_in(Part::Test)
     }
 
     /// Per-row partition codes (for the ledger's compact assignment); reveals nothing but
@@ -107,11 +114,17 @@ impl Sealed {
     }
 }
 
-/// What earlier reveals of a partition left behind.
+/// What earlier consultations of a partition left behind.
 #[derive(Debug, Clone, Default)]
 pub struct History {
-    /// Reveals of the partition so far.
+    /// Reveals of the partition so far (`reveal`, and `predict --allow-sealed`).
     pub reveals: usize,
+    /// Development uses so far: (run, rows) of each run that fitted or scored on its test rows.
+    pub uses: Vec<consult::Use>,
+    /// Reusable answers drawn from the test rows (each spent one unit of the budget).
+    pub over_threshold: usize,
+    /// Reusable queries refused because the budget was spent.
+    pub refused: usize,
     /// Distinct candidates (spec hash, candidate id) revealed so far.
     pub candidates: std::collections::BTreeSet<(String, i64)>,
     /// Thresholdout state after the last reusable reveal, if any.
@@ -154,13 +167,23 @@ pub fn answer(
             noise: sigma,
         } => {
             let mut draw = |scale: f64| stats::laplace(stats::unit_open(noise), scale);
+            // Development uses spend the budget too: each was an unmediated look at the rows.
+            let left =
+                (budget as usize).saturating_sub(history.over_threshold + history.uses.len());
+            let left = u32::try_from(left).unwrap_or(budget);
             let (state, initial_gamma) = match history.thresholdout {
-                Some(s) => (s, None),
+                Some(s) => (
+                    mechanism::ThresholdoutState {
+                        budget: s.budget.min(left),
+                        t_hat: s.t_hat,
+                    },
+                    None,
+                ),
                 None => {
                     let g = draw(2.0 * sigma);
                     (
                         mechanism::ThresholdoutState {
-                            budget,
+                            budget: left,
                             t_hat: threshold + g,
                         },
                         Some(g),

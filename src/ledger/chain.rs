@@ -57,6 +57,10 @@ pub fn section_queries(kind: &str) -> &'static [(&'static str, &'static str)] {
                 "run_inputs",
                 "SELECT * FROM run_inputs WHERE run_id = ?1 ORDER BY path",
             ),
+            (
+                "uses",
+                "SELECT * FROM uses WHERE run_id = ?1 ORDER BY partition_id",
+            ),
         ],
         "reveal" => &[
             ("reveals", "SELECT * FROM reveals WHERE id = ?1"),
@@ -68,6 +72,12 @@ pub fn section_queries(kind: &str) -> &'static [(&'static str, &'static str)] {
         "note" => &[("notes", "SELECT * FROM notes WHERE id = ?1")],
         _ => &[],
     }
+}
+
+/// Sections added after entries were first chained: hashed only when they hold rows, so every
+/// entry written before them keeps its hash (and an empty one adds nothing).
+pub fn sparse(section: &str) -> bool {
+    matches!(section, "uses")
 }
 
 fn sql_err(context: &'static str) -> impl FnOnce(rusqlite::Error) -> Error {
@@ -146,6 +156,9 @@ fn put_value(h: &mut Sha256, v: rusqlite::types::ValueRef<'_>) {
 /// The canonical bytes of an entry, fed straight into a hasher.
 fn feed(h: &mut Sha256, sections: &Sections) {
     for (name, rows) in sections {
+        if rows.is_empty() && sparse(name) {
+            continue;
+        }
         put(h, b'S', name.as_bytes());
         for row in rows {
             put(h, b'R', &(row.len() as u64).to_le_bytes());
@@ -168,7 +181,11 @@ fn stream_hash(
     let mut h = Sha256::new();
     h.update(prev.as_bytes());
     for (i, (name, sql)) in section_queries(kind).iter().enumerate() {
-        put(&mut h, b'S', name.as_bytes());
+        // A sparse section's name goes in with its first row, if any.
+        let mut header = !sparse(name);
+        if header {
+            put(&mut h, b'S', name.as_bytes());
+        }
         if let Some(rows) = known
             .and_then(|k| k.partition.as_ref())
             .filter(|_| *name == "partition_rows")
@@ -189,6 +206,10 @@ fn stream_hash(
         let mut any = false;
         while let Some(r) = rows.next().map_err(sql_err("read entry"))? {
             any = true;
+            if !header {
+                put(&mut h, b'S', name.as_bytes());
+                header = true;
+            }
             put(&mut h, b'R', &(n as u64).to_le_bytes());
             for c in 0..n {
                 put_value(&mut h, r.get_ref(c).map_err(sql_err("read entry"))?);

@@ -35,6 +35,10 @@ pub const MIGRATIONS: &[(&str, &str)] = &[
         "0007_partition_rows_without_key_index.sql",
         include_str!("../../migrations/0007_partition_rows_without_key_index.sql"),
     ),
+    (
+        "0008_development_uses.sql",
+        include_str!("../../migrations/0008_development_uses.sql"),
+    ),
 ];
 
 /// The schema version this binary writes.

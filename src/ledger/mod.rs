@@ -363,6 +363,22 @@ impl Ledger {
         let prep = &out.prepared;
         let s = &prep.sealed;
         let inserted = insert_partition(&tx, spec, table, prep, &prep.test_keys).map_err(fail)?;
+        // Other partitions' test rows among this run's development rows, decided here, inside
+        // the run's transaction, so a partition stored meanwhile is seen. A replay adds no
+        // look: its scores are the original's.
+        let mut warnings = out.warnings.clone();
+        let mut uses = Vec::new();
+        if meta.replay.is_none() {
+            let overlapping = development_overlaps(&tx, table, prep)?;
+            let (u, w) = crate::guard::consult::development(s.development().len(), &overlapping)?;
+            uses = u;
+            warnings.extend(w);
+            let earlier = earlier_developments(&tx, table, prep)?;
+            warnings.extend(crate::guard::consult::not_fresh(
+                s.count(Part::Test),
+                &earlier,
+            ));
+        }
         // The partition's rows are these identities when they went in as new, here or in this
         // connection's `record_partition` of the same partition (the same identities: the same
         // number of distinct ones); otherwise the chain reads them back.
@@ -522,8 +538,14 @@ impl Ledger {
             let mut warn = tx
                 .prepare("INSERT INTO warnings (run_id, seq, message) VALUES (?1, ?2, ?3)")
                 .map_err(fail)?;
-            for (i, w) in out.warnings.iter().enumerate() {
+            for (i, w) in warnings.iter().enumerate() {
                 warn.execute(params![run, i as i64, w]).map_err(fail)?;
+            }
+            let mut used = tx
+                .prepare("INSERT INTO uses (run_id, partition_id, n_rows) VALUES (?1, ?2, ?3)")
+                .map_err(fail)?;
+            for (partition, rows) in &uses {
+                used.execute(params![run, partition, rows]).map_err(fail)?;
             }
         }
         for c in out.candidates.iter().filter(|c| c.failure.is_some()) {
@@ -918,32 +940,8 @@ impl Ledger {
 /// One metric of a reveal: (metric, value, low, high, bootstrap se).
 pub type RevealScore = (String, Option<f64>, Option<f64>, Option<f64>, Option<f64>);
 
-/// A reveal to store.
-#[derive(Debug, Clone)]
-pub struct RevealRecord {
-    pub run_id: i64,
-    pub candidate: i64,
-    pub partition_id: String,
-    /// "reveal" or "predict" (`predict --allow-sealed`).
-    pub source: String,
-    pub revealed_at: String,
-    pub user: String,
-    pub host: String,
-    pub tool_version: String,
-    pub mode: String,
-    pub budget: i64,
-    pub metric: String,
-    pub n_rows: i64,
-    pub seed: String,
-    pub resamples: i64,
-    pub confidence: f64,
-    pub answer: Option<f64>,
-    pub answer_kind: String,
-    pub mechanism: String,
-    pub optimism: String,
-    /// (metric, value, low, high, se)
-    pub scores: Vec<RevealScore>,
-}
+/// A reveal to store (built by `guard::consult`).
+pub use crate::guard::consult::Record as RevealRecord;
 
 /// One partition in `audit`.
 #[derive(Debug, Clone)]
@@ -951,84 +949,67 @@ pub struct PartitionAudit {
     pub id: String,
     pub experiments: Vec<String>,
     pub test_rows: i64,
-    pub reveals: i64,
-    pub candidates: i64,
+    /// Its consultations so far: reveals, development uses, mechanism state.
+    pub history: crate::guard::History,
+    /// The rules it was sealed with.
+    pub seal: crate::guard::consult::Seal,
     pub people: Vec<String>,
     pub first: Option<String>,
     pub last: Option<String>,
-    pub mode: Option<String>,
-    /// The smallest budget of the runs that revealed it (the strictest applies).
-    pub budget: Option<i64>,
     /// The optimism JSON of the last reveal.
     pub optimism: Option<String>,
 }
 
 impl Ledger {
-    /// Earlier reveals of a partition: count, distinct candidates, mechanism state.
+    /// Earlier consultations of a partition: reveals, distinct candidates, mechanism state,
+    /// development uses.
     pub fn partition_history(&self, partition: &str) -> Result<crate::guard::History> {
-        let mut st = self
-            .conn
-            .prepare(
-                "SELECT r.spec_hash, v.candidate, v.mode, v.mechanism FROM reveals v JOIN runs r ON r.id = v.run_id
-                 WHERE v.partition_id = ?1 ORDER BY v.id",
-            )
-            .map_err(sql_err("read reveals"))?;
-        let rows: Vec<(String, i64, String, String)> = st
-            .query_map([partition], |r| {
-                Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?))
-            })
-            .and_then(|rows| rows.collect())
-            .map_err(sql_err("read reveals"))?;
-        let mut h = crate::guard::History::default();
-        for (spec_hash, cand, mode, mech) in rows {
-            h.reveals += 1;
-            h.candidates.insert((spec_hash, cand));
-            let m: Value = serde_json::from_str(&mech).unwrap_or(Value::Null);
-            if mode == "reusable" {
-                if let Ok(state) = serde_json::from_value(m["step"]["after"].clone()) {
-                    h.thresholdout = Some(state);
-                }
-            } else if mode == "ladder" {
-                h.ladder_best = m["best_units_after"].as_i64().or(h.ladder_best);
-            }
-        }
-        Ok(h)
+        history_of(&self.conn, partition)
     }
 
-    /// Store a reveal and its scores in one transaction; returns its id.
-    pub fn write_reveal(&mut self, r: &RevealRecord) -> Result<i64> {
+    /// The rules `partition` was sealed with.
+    pub fn seal(&self, partition: &str) -> Result<crate::guard::consult::Seal> {
+        seal_of(&self.conn, partition)
+    }
+
+    /// Consult sealed partitions: their seals and histories are read inside one write
+    /// transaction, `decide` builds the records from them, and the records are stored and
+    /// chained before the transaction commits. Two consultations at once are serialised, so each
+    /// sees the other's record (positions, budgets and mechanism states never race). Returns
+    /// the new reveal ids, in `decide`'s order, and what `decide` returned beside the records.
+    pub fn consult<T>(
+        &mut self,
+        partitions: &[String],
+        decide: impl FnOnce(
+            &[(crate::guard::consult::Seal, crate::guard::History)],
+        ) -> Result<(Vec<RevealRecord>, T)>,
+    ) -> Result<(Vec<i64>, T)> {
         let path = self.path.clone();
         let fail = |e: rusqlite::Error| migrate::refuse_or_fail(&path, e, "write reveal");
         let tx = self
             .conn
             .transaction_with_behavior(rusqlite::TransactionBehavior::Immediate)
             .map_err(fail)?;
-        tx.execute(
-            "INSERT INTO reveals (run_id, candidate, partition_id, source, revealed_at, user, host, tool_version, mode, budget, metric,
-                n_rows, seed, resamples, confidence, answer, answer_kind, mechanism, optimism)
-             VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17, ?18, ?19)",
-            params![
-                r.run_id, r.candidate, r.partition_id, r.source, r.revealed_at, r.user, r.host, r.tool_version, r.mode, r.budget, r.metric,
-                r.n_rows, r.seed, r.resamples, r.confidence, r.answer, r.answer_kind, r.mechanism, r.optimism
-            ],
-        )
-        .map_err(fail)?;
-        let id = tx.last_insert_rowid();
-        {
-            let mut st = tx.prepare("INSERT INTO reveal_scores (reveal_id, metric, value, low, high, se) VALUES (?1, ?2, ?3, ?4, ?5, ?6)").map_err(fail)?;
-            for (m, v, lo, hi, se) in &r.scores {
-                st.execute(params![id, m, v, lo, hi, se]).map_err(fail)?;
-            }
+        let mut states = Vec::with_capacity(partitions.len());
+        for p in partitions {
+            states.push((seal_of(&tx, p)?, history_of(&tx, p)?));
         }
-        chain::append(&tx, "reveal", id, None)?;
+        let (records, out) = decide(&states)?;
+        let mut ids = Vec::with_capacity(records.len());
+        for r in &records {
+            ids.push(insert_reveal(&tx, r).map_err(fail)?);
+        }
+        for id in &ids {
+            chain::append(&tx, "reveal", *id, None)?;
+        }
         crate::failpoint::pause("reveal:commit");
         tx.commit().map_err(fail)?;
-        Ok(id)
+        Ok((ids, out))
     }
 
-    /// For every row identity in a revealed partition: the most reveals of any partition holding
-    /// it, and the time of its last reveal.
-    /// Partitions other than `exclude` only (a partition's own count is its reveal count).
+    /// For every row identity in a consulted partition: the most consultations (reveals and
+    /// development uses) of any partition holding it, and the time of the last.
+    /// Partitions other than `exclude` only (a partition's own count is its history).
     pub fn exposure(
         &self,
         exclude: Option<&str>,
@@ -1037,7 +1018,10 @@ impl Ledger {
             .conn
             .prepare(
                 "SELECT pr.row_key, v.n, v.last FROM partition_rows pr
-                 JOIN (SELECT partition_id, count(*) AS n, max(revealed_at) AS last FROM reveals GROUP BY partition_id) v
+                 JOIN (SELECT partition_id, count(*) AS n, max(at) AS last FROM (
+                         SELECT partition_id, revealed_at AS at FROM reveals
+                         UNION ALL SELECT u.partition_id, r.finished_at FROM uses u JOIN runs r ON r.id = u.run_id)
+                       GROUP BY partition_id) v
                  ON v.partition_id = pr.partition_id WHERE pr.partition_id IS NOT ?1",
             )
             .map_err(sql_err("read exposure"))?;
@@ -1090,10 +1074,14 @@ impl Ledger {
         Ok(settings.iter().map(|s| settings_identity(s)).collect())
     }
 
-    /// True when any reveal is stored (exposure checks are skipped otherwise).
+    /// True when any consultation is stored (exposure checks are skipped otherwise).
     pub fn has_reveals(&self) -> Result<bool> {
         self.conn
-            .query_row("SELECT EXISTS (SELECT 1 FROM reveals)", [], |r| r.get(0))
+            .query_row(
+                "SELECT EXISTS (SELECT 1 FROM reveals) OR EXISTS (SELECT 1 FROM uses)",
+                [],
+                |r| r.get(0),
+            )
             .map_err(sql_err("count reveals"))
     }
 
@@ -1108,69 +1096,19 @@ impl Ledger {
         &self,
         keys: &[crate::data::RowKey],
     ) -> Result<Vec<(String, i64)>> {
-        let mut sorted = keys.to_vec();
-        sorted.sort_unstable();
-        // Distinct keys with how often each was given.
-        let mut distinct: Vec<(crate::data::RowKey, i64)> = Vec::new();
-        for k in sorted {
-            match distinct.last_mut() {
-                Some((last, n)) if *last == k => *n += 1,
-                _ => distinct.push((k, 1)),
-            }
-        }
-        let err = sql_err("find sealed rows");
-        let parts: Vec<(String, i64)> = {
-            let mut st = self
-                .conn
-                .prepare("SELECT id, n_test FROM partitions ORDER BY id")
-                .map_err(err)?;
-            st.query_map([], |r| Ok((r.get(0)?, r.get(1)?)))
-                .and_then(|rows| rows.collect())
-                .map_err(sql_err("find sealed rows"))?
-        };
-        let mut probe = self
-            .conn
-            .prepare(
-                "SELECT EXISTS (SELECT 1 FROM partition_rows WHERE partition_id = ?1 AND row_key = ?2)",
-            )
-            .map_err(sql_err("find sealed rows"))?;
-        let mut scan = self
-            .conn
-            .prepare("SELECT row_key FROM partition_rows WHERE partition_id = ?1 ORDER BY row_key")
-            .map_err(sql_err("find sealed rows"))?;
-        let mut out = Vec::new();
-        for (id, n_test) in parts {
-            let mut hits = 0;
-            if (distinct.len() as i64).saturating_mul(PROBE_COST) < n_test {
-                for (k, n) in &distinct {
-                    let found: bool = probe
-                        .query_row(params![id, &k[..]], |r| r.get(0))
-                        .map_err(sql_err("find sealed rows"))?;
-                    if found {
-                        hits += n;
-                    }
-                }
-            } else {
-                let mut rows = scan.query([&id]).map_err(sql_err("find sealed rows"))?;
-                let mut at = 0;
-                while let Some(row) = rows.next().map_err(sql_err("find sealed rows"))? {
-                    let stored = row.get_ref(0).map_err(sql_err("find sealed rows"))?;
-                    let Ok(stored) = stored.as_blob() else {
-                        continue;
-                    };
-                    while at < distinct.len() && distinct[at].0[..] < *stored {
-                        at += 1;
-                    }
-                    if at < distinct.len() && distinct[at].0[..] == *stored {
-                        hits += distinct[at].1;
-                    }
-                }
-            }
-            if hits > 0 {
-                out.push((id, hits));
-            }
-        }
-        Ok(out)
+        partitions_holding(&self.conn, keys, |_| true)
+    }
+
+    /// The stored partitions other than the run's own whose test rows the run develops on,
+    /// each with its seal and history (refusals are decided by `guard::consult::development`).
+    /// A partition of the same data file is compared by row position (exact, whatever rows
+    /// look alike); one of another file by row identity (the rows of an edited or grown file).
+    pub fn development_overlaps(
+        &self,
+        table: &crate::data::Table,
+        prep: &crate::runner::Prepared,
+    ) -> Result<Vec<crate::guard::consult::Overlapping>> {
+        development_overlaps(&self.conn, table, prep)
     }
 
     /// The test-row identities of a partition.
@@ -1224,32 +1162,32 @@ impl Ledger {
             )?;
             let people =
                 q("SELECT DISTINCT user FROM reveals WHERE partition_id = ?1 ORDER BY user")?;
-            let (reveals, candidates, first, last, budget): (i64, i64, Option<String>, Option<String>, Option<i64>) = self
+            let (first, last): (Option<String>, Option<String>) = self
                 .conn
                 .query_row(
-                    "SELECT count(*), count(DISTINCT r.spec_hash || ':' || v.candidate), min(v.revealed_at), max(v.revealed_at), min(v.budget)
-                     FROM reveals v JOIN runs r ON r.id = v.run_id WHERE v.partition_id = ?1",
+                    "SELECT min(revealed_at), max(revealed_at) FROM reveals WHERE partition_id = ?1",
                     [&id],
-                    |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?, r.get(4)?)),
+                    |r| Ok((r.get(0)?, r.get(1)?)),
                 )
                 .map_err(sql_err("audit"))?;
-            let (mode, optimism): (Option<String>, Option<String>) = self
+            let optimism: Option<String> = self
                 .conn
-                .query_row("SELECT mode, optimism FROM reveals WHERE partition_id = ?1 ORDER BY id DESC LIMIT 1", [&id], |r| Ok((r.get(0)?, r.get(1)?)))
+                .query_row(
+                    "SELECT optimism FROM reveals WHERE partition_id = ?1 ORDER BY id DESC LIMIT 1",
+                    [&id],
+                    |r| r.get(0),
+                )
                 .optional()
-                .map_err(sql_err("audit"))?
-                .unwrap_or((None, None));
+                .map_err(sql_err("audit"))?;
             out.push(PartitionAudit {
+                history: history_of(&self.conn, &id)?,
+                seal: seal_of(&self.conn, &id)?,
                 id,
                 experiments,
                 test_rows,
-                reveals,
-                candidates,
                 people,
                 first,
                 last,
-                mode,
-                budget,
                 optimism,
             });
         }
@@ -1288,8 +1226,8 @@ pub type ReplayRow = (i64, i64, bool, i64, i64);
 #[derive(Debug, Clone)]
 pub struct RevealPoint {
     pub reveal: RevealSummary,
-    /// The exact test score of the reveal's metric (stored even when the mode showed another
-    /// answer).
+    /// The test score of the reveal's metric as released: exact in `count` mode; the
+    /// mechanism's answer in `ladder` and `reusable` (the exact score stays unread).
     pub test: Option<f64>,
     /// The revealed candidate's cross-validated (development) estimate of that metric.
     pub development: Option<f64>,
@@ -1355,6 +1293,9 @@ impl Ledger {
             let optimism = serde_json::from_str::<Value>(&optimism)
                 .ok()
                 .and_then(|v| v["estimate"].as_f64());
+            // Under a mechanism only its answer was released: the exact score stays in the
+            // ledger and reaches no listing, plot or report.
+            let test = if r.mode == "count" { test } else { r.answer };
             out.push(RevealPoint {
                 reveal: r,
                 test,
@@ -1365,8 +1306,8 @@ impl Ledger {
         Ok(out)
     }
 
-    /// Revealed rows that appear in other partitions' test sets, and runs that warned about
-    /// exposed development rows: one sentence each.
+    /// Revealed rows that appear in other partitions' test sets: one sentence each.
+    /// (Development uses are listed with their partitions.)
     pub fn overlap_findings(&self) -> Result<Vec<String>> {
         let err = || sql_err("find overlaps");
         // The identities of every revealed partition, then one pass over all stored test rows
@@ -1411,7 +1352,7 @@ impl Ledger {
                 }
             }
         }
-        let mut out: Vec<String> = shared
+        let out: Vec<String> = shared
             .into_iter()
             .map(|((a, b), n)| {
                 format!(
@@ -1420,21 +1361,6 @@ impl Ledger {
                 )
             })
             .collect();
-        let mut st = self
-            .conn
-            .prepare("SELECT run_id, message FROM warnings WHERE message LIKE '%development rows were in a test partition revealed%' ORDER BY run_id")
-            .map_err(sql_err("find overlaps"))?;
-        let dev: Vec<String> = st
-            .query_map([], |r| {
-                Ok(format!(
-                    "run {}: {}",
-                    r.get::<_, i64>(0)?,
-                    r.get::<_, String>(1)?
-                ))
-            })
-            .and_then(|rows| rows.collect())
-            .map_err(sql_err("find overlaps"))?;
-        out.extend(dev);
         Ok(out)
     }
 }
@@ -1898,6 +1824,312 @@ fn json_str(s: &str) -> Value {
     Value::String(s.to_string())
 }
 
+/// Partitions (those `keep` keeps, given (id, data SHA-256)) whose test rows include any of
+/// `keys`, with how many of them: (partition, rows), by partition id. A key given twice counts
+/// twice.
+///
+/// Rows are stored by (partition, identity) only, so each partition is searched on its own:
+/// one lookup per distinct key when the keys are few beside the partition's rows, else one
+/// pass over its rows in identity order beside the sorted keys. Either way the count is the
+/// same; the choice only bounds the work by the smaller side.
+fn partitions_holding(
+    conn: &Connection,
+    keys: &[crate::data::RowKey],
+    keep: impl Fn(&(&str, &str)) -> bool,
+) -> Result<Vec<(String, i64)>> {
+    let mut sorted = keys.to_vec();
+    sorted.sort_unstable();
+    // Distinct keys with how often each was given.
+    let mut distinct: Vec<(crate::data::RowKey, i64)> = Vec::new();
+    for k in sorted {
+        match distinct.last_mut() {
+            Some((last, n)) if *last == k => *n += 1,
+            _ => distinct.push((k, 1)),
+        }
+    }
+    let err = sql_err("find sealed rows");
+    let parts: Vec<(String, i64)> = {
+        let mut st = conn
+            .prepare("SELECT id, n_test, data_sha256 FROM partitions ORDER BY id")
+            .map_err(err)?;
+        let all: Vec<(String, i64, String)> = st
+            .query_map([], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)))
+            .and_then(|rows| rows.collect())
+            .map_err(sql_err("find sealed rows"))?;
+        all.into_iter()
+            .filter(|(id, _, sha)| keep(&(id.as_str(), sha.as_str())))
+            .map(|(id, n, _)| (id, n))
+            .collect()
+    };
+    let mut probe = conn
+        .prepare(
+            "SELECT EXISTS (SELECT 1 FROM partition_rows WHERE partition_id = ?1 AND row_key = ?2)",
+        )
+        .map_err(sql_err("find sealed rows"))?;
+    let mut scan = conn
+        .prepare("SELECT row_key FROM partition_rows WHERE partition_id = ?1 ORDER BY row_key")
+        .map_err(sql_err("find sealed rows"))?;
+    let mut out = Vec::new();
+    for (id, n_test) in parts {
+        let mut hits = 0;
+        if (distinct.len() as i64).saturating_mul(PROBE_COST) < n_test {
+            for (k, n) in &distinct {
+                let found: bool = probe
+                    .query_row(params![id, &k[..]], |r| r.get(0))
+                    .map_err(sql_err("find sealed rows"))?;
+                if found {
+                    hits += n;
+                }
+            }
+        } else {
+            let mut rows = scan.query([&id]).map_err(sql_err("find sealed rows"))?;
+            let mut at = 0;
+            while let Some(row) = rows.next().map_err(sql_err("find sealed rows"))? {
+                let stored = row.get_ref(0).map_err(sql_err("find sealed rows"))?;
+                let Ok(stored) = stored.as_blob() else {
+                    continue;
+                };
+                while at < distinct.len() && distinct[at].0[..] < *stored {
+                    at += 1;
+                }
+                if at < distinct.len() && distinct[at].0[..] == *stored {
+                    hits += distinct[at].1;
+                }
+            }
+        }
+        if hits > 0 {
+            out.push((id, hits));
+        }
+    }
+    Ok(out)
+}
+
+/// See `Ledger::development_overlaps`.
+fn development_overlaps(
+    conn: &Connection,
+    table: &crate::data::Table,
+    prep: &crate::runner::Prepared,
+) -> Result<Vec<crate::guard::consult::Overlapping>> {
+    let err = || sql_err("find development overlaps");
+    let own = prep.partition_id.as_str();
+    let others: Vec<(String, String)> = {
+        let mut st = conn
+            .prepare(
+                "SELECT id, data_sha256 FROM partitions WHERE id != ?1 AND n_test > 0 ORDER BY id",
+            )
+            .map_err(err())?;
+        st.query_map([own], |r| Ok((r.get(0)?, r.get(1)?)))
+            .and_then(|rows| rows.collect())
+            .map_err(err())?
+    };
+    if others.is_empty() {
+        return Ok(Vec::new());
+    }
+    // The run's development rows, as rows of the data file.
+    let dev: Vec<usize> = prep
+        .sealed
+        .development()
+        .iter()
+        .map(|&i| prep.rows[i])
+        .collect();
+    let mut hits: Vec<(String, i64)> = Vec::new();
+    let mut st = conn
+        .prepare("SELECT assignment FROM partitions WHERE id = ?1")
+        .map_err(err())?;
+    for (id, _) in others.iter().filter(|(_, sha)| *sha == table.sha256) {
+        let assignment: Vec<u8> = st.query_row([id], |r| r.get(0)).map_err(err())?;
+        let n = dev
+            .iter()
+            .filter(|&&r| assignment.get(r) == Some(&Part::Test.code()))
+            .count();
+        if n > 0 {
+            hits.push((id.clone(), n as i64));
+        }
+    }
+    if others.iter().any(|(_, sha)| *sha != table.sha256) {
+        let keys = crate::data::row_keys(
+            table,
+            prep.key,
+            &dev,
+            crate::data::all_cores(),
+            prep.identity,
+        );
+        hits.extend(partitions_holding(conn, &keys, |(_, sha)| {
+            *sha != table.sha256
+        })?);
+        hits.sort();
+    }
+    let mut out = Vec::with_capacity(hits.len());
+    for (partition, rows) in hits {
+        out.push(crate::guard::consult::Overlapping {
+            seal: seal_of(conn, &partition)?,
+            history: history_of(conn, &partition)?,
+            partition,
+            rows: rows as usize,
+        });
+    }
+    Ok(out)
+}
+
+/// Earlier partitions whose development rows hold some of this run's test rows, with the runs
+/// that developed on them. Same data file: by position. (Other files need the earlier
+/// partitions' development identities, which only version-3 partitions store.)
+fn earlier_developments(
+    conn: &Connection,
+    table: &crate::data::Table,
+    prep: &crate::runner::Prepared,
+) -> Result<Vec<crate::guard::consult::Earlier>> {
+    let err = || sql_err("find earlier development rows");
+    let test: Vec<usize> = prep
+        .sealed
+        .test_members()
+        .iter()
+        .map(|&i| prep.rows[i])
+        .collect();
+    if test.is_empty() {
+        return Ok(Vec::new());
+    }
+    let mut st = conn
+        .prepare("SELECT id, assignment FROM partitions WHERE id != ?1 AND data_sha256 = ?2 AND EXISTS (SELECT 1 FROM runs r WHERE r.partition_id = partitions.id) ORDER BY id")
+        .map_err(err())?;
+    let same: Vec<(String, Vec<u8>)> = st
+        .query_map(params![prep.partition_id, table.sha256], |r| {
+            Ok((r.get(0)?, r.get(1)?))
+        })
+        .and_then(|rows| rows.collect())
+        .map_err(err())?;
+    let mut runs_of = conn
+        .prepare("SELECT id FROM runs WHERE partition_id = ?1 ORDER BY id")
+        .map_err(err())?;
+    let mut out = Vec::new();
+    for (id, assignment) in same {
+        let dev = [Part::Train.code(), Part::Validation.code()];
+        let rows = test
+            .iter()
+            .filter(|&&r| assignment.get(r).is_some_and(|c| dev.contains(c)))
+            .count();
+        if rows == 0 {
+            continue;
+        }
+        let runs: Vec<i64> = runs_of
+            .query_map([&id], |r| r.get(0))
+            .and_then(|rows| rows.collect())
+            .map_err(err())?;
+        out.push(crate::guard::consult::Earlier {
+            partition: id,
+            runs,
+            rows,
+        });
+    }
+    Ok(out)
+}
+
+/// A partition's consultations so far, read over `conn` (the caller's transaction, when it
+/// holds one).
+fn history_of(conn: &Connection, partition: &str) -> Result<crate::guard::History> {
+    let err = || sql_err("read reveals");
+    let mut st = conn
+        .prepare(
+            "SELECT r.spec_hash, v.candidate, v.mode, v.mechanism, v.answer_kind FROM reveals v JOIN runs r ON r.id = v.run_id
+             WHERE v.partition_id = ?1 ORDER BY v.id",
+        )
+        .map_err(err())?;
+    let rows: Vec<(String, i64, String, String, String)> = st
+        .query_map([partition], |r| {
+            Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?, r.get(4)?))
+        })
+        .and_then(|rows| rows.collect())
+        .map_err(err())?;
+    let mut h = crate::guard::History::default();
+    for (spec_hash, cand, mode, mech, kind) in rows {
+        h.reveals += 1;
+        h.candidates.insert((spec_hash, cand));
+        match kind.as_str() {
+            "test+noise" => h.over_threshold += 1,
+            "refused" => h.refused += 1,
+            _ => {}
+        }
+        let m: Value = serde_json::from_str(&mech).unwrap_or(Value::Null);
+        if mode == "reusable" {
+            if let Ok(state) = serde_json::from_value(m["step"]["after"].clone()) {
+                h.thresholdout = Some(state);
+            }
+        } else if mode == "ladder" {
+            h.ladder_best = m["best_units_after"].as_i64().or(h.ladder_best);
+        }
+    }
+    let mut st = conn
+        .prepare("SELECT run_id, n_rows FROM uses WHERE partition_id = ?1 ORDER BY run_id")
+        .map_err(sql_err("read development uses"))?;
+    h.uses = st
+        .query_map([partition], |r| Ok((r.get(0)?, r.get(1)?)))
+        .and_then(|rows| rows.collect())
+        .map_err(sql_err("read development uses"))?;
+    Ok(h)
+}
+
+/// The rules a partition was sealed with: its stored seal; for a partition stored before seals
+/// were kept, the `[guard]` of the first run stored on it (count mode with a budget of 1 when
+/// that spec cannot be read).
+fn seal_of(conn: &Connection, partition: &str) -> Result<crate::guard::consult::Seal> {
+    let settings: Option<String> = conn
+        .query_row(
+            "SELECT settings FROM partitions WHERE id = ?1",
+            [partition],
+            |r| r.get(0),
+        )
+        .optional()
+        .map_err(sql_err("read seal"))?;
+    let first: Option<(i64, String, String)> = conn
+        .query_row(
+            "SELECT id, spec_text, spec_path FROM runs WHERE partition_id = ?1 ORDER BY id LIMIT 1",
+            [partition],
+            |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)),
+        )
+        .optional()
+        .map_err(sql_err("read seal"))?;
+    let stored = settings
+        .and_then(|s| serde_json::from_str::<Value>(&s).ok())
+        .and_then(|v| crate::spec::GuardSpec::from_json(&v["seal"]));
+    let rules = stored.or_else(|| {
+        first.as_ref().and_then(|(_, text, path)| {
+            let path = Path::new(path);
+            let base = path.parent().unwrap_or(Path::new(""));
+            crate::spec::parse(text, path, base).ok().map(|s| s.guard)
+        })
+    });
+    Ok(crate::guard::consult::Seal {
+        rules: rules.unwrap_or(crate::spec::GuardSpec {
+            reveals: 1,
+            confidence: 0.95,
+            mode: crate::spec::GuardMode::Count,
+            overlap: crate::spec::Overlap::Count,
+        }),
+        by: first.map(|f| f.0),
+    })
+}
+
+/// One reveal and its scores, in the caller's transaction; returns its id.
+fn insert_reveal(tx: &Connection, r: &RevealRecord) -> rusqlite::Result<i64> {
+    tx.execute(
+        "INSERT INTO reveals (run_id, candidate, partition_id, source, revealed_at, user, host, tool_version, mode, budget, metric,
+            n_rows, seed, resamples, confidence, answer, answer_kind, mechanism, optimism)
+         VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17, ?18, ?19)",
+        params![
+            r.run_id, r.candidate, r.partition_id, r.source, r.revealed_at, r.user, r.host, r.tool_version, r.mode, r.budget, r.metric,
+            r.n_rows, r.seed, r.resamples, r.confidence, r.answer, r.answer_kind, r.mechanism, r.optimism
+        ],
+    )?;
+    let id = tx.last_insert_rowid();
+    let mut st = tx.prepare(
+        "INSERT INTO reveal_scores (reveal_id, metric, value, low, high, se) VALUES (?1, ?2, ?3, ?4, ?5, ?6)",
+    )?;
+    for (m, v, lo, hi, se) in &r.scores {
+        st.execute(params![id, m, v, lo, hi, se])?;
+    }
+    Ok(id)
+}
+
 /// Test-row identities in key order (borrowed when they already are).
 fn sorted_keys(keys: &[crate::data::RowKey]) -> std::borrow::Cow<'_, [crate::data::RowKey]> {
     let mut sorted = std::borrow::Cow::Borrowed(keys);
@@ -1920,28 +2152,33 @@ pub fn settings_identity(settings: &str) -> i64 {
         .unwrap_or(1)
 }
 
-/// A partition's stored settings without the identity version: the split settings alone.
+/// A partition's stored settings without what is not a split setting (the identity version,
+/// the seal): the split settings alone.
 fn split_only(settings: &str) -> String {
     match serde_json::from_str::<serde_json::Value>(settings) {
-        Ok(serde_json::Value::Object(mut m)) if m.contains_key("identity") => {
+        Ok(serde_json::Value::Object(mut m))
+            if m.contains_key("identity") || m.contains_key("seal") =>
+        {
             m.remove("identity");
+            m.remove("seal");
             serde_json::Value::Object(m).to_string()
         }
         _ => settings.to_string(),
     }
 }
 
-/// A partition's stored settings: the canonical split settings, and from identity version 2 on,
-/// `"identity"` with the version its test rows' identities were formed with. (The partition's
-/// id hashes the split settings alone, so it does not depend on the version.)
+/// A partition's stored settings: the canonical split settings; from identity version 2 on,
+/// `"identity"` with the version its test rows' identities were formed with; and `"seal"`, the
+/// `[guard]` rules of the run that stores it first, which every later consultation follows.
+/// (The partition's id hashes the split settings alone, so it depends on neither.)
 pub fn partition_settings(spec: &crate::spec::Spec, identity: crate::data::Identity) -> String {
     let canonical = spec.split_canonical();
-    if identity == crate::data::Identity::V1 {
-        return canonical;
-    }
     match serde_json::from_str::<serde_json::Value>(&canonical) {
         Ok(serde_json::Value::Object(mut m)) => {
-            m.insert("identity".into(), identity.number().into());
+            if identity != crate::data::Identity::V1 {
+                m.insert("identity".into(), identity.number().into());
+            }
+            m.insert("seal".into(), spec.guard.to_json());
             serde_json::Value::Object(m).to_string()
         }
         _ => canonical,
@@ -2385,7 +2622,8 @@ mod tests {
         for (l, v) in [(&old, 1), (&new, 2)] {
             let d = l.run(1).unwrap().unwrap();
             assert_eq!(d.identity, v);
-            assert_eq!(d.split_settings, old_settings);
+            assert_eq!(d.split_settings, split_only(&old_settings));
+            assert!(!d.split_settings.contains("seal"), "{}", d.split_settings);
         }
         // The same test rows, identified each way.
         assert_eq!(old_keys.len(), new_keys.len());

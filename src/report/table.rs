@@ -345,6 +345,7 @@ pub fn audit(rows: &[serde_json::Value], warnings: &[String]) -> String {
         "experiment",
         "test rows",
         "reveals",
+        "dev uses",
         "budget",
         "cands",
         "people",
@@ -373,6 +374,10 @@ pub fn audit(rows: &[serde_json::Value], warnings: &[String]) -> String {
             s("experiment"),
             s("test_rows"),
             s("reveals"),
+            r["development_uses"]
+                .as_array()
+                .map_or(0, |u| u.len())
+                .to_string(),
             s("budget"),
             s("candidates_revealed"),
             if people.is_empty() {
@@ -401,6 +406,23 @@ pub fn audit(rows: &[serde_json::Value], warnings: &[String]) -> String {
     let mut out = format!("{t}\n");
     if rows.is_empty() {
         out = "no partitions yet\n".into();
+    }
+    for r in rows {
+        let uses: Vec<String> = r["development_uses"]
+            .as_array()
+            .map(|a| {
+                a.iter()
+                    .map(|u| format!("run {} ({} rows)", u["run"], u["rows"]))
+                    .collect()
+            })
+            .unwrap_or_default();
+        if !uses.is_empty() {
+            out.push_str(&format!(
+                "partition {}: used in development by {}\n",
+                r["id"].as_str().unwrap_or(""),
+                uses.join(", ")
+            ));
+        }
     }
     for w in warnings {
         out.push_str(&format!("overlap: {w}\n"));

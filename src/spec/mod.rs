@@ -125,6 +125,51 @@ pub enum GuardMode {
     Ladder { step: f64 },
 }
 
+impl GuardSpec {
+    /// Canonical JSON: part of the spec's canonical form, and what a partition's seal stores.
+    pub fn to_json(&self) -> Value {
+        let mut v = json!({"reveals": self.reveals, "confidence": self.confidence, "mode": self.mode.name()});
+        match self.mode {
+            GuardMode::Count => {}
+            GuardMode::Reusable { threshold, noise } => {
+                v["threshold"] = json!(threshold);
+                v["noise"] = json!(noise);
+            }
+            GuardMode::Ladder { step } => v["step"] = json!(step),
+        }
+        // Only when set: specs written before the key existed keep their canonical hash.
+        if self.overlap != Overlap::Count {
+            v["overlap"] = json!(self.overlap.name());
+        }
+        v
+    }
+
+    /// The rules `to_json` wrote; `None` for anything else.
+    pub fn from_json(v: &Value) -> Option<GuardSpec> {
+        let num = |k: &str| v[k].as_f64();
+        let mode = match v["mode"].as_str()? {
+            "count" => GuardMode::Count,
+            "reusable" => GuardMode::Reusable {
+                threshold: num("threshold")?,
+                noise: num("noise")?,
+            },
+            "ladder" => GuardMode::Ladder { step: num("step")? },
+            _ => return None,
+        };
+        let overlap = match v["overlap"].as_str() {
+            None | Some("count") => Overlap::Count,
+            Some("refuse") => Overlap::Refuse,
+            Some(_) => return None,
+        };
+        Some(GuardSpec {
+            reveals: u32::try_from(v["reveals"].as_u64()?).ok()?,
+            confidence: num("confidence")?,
+            mode,
+            overlap,
+        })
+    }
+}
+
 impl GuardMode {
     pub fn name(self) -> &'static str {
         match self {
@@ -135,13 +180,33 @@ impl GuardMode {
     }
 }
 
-/// `[guard]`: the test partition's budget and how reveals are answered.
+/// What a later run that uses this partition's sealed test rows as development rows meets.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Overlap {
+    /// The run is stored with a warning and counts as one consultation of the partition.
+    Count,
+    /// The run is refused (exit 2) before its grid.
+    Refuse,
+}
+
+impl Overlap {
+    pub fn name(self) -> &'static str {
+        match self {
+            Overlap::Count => "count",
+            Overlap::Refuse => "refuse",
+        }
+    }
+}
+
+/// `[guard]`: the test partition's budget and how reveals are answered. The first run that
+/// stores a partition seals it with these rules (`guard::Seal`); later runs on it follow them.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct GuardSpec {
-    /// Reveals allowed per partition (Thresholdout: over-threshold answers allowed).
+    /// Consultations allowed per partition (Thresholdout: over-threshold answers allowed).
     pub reveals: u32,
     pub confidence: f64,
     pub mode: GuardMode,
+    pub overlap: Overlap,
 }
 
 /// The built-in model families.
@@ -869,6 +934,7 @@ impl Check<'_> {
                 reveals: 1,
                 confidence: 0.95,
                 mode: GuardMode::Count,
+                overlap: Overlap::Count,
             });
         };
         let r = g.get_ref();
@@ -940,10 +1006,24 @@ impl Check<'_> {
                 return Err(self.err(v, format!("'{key}' is only read by mode = \"{m}\"")));
             }
         }
+        let overlap = match r.overlap.as_ref().map(|o| (o, o.get_ref().as_str())) {
+            None | Some((_, "count")) => Overlap::Count,
+            Some((_, "refuse")) => Overlap::Refuse,
+            Some((at, other)) => {
+                return Err(self.err(
+                    at,
+                    format!(
+                        "unknown overlap rule '{other}'{}; use \"count\" (a later run on these test rows is stored, warned and counted) or \"refuse\" (it is refused)",
+                        did_you_mean(other, ["count", "refuse"])
+                    ),
+                ));
+            }
+        };
         Ok(GuardSpec {
             reveals,
             confidence,
             mode,
+            overlap,
         })
     }
 
@@ -1373,18 +1453,7 @@ impl Spec {
     }
 
     fn guard_canonical(&self) -> Value {
-        let g = &self.guard;
-        let mut v =
-            json!({"reveals": g.reveals, "confidence": g.confidence, "mode": g.mode.name()});
-        match g.mode {
-            GuardMode::Count => {}
-            GuardMode::Reusable { threshold, noise } => {
-                v["threshold"] = json!(threshold);
-                v["noise"] = json!(noise);
-            }
-            GuardMode::Ladder { step } => v["step"] = json!(step),
-        }
-        v
+        self.guard.to_json()
     }
 
     /// SHA-256 of the canonical JSON, hex.

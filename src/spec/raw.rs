@@ -64,6 +64,7 @@ pub struct RawGuard {
     pub threshold: Option<Spanned<f64>>,
     pub noise: Option<Spanned<f64>>,
     pub step: Option<Spanned<f64>>,
+    pub overlap: Option<Spanned<String>>,
 }
 
 /// Every key any built-in family accepts; which family takes which is checked in `spec::parse`.

@@ -204,8 +204,35 @@ fn the_outbreak_demo_runs_reveals_and_predicts_probabilities() {
         .map(|l| format!("{}\n", l.split(',').take(10).collect::<Vec<_>>().join(",")))
         .collect();
     d.write("new.csv", &no_target);
-    d.probity(&["predict", "1", "--input", "new.csv", "--output", "p.csv"])
+    // The file holds the sealed test rows: without their targets, predicting them is still a
+    // look at the test set (the data file scores the predictions), so it is refused...
+    let r = d
+        .probity(&["predict", "1", "--input", "new.csv", "--output", "p.csv"])
+        .expect(2);
+    assert!(
+        r.stderr()
+            .contains("rows are test rows of sealed partition"),
+        "{}",
+        r.stderr()
+    );
+    assert!(!d.path.join("p.csv").exists());
+    // ...and with --allow-sealed it is one more consultation of the partition.
+    let r = d
+        .probity(&[
+            "predict",
+            "1",
+            "--input",
+            "new.csv",
+            "--output",
+            "p.csv",
+            "--allow-sealed",
+        ])
         .expect(0);
+    assert!(
+        r.stderr().contains("recorded as reveal 2"),
+        "{}",
+        r.stderr()
+    );
     let out = std::fs::read_to_string(d.path.join("p.csv")).unwrap();
     let mut lines = out.lines();
     assert_eq!(lines.next(), Some("record,prediction,p_no,p_yes"));

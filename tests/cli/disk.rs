@@ -127,10 +127,11 @@ fn a_read_only_ledger_from_an_older_probity_is_refused_with_the_way_out() {
     }
     let d = small_dir("readonly-old");
     d.probity(&["run", "small.toml"]).expect(0);
-    // Schema 5: before run starts were recorded, with partition_rows' second index.
+    // Schema 5: before run starts and development uses were recorded, with partition_rows'
+    // second index.
     let c = rusqlite::Connection::open(d.ledger()).unwrap();
     c.execute_batch(
-        "DROP TABLE run_starts; CREATE INDEX partition_rows_by_key ON partition_rows (row_key); PRAGMA user_version = 5;",
+        "DROP TABLE run_starts; DROP TABLE uses; CREATE INDEX partition_rows_by_key ON partition_rows (row_key); PRAGMA user_version = 5;",
     )
     .unwrap();
     drop(c);

@@ -146,8 +146,8 @@ fn revealed_rows_found(run: &Value) -> usize {
     let num = |w: &str| -> usize { w.split(' ').next().unwrap().parse().unwrap() };
     let dev = warnings
         .iter()
-        .find(|w| w.contains("development rows were in a test partition revealed 1 time"))
-        .expect("a development exposure warning");
+        .find(|w| w.contains("development rows are sealed test rows of partition"))
+        .expect("a development use warning");
     let test = warnings
         .iter()
         .find(|w| w.contains("test rows were already revealed in another partition"));
@@ -166,21 +166,25 @@ fn exposure_survives_a_new_seed() {
     assert_eq!(revealed_rows_found(&r.json()), 10);
     assert!(
         r.stderr()
-            .contains("development rows were in a test partition"),
+            .contains("development rows are sealed test rows of partition"),
         "{}",
         r.stderr()
     );
-    // The same seed again: its own partition was revealed.
+    // The same seed again: its own partition was revealed once and developed on once (by the
+    // second run), which is over its budget of 1.
     let j = d.probity(&["run", "small.toml", "--json"]).expect(0).json();
     assert!(
         j["warnings"].as_array().unwrap().iter().any(|w| w
             .as_str()
             .unwrap()
-            .contains("has already been revealed 1 time")),
+            .contains("has already been consulted 2 time(s)")),
         "{}",
         j["warnings"]
     );
-    let a = d.probity(&["audit", "--json"]).expect(0).json();
+    let a = d.probity(&["audit", "--json"]).expect(3).json();
+    assert_eq!(a["partitions"][0]["reveals"], 1);
+    assert_eq!(a["partitions"][0]["development_uses"][0]["run"], 2);
+    assert_eq!(a["partitions"][0]["consultations"], 2);
     assert!(
         !a["warnings"].as_array().unwrap().is_empty(),
         "audit reports the overlap: {a}"
@@ -265,10 +269,13 @@ fn an_old_ledger_keeps_identity_version_one() {
         "{}",
         r.stderr()
     );
+    // The new seed's run developed on the revealed partition's test rows: one more
+    // consultation, past its budget of 1.
     let a = d
         .probity(&[&["audit", "--json"][..], &l].concat())
-        .expect(0)
+        .expect(3)
         .json();
+    assert_eq!(a["partitions"][0]["development_uses"][0]["run"], 2);
     assert!(
         !a["warnings"].as_array().unwrap().is_empty(),
         "audit reports the overlap: {a}"
@@ -298,13 +305,28 @@ fn predict_cannot_score_sealed_rows_by_hand() {
         r.stderr()
     );
     assert!(!d.path.join("p.csv").exists());
-    // Without the target column it is an ordinary prediction.
+    // Without the target column it is still a look at the sealed rows (the data file scores
+    // the predictions): refused too.
     let no_target: String = crate::fixtures::small_csv()
         .lines()
         .map(|l| format!("{}\n", l.rsplit_once(',').unwrap().0))
         .collect();
     d.write("nt.csv", &no_target);
-    d.probity(&["predict", "1", "--input", "nt.csv", "--output", "p.csv"])
+    let r = d
+        .probity(&["predict", "1", "--input", "nt.csv", "--output", "p.csv"])
+        .expect(2);
+    assert!(
+        r.stderr()
+            .contains("10 rows are test rows of sealed partition"),
+        "{}",
+        r.stderr()
+    );
+    // New rows (new keys, new values) are an ordinary prediction.
+    d.write(
+        "new.csv",
+        "id,x1,x2,shade,bay,week\nn1,3.25,4,low,B1,11\nn2,7.75,9,high,B2,11\n",
+    );
+    d.probity(&["predict", "1", "--input", "new.csv", "--output", "p.csv"])
         .expect(0);
     // --allow-sealed records it as a reveal.
     let r = d
@@ -451,7 +473,8 @@ fn reveal_asks_on_a_terminal() {
     let (code, text) = ask("n\n");
     assert_eq!(code, Some(2), "{text}");
     assert!(
-        text.contains("revealed 0 time(s) so far, budget 1") && text.contains("[y/N]"),
+        text.contains("consulted 0 time(s) so far (0 reveal(s), 0 development use(s)), budget 1")
+            && text.contains("[y/N]"),
         "{text}"
     );
     assert!(text.contains("nothing was recorded"), "{text}");

@@ -285,8 +285,9 @@ fn bundles_merge_verified_and_never_mix_histories() {
     assert_eq!(a["chain"]["intact"], true);
     let r = bob.probity(&["reveal", "1", "--yes"]).expect(0);
     assert!(
-        r.stderr()
-            .contains("revealed 2 times, over its budget of 1"),
+        r.stderr().contains(
+            "consulted 2 times (2 reveal(s), 0 development use(s)), over its budget of 1"
+        ),
         "{}",
         r.stderr()
     );
