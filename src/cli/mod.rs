@@ -68,7 +68,10 @@ pub enum Command {
 pub fn main() -> i32 {
     // The crash tests' pause points (src/failpoint.rs); unset in ordinary use.
     if let Ok(point) = std::env::var("PROBITY_PAUSE_AT") {
-        crate::failpoint::arm(point);
+        crate::failpoint::arm(
+            point,
+            std::env::var_os("PROBITY_RESUME_ON").map(PathBuf::from),
+        );
     }
     let cli = match Cli::try_parse() {
         Ok(c) => c,

@@ -214,6 +214,8 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
         },
         exposure,
     };
+    // Where simultaneous reveals are lined up in the race tests.
+    crate::failpoint::pause("reveal:consult");
     // Decided and written in one transaction, before anything is printed: a score the user
     // saw is never missing from the count, and two reveals at once each see the other.
     let (ids, c) = ledger.consult(std::slice::from_ref(&partition), |states| {

@@ -4,6 +4,7 @@ mod bad_input;
 mod classification;
 mod commands;
 mod concurrency;
+mod consult;
 mod crash;
 mod disk;
 mod fixtures;
