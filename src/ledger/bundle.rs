@@ -294,7 +294,10 @@ fn insert_entry(
             if name == "replays" {
                 continue; // a replay's result names a run id of the other ledger
             }
-            let verb = if matches!(name.as_str(), "partitions" | "partition_rows") {
+            let verb = if matches!(
+                name.as_str(),
+                "partitions" | "partition_rows" | "partition_keys" | "partition_development"
+            ) {
                 "INSERT OR IGNORE"
             } else {
                 "INSERT"

@@ -61,6 +61,14 @@ pub fn section_queries(kind: &str) -> &'static [(&'static str, &'static str)] {
                 "uses",
                 "SELECT * FROM uses WHERE run_id = ?1 ORDER BY partition_id",
             ),
+            (
+                "partition_keys",
+                "SELECT * FROM partition_keys WHERE partition_id = (SELECT partition_id FROM runs WHERE id = ?1) ORDER BY key_id",
+            ),
+            (
+                "partition_development",
+                "SELECT * FROM partition_development WHERE partition_id = (SELECT partition_id FROM runs WHERE id = ?1)",
+            ),
         ],
         "reveal" => &[
             ("reveals", "SELECT * FROM reveals WHERE id = ?1"),
@@ -77,7 +85,10 @@ pub fn section_queries(kind: &str) -> &'static [(&'static str, &'static str)] {
 /// Sections added after entries were first chained: hashed only when they hold rows, so every
 /// entry written before them keeps its hash (and an empty one adds nothing).
 pub fn sparse(section: &str) -> bool {
-    matches!(section, "uses")
+    matches!(
+        section,
+        "uses" | "partition_keys" | "partition_development"
+    )
 }
 
 fn sql_err(context: &'static str) -> impl FnOnce(rusqlite::Error) -> Error {
@@ -186,10 +197,12 @@ fn stream_hash(
         if header {
             put(&mut h, b'S', name.as_bytes());
         }
-        if let Some(rows) = known
-            .and_then(|k| k.partition.as_ref())
-            .filter(|_| *name == "partition_rows")
+        if let Some((_, rows)) =
+            known.and_then(|k| k.partition.iter().find(|(n, _)| n == name))
         {
+            if !header && !rows.keys.is_empty() {
+                put(&mut h, b'S', name.as_bytes());
+            }
             rows.feed(&mut h);
             continue;
         }
@@ -256,7 +269,8 @@ impl PartitionRows<'_> {
 /// recomputes every entry from the stored rows, so a difference would still show.
 #[derive(Default)]
 pub struct Known<'a> {
-    pub partition: Option<PartitionRows<'a>>,
+    /// A fresh partition's `partition_rows` and `partition_keys` sections, by section name.
+    pub partition: Vec<(&'static str, PartitionRows<'a>)>,
     /// (section name, a function that gives the section's rows to the sink in the section's
     /// order). Never the entry's first section (whose absence means a missing entry).
     pub sections: Vec<(&'static str, RowsFn<'a>)>,

@@ -39,6 +39,10 @@ pub const MIGRATIONS: &[(&str, &str)] = &[
         "0008_development_uses.sql",
         include_str!("../../migrations/0008_development_uses.sql"),
     ),
+    (
+        "0009_identity_v3.sql",
+        include_str!("../../migrations/0009_identity_v3.sql"),
+    ),
 ];
 
 /// The schema version this binary writes.

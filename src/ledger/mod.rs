@@ -599,7 +599,9 @@ impl Ledger {
         let fold_sink = |sink: &mut chain::RowSink| fold_rows(&mut |row| sink.row(row));
         let score_sink = |sink: &mut chain::RowSink| score_rows(&mut |row| sink.row(row));
         let mut known = chain::Known {
-            partition: partition_known,
+            partition: partition_known
+                .map(|rows| vec![("partition_rows", rows)])
+                .unwrap_or_default(),
             sections: Vec::new(),
         };
         if ordered {
