@@ -8,6 +8,7 @@ use sha2::{Digest, Sha256};
 use std::path::{Path, PathBuf};
 
 mod fast;
+pub mod identity;
 
 /// Bytes read per block by the fast loader.
 const FAST_BLOCK: usize = 8 << 20;
