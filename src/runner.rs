@@ -43,9 +43,12 @@ pub struct Prepared {
     pub warnings: Vec<String>,
     /// The key column, if any (row identities use it).
     pub key: Option<usize>,
-    /// Identities of the test rows, for exposure accounting.
-    pub test_keys: Vec<crate::data::RowKey>,
-    /// How the row identities are formed: the version of the ledger they go to.
+    /// What a version-3 identity reads: the key's name and the feature names.
+    pub recipe: crate::data::identity::Recipe,
+    /// The identities of the partition's rows, as the ledger stores them (filled by the run
+    /// beside its grid: `identities`).
+    pub ids: Identities,
+    /// How the row identities are formed: the version of the partition they go to.
     pub identity: crate::data::Identity,
     /// The resolved split method (for nested cross-validation's inner folds).
     pub method: Method,
@@ -56,15 +59,79 @@ pub struct Prepared {
     pub classes: Vec<String>,
 }
 
+/// The identities of a partition's rows, in the form the ledger stores them.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct Identities {
+    /// The test rows': version 3, their feature identities; versions 1 and 2, their whole-row
+    /// ones. In identity order (a repeat kept: rows that look alike).
+    pub test: Vec<crate::data::RowKey>,
+    /// Version 3 with a key: the test rows' key identities, sorted, each once.
+    pub test_keys: Vec<crate::data::RowKey>,
+    /// Version 3: the development rows' feature identities, sorted, each once.
+    pub development: Vec<crate::data::RowKey>,
+    /// Version 3 with a key: the development rows' key identities, sorted, each once.
+    pub development_keys: Vec<crate::data::RowKey>,
+}
+
 impl Prepared {
-    /// The identities of the test rows, in the version `identity` says (SHA-256 of every cell:
-    /// the costly part of preparing a large split, so `run_recording` does it beside the grid).
-    pub fn hash_test_keys(&self, table: &Table, threads: usize) -> Vec<crate::data::RowKey> {
-        self.sealed
-            .test_row_keys(table, &self.rows, self.key, threads, self.identity)
+    /// Rows of the data file, for positions among the kept rows.
+    pub fn table_rows(&self, positions: &[usize]) -> Vec<usize> {
+        positions.iter().map(|&i| self.rows[i]).collect()
     }
 
-    /// Identities of the development rows (computed on demand: hashing every row costs time).
+    /// The test rows, as rows of the data file (membership only: their values stay sealed).
+    pub fn test_rows(&self) -> Vec<usize> {
+        self.table_rows(&self.sealed.test_members())
+    }
+
+    /// The development rows, as rows of the data file.
+    pub fn development_rows(&self) -> Vec<usize> {
+        self.table_rows(&self.sealed.development())
+    }
+
+    /// The identities of the partition's rows in the version `identity` says: SHA-256 of each
+    /// row's cells, the costly part of preparing a large split, so `run_recording` does it
+    /// beside the grid. Versions 1 and 2 (a partition stored by an earlier probity) keep their
+    /// test rows' identities only.
+    pub fn identities(&self, table: &Table, threads: usize) -> Identities {
+        use crate::data::identity::{feature_ids, key_ids};
+        let test = self.test_rows();
+        let Some(legacy) = self.identity.legacy() else {
+            let dev = self.development_rows();
+            let keys = |rows: &[usize]| -> Vec<crate::data::RowKey> {
+                let mut k: Vec<_> = self
+                    .key
+                    .map(|c| key_ids(table, c, rows, threads))
+                    .unwrap_or_default()
+                    .into_iter()
+                    .flatten()
+                    .collect();
+                k.sort_unstable();
+                k.dedup();
+                k
+            };
+            let features = |rows: &[usize]| -> Vec<crate::data::RowKey> {
+                let mut f = feature_ids(table, &self.recipe, rows, threads).unwrap_or_default();
+                f.sort_unstable();
+                f
+            };
+            let mut development = features(&dev);
+            development.dedup();
+            return Identities {
+                test: features(&test),
+                test_keys: keys(&test),
+                development,
+                development_keys: keys(&dev),
+            };
+        };
+        let mut keys = crate::data::row_keys(table, self.key, &test, threads, legacy);
+        keys.sort_unstable();
+        Identities {
+            test: keys,
+            ..Identities::default()
+        }
+    }
+
     /// Inner folds over `rows` (positions among the kept rows) for outer fold `outer`, by the
     /// run's split method, from their own seeded stream.
     pub fn inner_folds(
@@ -84,22 +151,6 @@ impl Prepared {
             target: &self.target,
         };
         crate::split::folds_of(&input, rows, Domain::NestedFolds, outer)
-    }
-
-    pub fn development_keys(&self, table: &Table) -> Vec<crate::data::RowKey> {
-        let rows: Vec<usize> = self
-            .sealed
-            .development()
-            .iter()
-            .map(|&i| self.rows[i])
-            .collect();
-        crate::data::row_keys(
-            table,
-            self.key,
-            &rows,
-            crate::data::all_cores(),
-            self.identity,
-        )
     }
 }
 
@@ -181,23 +232,16 @@ fn named_col(spec: &Spec, table: &Table, n: &Named, role: &str) -> Result<usize>
     })
 }
 
-/// Resolve the spec's columns against the table, handle missing values and split; the test
-/// rows' identities are formed as `identity` says. `threads` only changes speed (the row
-/// identities are hashed on them).
-pub fn prepare(
-    spec: &Spec,
-    table: &Table,
-    threads: usize,
-    identity: crate::data::Identity,
-) -> Result<Prepared> {
+/// Resolve the spec's columns against the table, handle missing values and split. The rows'
+/// identities (`ids`) are left empty: `identities` computes them, in the version `identity`
+/// names, for whoever stores them.
+pub fn prepare(spec: &Spec, table: &Table, identity: crate::data::Identity) -> Result<Prepared> {
     let mut prep = prepare_unkeyed(spec, table)?;
     prep.identity = identity;
-    prep.test_keys = prep.hash_test_keys(table, threads);
     Ok(prep)
 }
 
-/// `prepare` without the test rows' identities (`test_keys` is empty until
-/// `hash_test_keys` fills it).
+/// `prepare` without the rows' identities (`ids` is empty until `identities` fills it).
 fn prepare_unkeyed(spec: &Spec, table: &Table) -> Result<Prepared> {
     let d = &spec.data;
     if let Some((want, loc)) = &d.sha256
@@ -512,6 +556,13 @@ fn prepare_unkeyed(spec: &Spec, table: &Table) -> Result<Prepared> {
             table.n_rows()
         ));
     }
+    let recipe = crate::data::identity::Recipe::new(
+        d.key.as_ref().map(|k| k.name.as_str()),
+        &features
+            .iter()
+            .map(|&c| table.columns[c].name.as_str())
+            .collect::<Vec<_>>(),
+    );
     Ok(Prepared {
         rows,
         target: y,
@@ -526,7 +577,8 @@ fn prepare_unkeyed(spec: &Spec, table: &Table) -> Result<Prepared> {
         dropped,
         warnings,
         key,
-        test_keys: Vec::new(),
+        recipe,
+        ids: Identities::default(),
         identity: crate::data::Identity::CURRENT,
         method,
         metrics: Metric::for_task(spec.task == crate::spec::Task::Classification).to_vec(),
@@ -1341,12 +1393,13 @@ pub fn run_reporting(
 /// before the grid; then, on a thread of its own while the grid runs, the prepared split and
 /// its test rows' identities.
 pub trait Recorder: Send {
-    /// How the row identities are formed for the ledger the run goes to.
-    fn identity(&mut self) -> Result<crate::data::Identity>;
+    /// How the row identities are formed for the partition: a stored partition's own version,
+    /// or the current one for a new partition.
+    fn identity(&mut self, partition: &str) -> Result<crate::data::Identity>;
     /// Every check has passed and the grid is about to begin (the place to record a start).
     fn started(&mut self, prep: &Prepared) -> Result<()>;
-    /// The test rows' identities, in key order, while the grid runs.
-    fn partition(&mut self, prep: &Prepared, keys: &[crate::data::RowKey]) -> Result<()>;
+    /// The partition's rows' identities, while the grid runs.
+    fn partition(&mut self, prep: &Prepared, ids: &Identities) -> Result<()>;
 }
 
 /// `run_reporting`, handing `record` the partition beside the grid: hashing the test rows and
@@ -1371,7 +1424,7 @@ pub fn run_recording(
     }
     let (after, keys) = match record {
         None => {
-            let keys = prep.hash_test_keys(table, threads);
+            let keys = prep.identities(table, threads);
             let cv = cross_validate(
                 spec, table, &prep, &entries, &grids, folds, threads, &mut notes, progress,
             );
@@ -1381,16 +1434,14 @@ pub fn run_recording(
             (after, Ok(keys))
         }
         Some(record) => {
-            prep.identity = record.identity()?;
+            prep.identity = record.identity(&prep.partition_id)?;
             std::thread::scope(|s| -> Result<_> {
                 let shared = &prep;
                 // The recorder goes to the side job once the start is recorded; the hashing,
                 // which needs only the split, begins while the start is written.
                 let (give, take) = std::sync::mpsc::channel::<&mut dyn Recorder>();
-                let side = s.spawn(move || -> Result<Vec<crate::data::RowKey>> {
-                    let mut keys = shared.hash_test_keys(table, threads);
-                    // In key order, as the ledger stores them (it need not sort a copy).
-                    keys.sort_unstable();
+                let side = s.spawn(move || -> Result<Identities> {
+                    let keys = shared.identities(table, threads);
                     // No recorder: recording the start failed, and the run stops with that error.
                     if let Ok(record) = take.recv() {
                         record.partition(shared, &keys)?;
@@ -1425,7 +1476,7 @@ pub fn run_recording(
         predictions_digest,
         nested,
     } = after?;
-    prep.test_keys = keys?;
+    prep.ids = keys?;
     let mut warnings = prep.warnings.clone();
     for c in candidates.iter().filter(|c| c.failure.is_some()) {
         warnings.push(format!(
@@ -2223,7 +2274,7 @@ mod tests {
         let spec = crate::spec::parse(text, Path::new("r.toml"), Path::new(".")).unwrap();
         let out = run(&spec, &table, 2).unwrap();
         for threads in [1, 3] {
-            let prep = prepare(&spec, &table, threads, crate::data::Identity::CURRENT).unwrap();
+            let prep = prepare(&spec, &table, crate::data::Identity::CURRENT).unwrap();
             let dev = prep.sealed.development();
             let chosen = &out.candidates[out.selected - 1];
             let (entry, params) = (&entries(&spec)[chosen.entry], &chosen.params);

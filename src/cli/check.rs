@@ -20,13 +20,8 @@ pub struct Args {
 
 pub fn run(_g: &Global, a: Args) -> Result<i32> {
     let (spec, table) = load_inputs(&a.spec, crate::data::all_cores())?;
-    // Nothing is stored: the identities of a new ledger's version.
-    let prep = crate::runner::prepare(
-        &spec,
-        &table,
-        crate::data::all_cores(),
-        crate::data::Identity::CURRENT,
-    )?;
+    // Nothing is stored, so no identity is computed.
+    let prep = crate::runner::prepare(&spec, &table, crate::data::Identity::CURRENT)?;
     let entries = crate::runner::entries(&spec);
     crate::runner::check_grid(&spec, &table, &prep, &entries)?;
     let n_cands: usize = entries.iter().map(|e| e.expand().len()).sum();

@@ -56,8 +56,7 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
     let (pred, notes) = if matches!(model.fitted, crate::models::Fitted::External) {
         // An external command keeps no model: fit it again on the run's development rows.
         let (spec, table) = super::reveal::reload(&d, None)?;
-        let prep =
-            crate::runner::prepare(&spec, &table, crate::data::all_cores(), ledger.identity()?)?;
+        let prep = crate::runner::prepare(&spec, &table, crate::data::Identity::CURRENT)?;
         let dev = prep.sealed.development();
         let rows: Vec<usize> = (0..input.n_rows()).collect();
         let mut notes = crate::models::encode::Notes::new();
@@ -152,21 +151,16 @@ fn guard_sealed_rows(
     if rows.is_empty() {
         return Ok(());
     }
+    // The key column by the spec's key name; each partition then compares the rows its own
+    // way (by key, or by feature cells whatever the file's other columns).
     let key = model.key.as_deref().and_then(|k| input.index_of(k));
-    let keys = crate::data::row_keys(
-        input,
-        key,
-        &rows,
-        crate::data::all_cores(),
-        ledger.identity()?,
-    );
-    let hits = ledger.sealed_partitions_holding(&keys)?;
+    let hits = ledger.sealed_rows(input, &rows, key)?;
     if hits.is_empty() {
         return Ok(());
     }
     let target = input.column(&model.target);
     if !allow {
-        let (p, n) = &hits[0];
+        let (p, n) = (&hits[0].0, hits[0].1.len());
         let more = if hits.len() > 1 {
             format!(" (and rows of {} more partition(s))", hits.len() - 1)
         } else {
@@ -215,15 +209,7 @@ fn guard_sealed_rows(
     // whose targets the file holds.
     let mut partitions = Vec::new();
     let mut per: Vec<(usize, Option<Vec<Option<f64>>>)> = Vec::new();
-    for (partition, _) in &hits {
-        let own: std::collections::BTreeSet<crate::data::RowKey> =
-            ledger.partition_row_keys(partition)?.into_iter().collect();
-        let idx: Vec<usize> = rows
-            .iter()
-            .zip(&keys)
-            .filter(|(_, k)| own.contains(*k))
-            .map(|(r, _)| *r)
-            .collect();
+    for (partition, idx) in &hits {
         let scores = y.as_ref().map(|y| {
             let with: Vec<usize> = idx.iter().copied().filter(|&r| !y[r].is_nan()).collect();
             let ys: Vec<f64> = with.iter().map(|&r| y[r]).collect();

@@ -5,7 +5,7 @@
 
 use super::{Global, open_existing, out, out_json, warn};
 use crate::error::{Error, Result};
-use crate::ledger::{Ledger, RunDetail};
+use crate::ledger::RunDetail;
 use serde_json::{Value, json};
 use std::io::IsTerminal;
 use std::path::{Path, PathBuf};
@@ -58,21 +58,6 @@ pub(crate) fn reload(
     Ok((spec, table))
 }
 
-/// How `keys` were exposed by other partitions' consultations (other than `exclude`).
-pub(crate) fn exposed(
-    ledger: &Ledger,
-    keys: &[crate::data::RowKey],
-    exclude: Option<&str>,
-) -> Result<crate::guard::consult::Exposure> {
-    if !ledger.has_reveals()? {
-        return Ok(Default::default());
-    }
-    Ok(crate::guard::consult::exposure(
-        keys,
-        &ledger.exposure(exclude)?,
-    ))
-}
-
 /// Thousands separators for counts in messages.
 pub(crate) fn count(n: usize) -> String {
     crate::guard::consult::thousands(n)
@@ -105,14 +90,18 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
         .clone();
     let (spec, table) = reload(&d, a.data.as_deref())?;
     // The ledger's identity version: its partitions', this one's included.
-    let prep = crate::runner::prepare(&spec, &table, crate::data::all_cores(), ledger.identity()?)?;
+    // The partition's own identity version, as it was stored.
+    let identity = ledger
+        .partition_identity(&d.summary.partition_id)?
+        .unwrap_or(crate::data::Identity::CURRENT);
+    let prep = crate::runner::prepare(&spec, &table, identity)?;
     if prep.partition_id != d.summary.partition_id {
         return Err(Error::Internal(format!(
             "rebuilt partition {} differs from the stored {}",
             prep.partition_id, d.summary.partition_id
         )));
     }
-    if prep.test_keys.is_empty() {
+    if prep.sealed.count(crate::split::Part::Test) == 0 {
         return Err(Error::Input(format!(
             "run {} has no test partition (test = 0): there is nothing to reveal",
             a.run
@@ -132,8 +121,9 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
     }
     // For the question only: the history that counts is read again inside the write.
     let before = ledger.partition_history(&partition)?;
-    let exposure = exposed(&ledger, &prep.test_keys, Some(&partition))?;
-    let n = prep.test_keys.len();
+    let test_rows = prep.test_rows();
+    let exposure = ledger.exposure(&table, &test_rows, prep.key, Some(&partition))?;
+    let n = test_rows.len();
     // Ask first: the question shows what has been spent already.
     if !a.yes {
         let question = format!(

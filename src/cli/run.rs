@@ -2,11 +2,11 @@
 //! leaderboard and the run id.
 
 use super::{Global, absolute, load_inputs, open_for_write, out, out_json, warn};
-use crate::data::{RowKey, Table};
+use crate::data::Table;
 use crate::error::Result;
 use crate::ledger::Ledger;
 use crate::ledger::starts::{RunStart, StartInfo};
-use crate::runner::Prepared;
+use crate::runner::{Identities, Prepared};
 use crate::spec::Spec;
 use std::path::PathBuf;
 
@@ -76,12 +76,13 @@ impl Store<'_> {
 }
 
 impl crate::runner::Recorder for Store<'_> {
-    fn identity(&mut self) -> Result<crate::data::Identity> {
-        // No ledger yet: the run creates one, of the current version.
-        match &self.ledger {
-            Some(l) => l.identity(),
-            None => Ok(crate::data::Identity::CURRENT),
+    fn identity(&mut self, partition: &str) -> Result<crate::data::Identity> {
+        // A partition an earlier probity stored keeps its version; a new one takes the current.
+        Ok(match &self.ledger {
+            Some(l) => l.partition_identity(partition)?,
+            None => None,
         }
+        .unwrap_or(crate::data::Identity::CURRENT))
     }
 
     fn started(&mut self, prep: &Prepared) -> Result<()> {
@@ -97,9 +98,9 @@ impl crate::runner::Recorder for Store<'_> {
         Ok(())
     }
 
-    fn partition(&mut self, prep: &Prepared, keys: &[RowKey]) -> Result<()> {
+    fn partition(&mut self, prep: &Prepared, ids: &Identities) -> Result<()> {
         let (spec, table) = (self.spec, self.table);
-        if self.ledger()?.record_partition(spec, table, prep, keys)? {
+        if self.ledger()?.record_partition(spec, table, prep, ids)? {
             self.fresh = Some(prep.partition_id.clone());
         }
         Ok(())
@@ -174,7 +175,7 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
             store.start.as_ref().map(|s| s.id),
         );
         let ledger = store.ledger()?;
-        exposure_warnings(ledger, &spec, &mut outcome)?;
+        exposure_warnings(ledger, &spec, &table, &mut outcome)?;
         phases.mark("exposure");
         ledger.write_run(&spec, &table, &outcome, &meta)
     });
@@ -221,6 +222,7 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
 fn exposure_warnings(
     ledger: &crate::ledger::Ledger,
     spec: &Spec,
+    table: &Table,
     outcome: &mut crate::runner::RunOutcome,
 ) -> Result<()> {
     let prep = &outcome.prepared;
@@ -242,12 +244,13 @@ fn exposure_warnings(
             prep.partition_id
         ));
     }
-    let e = super::reveal::exposed(ledger, &prep.test_keys, Some(&prep.partition_id))?;
+    let test = prep.test_rows();
+    let e = ledger.exposure(table, &test, prep.key, Some(&prep.partition_id))?;
     if e.rows > 0 {
         outcome.warnings.push(format!(
             "{} of {} test rows were already revealed in another partition (up to {} time(s), last on {}); their effective reveal count is {}, so this test partition is not fresh",
             super::reveal::count(e.rows),
-            super::reveal::count(prep.test_keys.len()),
+            super::reveal::count(test.len()),
             e.most,
             e.last,
             e.most.max(own as i64)

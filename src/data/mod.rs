@@ -212,12 +212,14 @@ impl Table {
 /// reordering columns keeps the identity; adding or changing a column changes it).
 pub type RowKey = [u8; 16];
 
-/// How a row's identity is formed. Identities are stored in ledgers, so a ledger keeps the
-/// version its partitions were made with (see `Ledger::identity`); both versions call the same
-/// rows equal.
+/// How a partition's rows are identified. Identities are stored in ledgers, and each
+/// partition names the version it was made with (in its stored settings), so identities are
+/// compared only within one version: a table's rows are identified again the way each stored
+/// partition identifies its own.
 ///
-/// - `V1`: SHA-256 of the cells' text: `probity-row\0`, then per column in name order the name,
-///   NUL, the cell's text (numbers in shortest round-trip form, missing as empty) and US (0x1f).
+/// - `V1`: SHA-256 of every cell's text: `probity-row\0`, then per column in name order the
+///   name, NUL, the cell's text (numbers in shortest round-trip form, missing as empty) and US
+///   (0x1f).
 /// - `V2`: the same rows told apart by the cells' values, without writing numbers as text:
 ///   `probity-row-v2\0`, then per column in name order its name (8-byte little-endian length,
 ///   then the bytes), then per column in name order the cell: 0x00 when missing; 0x01 and the
@@ -225,36 +227,70 @@ pub type RowKey = [u8; 16];
 ///   number's shortest round-trip text (so a column read as text and as numbers agrees, as in
 ///   V1); otherwise 0x02, the text's 8-byte little-endian length and its bytes.
 ///
-/// With a key column both versions hash `probity-row-key\0`, the key's name, NUL and its text.
+///   With a key column both hash `probity-row-key\0`, the key's name, NUL and its text.
+/// - `V3` (`identity`): the feature cells only, by column name, numbers to ten significant
+///   digits; and, with a key, the normalised key as a second identity. A row matches a stored
+///   one when either matches.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum Identity {
+    V1,
+    V2,
+    V3,
+}
+
+/// The versions that hash every cell of a row (`row_keys`).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Legacy {
     V1,
     V2,
 }
 
 impl Identity {
-    /// The version a new ledger uses.
-    pub const CURRENT: Identity = Identity::V2;
+    /// The version a new partition uses.
+    pub const CURRENT: Identity = Identity::V3;
 
     pub fn number(self) -> i64 {
         match self {
             Identity::V1 => 1,
             Identity::V2 => 2,
+            Identity::V3 => 3,
+        }
+    }
+
+    /// The version a partition's stored settings name (1 when they name none; `None` for a
+    /// version this probity does not know).
+    pub fn of_number(n: i64) -> Option<Identity> {
+        match n {
+            1 => Some(Identity::V1),
+            2 => Some(Identity::V2),
+            3 => Some(Identity::V3),
+            _ => None,
+        }
+    }
+
+    /// The whole-row version, for `row_keys`; `None` for version 3.
+    pub fn legacy(self) -> Option<Legacy> {
+        match self {
+            Identity::V1 => Some(Legacy::V1),
+            Identity::V2 => Some(Legacy::V2),
+            Identity::V3 => None,
         }
     }
 }
 
+/// Whole-row identities (versions 1 and 2) of `rows`: the key's when `key` is given, else
+/// every cell's.
 pub fn row_keys(
     table: &Table,
     key: Option<usize>,
     rows: &[usize],
     threads: usize,
-    identity: Identity,
+    identity: Legacy,
 ) -> Vec<RowKey> {
     let mut order: Vec<usize> = (0..table.columns.len()).collect();
     order.sort_by(|&a, &b| table.columns[a].name.cmp(&table.columns[b].name));
     // The header part of a V2 identity and each text level's cell bytes, once for all rows.
-    let v2 = (identity == Identity::V2 && key.is_none()).then(|| CellBytes::of(table, &order));
+    let v2 = (identity == Legacy::V2 && key.is_none()).then(|| CellBytes::of(table, &order));
     // Rows are independent: cut them into one contiguous run per thread, joined in order.
     let per = rows.len().div_ceil(threads.max(1)).max(4096);
     std::thread::scope(|s| {
@@ -802,15 +838,15 @@ mod tests {
         let t = p("c,b,a\n,x,2.5\n").unwrap();
         let hexed = |k: &RowKey| crate::spec::hex(k);
         assert_eq!(
-            hexed(&row_keys(&t, None, &[0], 1, Identity::V1)[0]),
+            hexed(&row_keys(&t, None, &[0], 1, Legacy::V1)[0]),
             "6f3c245c2661cd9ec5bb6cf6d52a4655"
         );
         assert_eq!(
-            hexed(&row_keys(&t, None, &[0], 1, Identity::V2)[0]),
+            hexed(&row_keys(&t, None, &[0], 1, Legacy::V2)[0]),
             "a837af1bb2f18a018c28ad7d2de99de9"
         );
         // With a key column, both versions hash the key's text.
-        for v in [Identity::V1, Identity::V2] {
+        for v in [Legacy::V1, Legacy::V2] {
             assert_eq!(
                 hexed(&row_keys(&t, Some(1), &[0], 1, v)[0]),
                 "f3df287cc36860339b767a9ce0b26779"
@@ -826,7 +862,7 @@ mod tests {
         .unwrap();
         assert!(matches!(t.columns[0].values, Values::Text { .. }));
         assert_eq!(
-            hexed(&row_keys(&t, None, &[1], 1, Identity::V2)[0]),
+            hexed(&row_keys(&t, None, &[1], 1, Legacy::V2)[0]),
             "a0f1a205310ced6fa0dc6bc0ed352342"
         );
         // Many rows (several blocks, several threads) give each row its own one-row key.
@@ -841,7 +877,7 @@ mod tests {
         }
         let t = p(&text).unwrap();
         let rows: Vec<usize> = (0..700).rev().step_by(2).collect();
-        for v in [Identity::V1, Identity::V2] {
+        for v in [Legacy::V1, Legacy::V2] {
             for threads in [1, 3] {
                 let all = row_keys(&t, None, &rows, threads, v);
                 for (k, &r) in all.iter().zip(&rows) {
@@ -869,7 +905,7 @@ mod tests {
         let ra: Vec<usize> = (0..a.n_rows()).collect();
         let rb: Vec<usize> = (0..b.n_rows()).collect();
         let mut equal = Vec::new();
-        for v in [Identity::V1, Identity::V2] {
+        for v in [Legacy::V1, Legacy::V2] {
             let (ka, kb) = (row_keys(&a, None, &ra, 1, v), row_keys(&b, None, &rb, 1, v));
             let pairs: Vec<(usize, usize)> = (0..ka.len())
                 .flat_map(|i| (0..kb.len()).map(move |j| (i, j)))

@@ -37,25 +37,6 @@ impl Sealed {
         self.partition.count(p)
     }
 
-    /// The identities of the test rows (`kept[i]` is the table row of position `i`). Hashes
-    /// only: the accounting needs them, and they carry no value of a row.
-    pub fn test_row_keys(
-        &self,
-        table: &crate::data::Table,
-        kept: &[usize],
-        key: Option<usize>,
-        threads: usize,
-        identity: crate::data::Identity,
-    ) -> Vec<crate::data::RowKey> {
-        let rows: Vec<usize> = self
-            .partition
-            .rows_in(Part::Test)
-            .iter()
-            .map(|&i| kept[i])
-            .collect();
-        crate::data::row_keys(table, key, &rows, threads, identity)
-    }
-
     /// Which kept rows are test rows (positions among the kept rows): membership only, for the
     /// accounting, as `codes` gives it; reading a test row's values still takes a permit.
     pub fn test_members(&self) -> Vec<usize> {

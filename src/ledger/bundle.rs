@@ -172,27 +172,18 @@ impl Ledger {
                 columns,
             ));
         }
-        // 2. One identity version per ledger: stored identities compare only within one.
-        let mut versions = self.identity_versions()?;
+        // 2. A partition both hold must be stored alike: each run's entry hashes its partition,
+        // so a merged run over a partition stored otherwise here (its rows identified by
+        // another version, say) could never verify.
         for (_, _, _, _, sections, columns) in &parsed {
             for ((name, rows), cols) in sections.iter().zip(columns) {
-                let at = cols.iter().position(|c| c == "settings");
-                let Some(at) = at.filter(|_| name == "partitions") else {
+                if name != "partitions" {
                     continue;
-                };
+                }
                 for row in rows {
-                    if let Some(Sql::Text(settings)) = row.get(at) {
-                        versions.insert(super::settings_identity(settings));
-                    }
+                    self.same_partition(cols, row)?;
                 }
             }
-        }
-        if versions.len() > 1 {
-            let list: Vec<String> = versions.iter().map(i64::to_string).collect();
-            return Err(Error::Input(format!(
-                "the bundle and this ledger form row identities differently (versions {}), so their test rows could not be compared; merge it into a ledger of its own version (a new ledger takes the bundle's); nothing was merged",
-                list.join(" and ")
-            )));
         }
         let path = self.path.clone();
         let fail = |e: rusqlite::Error| migrate::refuse_or_fail(&path, e, "merge");
@@ -247,6 +238,58 @@ impl Ledger {
         }
         tx.commit().map_err(fail)?;
         Ok((merged, skipped))
+    }
+}
+
+impl Ledger {
+    /// Refuse a bundle's partition row (its columns by name) that this ledger stores otherwise.
+    fn same_partition(&self, cols: &[String], row: &[Sql]) -> Result<()> {
+        let at = |c: &str| cols.iter().position(|x| x == c).and_then(|i| row.get(i));
+        let Some(Sql::Text(id)) = at("id") else {
+            return Err(Error::Integrity("a bundled partition has no id".into()));
+        };
+        let mut st = self
+            .conn
+            .prepare("SELECT * FROM partitions WHERE id = ?1")
+            .map_err(sql_err("merge"))?;
+        let names: Vec<String> = st.column_names().map(str::to_string).collect();
+        let stored: Option<Vec<Sql>> = st
+            .query_row([id], |r| {
+                (0..names.len()).map(|i| r.get::<_, Sql>(i)).collect()
+            })
+            .optional()
+            .map_err(sql_err("merge"))?;
+        let Some(stored) = stored else {
+            return Ok(());
+        };
+        let differs = names
+            .iter()
+            .zip(&stored)
+            .any(|(c, v)| at(c).is_none_or(|b| b != v));
+        if differs {
+            let version = |settings: Option<&Sql>| match settings {
+                Some(Sql::Text(s)) => super::settings_identity(s),
+                _ => 0,
+            };
+            let here = version(
+                names
+                    .iter()
+                    .position(|c| c == "settings")
+                    .and_then(|i| stored.get(i)),
+            );
+            let there = version(at("settings"));
+            return Err(Error::Input(format!(
+                "the bundle's partition {id} is stored differently in this ledger{}: runs over it could not be verified here; nothing was merged (merge it into a ledger that does not hold this partition)",
+                if here != there {
+                    format!(
+                        " (its rows identified by version {here} here, version {there} in the bundle)"
+                    )
+                } else {
+                    String::new()
+                }
+            )));
+        }
+        Ok(())
     }
 }
 

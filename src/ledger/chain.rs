@@ -85,10 +85,7 @@ pub fn section_queries(kind: &str) -> &'static [(&'static str, &'static str)] {
 /// Sections added after entries were first chained: hashed only when they hold rows, so every
 /// entry written before them keeps its hash (and an empty one adds nothing).
 pub fn sparse(section: &str) -> bool {
-    matches!(
-        section,
-        "uses" | "partition_keys" | "partition_development"
-    )
+    matches!(section, "uses" | "partition_keys" | "partition_development")
 }
 
 fn sql_err(context: &'static str) -> impl FnOnce(rusqlite::Error) -> Error {
@@ -197,9 +194,7 @@ fn stream_hash(
         if header {
             put(&mut h, b'S', name.as_bytes());
         }
-        if let Some((_, rows)) =
-            known.and_then(|k| k.partition.iter().find(|(n, _)| n == name))
-        {
+        if let Some((_, rows)) = known.and_then(|k| k.partition.iter().find(|(n, _)| n == name)) {
             if !header && !rows.keys.is_empty() {
                 put(&mut h, b'S', name.as_bytes());
             }

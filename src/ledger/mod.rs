@@ -4,6 +4,7 @@
 pub mod bundle;
 pub mod chain;
 pub mod migrate;
+pub mod rows;
 pub mod starts;
 
 use crate::error::{Error, Result};
@@ -362,7 +363,7 @@ impl Ledger {
             .map_err(fail)?;
         let prep = &out.prepared;
         let s = &prep.sealed;
-        let inserted = insert_partition(&tx, spec, table, prep, &prep.test_keys).map_err(fail)?;
+        let inserted = insert_partition(&tx, spec, table, prep, &prep.ids).map_err(fail)?;
         // Other partitions' test rows among this run's development rows, decided here, inside
         // the run's transaction, so a partition stored meanwhile is seen. A replay adds no
         // look: its scores are the original's.
@@ -382,15 +383,31 @@ impl Ledger {
         // The partition's rows are these identities when they went in as new, here or in this
         // connection's `record_partition` of the same partition (the same identities: the same
         // number of distinct ones); otherwise the chain reads them back.
-        let keys = sorted_keys(&prep.test_keys);
+        let keys = sorted_keys(&prep.ids.test);
         let recorded = self.fresh.take();
         let partition_known = (inserted
             || recorded
                 .as_ref()
                 .is_some_and(|(id, n)| *id == prep.partition_id && *n == distinct(&keys)))
-        .then(|| chain::PartitionRows {
-            id: &prep.partition_id,
-            keys: &keys,
+        .then(|| {
+            let mut known = vec![(
+                "partition_rows",
+                chain::PartitionRows {
+                    id: &prep.partition_id,
+                    keys: &keys,
+                },
+            )];
+            // Version 3 keeps its test rows' key identities beside them (sorted, each once).
+            if prep.identity == crate::data::Identity::V3 {
+                known.push((
+                    "partition_keys",
+                    chain::PartitionRows {
+                        id: &prep.partition_id,
+                        keys: &prep.ids.test_keys,
+                    },
+                ));
+            }
+            known
         });
         let model_json = serde_json::to_string(&out.refit)
             .map_err(|e| Error::Internal(format!("serialise model: {e}")))?;
@@ -599,9 +616,7 @@ impl Ledger {
         let fold_sink = |sink: &mut chain::RowSink| fold_rows(&mut |row| sink.row(row));
         let score_sink = |sink: &mut chain::RowSink| score_rows(&mut |row| sink.row(row));
         let mut known = chain::Known {
-            partition: partition_known
-                .map(|rows| vec![("partition_rows", rows)])
-                .unwrap_or_default(),
+            partition: partition_known.unwrap_or_default(),
             sections: Vec::new(),
         };
         if ordered {
@@ -630,9 +645,9 @@ impl Ledger {
         spec: &crate::spec::Spec,
         table: &crate::data::Table,
         prep: &crate::runner::Prepared,
-        test_keys: &[crate::data::RowKey],
+        ids: &crate::runner::Identities,
     ) -> Result<bool> {
-        self.bulk(|l| l.record_partition_rows(spec, table, prep, test_keys))
+        self.bulk(|l| l.record_partition_rows(spec, table, prep, ids))
     }
 
     fn record_partition_rows(
@@ -640,7 +655,7 @@ impl Ledger {
         spec: &crate::spec::Spec,
         table: &crate::data::Table,
         prep: &crate::runner::Prepared,
-        test_keys: &[crate::data::RowKey],
+        ids: &crate::runner::Identities,
     ) -> Result<bool> {
         let path = self.path.clone();
         let fail = |e: rusqlite::Error| migrate::refuse_or_fail(&path, e, "record partition");
@@ -653,11 +668,11 @@ impl Ledger {
             .conn
             .transaction_with_behavior(rusqlite::TransactionBehavior::Immediate)
             .map_err(fail)?;
-        let fresh = insert_partition(&tx, spec, table, prep, test_keys).map_err(fail)?;
+        let fresh = insert_partition(&tx, spec, table, prep, ids).map_err(fail)?;
         // Every row just written names this partition (one bound parameter), which exists.
         check_partition(&tx, &prep.partition_id)?;
         tx.commit().map_err(fail)?;
-        self.fresh = fresh.then(|| (prep.partition_id.clone(), distinct(&sorted_keys(test_keys))));
+        self.fresh = fresh.then(|| (prep.partition_id.clone(), distinct(&sorted_keys(&ids.test))));
         self.conn
             .pragma_update(None, "cache_size", -CACHE_KIB)
             .map_err(fail)?;
@@ -683,8 +698,13 @@ impl Ledger {
             )
             .map_err(fail)?;
         if !used {
-            tx.execute("DELETE FROM partition_rows WHERE partition_id = ?1", [id])
+            for table in ["partition_rows", "partition_keys", "partition_development"] {
+                tx.execute(
+                    &format!("DELETE FROM {table} WHERE partition_id = ?1"),
+                    [id],
+                )
                 .map_err(fail)?;
+            }
             tx.execute("DELETE FROM partitions WHERE id = ?1", [id])
                 .map_err(fail)?;
         }
@@ -885,6 +905,8 @@ impl Ledger {
         for t in [
             "partitions",
             "partition_rows",
+            "partition_keys",
+            "partition_development",
             "runs",
             "folds",
             "candidates",
@@ -898,6 +920,7 @@ impl Ledger {
             "notes",
             "chain",
             "run_starts",
+            "uses",
         ] {
             let n: i64 = self
                 .conn
@@ -1009,71 +1032,72 @@ impl Ledger {
         Ok((ids, out))
     }
 
-    /// For every row identity in a consulted partition: the most consultations (reveals and
-    /// development uses) of any partition holding it, and the time of the last.
-    /// Partitions other than `exclude` only (a partition's own count is its history).
+    /// How other partitions' consultations exposed some rows of a table (a partition's test
+    /// rows, for `run` and `reveal`): how many of them are test rows of a consulted partition
+    /// other than `exclude`, the most consultations (reveals and development uses) of any
+    /// partition holding one of them, and the time of the last. Each partition compares the
+    /// rows the way it identifies its own; `key` is the caller's key column.
     pub fn exposure(
         &self,
+        table: &crate::data::Table,
+        rows: &[usize],
+        key: Option<usize>,
         exclude: Option<&str>,
-    ) -> Result<BTreeMap<crate::data::RowKey, (i64, String)>> {
+    ) -> Result<crate::guard::consult::Exposure> {
+        let err = || sql_err("read exposure");
         let mut st = self
             .conn
             .prepare(
-                "SELECT pr.row_key, v.n, v.last FROM partition_rows pr
-                 JOIN (SELECT partition_id, count(*) AS n, max(at) AS last FROM (
-                         SELECT partition_id, revealed_at AS at FROM reveals
-                         UNION ALL SELECT u.partition_id, r.finished_at FROM uses u JOIN runs r ON r.id = u.run_id)
-                       GROUP BY partition_id) v
-                 ON v.partition_id = pr.partition_id WHERE pr.partition_id IS NOT ?1",
+                "SELECT partition_id, count(*), max(at) FROM (
+                     SELECT partition_id, revealed_at AS at FROM reveals
+                     UNION ALL SELECT u.partition_id, r.finished_at FROM uses u JOIN runs r ON r.id = u.run_id)
+                 WHERE partition_id IS NOT ?1 GROUP BY partition_id ORDER BY partition_id",
             )
-            .map_err(sql_err("read exposure"))?;
-        let mut out: BTreeMap<crate::data::RowKey, (i64, String)> = BTreeMap::new();
-        let rows = st
-            .query_map([exclude], |r| {
-                Ok((
-                    r.get::<_, Vec<u8>>(0)?,
-                    r.get::<_, i64>(1)?,
-                    r.get::<_, String>(2)?,
-                ))
-            })
-            .map_err(sql_err("read exposure"))?;
-        for row in rows {
-            let (key, n, last) = row.map_err(sql_err("read exposure"))?;
-            let Ok(k) = <crate::data::RowKey>::try_from(key.as_slice()) else {
+            .map_err(err())?;
+        let consulted: Vec<(String, i64, String)> = st
+            .query_map([exclude], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)))
+            .and_then(|rows| rows.collect())
+            .map_err(err())?;
+        let mut e = crate::guard::consult::Exposure::default();
+        if consulted.is_empty() {
+            return Ok(e);
+        }
+        let parts = rows::stored(&self.conn, |p| {
+            consulted
+                .binary_search_by(|c| c.0.as_str().cmp(&p.id))
+                .is_ok()
+        })?;
+        let mut ids = rows::TableIds::new(table, rows, key, crate::data::all_cores());
+        let mut most = vec![0i64; rows.len()];
+        for (id, hit) in rows::sealed_rows(&self.conn, &mut ids, &parts)? {
+            let Ok(c) = consulted.binary_search_by(|c| c.0.as_str().cmp(&id)) else {
                 continue;
             };
-            let e = out.entry(k).or_insert((0, String::new()));
-            e.0 = e.0.max(n);
-            if last > e.1 {
-                e.1 = last;
+            let (_, n, last) = &consulted[c];
+            for r in hit {
+                most[r] = most[r].max(*n);
+            }
+            if *last > e.last {
+                e.last = last.clone();
             }
         }
-        Ok(out)
+        e.rows = most.iter().filter(|m| **m > 0).count();
+        e.most = most.iter().copied().max().unwrap_or(0);
+        Ok(e)
     }
 
-    /// How this ledger forms row identities: `V1` while any partition stored without an
-    /// identity version in its settings (made before version 2) remains, else `V2`. Every
-    /// partition of a ledger has the same version, so stored identities compare with each
-    /// other and with those computed for it (`merge` refuses a bundle of the other version).
-    pub fn identity(&self) -> Result<crate::data::Identity> {
-        Ok(if self.identity_versions()?.contains(&1) {
-            crate::data::Identity::V1
-        } else {
-            crate::data::Identity::V2
-        })
-    }
-
-    /// The identity versions of the stored partitions, each once (none without partitions).
-    pub fn identity_versions(&self) -> Result<std::collections::BTreeSet<i64>> {
-        let mut st = self
+    /// The identity version of a stored partition (`None` when it is not stored).
+    pub fn partition_identity(&self, partition: &str) -> Result<Option<crate::data::Identity>> {
+        let settings: Option<String> = self
             .conn
-            .prepare("SELECT DISTINCT settings FROM partitions")
+            .query_row(
+                "SELECT settings FROM partitions WHERE id = ?1",
+                [partition],
+                |r| r.get(0),
+            )
+            .optional()
             .map_err(sql_err("read identity version"))?;
-        let settings = st
-            .query_map([], |r| r.get::<_, String>(0))
-            .and_then(|rows| rows.collect::<rusqlite::Result<Vec<_>>>())
-            .map_err(sql_err("read identity version"))?;
-        Ok(settings.iter().map(|s| settings_identity(s)).collect())
+        Ok(settings.and_then(|s| crate::data::Identity::of_number(settings_identity(&s))))
     }
 
     /// True when any consultation is stored (exposure checks are skipped otherwise).
@@ -1087,18 +1111,18 @@ impl Ledger {
             .map_err(sql_err("count reveals"))
     }
 
-    /// Partitions whose test rows include any of `keys`, with how many of them: (partition, rows),
-    /// by partition id. A key given twice counts twice.
-    ///
-    /// Rows are stored by (partition, identity) only, so each partition is searched on its own:
-    /// one lookup per distinct key when the keys are few beside the partition's rows, else one
-    /// pass over its rows in identity order beside the sorted keys. Either way the count is the
-    /// same; the choice only bounds the work by the smaller side.
-    pub fn sealed_partitions_holding(
+    /// For each stored partition holding some of `rows` of `table` among its test rows: which
+    /// of them (positions into `rows`). Each partition compares the rows the way it identifies
+    /// its own (by key or by feature cells from version 3 on); `key` is the caller's key column.
+    pub fn sealed_rows(
         &self,
-        keys: &[crate::data::RowKey],
-    ) -> Result<Vec<(String, i64)>> {
-        partitions_holding(&self.conn, keys, |_| true)
+        table: &crate::data::Table,
+        rows: &[usize],
+        key: Option<usize>,
+    ) -> Result<Vec<(String, Vec<usize>)>> {
+        let parts = rows::stored(&self.conn, |_| true)?;
+        let mut ids = rows::TableIds::new(table, rows, key, crate::data::all_cores());
+        rows::sealed_rows(&self.conn, &mut ids, &parts)
     }
 
     /// The stored partitions other than the run's own whose test rows the run develops on,
@@ -1308,28 +1332,72 @@ impl Ledger {
         Ok(out)
     }
 
-    /// Revealed rows that appear in other partitions' test sets: one sentence each.
+    /// Test rows of consulted partitions that are test rows of other partitions too: one
+    /// sentence each. Partitions of the same data file are compared by row position; others
+    /// by stored identity (which meet only within one identity version and recipe).
     /// (Development uses are listed with their partitions.)
     pub fn overlap_findings(&self) -> Result<Vec<String>> {
         let err = || sql_err("find overlaps");
-        // The identities of every revealed partition, then one pass over all stored test rows
-        // (in primary-key order) counts, per pair of partitions, the rows they share.
+        // Every partition's data file, and for the consulted ones their assignment.
+        let files: BTreeMap<String, String> = {
+            let mut st = self
+                .conn
+                .prepare("SELECT id, data_sha256 FROM partitions")
+                .map_err(err())?;
+            st.query_map([], |r| Ok((r.get(0)?, r.get(1)?)))
+                .and_then(|rows| rows.collect())
+                .map_err(err())?
+        };
         let revealed: Vec<String> = {
             let mut st = self
                 .conn
-                .prepare("SELECT DISTINCT partition_id FROM reveals ORDER BY partition_id")
+                .prepare(
+                    "SELECT partition_id FROM reveals UNION SELECT u.partition_id FROM uses u
+                     JOIN partitions p ON p.id = u.partition_id ORDER BY 1",
+                )
                 .map_err(err())?;
             st.query_map([], |r| r.get(0))
                 .and_then(|rows| rows.collect())
                 .map_err(err())?
         };
+        let file = |id: &str| files.get(id).map(String::as_str);
+        let mut shared: BTreeMap<(usize, String), i64> = BTreeMap::new();
+        // Partitions of the same data file share rows by position, whatever their identities.
+        let assignment = |id: &str| -> Result<Vec<u8>> {
+            self.conn
+                .query_row(
+                    "SELECT assignment FROM partitions WHERE id = ?1",
+                    [id],
+                    |r| r.get(0),
+                )
+                .map_err(err())
+        };
+        let test = Part::Test.code();
+        for (a, id) in revealed.iter().enumerate() {
+            let mine = assignment(id)?;
+            for (other, _) in files
+                .iter()
+                .filter(|(o, f)| *o != id && Some(f.as_str()) == file(id))
+            {
+                let theirs = assignment(other)?;
+                let n = mine
+                    .iter()
+                    .zip(&theirs)
+                    .filter(|(x, y)| **x == test && **y == test)
+                    .count() as i64;
+                if n > 0 {
+                    shared.insert((a, other.clone()), n);
+                }
+            }
+        }
+        // Other files: the identities of every consulted partition, then one pass over all
+        // stored test rows (in primary-key order) counts, per pair, the rows they share.
         // (identity, index in `revealed`), sorted: the revealed partitions holding a row.
         let mut index: Vec<(crate::data::RowKey, usize)> = Vec::new();
         for (a, id) in revealed.iter().enumerate() {
             index.extend(self.partition_row_keys(id)?.into_iter().map(|k| (k, a)));
         }
         index.sort_unstable();
-        let mut shared: BTreeMap<(usize, String), i64> = BTreeMap::new();
         if !index.is_empty() {
             let mut st = self
                 .conn
@@ -1348,7 +1416,7 @@ impl Ledger {
                         Some(b) => b,
                         None => b.insert(row.get(0).map_err(err())?),
                     };
-                    if revealed[a] != *b {
+                    if file(&revealed[a]) != file(b) {
                         *shared.entry((a, b.clone())).or_insert(0) += 1;
                     }
                 }
@@ -1358,7 +1426,7 @@ impl Ledger {
             .into_iter()
             .map(|((a, b), n)| {
                 format!(
-                    "{n} test rows of revealed partition {} are also test rows of partition {b}: its test score is not fresh",
+                    "{n} test rows of consulted partition {} are also test rows of partition {b}: its test score is not fresh",
                     revealed[a]
                 )
             })
@@ -1714,10 +1782,6 @@ impl Ledger {
 /// The page cache of a connection, and of `record_partition`'s transaction (KiB).
 const CACHE_KIB: i64 = 65536;
 const RECORD_CACHE_KIB: i64 = 2048;
-/// `sealed_partitions_holding` looks keys up one by one while their count times this is below a
-/// partition's test rows, and passes over the partition's rows otherwise (a lookup costs a few
-/// page visits; a row of a pass, a fraction of one).
-const PROBE_COST: i64 = 16;
 
 /// Rows that refer to a row that is not there, over the whole ledger (SQLite's own check of
 /// every foreign key): one break per table and missing parent table, `kind` naming the table
@@ -1826,86 +1890,6 @@ fn json_str(s: &str) -> Value {
     Value::String(s.to_string())
 }
 
-/// Partitions (those `keep` keeps, given (id, data SHA-256)) whose test rows include any of
-/// `keys`, with how many of them: (partition, rows), by partition id. A key given twice counts
-/// twice.
-///
-/// Rows are stored by (partition, identity) only, so each partition is searched on its own:
-/// one lookup per distinct key when the keys are few beside the partition's rows, else one
-/// pass over its rows in identity order beside the sorted keys. Either way the count is the
-/// same; the choice only bounds the work by the smaller side.
-fn partitions_holding(
-    conn: &Connection,
-    keys: &[crate::data::RowKey],
-    keep: impl Fn(&(&str, &str)) -> bool,
-) -> Result<Vec<(String, i64)>> {
-    let mut sorted = keys.to_vec();
-    sorted.sort_unstable();
-    // Distinct keys with how often each was given.
-    let mut distinct: Vec<(crate::data::RowKey, i64)> = Vec::new();
-    for k in sorted {
-        match distinct.last_mut() {
-            Some((last, n)) if *last == k => *n += 1,
-            _ => distinct.push((k, 1)),
-        }
-    }
-    let err = sql_err("find sealed rows");
-    let parts: Vec<(String, i64)> = {
-        let mut st = conn
-            .prepare("SELECT id, n_test, data_sha256 FROM partitions ORDER BY id")
-            .map_err(err)?;
-        let all: Vec<(String, i64, String)> = st
-            .query_map([], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)))
-            .and_then(|rows| rows.collect())
-            .map_err(sql_err("find sealed rows"))?;
-        all.into_iter()
-            .filter(|(id, _, sha)| keep(&(id.as_str(), sha.as_str())))
-            .map(|(id, n, _)| (id, n))
-            .collect()
-    };
-    let mut probe = conn
-        .prepare(
-            "SELECT EXISTS (SELECT 1 FROM partition_rows WHERE partition_id = ?1 AND row_key = ?2)",
-        )
-        .map_err(sql_err("find sealed rows"))?;
-    let mut scan = conn
-        .prepare("SELECT row_key FROM partition_rows WHERE partition_id = ?1 ORDER BY row_key")
-        .map_err(sql_err("find sealed rows"))?;
-    let mut out = Vec::new();
-    for (id, n_test) in parts {
-        let mut hits = 0;
-        if (distinct.len() as i64).saturating_mul(PROBE_COST) < n_test {
-            for (k, n) in &distinct {
-                let found: bool = probe
-                    .query_row(params![id, &k[..]], |r| r.get(0))
-                    .map_err(sql_err("find sealed rows"))?;
-                if found {
-                    hits += n;
-                }
-            }
-        } else {
-            let mut rows = scan.query([&id]).map_err(sql_err("find sealed rows"))?;
-            let mut at = 0;
-            while let Some(row) = rows.next().map_err(sql_err("find sealed rows"))? {
-                let stored = row.get_ref(0).map_err(sql_err("find sealed rows"))?;
-                let Ok(stored) = stored.as_blob() else {
-                    continue;
-                };
-                while at < distinct.len() && distinct[at].0[..] < *stored {
-                    at += 1;
-                }
-                if at < distinct.len() && distinct[at].0[..] == *stored {
-                    hits += distinct[at].1;
-                }
-            }
-        }
-        if hits > 0 {
-            out.push((id, hits));
-        }
-    }
-    Ok(out)
-}
-
 /// See `Ledger::development_overlaps`.
 fn development_overlaps(
     conn: &Connection,
@@ -1914,51 +1898,36 @@ fn development_overlaps(
 ) -> Result<Vec<crate::guard::consult::Overlapping>> {
     let err = || sql_err("find development overlaps");
     let own = prep.partition_id.as_str();
-    let others: Vec<(String, String)> = {
-        let mut st = conn
-            .prepare(
-                "SELECT id, data_sha256 FROM partitions WHERE id != ?1 AND n_test > 0 ORDER BY id",
-            )
-            .map_err(err())?;
-        st.query_map([own], |r| Ok((r.get(0)?, r.get(1)?)))
-            .and_then(|rows| rows.collect())
-            .map_err(err())?
-    };
+    let others = rows::stored(conn, |p| p.id != own && p.n_test > 0)?;
     if others.is_empty() {
         return Ok(Vec::new());
     }
-    // The run's development rows, as rows of the data file.
-    let dev: Vec<usize> = prep
-        .sealed
-        .development()
-        .iter()
-        .map(|&i| prep.rows[i])
-        .collect();
-    let mut hits: Vec<(String, i64)> = Vec::new();
+    let dev = prep.development_rows();
+    let mut hits: Vec<(String, usize)> = Vec::new();
+    // The same file: by position, exact whatever rows look alike.
     let mut st = conn
         .prepare("SELECT assignment FROM partitions WHERE id = ?1")
         .map_err(err())?;
-    for (id, _) in others.iter().filter(|(_, sha)| *sha == table.sha256) {
-        let assignment: Vec<u8> = st.query_row([id], |r| r.get(0)).map_err(err())?;
+    for p in others.iter().filter(|p| p.data_sha256 == table.sha256) {
+        let assignment: Vec<u8> = st.query_row([&p.id], |r| r.get(0)).map_err(err())?;
         let n = dev
             .iter()
             .filter(|&&r| assignment.get(r) == Some(&Part::Test.code()))
             .count();
         if n > 0 {
-            hits.push((id.clone(), n as i64));
+            hits.push((p.id.clone(), n));
         }
     }
-    if others.iter().any(|(_, sha)| *sha != table.sha256) {
-        let keys = crate::data::row_keys(
-            table,
-            prep.key,
-            &dev,
-            crate::data::all_cores(),
-            prep.identity,
-        );
-        hits.extend(partitions_holding(conn, &keys, |(_, sha)| {
-            *sha != table.sha256
-        })?);
+    // Other files (edited, grown, reshaped): by row identity, each partition its own way.
+    let elsewhere: Vec<rows::Stored> = others
+        .into_iter()
+        .filter(|p| p.data_sha256 != table.sha256)
+        .collect();
+    if !elsewhere.is_empty() {
+        let mut ids = rows::TableIds::new(table, &dev, prep.key, crate::data::all_cores());
+        for (id, rows) in rows::sealed_rows(conn, &mut ids, &elsewhere)? {
+            hits.push((id, rows.len()));
+        }
         hits.sort();
     }
     let mut out = Vec::with_capacity(hits.len());
@@ -1967,58 +1936,63 @@ fn development_overlaps(
             seal: seal_of(conn, &partition)?,
             history: history_of(conn, &partition)?,
             partition,
-            rows: rows as usize,
+            rows,
         });
     }
     Ok(out)
 }
 
 /// Earlier partitions whose development rows hold some of this run's test rows, with the runs
-/// that developed on them. Same data file: by position. (Other files need the earlier
-/// partitions' development identities, which only version-3 partitions store.)
+/// that developed on them. The same data file: by position. Another file: by the development
+/// identities a version-3 partition stores (an older one stores none, and is passed over).
 fn earlier_developments(
     conn: &Connection,
     table: &crate::data::Table,
     prep: &crate::runner::Prepared,
 ) -> Result<Vec<crate::guard::consult::Earlier>> {
     let err = || sql_err("find earlier development rows");
-    let test: Vec<usize> = prep
-        .sealed
-        .test_members()
-        .iter()
-        .map(|&i| prep.rows[i])
-        .collect();
+    let test = prep.test_rows();
     if test.is_empty() {
         return Ok(Vec::new());
     }
-    let mut st = conn
-        .prepare("SELECT id, assignment FROM partitions WHERE id != ?1 AND data_sha256 = ?2 AND EXISTS (SELECT 1 FROM runs r WHERE r.partition_id = partitions.id) ORDER BY id")
+    let mut used = conn
+        .prepare("SELECT EXISTS (SELECT 1 FROM runs WHERE partition_id = ?1)")
         .map_err(err())?;
-    let same: Vec<(String, Vec<u8>)> = st
-        .query_map(params![prep.partition_id, table.sha256], |r| {
-            Ok((r.get(0)?, r.get(1)?))
-        })
-        .and_then(|rows| rows.collect())
+    let mut earlier = Vec::new();
+    for p in rows::stored(conn, |p| p.id != prep.partition_id)? {
+        if used.query_row([&p.id], |r| r.get(0)).map_err(err())? {
+            earlier.push(p);
+        }
+    }
+    let mut assignment_of = conn
+        .prepare("SELECT assignment FROM partitions WHERE id = ?1")
         .map_err(err())?;
     let mut runs_of = conn
         .prepare("SELECT id FROM runs WHERE partition_id = ?1 ORDER BY id")
         .map_err(err())?;
+    let mut ids = rows::TableIds::new(table, &test, prep.key, crate::data::all_cores());
     let mut out = Vec::new();
-    for (id, assignment) in same {
-        let dev = [Part::Train.code(), Part::Validation.code()];
-        let rows = test
-            .iter()
-            .filter(|&&r| assignment.get(r).is_some_and(|c| dev.contains(c)))
-            .count();
+    for p in &earlier {
+        let rows = if p.data_sha256 == table.sha256 {
+            let assignment: Vec<u8> = assignment_of
+                .query_row([&p.id], |r| r.get(0))
+                .map_err(err())?;
+            let dev = [Part::Train.code(), Part::Validation.code()];
+            test.iter()
+                .filter(|&&r| assignment.get(r).is_some_and(|c| dev.contains(c)))
+                .count()
+        } else {
+            rows::developed(conn, &mut ids, p)?.unwrap_or(0)
+        };
         if rows == 0 {
             continue;
         }
         let runs: Vec<i64> = runs_of
-            .query_map([&id], |r| r.get(0))
+            .query_map([&p.id], |r| r.get(0))
             .and_then(|rows| rows.collect())
             .map_err(err())?;
         out.push(crate::guard::consult::Earlier {
-            partition: id,
+            partition: p.id.clone(),
             runs,
             rows,
         });
@@ -2070,36 +2044,22 @@ fn history_of(conn: &Connection, partition: &str) -> Result<crate::guard::Histor
     Ok(h)
 }
 
-/// The rules a partition was sealed with: its stored seal; for a partition stored before seals
-/// were kept, the `[guard]` of the first run stored on it (count mode with a budget of 1 when
-/// that spec cannot be read).
+/// The rules a partition was sealed with: the `[guard]` of its earliest run (by start time,
+/// then id), whose spec text every ledger holding that run stores and chains, so ledgers that
+/// exchange runs agree on it. Count mode with a budget of 1 (the defaults) while no run is
+/// stored on it yet, or when that spec's `[guard]` cannot be read.
 fn seal_of(conn: &Connection, partition: &str) -> Result<crate::guard::consult::Seal> {
-    let settings: Option<String> = conn
+    let first: Option<(i64, String)> = conn
         .query_row(
-            "SELECT settings FROM partitions WHERE id = ?1",
+            "SELECT id, spec_text FROM runs WHERE partition_id = ?1 ORDER BY started_at, id LIMIT 1",
             [partition],
-            |r| r.get(0),
+            |r| Ok((r.get(0)?, r.get(1)?)),
         )
         .optional()
         .map_err(sql_err("read seal"))?;
-    let first: Option<(i64, String, String)> = conn
-        .query_row(
-            "SELECT id, spec_text, spec_path FROM runs WHERE partition_id = ?1 ORDER BY id LIMIT 1",
-            [partition],
-            |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)),
-        )
-        .optional()
-        .map_err(sql_err("read seal"))?;
-    let stored = settings
-        .and_then(|s| serde_json::from_str::<Value>(&s).ok())
-        .and_then(|v| crate::spec::GuardSpec::from_json(&v["seal"]));
-    let rules = stored.or_else(|| {
-        first.as_ref().and_then(|(_, text, path)| {
-            let path = Path::new(path);
-            let base = path.parent().unwrap_or(Path::new(""));
-            crate::spec::parse(text, path, base).ok().map(|s| s.guard)
-        })
-    });
+    let rules = first
+        .as_ref()
+        .and_then(|(_, text)| crate::spec::stored_guard(text));
     Ok(crate::guard::consult::Seal {
         rules: rules.unwrap_or(crate::spec::GuardSpec {
             reveals: 1,
@@ -2154,15 +2114,16 @@ pub fn settings_identity(settings: &str) -> i64 {
         .unwrap_or(1)
 }
 
-/// A partition's stored settings without what is not a split setting (the identity version,
-/// the seal): the split settings alone.
+/// A partition's stored settings without what is not a split setting (the identity version
+/// and recipe): the split settings alone.
 fn split_only(settings: &str) -> String {
     match serde_json::from_str::<serde_json::Value>(settings) {
         Ok(serde_json::Value::Object(mut m))
-            if m.contains_key("identity") || m.contains_key("seal") =>
+            if ["identity", "recipe"].iter().any(|k| m.contains_key(*k)) =>
         {
-            m.remove("identity");
-            m.remove("seal");
+            for k in ["identity", "recipe"] {
+                m.remove(k);
+            }
             serde_json::Value::Object(m).to_string()
         }
         _ => settings.to_string(),
@@ -2170,17 +2131,19 @@ fn split_only(settings: &str) -> String {
 }
 
 /// A partition's stored settings: the canonical split settings; from identity version 2 on,
-/// `"identity"` with the version its test rows' identities were formed with; and `"seal"`, the
-/// `[guard]` rules of the run that stores it first, which every later consultation follows.
-/// (The partition's id hashes the split settings alone, so it depends on neither.)
-pub fn partition_settings(spec: &crate::spec::Spec, identity: crate::data::Identity) -> String {
+/// `"identity"` with the version its rows' identities were formed with, and from version 3
+/// `"recipe"`, the columns they read. (The partition's id hashes the split settings alone, so
+/// it depends on neither.)
+pub fn partition_settings(spec: &crate::spec::Spec, prep: &crate::runner::Prepared) -> String {
     let canonical = spec.split_canonical();
     match serde_json::from_str::<serde_json::Value>(&canonical) {
         Ok(serde_json::Value::Object(mut m)) => {
-            if identity != crate::data::Identity::V1 {
-                m.insert("identity".into(), identity.number().into());
+            if prep.identity != crate::data::Identity::V1 {
+                m.insert("identity".into(), prep.identity.number().into());
             }
-            m.insert("seal".into(), spec.guard.to_json());
+            if prep.identity == crate::data::Identity::V3 {
+                m.insert("recipe".into(), prep.recipe.to_json());
+            }
             serde_json::Value::Object(m).to_string()
         }
         _ => canonical,
@@ -2193,15 +2156,16 @@ fn insert_partition(
     spec: &crate::spec::Spec,
     table: &crate::data::Table,
     prep: &crate::runner::Prepared,
-    test_keys: &[crate::data::RowKey],
+    ids: &crate::runner::Identities,
 ) -> rusqlite::Result<bool> {
     let s = &prep.sealed;
+    let test_keys = &ids.test;
     tx.execute(
         "INSERT OR IGNORE INTO partitions (id, data_sha256, settings, assignment, n_train, n_validation, n_test) VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7)",
         params![
             prep.partition_id,
             table.sha256,
-            partition_settings(spec, prep.identity),
+            partition_settings(spec, prep),
             prep.assignment,
             s.count(Part::Train) as i64,
             s.count(Part::Validation) as i64,
@@ -2241,6 +2205,9 @@ fn insert_partition(
                 tx.execute(&many(chunk.len()), rusqlite::params_from_iter(vals.iter()))
             }?;
         }
+    }
+    if fresh && prep.identity == crate::data::Identity::V3 {
+        rows::insert_extras(tx, &prep.partition_id, ids, prep.key.is_some())?;
     }
     Ok(fresh)
 }
@@ -2361,7 +2328,7 @@ mod tests {
             let prep = &out.prepared;
             assert!(
                 ledger
-                    .record_partition(&spec, &table, prep, &prep.test_keys)
+                    .record_partition(&spec, &table, prep, &prep.ids)
                     .unwrap()
             );
         }
@@ -2405,7 +2372,7 @@ mod tests {
             ledger
                 .conn
                 .execute(
-                    "INSERT INTO partitions VALUES (?1, 'd', 's', x'00', 0, 0, ?2)",
+                    "INSERT INTO partitions VALUES (?1, 'd' || ?1, 's', x'00', 0, 0, ?2)",
                     params![id, rows.len() as i64],
                 )
                 .unwrap();
@@ -2449,13 +2416,42 @@ mod tests {
                 *by_query.entry(p).or_insert(0) += 1;
             }
         }
-        let got = ledger.sealed_partitions_holding(&keys).unwrap();
+        // Each partition searched on its own, as `rows::sealed_rows` does.
+        let given: Vec<Option<crate::data::RowKey>> = keys.iter().copied().map(Some).collect();
+        let mut got = Vec::new();
+        for (id, rows) in &parts {
+            let m = rows::members(
+                &ledger.conn,
+                "partition_rows",
+                "row_key",
+                id,
+                rows.len() as i64,
+                &given,
+            )
+            .unwrap();
+            let n = m.iter().filter(|m| **m).count() as i64;
+            if n > 0 {
+                got.push((id.to_string(), n));
+            }
+        }
         assert_eq!(got, by_query.into_iter().collect::<Vec<_>>());
         assert_eq!(
             got,
             vec![("p1".into(), 60), ("p2".into(), 10), ("p4".into(), 10)]
         );
-        assert_eq!(ledger.sealed_partitions_holding(&[]).unwrap(), vec![]);
+        assert!(
+            rows::members(
+                &ledger.conn,
+                "partition_rows",
+                "row_key",
+                "p1",
+                1000,
+                &[None]
+            )
+            .unwrap()
+            .iter()
+            .all(|m| !m)
+        );
         let mut st = ledger
             .conn
             .prepare(
@@ -2483,7 +2479,7 @@ mod tests {
         let findings = ledger.overlap_findings().unwrap();
         let expected: Vec<String> = pairs
             .iter()
-            .map(|(a, b, n)| format!("{n} test rows of revealed partition {a} are also test rows of partition {b}: its test score is not fresh"))
+            .map(|(a, b, n)| format!("{n} test rows of consulted partition {a} are also test rows of partition {b}: its test score is not fresh"))
             .collect();
         assert_eq!(findings, expected);
         let _ = std::fs::remove_dir_all(&dir);
@@ -2590,59 +2586,83 @@ mod tests {
         }
     }
 
-    /// A ledger forms row identities one way: a new one as `Identity::CURRENT` (V2), named in
-    /// its partitions' settings; one whose partitions predate version 2 (no version in their
-    /// settings) keeps V1. The stored identities are those of the partition's version, the
-    /// chain holds, and a bundle merges only into a ledger of its own version.
+    /// Each partition keeps the identity version it was made with: a new one is
+    /// `Identity::CURRENT` (version 3, with its recipe), named in its settings; one stored before
+    /// version 2 names none and is version 1. The stored identities are those of its version,
+    /// the chain holds, and a bundle whose partition is stored here in another version is
+    /// refused, while one of a partition this ledger lacks merges.
     #[test]
-    fn a_ledger_keeps_the_identity_version_of_its_partitions() {
+    fn each_partition_keeps_its_identity_version() {
         use crate::data::Identity;
         let as_v1 = |out: &mut RunOutcome, table: &crate::data::Table| {
             out.prepared.identity = Identity::V1;
-            out.prepared.test_keys = out.prepared.hash_test_keys(table, 2);
+            out.prepared.ids = out.prepared.identities(table, 2);
         };
         let (mut old, old_dir) = stored_edited("ident-v1", 1, false, false, as_v1);
-        let (mut new, new_dir) = stored_run("ident-v2");
-        let stored = |l: &Ledger| -> (String, Vec<crate::data::RowKey>) {
-            let settings: String = l
+        let (mut new, new_dir) = stored_run("ident-v3");
+        let stored = |l: &Ledger| -> (String, String, Vec<crate::data::RowKey>) {
+            let (id, settings): (String, String) = l
                 .conn
-                .query_row("SELECT settings FROM partitions", [], |r| r.get(0))
+                .query_row("SELECT id, settings FROM partitions", [], |r| {
+                    Ok((r.get(0)?, r.get(1)?))
+                })
                 .unwrap();
-            let id: String = l
-                .conn
-                .query_row("SELECT id FROM partitions", [], |r| r.get(0))
-                .unwrap();
-            (settings, l.partition_row_keys(&id).unwrap())
+            let keys = l.partition_row_keys(&id).unwrap();
+            (id, settings, keys)
         };
-        let (old_settings, old_keys) = stored(&old);
-        let (new_settings, new_keys) = stored(&new);
-        assert_eq!(old.identity().unwrap(), Identity::V1);
-        assert_eq!(new.identity().unwrap(), Identity::V2);
+        let (old_id, old_settings, old_keys) = stored(&old);
+        let (new_id, new_settings, new_keys) = stored(&new);
+        assert_eq!(
+            old_id, new_id,
+            "the partition's id does not depend on the version"
+        );
+        assert_eq!(old.partition_identity(&old_id).unwrap(), Some(Identity::V1));
+        assert_eq!(new.partition_identity(&new_id).unwrap(), Some(Identity::V3));
         assert!(!old_settings.contains("identity"), "{old_settings}");
-        assert!(new_settings.contains("\"identity\":2"), "{new_settings}");
+        assert!(
+            new_settings.contains("\"identity\":3")
+                && new_settings.contains("\"recipe\":{\"columns\":[\"x1\",\"x2\"],\"key\":null}"),
+            "{new_settings}"
+        );
         // A run read back names its version apart from the split settings.
-        for (l, v) in [(&old, 1), (&new, 2)] {
+        for (l, v) in [(&old, 1), (&new, 3)] {
             let d = l.run(1).unwrap().unwrap();
             assert_eq!(d.identity, v);
-            assert_eq!(d.split_settings, split_only(&old_settings));
-            assert!(!d.split_settings.contains("seal"), "{}", d.split_settings);
+            assert_eq!(d.split_settings, old_settings);
         }
-        // The same test rows, identified each way.
+        // The same test rows, identified each way; version 3 also keeps the development rows'
+        // identities (240 rows, all distinct here), and no key identities without a key.
         assert_eq!(old_keys.len(), new_keys.len());
         assert!(old_keys.iter().all(|k| !new_keys.contains(k)));
+        let dev: Vec<u8> = new
+            .conn
+            .query_row("SELECT row_ids FROM partition_development", [], |r| {
+                r.get(0)
+            })
+            .unwrap();
+        assert_eq!(dev.len(), 240 * 16);
+        let keys: i64 = new
+            .conn
+            .query_row("SELECT count(*) FROM partition_keys", [], |r| r.get(0))
+            .unwrap();
+        assert_eq!(keys, 0);
         for l in [&old, &new] {
             let (entries, breaks) = l.verify().unwrap();
             assert_eq!((entries, breaks.len()), (1, 0), "{breaks:?}");
         }
-        // Bundles: not into a ledger of the other version; into an empty one, which takes it.
+        // Bundles: not into a ledger that stores the partition in another version; into an
+        // empty one, which keeps the bundle's version for it.
         let bundle = old.pack(&[1], "2026-12-03T00:00:02Z").unwrap();
         let e = new.merge(&bundle).unwrap_err().to_string();
-        assert!(e.contains("versions 1 and 2"), "{e}");
+        assert!(e.contains("version 3 here, version 1 in the bundle"), "{e}");
         assert_eq!(new.verify().unwrap().0, 1);
         let mut empty = Ledger::open(&old_dir.join("empty.sqlite"), true).unwrap();
-        assert_eq!(empty.identity().unwrap(), Identity::V2);
         assert_eq!(empty.merge(&bundle).unwrap(), (1, 0));
-        assert_eq!(empty.identity().unwrap(), Identity::V1);
+        assert_eq!(
+            empty.partition_identity(&old_id).unwrap(),
+            Some(Identity::V1)
+        );
+        assert!(empty.verify().unwrap().1.is_empty());
         let back = new.pack(&[1], "2026-12-03T00:00:03Z").unwrap();
         assert!(old.merge(&back).is_err());
         drop((old, new, empty));
@@ -2699,7 +2719,7 @@ mod tests {
         ledger
             .conn
             .execute_batch(
-                "PRAGMA foreign_keys = OFF; DELETE FROM partition_rows; DELETE FROM partitions;",
+                "PRAGMA foreign_keys = OFF; DELETE FROM partition_rows; DELETE FROM partition_development; DELETE FROM partitions;",
             )
             .unwrap();
         let tx = ledger.conn.transaction().unwrap();

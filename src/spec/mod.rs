@@ -433,6 +433,23 @@ pub fn load(path: &Path) -> Result<Spec> {
     parse(&text, path, &base)
 }
 
+/// The `[guard]` rules of a stored spec text, checked as `parse` checks them, without the
+/// rest of the spec (whose files, such as an external command's inputs, may be gone); `None`
+/// when the text or its `[guard]` does not read.
+pub fn stored_guard(text: &str) -> Option<GuardSpec> {
+    let raw: RawSpec = toml::from_str(text).ok()?;
+    let check = Check {
+        text,
+        file: Path::new(""),
+    };
+    let task = match raw.task.as_ref().map(|t| t.get_ref().as_str()) {
+        Some("classification") => Task::Classification,
+        _ => Task::Regression,
+    };
+    let select = check.select(raw.select.as_ref(), task).ok()?;
+    check.guard(raw.guard.as_ref(), select.metric).ok()
+}
+
 /// Validate spec text. `file` names it in errors; `base` resolves the data path.
 pub fn parse(text: &str, file: &Path, base: &Path) -> Result<Spec> {
     let raw: RawSpec = toml::from_str(text).map_err(|e| toml_error(text, file, &e))?;

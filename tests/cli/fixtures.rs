@@ -52,3 +52,42 @@ pub fn small_dir(name: &str) -> Dir {
     d.write("small.toml", SMALL_SPEC);
     d
 }
+
+/// Store a run of `spec_file` (in `d`, on its data) into the ledger at `ledger` with the library,
+/// its partition's rows identified as `identity` says: a ledger as an earlier release made it.
+/// Returns the partition's id.
+pub fn library_run(
+    d: &Dir,
+    spec_file: &str,
+    ledger: &std::path::Path,
+    identity: probity::data::Identity,
+) -> String {
+    let spec_path = d.path.join(spec_file);
+    let spec = probity::spec::load(&spec_path).unwrap();
+    let data = d.path.join(&spec.data.path);
+    let table = probity::data::load(&data, &[], 2).unwrap();
+    let mut out = probity::runner::run(&spec, &table, 2).unwrap();
+    out.prepared.identity = identity;
+    out.prepared.ids = out.prepared.identities(&table, 2);
+    if let Some(dir) = ledger.parent() {
+        std::fs::create_dir_all(dir).unwrap();
+    }
+    let mut l = probity::ledger::Ledger::open(ledger, true).unwrap();
+    let meta = probity::ledger::RunMeta {
+        started_at: "2026-12-01T00:00:00Z".into(),
+        finished_at: "2026-12-01T00:00:01Z".into(),
+        tool_version: "0.1.0".into(),
+        user: "u".into(),
+        host: "h".into(),
+        threads: 2,
+        spec_path: spec_path.display().to_string(),
+        data_path: data.display().to_string(),
+        note: None,
+        tool_commit: "c".into(),
+        target_triple: "t".into(),
+        replay: None,
+        start: None,
+    };
+    l.write_run(&spec, &table, &out, &meta).unwrap();
+    out.prepared.partition_id
+}
