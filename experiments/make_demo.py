@@ -4,6 +4,9 @@ Writes, next to this script:
   bays.csv           weekly records of 24 glasshouse bays over 104 weeks (2,496 rows), with
                      the yield and whether a fungal outbreak was recorded
   heating-trial.csv  a 60-row trial of day-temperature set points in one bay
+  bays-next-week.csv the 24 bays' planned climate for week 105, without outcomes: new rows to
+                     predict (every row of bays.csv belongs to some partition, and a run's
+                     sealed test rows are not predicted uncounted)
 
 Deterministic: a splitmix64 generator of our own (not `random`, whose algorithms may change),
 Box-Muller normals, and every value rounded to 2-3 decimals when written, so the bytes do not
@@ -84,6 +87,26 @@ def bays(rng, outbreak_rng):
     return header, rows
 
 
+def next_week(rng):
+    """Week 105's settings for every bay, from a stream of its own (bays.csv is unchanged)."""
+    varieties = ["aurora", "brisa", "cobalt"]
+    week = 105
+    season = math.sin(2.0 * math.pi * (week - 10) / 52.0)
+    rows = []
+    for i in range(24):
+        b = f"B{i + 1:02d}"
+        light = 21.0 + 9.0 * season + 2.5 * rng.normal()
+        temp_day = 23.0 + 2.5 * season + 1.6 * rng.normal()
+        temp_night = 16.5 + 1.5 * season + 1.0 * rng.normal()
+        co2 = 420.0 + 380.0 * rng.uniform()
+        humidity = 74.0 + 6.0 * rng.normal()
+        irrigation = max(18.0 + 6.0 * season + 2.0 * rng.normal(), 2.0)
+        rows.append([f"{b}-W{week:03d}", b, str(week), varieties[i % 3], f"{light:.2f}", f"{temp_day:.2f}",
+                     f"{temp_night:.2f}", f"{co2:.0f}", f"{humidity:.1f}", f"{irrigation:.2f}"])
+    header = ["record", "bay", "week", "variety", "light", "temp_day", "temp_night", "co2", "humidity", "irrigation"]
+    return header, rows
+
+
 def trial(rng):
     rows = []
     for i in range(60):
@@ -103,4 +126,5 @@ def write(name, header, rows):
 if __name__ == "__main__":
     write("bays.csv", *bays(SplitMix(20261201), SplitMix(20261202)))
     write("heating-trial.csv", *trial(SplitMix(7)))
-    print("wrote bays.csv and heating-trial.csv")
+    write("bays-next-week.csv", *next_week(SplitMix(20261203)))
+    print("wrote bays.csv, heating-trial.csv and bays-next-week.csv")

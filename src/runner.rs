@@ -43,6 +43,8 @@ pub struct Prepared {
     pub warnings: Vec<String>,
     /// The key column, if any (row identities use it).
     pub key: Option<usize>,
+    /// The target column (labelled identities read it).
+    pub target_column: usize,
     /// What a version-3 identity reads: the key's name and the feature names.
     pub recipe: crate::data::identity::Recipe,
     /// The identities of the partition's rows, as the ledger stores them (filled by the run
@@ -65,9 +67,11 @@ pub struct Identities {
     /// The test rows': version 3, their feature identities; versions 1 and 2, their whole-row
     /// ones. In identity order (a repeat kept: rows that look alike).
     pub test: Vec<crate::data::RowKey>,
+    /// Version 3: the test rows' labelled identities (features and target), sorted, each once.
+    pub test_labels: Vec<crate::data::RowKey>,
     /// Version 3 with a key: the test rows' key identities, sorted, each once.
     pub test_keys: Vec<crate::data::RowKey>,
-    /// Version 3: the development rows' feature identities, sorted, each once.
+    /// Version 3: the development rows' labelled identities, sorted, each once.
     pub development: Vec<crate::data::RowKey>,
     /// Version 3 with a key: the development rows' key identities, sorted, each once.
     pub development_keys: Vec<crate::data::RowKey>,
@@ -94,33 +98,37 @@ impl Prepared {
     /// beside the grid. Versions 1 and 2 (a partition stored by an earlier probity) keep their
     /// test rows' identities only.
     pub fn identities(&self, table: &Table, threads: usize) -> Identities {
-        use crate::data::identity::{feature_ids, key_ids};
+        use crate::data::identity::{key_ids, labelled_ids};
         let test = self.test_rows();
         let Some(legacy) = self.identity.legacy() else {
             let dev = self.development_rows();
-            let keys = |rows: &[usize]| -> Vec<crate::data::RowKey> {
-                let mut k: Vec<_> = self
-                    .key
-                    .map(|c| key_ids(table, c, rows, threads))
-                    .unwrap_or_default()
-                    .into_iter()
-                    .flatten()
-                    .collect();
+            let sorted = |mut k: Vec<crate::data::RowKey>, distinct: bool| {
                 k.sort_unstable();
-                k.dedup();
+                if distinct {
+                    k.dedup();
+                }
                 k
             };
-            let features = |rows: &[usize]| -> Vec<crate::data::RowKey> {
-                let mut f = feature_ids(table, &self.recipe, rows, threads).unwrap_or_default();
-                f.sort_unstable();
-                f
+            let keys = |rows: &[usize]| -> Vec<crate::data::RowKey> {
+                let k = self
+                    .key
+                    .map(|c| key_ids(table, c, rows, threads))
+                    .unwrap_or_default();
+                sorted(k.into_iter().flatten().collect(), true)
             };
-            let mut development = features(&dev);
-            development.dedup();
+            // The recipe's columns are this table's features, so both always form.
+            let labelled = |rows: &[usize]| {
+                labelled_ids(table, &self.recipe, self.target_column, rows, threads)
+                    .unwrap_or_default()
+            };
+            let (test_features, test_labels): (Vec<_>, Vec<_>) =
+                labelled(&test).into_iter().unzip();
+            let development: Vec<_> = labelled(&dev).into_iter().map(|p| p.1).collect();
             return Identities {
-                test: features(&test),
+                test: sorted(test_features, false),
+                test_labels: sorted(test_labels, true),
                 test_keys: keys(&test),
-                development,
+                development: sorted(development, true),
                 development_keys: keys(&dev),
             };
         };
@@ -577,6 +585,7 @@ fn prepare_unkeyed(spec: &Spec, table: &Table) -> Result<Prepared> {
         dropped,
         warnings,
         key,
+        target_column: target,
         recipe,
         ids: Identities::default(),
         identity: crate::data::Identity::CURRENT,

@@ -154,7 +154,26 @@ fn guard_sealed_rows(
     // The key column by the spec's key name; each partition then compares the rows its own
     // way (by key, or by feature cells whatever the file's other columns).
     let key = model.key.as_deref().and_then(|k| input.index_of(k));
-    let hits = ledger.sealed_rows(input, &rows, key)?;
+    // The features the model reads: its predictions of rows that agree on them are its
+    // predictions of the sealed rows.
+    let features: Vec<String> = model
+        .encoder
+        .features
+        .iter()
+        .map(|f| match f {
+            crate::models::encode::Feature::Numeric { name, .. }
+            | crate::models::encode::Feature::Categorical { name, .. } => name.clone(),
+        })
+        .collect();
+    let features = if features.is_empty() {
+        ledger
+            .partition_recipe(&d.summary.partition_id)?
+            .map(|r| r.columns().to_vec())
+            .unwrap_or_default()
+    } else {
+        features
+    };
+    let hits = ledger.sealed_rows(input, &rows, key, input.index_of(&model.target), features)?;
     if hits.is_empty() {
         return Ok(());
     }

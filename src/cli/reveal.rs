@@ -122,7 +122,13 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
     // For the question only: the history that counts is read again inside the write.
     let before = ledger.partition_history(&partition)?;
     let test_rows = prep.test_rows();
-    let exposure = ledger.exposure(&table, &test_rows, prep.key, Some(&partition))?;
+    let exposure = ledger.exposure(
+        &table,
+        &test_rows,
+        prep.key,
+        prep.target_column,
+        Some(&partition),
+    )?;
     let n = test_rows.len();
     // Ask first: the question shows what has been spent already.
     if !a.yes {

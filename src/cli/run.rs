@@ -245,7 +245,13 @@ fn exposure_warnings(
         ));
     }
     let test = prep.test_rows();
-    let e = ledger.exposure(table, &test, prep.key, Some(&prep.partition_id))?;
+    let e = ledger.exposure(
+        table,
+        &test,
+        prep.key,
+        prep.target_column,
+        Some(&prep.partition_id),
+    )?;
     if e.rows > 0 {
         outcome.warnings.push(format!(
             "{} of {} test rows were already revealed in another partition (up to {} time(s), last on {}); their effective reveal count is {}, so this test partition is not fresh",

@@ -53,6 +53,15 @@
 //! unless the value sits at a rounding boundary of the 10th digit; a change in the 9th digit
 //! always changes it.
 //!
+//! # Labelled identity
+//!
+//! A row with its target: the first 16 bytes of the SHA-256 of the bytes `probity-labelled-v3`
+//! and a NUL byte, the row's feature identity (16 bytes), and its target cell written as a
+//! feature cell is (`0x00` when missing, a number's canonical form, or a text). It tells the
+//! same record from a record that only looks alike to a model (two bays with the same
+//! climate, say): a run's rows always carry their targets, so the ledger compares them
+//! labelled, while a prediction's rows, whose targets may be absent, are compared by features.
+//!
 //! # Key identity
 //!
 //! A row whose key cell is missing (or empty once trimmed of ASCII whitespace) has no key
@@ -68,6 +77,7 @@ use sha2::{Digest, Sha256};
 use std::sync::OnceLock;
 
 const ROW_TAG: &[u8] = b"probity-row-v3\0";
+const LABEL_TAG: &[u8] = b"probity-labelled-v3\0";
 const KEY_TAG: &[u8] = b"probity-key-v3\0";
 
 /// The powers of ten the table holds: P(j) for j in -SPAN..=SPAN, wider than any decade a
@@ -345,6 +355,42 @@ pub fn feature_ids(
     Some(in_chunks(rows, threads, |part| plan.ids(part)))
 }
 
+/// Feature and labelled identities of `rows`, in order: (feature, labelled) per row, with the
+/// target read from `target` (a column of `table`). `None` when a recipe column is not in the
+/// table.
+pub fn labelled_ids(
+    table: &Table,
+    recipe: &Recipe,
+    target: usize,
+    rows: &[usize],
+    threads: usize,
+) -> Option<Vec<(RowKey, RowKey)>> {
+    let features = feature_ids(table, recipe, rows, threads)?;
+    let column = &table.columns[target];
+    let levels: Vec<Vec<u8>> = match &column.values {
+        Values::Text { levels, .. } => levels.iter().map(|l| text_cell(l)).collect(),
+        Values::Numeric(_) => Vec::new(),
+    };
+    let pairs: Vec<(usize, RowKey)> = rows.iter().copied().zip(features).collect();
+    Some(in_chunks(&pairs, threads, |part| {
+        part.iter()
+            .map(|&(r, f)| {
+                let mut h = Sha256::new();
+                h.update(LABEL_TAG);
+                h.update(f);
+                match &column.values {
+                    Values::Numeric(v) if v[r].is_nan() => h.update([0u8]),
+                    Values::Numeric(v) => h.update(canonical_number(v[r]).bytes()),
+                    Values::Text { codes, .. } => {
+                        h.update(levels.get(codes[r] as usize).map_or(&[0u8][..], |c| c))
+                    }
+                }
+                (f, first16(h))
+            })
+            .collect()
+    }))
+}
+
 /// What all rows share: the hash state after the header, and how each column's cells are
 /// written.
 struct Plan<'a> {
@@ -512,10 +558,10 @@ fn first16(h: Sha256) -> RowKey {
 
 /// `work` over contiguous runs of `rows`, one per thread (the last on the calling thread),
 /// joined in row order; rows are independent, so the result is the same for any count.
-fn in_chunks<T: Send>(
-    rows: &[usize],
+fn in_chunks<I: Sync, T: Send>(
+    rows: &[I],
     threads: usize,
-    work: impl Fn(&[usize]) -> Vec<T> + Sync,
+    work: impl Fn(&[I]) -> Vec<T> + Sync,
 ) -> Vec<T> {
     let per = rows.len().div_ceil(threads.max(1)).max(MIN_CHUNK);
     if rows.len() <= per {

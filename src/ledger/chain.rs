@@ -62,6 +62,10 @@ pub fn section_queries(kind: &str) -> &'static [(&'static str, &'static str)] {
                 "SELECT * FROM uses WHERE run_id = ?1 ORDER BY partition_id",
             ),
             (
+                "partition_labels",
+                "SELECT * FROM partition_labels WHERE partition_id = (SELECT partition_id FROM runs WHERE id = ?1) ORDER BY label_id",
+            ),
+            (
                 "partition_keys",
                 "SELECT * FROM partition_keys WHERE partition_id = (SELECT partition_id FROM runs WHERE id = ?1) ORDER BY key_id",
             ),
@@ -264,7 +268,8 @@ impl PartitionRows<'_> {
 /// recomputes every entry from the stored rows, so a difference would still show.
 #[derive(Default)]
 pub struct Known<'a> {
-    /// A fresh partition's `partition_rows` and `partition_keys` sections, by section name.
+    /// A fresh partition's `partition_rows`, `partition_labels` and `partition_keys` sections,
+    /// by section name.
     pub partition: Vec<(&'static str, PartitionRows<'a>)>,
     /// (section name, a function that gives the section's rows to the sink in the section's
     /// order). Never the entry's first section (whose absence means a missing entry).

@@ -397,15 +397,21 @@ impl Ledger {
                     keys: &keys,
                 },
             )];
-            // Version 3 keeps its test rows' key identities beside them (sorted, each once).
+            // Version 3 keeps its test rows' labelled and key identities beside them (sorted,
+            // each once).
             if prep.identity == crate::data::Identity::V3 {
-                known.push((
-                    "partition_keys",
-                    chain::PartitionRows {
-                        id: &prep.partition_id,
-                        keys: &prep.ids.test_keys,
-                    },
-                ));
+                for (name, keys) in [
+                    ("partition_labels", &prep.ids.test_labels),
+                    ("partition_keys", &prep.ids.test_keys),
+                ] {
+                    known.push((
+                        name,
+                        chain::PartitionRows {
+                            id: &prep.partition_id,
+                            keys,
+                        },
+                    ));
+                }
             }
             known
         });
@@ -698,7 +704,12 @@ impl Ledger {
             )
             .map_err(fail)?;
         if !used {
-            for table in ["partition_rows", "partition_keys", "partition_development"] {
+            for table in [
+                "partition_rows",
+                "partition_labels",
+                "partition_keys",
+                "partition_development",
+            ] {
                 tx.execute(
                     &format!("DELETE FROM {table} WHERE partition_id = ?1"),
                     [id],
@@ -905,6 +916,7 @@ impl Ledger {
         for t in [
             "partitions",
             "partition_rows",
+            "partition_labels",
             "partition_keys",
             "partition_development",
             "runs",
@@ -1036,12 +1048,14 @@ impl Ledger {
     /// rows, for `run` and `reveal`): how many of them are test rows of a consulted partition
     /// other than `exclude`, the most consultations (reveals and development uses) of any
     /// partition holding one of them, and the time of the last. Each partition compares the
-    /// rows the way it identifies its own; `key` is the caller's key column.
+    /// rows the way it identifies its own (`rows::sealed_rows`, the rows labelled with their
+    /// `target` column); `key` is the caller's key column.
     pub fn exposure(
         &self,
         table: &crate::data::Table,
         rows: &[usize],
         key: Option<usize>,
+        target: usize,
         exclude: Option<&str>,
     ) -> Result<crate::guard::consult::Exposure> {
         let err = || sql_err("read exposure");
@@ -1067,9 +1081,32 @@ impl Ledger {
                 .binary_search_by(|c| c.0.as_str().cmp(&p.id))
                 .is_ok()
         })?;
-        let mut ids = rows::TableIds::new(table, rows, key, crate::data::all_cores());
+        // The same file by position; others by identity.
+        let mut hits: Vec<(String, Vec<usize>)> = Vec::new();
+        for p in parts.iter().filter(|p| p.data_sha256 == table.sha256) {
+            let assignment: Vec<u8> = self
+                .conn
+                .query_row(
+                    "SELECT assignment FROM partitions WHERE id = ?1",
+                    [&p.id],
+                    |r| r.get(0),
+                )
+                .map_err(err())?;
+            let at: Vec<usize> = (0..rows.len())
+                .filter(|&i| assignment.get(rows[i]) == Some(&Part::Test.code()))
+                .collect();
+            if !at.is_empty() {
+                hits.push((p.id.clone(), at));
+            }
+        }
+        let elsewhere: Vec<rows::Stored> = parts
+            .into_iter()
+            .filter(|p| p.data_sha256 != table.sha256)
+            .collect();
+        let mut ids = rows::TableIds::new(table, rows, key, Some(target), None);
+        hits.extend(rows::sealed_rows(&self.conn, &mut ids, &elsewhere)?);
         let mut most = vec![0i64; rows.len()];
-        for (id, hit) in rows::sealed_rows(&self.conn, &mut ids, &parts)? {
+        for (id, hit) in hits {
             let Ok(c) = consulted.binary_search_by(|c| c.0.as_str().cmp(&id)) else {
                 continue;
             };
@@ -1084,6 +1121,15 @@ impl Ledger {
         e.rows = most.iter().filter(|m| **m > 0).count();
         e.most = most.iter().copied().max().unwrap_or(0);
         Ok(e)
+    }
+
+    /// The recipe of a stored version-3 partition (`None` for an older one or none).
+    pub fn partition_recipe(
+        &self,
+        partition: &str,
+    ) -> Result<Option<crate::data::identity::Recipe>> {
+        let parts = rows::stored(&self.conn, |p| p.id == partition)?;
+        Ok(parts.into_iter().next().and_then(|p| p.recipe))
     }
 
     /// The identity version of a stored partition (`None` when it is not stored).
@@ -1112,16 +1158,20 @@ impl Ledger {
     }
 
     /// For each stored partition holding some of `rows` of `table` among its test rows: which
-    /// of them (positions into `rows`). Each partition compares the rows the way it identifies
-    /// its own (by key or by feature cells from version 3 on); `key` is the caller's key column.
+    /// of them (positions into `rows`), for `predict`: by key, by features and target when the
+    /// file has the `target` column, and by features for partitions whose recipe holds every
+    /// feature of the predicting `model` (`rows::sealed_rows`). `key` is the model's key
+    /// column, for partitions of identity versions 1 and 2.
     pub fn sealed_rows(
         &self,
         table: &crate::data::Table,
         rows: &[usize],
         key: Option<usize>,
+        target: Option<usize>,
+        model: Vec<String>,
     ) -> Result<Vec<(String, Vec<usize>)>> {
         let parts = rows::stored(&self.conn, |_| true)?;
-        let mut ids = rows::TableIds::new(table, rows, key, crate::data::all_cores());
+        let mut ids = rows::TableIds::new(table, rows, key, target, Some(model));
         rows::sealed_rows(&self.conn, &mut ids, &parts)
     }
 
@@ -1924,7 +1974,7 @@ fn development_overlaps(
         .filter(|p| p.data_sha256 != table.sha256)
         .collect();
     if !elsewhere.is_empty() {
-        let mut ids = rows::TableIds::new(table, &dev, prep.key, crate::data::all_cores());
+        let mut ids = rows::TableIds::new(table, &dev, prep.key, Some(prep.target_column), None);
         for (id, rows) in rows::sealed_rows(conn, &mut ids, &elsewhere)? {
             hits.push((id, rows.len()));
         }
@@ -1970,7 +2020,7 @@ fn earlier_developments(
     let mut runs_of = conn
         .prepare("SELECT id FROM runs WHERE partition_id = ?1 ORDER BY id")
         .map_err(err())?;
-    let mut ids = rows::TableIds::new(table, &test, prep.key, crate::data::all_cores());
+    let mut ids = rows::TableIds::new(table, &test, prep.key, Some(prep.target_column), None);
     let mut out = Vec::new();
     for p in &earlier {
         let rows = if p.data_sha256 == table.sha256 {
@@ -2420,15 +2470,8 @@ mod tests {
         let given: Vec<Option<crate::data::RowKey>> = keys.iter().copied().map(Some).collect();
         let mut got = Vec::new();
         for (id, rows) in &parts {
-            let m = rows::members(
-                &ledger.conn,
-                "partition_rows",
-                "row_key",
-                id,
-                rows.len() as i64,
-                &given,
-            )
-            .unwrap();
+            let m = rows::members(&ledger.conn, rows::Set::Rows, id, rows.len() as i64, &given)
+                .unwrap();
             let n = m.iter().filter(|m| **m).count() as i64;
             if n > 0 {
                 got.push((id.to_string(), n));
@@ -2440,17 +2483,10 @@ mod tests {
             vec![("p1".into(), 60), ("p2".into(), 10), ("p4".into(), 10)]
         );
         assert!(
-            rows::members(
-                &ledger.conn,
-                "partition_rows",
-                "row_key",
-                "p1",
-                1000,
-                &[None]
-            )
-            .unwrap()
-            .iter()
-            .all(|m| !m)
+            rows::members(&ledger.conn, rows::Set::Rows, "p1", 1000, &[None])
+                .unwrap()
+                .iter()
+                .all(|m| !m)
         );
         let mut st = ledger
             .conn
@@ -2636,7 +2672,7 @@ mod tests {
         assert!(old_keys.iter().all(|k| !new_keys.contains(k)));
         let dev: Vec<u8> = new
             .conn
-            .query_row("SELECT row_ids FROM partition_development", [], |r| {
+            .query_row("SELECT label_ids FROM partition_development", [], |r| {
                 r.get(0)
             })
             .unwrap();
@@ -2719,7 +2755,7 @@ mod tests {
         ledger
             .conn
             .execute_batch(
-                "PRAGMA foreign_keys = OFF; DELETE FROM partition_rows; DELETE FROM partition_development; DELETE FROM partitions;",
+                "PRAGMA foreign_keys = OFF; DELETE FROM partition_rows; DELETE FROM partition_labels; DELETE FROM partition_development; DELETE FROM partitions;",
             )
             .unwrap();
         let tx = ledger.conn.transaction().unwrap();

@@ -509,3 +509,352 @@ fn mechanisms_release_only_their_answers_everywhere() {
     assert_ne!(noisy, exact_score(&d, 1, "accuracy"));
     assert_eq!(plotted(&d), vec![(1, Some(noisy))]);
 }
+
+/// A small CSV editor for the evasion cases: the header and the rows as cells.
+struct Csv {
+    header: Vec<String>,
+    rows: Vec<Vec<String>>,
+}
+
+impl Csv {
+    fn read(text: &str) -> Csv {
+        let mut lines = text.lines();
+        let split = |l: &str| l.split(',').map(str::to_string).collect::<Vec<_>>();
+        let header = split(lines.next().unwrap());
+        Csv {
+            header,
+            rows: lines.map(split).collect(),
+        }
+    }
+    fn text(&self) -> String {
+        let mut out = self.header.join(",") + "\n";
+        for r in &self.rows {
+            out.push_str(&r.join(","));
+            out.push('\n');
+        }
+        out
+    }
+    fn at(&self, name: &str) -> usize {
+        self.header.iter().position(|h| h == name).unwrap()
+    }
+    fn drop(mut self, name: &str) -> Csv {
+        let i = self.at(name);
+        self.header.remove(i);
+        for r in &mut self.rows {
+            r.remove(i);
+        }
+        self
+    }
+    fn rename(mut self, from: &str, to: &str) -> Csv {
+        let i = self.at(from);
+        self.header[i] = to.into();
+        self
+    }
+    fn map(mut self, name: &str, f: impl Fn(&str) -> String) -> Csv {
+        let i = self.at(name);
+        for r in &mut self.rows {
+            r[i] = f(&r[i]);
+        }
+        self
+    }
+    fn add(mut self, name: &str, f: impl Fn(usize) -> String) -> Csv {
+        self.header.push(name.into());
+        for (n, r) in self.rows.iter_mut().enumerate() {
+            r.push(f(n));
+        }
+        self
+    }
+    fn keep(mut self, f: impl Fn(&Csv, &[String]) -> bool) -> Csv {
+        let rows = std::mem::take(&mut self.rows);
+        self.rows = rows.into_iter().filter(|r| f(&self, r)).collect();
+        self
+    }
+}
+
+/// diabetes.csv with a key column `patient` (P0001 ...), the reference's `part` column kept.
+fn keyed_diabetes() -> Csv {
+    Csv::read(&std::fs::read_to_string(reference("diabetes.csv")).unwrap())
+        .add("patient", |n| format!("P{:04}", n + 1))
+}
+
+fn spec(data: &str, key: Option<&str>, split: &str) -> String {
+    format!(
+        "name = \"d\"\ntask = \"regression\"\n[data]\npath = \"{data}\"\ntarget = \"y\"\n{}ignore = [\"part\"]\n[split]\n{split}\n[[model]]\nkind = \"ridge\"\nlambda = [1.0, 10.0]\n",
+        key.map_or(String::new(), |k| format!("key = \"{k}\"\n"))
+    )
+}
+
+/// The sealed test rows of run 1, as rows of the file it ran on (from its stored assignment).
+fn sealed_rows_of(d: &Dir, csv: &Csv) -> Csv {
+    let c = rusqlite::Connection::open(d.ledger()).unwrap();
+    let assignment: Vec<u8> = c
+        .query_row(
+            "SELECT p.assignment FROM partitions p JOIN runs r ON r.partition_id = p.id WHERE r.id = 1",
+            [],
+            |r| r.get(0),
+        )
+        .unwrap();
+    Csv {
+        header: csv.header.clone(),
+        rows: csv
+            .rows
+            .iter()
+            .enumerate()
+            .filter(|(n, _)| assignment[*n] == b't')
+            .map(|(_, r)| r.clone())
+            .collect(),
+    }
+}
+
+/// `predict` of run 1 on `file` must be refused, naming the partition and its 88 rows.
+fn refused(d: &Dir, file: &str, partition: &str, case: &str) {
+    let before = d.counts();
+    let r = d.probity(&["predict", "1", "--input", file, "--output", "p.csv"]);
+    assert_eq!(r.code(), 2, "{case}: {}", r.stderr());
+    assert!(
+        r.stderr().contains(&format!(
+            "88 rows are test rows of sealed partition {partition}"
+        )),
+        "{case}: {}",
+        r.stderr()
+    );
+    assert!(!d.path.join("p.csv").exists(), "{case}");
+    assert_eq!(d.counts(), before, "{case}");
+}
+
+/// With a key, `predict` recognises the sealed rows whatever the file does to the target
+/// column, the key column or the keys' spelling: by the key when the file has it (found by
+/// the spec's key name, normalised), by the feature cells otherwise.
+#[test]
+fn predict_recognises_keyed_sealed_rows_through_ordinary_edits() {
+    let d = Dir::new("predict-keyed");
+    let csv = keyed_diabetes();
+    d.write("k.csv", &csv.text());
+    d.write(
+        "k.toml",
+        &spec(
+            "k.csv",
+            Some("patient"),
+            "method = \"random\"\nseed = 7\ntest = 0.2\nfolds = 5",
+        ),
+    );
+    d.probity(&["run", "k.toml"]).expect(0);
+    let p = partition_of(&d, "1");
+    let sealed = || sealed_rows_of(&d, &keyed_diabetes());
+    let cases: Vec<(&str, Csv)> = vec![
+        ("the target dropped", sealed().drop("y")),
+        (
+            "the key and the target dropped",
+            sealed().drop("y").drop("patient"),
+        ),
+        ("the target renamed", sealed().rename("y", "Yield_kg")),
+        (
+            "the keys in lower case",
+            sealed().drop("y").map("patient", |k| k.to_lowercase()),
+        ),
+        (
+            "the keys prefixed",
+            sealed().drop("y").map("patient", |k| format!("2027-{k}")),
+        ),
+        (
+            "the key column renamed",
+            sealed().drop("y").rename("patient", "patient_id"),
+        ),
+    ];
+    for (case, file) in cases {
+        d.write("edited.csv", &file.text());
+        refused(&d, "edited.csv", &p, case);
+    }
+}
+
+/// Without a key, `predict` recognises the sealed rows by their feature cells: a junk column,
+/// a dropped non-feature column, a renamed or nudged target, or a feature nudged by 1e-12 (far
+/// below the ten significant digits a number is compared to) changes nothing.
+#[test]
+fn predict_recognises_unkeyed_sealed_rows_through_ordinary_edits() {
+    let d = Dir::new("predict-unkeyed");
+    d.copy(&reference("diabetes.csv"), "d.csv");
+    d.write(
+        "d.toml",
+        &spec(
+            "d.csv",
+            None,
+            "method = \"random\"\nseed = 7\ntest = 0.2\nfolds = 5",
+        ),
+    );
+    d.probity(&["run", "d.toml"]).expect(0);
+    let p = partition_of(&d, "1");
+    let base = || Csv::read(&std::fs::read_to_string(reference("diabetes.csv")).unwrap());
+    let sealed = || sealed_rows_of(&d, &base());
+    let nudge = |by: f64| move |v: &str| format!("{}", v.parse::<f64>().unwrap() + by);
+    let cases: Vec<(&str, Csv)> = vec![
+        ("bmi + 1e-12", sealed().map("bmi", nudge(1e-12))),
+        (
+            "a junk column",
+            sealed().add("junk", |n| format!("{}", n % 7)),
+        ),
+        ("the ignored column dropped", sealed().drop("part")),
+        ("the target renamed", sealed().rename("y", "Y")),
+        ("the target + 1e-9", sealed().map("y", nudge(1e-9))),
+        ("the target dropped", sealed().drop("y")),
+    ];
+    for (case, file) in cases {
+        d.write("edited.csv", &file.text());
+        refused(&d, "edited.csv", &p, case);
+    }
+    // What it does not catch, by design: a feature changed in its first digits is another row.
+    let moved = sealed().map("bmi", nudge(0.5));
+    d.write("moved.csv", &moved.text());
+    d.probity(&["predict", "1", "--input", "moved.csv", "--output", "p.csv"])
+        .expect(0);
+}
+
+/// Edits that a later run makes to the file do not reset the sealed rows' exposure: renaming
+/// the key column, prefixing the keys or adding a constant column, the later run on a new seed
+/// still develops on the sealed rows, and is counted.
+#[test]
+fn edited_files_do_not_reset_exposure() {
+    type Edit = Box<dyn Fn(Csv) -> Csv>;
+    let edits: Vec<(&str, Edit, &str)> = vec![
+        (
+            "the key column renamed",
+            Box::new(|c| c.rename("patient", "pid")),
+            "pid",
+        ),
+        (
+            "the keys prefixed",
+            Box::new(|c| c.map("patient", |k| format!("X-{k}"))),
+            "patient",
+        ),
+        (
+            "a constant column added",
+            Box::new(|c| c.add("site", |_| "north".into())),
+            "patient",
+        ),
+    ];
+    for (case, edit, key) in edits {
+        let d = Dir::new("exposure-edits");
+        d.write("k.csv", &keyed_diabetes().text());
+        d.write(
+            "k.toml",
+            &spec(
+                "k.csv",
+                Some("patient"),
+                "method = \"random\"\nseed = 7\ntest = 0.2\nfolds = 5",
+            ),
+        );
+        d.probity(&["run", "k.toml"]).expect(0);
+        let p = partition_of(&d, "1");
+        d.write("e.csv", &edit(keyed_diabetes()).text());
+        let mut text = spec(
+            "e.csv",
+            Some(key),
+            "method = \"random\"\nseed = 8\ntest = 0.2\nfolds = 5",
+        );
+        if case == "a constant column added" {
+            text = text.replace("ignore = [\"part\"]", "ignore = [\"part\", \"site\"]");
+        }
+        d.write("e.toml", &text);
+        let j = d.probity(&["run", "e.toml", "--json"]).expect(0).json();
+        let found = warnings(&j)
+            .iter()
+            .find(|w| {
+                w.contains(&format!(
+                    "development rows are sealed test rows of partition {p}"
+                ))
+            })
+            .cloned()
+            .unwrap_or_else(|| panic!("{case}: no development use in {:?}", warnings(&j)));
+        let n: usize = found.split(' ').next().unwrap().parse().unwrap();
+        // Seed 8 puts about four fifths of run 1's 88 test rows among its development rows.
+        assert!(n > 50 && n < 88, "{case}: {found}");
+        let a = d.probity(&["audit", "--json"]).expect(0).json();
+        let part = a["partitions"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .find(|x| x["id"] == p.as_str())
+            .unwrap()
+            .clone();
+        assert_eq!(part["development_uses"][0]["run"], 2, "{case}");
+    }
+}
+
+/// The column-split form of the same look: a copy of the file whose `part` column turns the
+/// sealed rows' `test` into `validation` is another file, and its rows are still recognised
+/// (by their feature cells: the split column is not a feature).
+#[test]
+fn a_column_split_that_relabels_sealed_rows_is_counted() {
+    let d = Dir::new("column-relabel");
+    let csv = Csv::read(&std::fs::read_to_string(reference("diabetes.csv")).unwrap())
+        .keep(|c, r| r[c.at("part")] != "test");
+    let sealed = csv.map("part", |p| {
+        if p == "validation" {
+            "test".into()
+        } else {
+            p.into()
+        }
+    });
+    d.write("s.csv", &sealed.text());
+    let relabelled = Csv::read(&sealed.text()).map("part", |p| {
+        if p == "test" {
+            "validation".into()
+        } else {
+            p.into()
+        }
+    });
+    d.write("v.csv", &relabelled.text());
+    let column = |file: &str| {
+        format!(
+            "name = \"d\"\ntask = \"regression\"\n[data]\npath = \"{file}\"\ntarget = \"y\"\n[split]\nmethod = \"column\"\ncolumn = \"part\"\nfolds = 5\n[[model]]\nkind = \"ridge\"\nlambda = [10.0]\n"
+        )
+    };
+    d.write("s.toml", &column("s.csv"));
+    d.write("v.toml", &column("v.csv"));
+    d.probity(&["run", "s.toml"]).expect(0);
+    let p = partition_of(&d, "1");
+    let j = d.probity(&["run", "v.toml", "--json"]).expect(0).json();
+    assert!(
+        warnings(&j).iter().any(|w| w.starts_with(&format!(
+            "88 of 354 development rows are sealed test rows of partition {p}"
+        ))),
+        "{:?}",
+        warnings(&j)
+    );
+    let a = d.probity(&["audit", "--json"]).expect(0).json();
+    assert_eq!(a["partitions"][0]["development_uses"][0]["rows"], 88);
+}
+
+/// Two of the co-operative's demo files share a column (`temp_day`) and a target name: the
+/// heating trial's rows are told apart by that one feature, and one bay's week happens to
+/// agree with a trial plot on both temperature and yield. Chance explains that, so the bay
+/// model's run neither counts a use of the trial's partition nor calls its own test rows
+/// developed on.
+#[test]
+fn records_that_agree_by_chance_are_not_sealed_rows() {
+    let d = Dir::new("chance");
+    let ex = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("experiments");
+    for f in [
+        "heating-trial.csv",
+        "heating-trial.toml",
+        "bays.csv",
+        "bay-yield.toml",
+    ] {
+        d.copy(&ex.join(f), f);
+    }
+    d.probity(&["run", "heating-trial.toml"]).expect(0);
+    let trial = partition_of(&d, "1");
+    let j = d
+        .probity(&["run", "bay-yield.toml", "--json"])
+        .expect(0)
+        .json();
+    assert!(
+        warnings(&j).iter().all(|w| !w.contains(&trial)),
+        "{:?}",
+        warnings(&j)
+    );
+    let a = d.probity(&["audit", "--json"]).expect(0).json();
+    for p in a["partitions"].as_array().unwrap() {
+        assert_eq!(p["consultations"], 0, "{p}");
+    }
+}

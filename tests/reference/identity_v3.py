@@ -76,6 +76,18 @@ def row_id(cells):
     return h.digest()[:16].hex()
 
 
+def labelled_id(cells, target):
+    """A row with its target: the feature identity's 16 bytes, then the target cell."""
+    h = hashlib.sha256(b"probity-labelled-v3\0" + bytes.fromhex(row_id(cells)))
+    if target is MISSING or (isinstance(target, float) and math.isnan(target)):
+        h.update(b"\x00")
+    elif isinstance(target, float):
+        h.update(number_cell(target))
+    else:
+        h.update(text_cell(target))
+    return h.digest()[:16].hex()
+
+
 def shortest_plain(x):
     """A number as probity's display_f64 writes it: shortest round-trip digits, plain notation."""
     s = format(Decimal(repr(x)), "f")
@@ -106,6 +118,9 @@ CASES = [(f"row{i}", row_id(r)) for i, r in enumerate(ROWS)]
 # The same rows with a text column that holds the numbers 3.5 and 1000 as numbers.
 CASES.append(("row2_number_colour", row_id({**ROWS[2], "colour": 3.5})))
 CASES.append(("row5_number_colour", row_id({**ROWS[5], "colour": 1000.0})))
+# Rows 0 to 2 labelled with a number, a text and a missing target.
+LABELS = [151.0 + 1e-12, " yes ", MISSING]
+CASES += [(f"labelled{i}", labelled_id(ROWS[i], t)) for i, t in enumerate(LABELS)]
 KEYS = [" AbC Def ", "\u00c4B", 1234.5, 1e21, -0.0, 7.0, 1e-7]
 CASES += [(f"key{i}", key_id(k)) for i, k in enumerate(KEYS)]
 

@@ -227,6 +227,38 @@ fn feature_identities_are_pinned() {
     assert_eq!(feature_ids(&t, &lacking, &[0], 1), None);
 }
 
+/// Labelled identities from the same script (Python 3.11 `hashlib`): rows 0 to 2 of the pinned
+/// table with a numeric target (151 + 1e-12, which rounds to 151), a text target with spaces
+/// (` yes `) and a missing one.
+#[test]
+fn labelled_identities_are_pinned() {
+    let want = [
+        "90c4b80d27ebc6bbb4c408136abf838f",
+        "f037e3b3155204c99ca7f7f1f7a40c34",
+        "b918abe604b287eac745e455d116da0f",
+    ];
+    let mut t = pinned();
+    t.columns
+        .push(numeric("y", &[151.0 + 1e-12, 0.0, f64::NAN, 0.0, 0.0, 0.0]));
+    t.columns
+        .push(text("label", &[" yes "], &[0, 0, 0, 0, 0, 0]));
+    let recipe = Recipe::new(None, &["size", "colour", "Weight"]);
+    let features = feature_ids(&t, &recipe, &[0, 1, 2], 1).unwrap();
+    let numeric_target = labelled_ids(&t, &recipe, 4, &[0, 2], 2).unwrap();
+    let text_target = labelled_ids(&t, &recipe, 5, &[1], 1).unwrap();
+    let got = [numeric_target[0].1, text_target[0].1, numeric_target[1].1];
+    assert_eq!(got.iter().map(hexed).collect::<Vec<_>>(), want);
+    // Each pair carries the row's feature identity beside it.
+    assert_eq!(
+        [numeric_target[0].0, text_target[0].0, numeric_target[1].0],
+        [features[0], features[1], features[2]]
+    );
+    // The same features with another target are another labelled row.
+    let other = labelled_ids(&t, &recipe, 4, &[1], 1).unwrap();
+    assert_eq!(other[0].0, features[1]);
+    assert_ne!(other[0].1, text_target[0].1);
+}
+
 /// From the same script (Python 3.11 `hashlib`; numbers written plain with `decimal`): a text
 /// key with spaces and capitals (`abc def`), a non-ASCII capital (`äb`), and numeric keys
 /// 1234.5, 1e21 (`1000000000000000000000`), -0.0 (`-0`, as `display_f64` writes it), 7 (`7`)
