@@ -57,6 +57,7 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
         build: (commit, target),
         predictions_digest: digest,
         reveals,
+        uses: ledger.partition_history(&partition)?.uses,
         replays: ledger.replays_involving(a.run)?,
         chain: ledger.run_chain_entry(a.run)?,
         notes: ledger.notes(a.run)?,

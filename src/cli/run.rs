@@ -227,40 +227,29 @@ fn exposure_warnings(
 ) -> Result<()> {
     let prep = &outcome.prepared;
     let seal = ledger.seal(&prep.partition_id)?;
-    if seal.by.is_some()
-        && let Some(w) = crate::guard::consult::rules_differ(&seal, &spec.guard, &prep.partition_id)
-    {
-        outcome.warnings.push(w);
-    }
-    if !ledger.has_reveals()? {
-        return Ok(());
-    }
-    let own = ledger
-        .partition_history(&prep.partition_id)?
-        .consultations();
-    if own > 0 {
-        outcome.warnings.push(format!(
-            "this test partition ({}) has already been consulted {own} time(s); a new reveal will count on top",
-            prep.partition_id
-        ));
-    }
-    let test = prep.test_rows();
-    let e = ledger.exposure(
-        table,
-        &test,
-        prep.key,
-        prep.target_column,
-        Some(&prep.partition_id),
-    )?;
-    if e.rows > 0 {
-        outcome.warnings.push(format!(
-            "{} of {} test rows were already revealed in another partition (up to {} time(s), last on {}); their effective reveal count is {}, so this test partition is not fresh",
-            super::reveal::count(e.rows),
-            super::reveal::count(test.len()),
-            e.most,
-            e.last,
-            e.most.max(own as i64)
-        ));
-    }
+    let (own, exposure) = if ledger.has_reveals()? {
+        let test = prep.test_rows();
+        (
+            ledger.partition_history(&prep.partition_id)?,
+            ledger.exposure(
+                table,
+                &test,
+                prep.key,
+                prep.target_column,
+                Some(&prep.partition_id),
+            )?,
+        )
+    } else {
+        Default::default()
+    };
+    let w = crate::guard::consult::run_warnings(
+        &seal,
+        &spec.guard,
+        &prep.partition_id,
+        &own,
+        &exposure,
+        prep.sealed.count(crate::split::Part::Test),
+    );
+    outcome.warnings.extend(w);
     Ok(())
 }

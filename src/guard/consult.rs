@@ -41,6 +41,42 @@ pub fn rules_differ(seal: &Seal, spec: &GuardSpec, partition: &str) -> Option<St
     })
 }
 
+/// What a run says about its own test partition before storing: rules that differ from the
+/// partition's seal (when earlier runs sealed it), consultations it already had (`own`), and
+/// its rows that other partitions' consultations showed (`exposure`; `test_rows` in all).
+pub fn run_warnings(
+    seal: &Seal,
+    spec: &GuardSpec,
+    partition: &str,
+    own: &History,
+    exposure: &Exposure,
+    test_rows: usize,
+) -> Vec<String> {
+    let mut w = Vec::new();
+    if seal.by.is_some()
+        && let Some(d) = rules_differ(seal, spec, partition)
+    {
+        w.push(d);
+    }
+    let n = own.consultations();
+    if n > 0 {
+        w.push(format!(
+            "this test partition ({partition}) has already been consulted {n} time(s); a new reveal will count on top"
+        ));
+    }
+    if exposure.rows > 0 {
+        w.push(format!(
+            "{} of {} test rows were already revealed in another partition (up to {} time(s), last on {}); their effective reveal count is {}, so this test partition is not fresh",
+            thousands(exposure.rows),
+            thousands(test_rows),
+            exposure.most,
+            exposure.last,
+            exposure.most.max(n as i64)
+        ));
+    }
+    w
+}
+
 /// One unit of consultation of a sealed partition from a development use: (run, rows used).
 pub type Use = (i64, i64);
 

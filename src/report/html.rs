@@ -13,6 +13,8 @@ pub struct Extras {
     pub build: (String, String),
     pub predictions_digest: Option<String>,
     pub reveals: Vec<RevealPoint>,
+    /// Runs that fitted or scored on the partition's test rows: (run, rows).
+    pub uses: Vec<(i64, i64)>,
     /// (replay run, run replayed, identical, compared, differing)
     pub replays: Vec<crate::ledger::ReplayRow>,
     /// (position, entry hash) of the run in the chain.
@@ -233,8 +235,21 @@ pub fn page(d: &RunDetail, x: &Extras) -> String {
         h.push_str(&format!("<p class=\"warn\">{}</p>\n", esc(m)));
     }
     h.push_str("<h2 id=\"reveals\">Reveals of the test partition</h2>\n");
-    if x.reveals.is_empty() {
+    if !x.uses.is_empty() {
+        let list: Vec<String> = x
+            .uses
+            .iter()
+            .map(|(run, rows)| format!("run {run} ({rows} rows)"))
+            .collect();
+        h.push_str(&format!(
+            "<p id=\"development-uses\" class=\"warn\">Used in development by {}: those runs fitted or scored on this partition's test rows, and each counts as one look at it, beside the reveals.</p>\n",
+            esc(&list.join(", "))
+        ));
+    }
+    if x.reveals.is_empty() && x.uses.is_empty() {
         h.push_str("<p>None: the test partition is still sealed.</p>\n");
+    } else if x.reveals.is_empty() {
+        h.push_str("<p>No reveal yet.</p>\n");
     } else {
         h.push_str(&format!(
             "<p>{} reveal(s) of partition {}, by any run. The optimism estimate is how much better than the truth the best of the candidates revealed can look by chance; each further look raises it.</p>\n<table id=\"reveals-table\">\n",

@@ -99,6 +99,15 @@ fn a_validation_split_on_sealed_rows_is_a_counted_consultation() {
         )),
         "{text}"
     );
+    // The sealing run's review page says so too.
+    d.probity(&["report", "1", "--out", "r.html"]).expect(0);
+    let html = std::fs::read_to_string(d.path.join("r.html")).unwrap();
+    assert!(
+        html.contains(
+            "<p id=\"development-uses\" class=\"warn\">Used in development by run 2 (88 rows)"
+        ),
+        "{html}"
+    );
 
     // The first reveal reports the earlier use and goes over the budget of 1.
     let r = d
@@ -856,5 +865,58 @@ fn records_that_agree_by_chance_are_not_sealed_rows() {
     let a = d.probity(&["audit", "--json"]).expect(0).json();
     for p in a["partitions"].as_array().unwrap() {
         assert_eq!(p["consultations"], 0, "{p}");
+    }
+}
+
+/// A nested run and a merged one go through the same count: the nested run's development
+/// rows include the sealed rows, and its use travels in a bundle with it, so the receiving
+/// ledger counts it against the same partition.
+#[test]
+fn nested_and_merged_runs_count_the_same() {
+    let d = diabetes(
+        "nested-merged",
+        &[
+            (
+                "sealed.toml",
+                "method = \"random\"\nseed = 7\ntest = 0.2\nfolds = 3",
+                "",
+            ),
+            (
+                "nested.toml",
+                "method = \"random\"\nseed = 9\ntest = 0.2\nfolds = 3\n[select]\nnested = true",
+                "",
+            ),
+        ],
+    );
+    d.probity(&["run", "sealed.toml"]).expect(0);
+    let p = partition_of(&d, "1");
+    let j = d
+        .probity(&["run", "nested.toml", "--json"])
+        .expect(0)
+        .json();
+    assert!(j["nested"].is_object());
+    assert!(
+        warnings(&j).iter().any(|w| w.contains(&format!(
+            "development rows are sealed test rows of partition {p}"
+        ))),
+        "{:?}",
+        warnings(&j)
+    );
+    d.probity(&["pack", "1", "2", "--out", "b.json"]).expect(0);
+    let other = Dir::new("nested-merged-receiver");
+    other.copy(&d.path.join("b.json"), "b.json");
+    other.probity(&["merge", "b.json"]).expect(0);
+    for dir in [&d, &other] {
+        let a = dir.probity(&["audit", "--json"]).expect(0).json();
+        let part = a["partitions"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .find(|x| x["id"] == p.as_str())
+            .unwrap()
+            .clone();
+        assert_eq!(part["consultations"], 1, "{part}");
+        assert_eq!(part["development_uses"][0]["run"], 2, "{part}");
+        dir.probity(&["audit", "--verify"]).expect(0);
     }
 }
