@@ -286,13 +286,10 @@ fn conclude(rules: &GuardSpec, h: &History, s: &Subject, o: Outcome) -> Result<C
         "refused" => after.refused += 1,
         _ => {}
     }
-    let opt = optimism(
-        s.metric,
-        o.rows,
-        after.candidates.len(),
-        o.se,
-        rules.confidence,
-    );
+    // Under a mechanism the bootstrap's standard error is withheld too: with a proportion it
+    // gives the score back (n x se^2 = p (1 - p)).
+    let se = o.se.filter(|_| matches!(rules.mode, GuardMode::Count));
+    let opt = optimism(s.metric, o.rows, after.candidates.len(), se, rules.confidence);
     let over = over_budget(rules, &after);
     let mut warnings = Vec::new();
     if over {
@@ -497,12 +494,18 @@ pub type Development = (Vec<(String, i64)>, Vec<String>);
 /// partition was sealed with `overlap = "refuse"`. `dev_rows` is the run's development row
 /// count.
 pub fn development(dev_rows: usize, overlapping: &[Overlapping]) -> Result<Development> {
-    if let Some(o) = overlapping
-        .iter()
-        .find(|o| o.seal.rules.overlap == Overlap::Refuse)
-    {
+    if let Some(o) = overlapping.iter().find(|o| {
+        o.seal.rules.overlap == Overlap::Refuse || !matches!(o.seal.rules.mode, GuardMode::Count)
+    }) {
+        let why = match o.seal.rules.mode {
+            GuardMode::Count => "which was sealed with overlap = \"refuse\"".to_string(),
+            m => format!(
+                "which is sealed in {} mode and releases only its mechanism's answers (this run's validation scores would be exact scores on them)",
+                m.name()
+            ),
+        };
         return Err(Error::Input(format!(
-            "{} of this run's {} development rows are sealed test rows of partition {}{}, which was sealed with overlap = \"refuse\": fitting or scoring on them would consult its test set. Keep those rows out of this data (the same split, or a file without them), or use another partition's spec",
+            "{} of this run's {} development rows are sealed test rows of partition {}{}, {why}: fitting or scoring on them would consult its test set. Keep those rows out of this data (the same split, or a file without them), or use another partition's spec",
             thousands(o.rows),
             thousands(dev_rows),
             o.partition,

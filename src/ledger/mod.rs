@@ -2094,14 +2094,16 @@ fn history_of(conn: &Connection, partition: &str) -> Result<crate::guard::Histor
     Ok(h)
 }
 
-/// The rules a partition was sealed with: the `[guard]` of its earliest run (by start time,
-/// then id), whose spec text every ledger holding that run stores and chains, so ledgers that
-/// exchange runs agree on it. Count mode with a budget of 1 (the defaults) while no run is
-/// stored on it yet, or when that spec's `[guard]` cannot be read.
+/// The rules a partition was sealed with: the `[guard]` of the first run stored on it, in the
+/// chain's order, so nothing stored later (a run that started earlier and finished later, a
+/// merged run) can change rules a consultation already followed. Count mode with a budget
+/// of 1 (the defaults) while no run is stored on it yet, or when that spec's `[guard]` cannot
+/// be read.
 fn seal_of(conn: &Connection, partition: &str) -> Result<crate::guard::consult::Seal> {
     let first: Option<(i64, String)> = conn
         .query_row(
-            "SELECT id, spec_text FROM runs WHERE partition_id = ?1 ORDER BY started_at, id LIMIT 1",
+            "SELECT r.id, r.spec_text FROM runs r JOIN chain c ON c.kind = 'run' AND c.ref_id = r.id
+             WHERE r.partition_id = ?1 ORDER BY c.seq LIMIT 1",
             [partition],
             |r| Ok((r.get(0)?, r.get(1)?)),
         )

@@ -300,16 +300,23 @@ pub fn reveal(doc: &serde_json::Value, family: &str, params: &str) -> String {
             num(doc["answer"]["value"].as_f64())
         ));
     }
-    out.push_str(&format!(
-        "reveals of this partition: {} of a budget of {}{}\n",
-        doc["reveals"],
-        doc["budget"],
-        if doc["over_budget"].as_bool() == Some(true) {
-            "  OVER BUDGET"
-        } else {
-            ""
-        }
-    ));
+    let over = if doc["over_budget"].as_bool() == Some(true) {
+        "  OVER BUDGET"
+    } else {
+        ""
+    };
+    let uses = doc["development_uses"].as_array().map_or(0, Vec::len);
+    if uses == 0 {
+        out.push_str(&format!(
+            "reveals of this partition: {} of a budget of {}{over}\n",
+            doc["reveals"], doc["budget"]
+        ));
+    } else {
+        out.push_str(&format!(
+            "consultations of this partition: {} of a budget of {} ({} reveal(s), {uses} development use(s)){over}\n",
+            doc["consultations"], doc["budget"], doc["reveals"]
+        ));
+    }
     let o = &doc["optimism"];
     out.push_str(&format!(
         "optimism: {} distinct candidate(s) revealed on {} rows; the test {metric} may look better than the truth by about {} (estimate)\n",
