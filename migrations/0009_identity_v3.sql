@@ -1,30 +1,26 @@
--- Schema version 9: row identity version 3.
--- A version-3 partition identifies its rows in three ways (src/data/identity.rs):
--- - by feature cells (by column name, numbers to ten significant digits): `partition_rows`
---   holds its test rows' feature identities, which predictions are compared by (their rows
---   may come without targets);
--- - by feature cells and target together: `partition_labels` holds its test rows' labelled
---   identities, which other runs' rows are compared by (a run's rows always carry targets, and
---   a record that only looks alike to a model is not the sealed record);
--- - when the spec has a key, by the normalised key: `partition_keys`.
--- A row matches a stored one when a way that applies matches. `partition_development` keeps the
--- labelled and key identities of the partition's development rows, so a later test partition
--- on another file can tell whether its rows were developed on. All are chained with every run
--- on the partition (sections hashed only when they hold rows).
-CREATE TABLE partition_labels (
-    partition_id  TEXT NOT NULL REFERENCES partitions(id),
-    label_id      BLOB NOT NULL,             -- 16 bytes of SHA-256 of the feature identity and the target
-    PRIMARY KEY (partition_id, label_id)
-) STRICT, WITHOUT ROWID;
+-- Schema version 9: row identity version 3 (src/data/identity.rs).
+-- A version-3 partition keeps, beside its test rows' feature identities in `partition_rows`
+-- (what a prediction's rows are compared by: they may come without targets):
+-- - its test rows' labelled identities (features and target together: what another run's
+--   rows are compared by, since a run's rows carry their targets and a record that only looks
+--   alike to a model is not the sealed record) and, with a key, their key identities;
+-- - its development rows' labelled and key fingerprints (64-bit, fast: there may be millions),
+--   so a later test partition on another file can tell whether its rows were developed on.
+-- Each is one sorted blob of distinct identities (16 bytes each; fingerprints 8 bytes each,
+-- little-endian). A run whose features differ from its partition's recipe keeps the test
+-- rows' feature identities under its own recipe, so its model's predictions are checked on
+-- the features it reads. Both tables are chained with their runs (sections hashed only when
+-- they hold rows).
+CREATE TABLE partition_identities (
+    partition_id      TEXT PRIMARY KEY REFERENCES partitions(id),
+    test_labels       BLOB NOT NULL,
+    test_keys         BLOB,                  -- NULL without a key
+    development       BLOB NOT NULL,
+    development_keys  BLOB                   -- NULL without a key
+) STRICT;
 
-CREATE TABLE partition_keys (
-    partition_id  TEXT NOT NULL REFERENCES partitions(id),
-    key_id        BLOB NOT NULL,             -- 16 bytes of SHA-256 of the normalised key
-    PRIMARY KEY (partition_id, key_id)
-) STRICT, WITHOUT ROWID;
-
-CREATE TABLE partition_development (
-    partition_id  TEXT PRIMARY KEY REFERENCES partitions(id),
-    label_ids     BLOB NOT NULL,             -- the development rows' labelled identities, 16 bytes each, sorted, distinct
-    key_ids       BLOB                       -- their key identities, likewise (NULL without a key)
+CREATE TABLE run_identities (
+    run_id     INTEGER PRIMARY KEY REFERENCES runs(id),
+    recipe     TEXT NOT NULL,                -- the run's recipe (JSON: feature columns, key)
+    test_rows  BLOB NOT NULL                 -- the partition's test rows' feature identities under it
 ) STRICT;

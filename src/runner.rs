@@ -71,10 +71,10 @@ pub struct Identities {
     pub test_labels: Vec<crate::data::RowKey>,
     /// Version 3 with a key: the test rows' key identities, sorted, each once.
     pub test_keys: Vec<crate::data::RowKey>,
-    /// Version 3: the development rows' labelled identities, sorted, each once.
-    pub development: Vec<crate::data::RowKey>,
-    /// Version 3 with a key: the development rows' key identities, sorted, each once.
-    pub development_keys: Vec<crate::data::RowKey>,
+    /// Version 3: the development rows' labelled fingerprints, sorted, each once.
+    pub development: Vec<u64>,
+    /// Version 3 with a key: the development rows' key fingerprints, sorted, each once.
+    pub development_keys: Vec<u64>,
 }
 
 impl Prepared {
@@ -98,38 +98,44 @@ impl Prepared {
     /// beside the grid. Versions 1 and 2 (a partition stored by an earlier probity) keep their
     /// test rows' identities only.
     pub fn identities(&self, table: &Table, threads: usize) -> Identities {
-        use crate::data::identity::{key_ids, labelled_ids};
+        use crate::data::identity::{fingerprints, key_fingerprints, key_ids, labelled_ids};
         let test = self.test_rows();
         let Some(legacy) = self.identity.legacy() else {
             let dev = self.development_rows();
-            let sorted = |mut k: Vec<crate::data::RowKey>, distinct: bool| {
+            fn sorted<T: Ord>(mut k: Vec<T>, distinct: bool) -> Vec<T> {
                 k.sort_unstable();
                 if distinct {
                     k.dedup();
                 }
                 k
-            };
-            let keys = |rows: &[usize]| -> Vec<crate::data::RowKey> {
-                let k = self
-                    .key
-                    .map(|c| key_ids(table, c, rows, threads))
-                    .unwrap_or_default();
-                sorted(k.into_iter().flatten().collect(), true)
-            };
-            // The recipe's columns are this table's features, so both always form.
-            let labelled = |rows: &[usize]| {
-                labelled_ids(table, &self.recipe, self.target_column, rows, threads)
-                    .unwrap_or_default()
-            };
+            }
+            // The recipe's columns are this table's features, so every identity forms.
             let (test_features, test_labels): (Vec<_>, Vec<_>) =
-                labelled(&test).into_iter().unzip();
-            let development: Vec<_> = labelled(&dev).into_iter().map(|p| p.1).collect();
+                labelled_ids(table, &self.recipe, self.target_column, &test, threads)
+                    .unwrap_or_default()
+                    .into_iter()
+                    .unzip();
+            let development = fingerprints(table, &self.recipe, self.target_column, &dev, threads)
+                .unwrap_or_default();
+            let (test_keys, development_keys) = match self.key {
+                Some(c) => (
+                    key_ids(table, c, &test, threads)
+                        .into_iter()
+                        .flatten()
+                        .collect(),
+                    key_fingerprints(table, c, &dev, threads)
+                        .into_iter()
+                        .flatten()
+                        .collect(),
+                ),
+                None => (Vec::new(), Vec::new()),
+            };
             return Identities {
                 test: sorted(test_features, false),
                 test_labels: sorted(test_labels, true),
-                test_keys: keys(&test),
+                test_keys: sorted(test_keys, true),
                 development: sorted(development, true),
-                development_keys: keys(&dev),
+                development_keys: sorted(development_keys, true),
             };
         };
         let mut keys = crate::data::row_keys(table, self.key, &test, threads, legacy);

@@ -162,7 +162,9 @@ fn guard_sealed_rows(
         .iter()
         .map(|f| match f {
             crate::models::encode::Feature::Numeric { name, .. }
-            | crate::models::encode::Feature::Categorical { name, .. } => name.clone(),
+            | crate::models::encode::Feature::Categorical { name, .. } => {
+                crate::data::identity::normalise(name)
+            }
         })
         .collect();
     let features = if features.is_empty() {
@@ -173,7 +175,12 @@ fn guard_sealed_rows(
     } else {
         features
     };
-    let hits = ledger.sealed_rows(input, &rows, key, input.index_of(&model.target), features)?;
+    let own = ledger.run_identities(d.summary.id)?;
+    let predictor = crate::ledger::rows::Predictor {
+        features,
+        own: own.map(|(recipe, test)| (d.summary.partition_id.as_str(), recipe, test)),
+    };
+    let hits = ledger.sealed_rows(input, &rows, key, &predictor)?;
     if hits.is_empty() {
         return Ok(());
     }

@@ -122,13 +122,7 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
     // For the question only: the history that counts is read again inside the write.
     let before = ledger.partition_history(&partition)?;
     let test_rows = prep.test_rows();
-    let exposure = ledger.exposure(
-        &table,
-        &test_rows,
-        prep.key,
-        prep.target_column,
-        Some(&partition),
-    )?;
+    let exposure = ledger.exposure(&table, &prep)?;
     let n = test_rows.len();
     // Ask first: the question shows what has been spent already.
     if !a.yes {
@@ -214,15 +208,35 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
     crate::failpoint::pause("reveal:consult");
     // Decided and written in one transaction, before anything is printed: a score the user
     // saw is never missing from the count, and two reveals at once each see the other.
-    let (ids, c) = ledger.consult(std::slice::from_ref(&partition), |states| {
+    // Other partitions holding these test rows: the reveal is a look at their rows too.
+    let partners = ledger.test_partners(&table, &prep)?;
+    let mut touched = vec![partition.clone()];
+    touched.extend(partners.iter().map(|(p, _)| p.clone()));
+    let (ids, (c, through)) = ledger.consult(&touched, |states| {
         let (seal, history) = &states[0];
         let c = crate::guard::consult::reveal(seal, history, &query)?;
-        Ok((vec![c.record.clone()], c))
+        let mut records = vec![c.record.clone()];
+        let mut through = Vec::new();
+        for ((seal, history), (other, rows)) in states[1..].iter().zip(&partners) {
+            let subject = crate::guard::consult::Subject {
+                partition: other,
+                ..query.subject.clone()
+            };
+            let t = crate::guard::consult::through(
+                seal, history, &subject, *rows, &partition, c.exact,
+            )?;
+            records.push(t.record.clone());
+            through.push(t);
+        }
+        Ok((records, (c, through)))
     })?;
     let id = ids.first().copied().unwrap_or(0);
     crate::failpoint::pause("reveal:print");
 
     let mut warnings = c.warnings.clone();
+    for t in &through {
+        warnings.extend(t.warnings.iter().cloned());
+    }
     if let Some(w) = crate::guard::consult::rules_differ(&seal, &spec.guard, &partition) {
         warnings.push(w);
     }

@@ -228,16 +228,9 @@ fn exposure_warnings(
     let prep = &outcome.prepared;
     let seal = ledger.seal(&prep.partition_id)?;
     let (own, exposure) = if ledger.has_reveals()? {
-        let test = prep.test_rows();
         (
             ledger.partition_history(&prep.partition_id)?,
-            ledger.exposure(
-                table,
-                &test,
-                prep.key,
-                prep.target_column,
-                Some(&prep.partition_id),
-            )?,
+            ledger.exposure(table, prep)?,
         )
     } else {
         Default::default()

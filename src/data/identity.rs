@@ -585,3 +585,41 @@ fn in_chunks<I: Sync, T: Send>(
 
 #[cfg(test)]
 mod tests;
+
+// Interim forms, replaced by the definitions of the development fingerprints and normalised
+// names (same signatures).
+pub fn normalise(name: &str) -> String {
+    name.trim_ascii().to_lowercase()
+}
+
+pub fn find(table: &Table, name: &str) -> Option<usize> {
+    let n = normalise(name);
+    table.columns.iter().position(|c| normalise(&c.name) == n)
+}
+
+pub fn fingerprints(
+    table: &Table,
+    recipe: &Recipe,
+    target: usize,
+    rows: &[usize],
+    threads: usize,
+) -> Option<Vec<u64>> {
+    let ids = labelled_ids(table, recipe, target, rows, threads)?;
+    Some(
+        ids.into_iter()
+            .map(|(_, l)| u64::from_le_bytes([l[0], l[1], l[2], l[3], l[4], l[5], l[6], l[7]]))
+            .collect(),
+    )
+}
+
+pub fn key_fingerprints(
+    table: &Table,
+    key_column: usize,
+    rows: &[usize],
+    threads: usize,
+) -> Vec<Option<u64>> {
+    key_ids(table, key_column, rows, threads)
+        .into_iter()
+        .map(|k| k.map(|l| u64::from_le_bytes([l[0], l[1], l[2], l[3], l[4], l[5], l[6], l[7]])))
+        .collect()
+}

@@ -289,7 +289,13 @@ fn conclude(rules: &GuardSpec, h: &History, s: &Subject, o: Outcome) -> Result<C
     // Under a mechanism the bootstrap's standard error is withheld too: with a proportion it
     // gives the score back (n x se^2 = p (1 - p)).
     let se = o.se.filter(|_| matches!(rules.mode, GuardMode::Count));
-    let opt = optimism(s.metric, o.rows, after.candidates.len(), se, rules.confidence);
+    let opt = optimism(
+        s.metric,
+        o.rows,
+        after.candidates.len(),
+        se,
+        rules.confidence,
+    );
     let over = over_budget(rules, &after);
     let mut warnings = Vec::new();
     if over {
@@ -474,6 +480,57 @@ pub fn predict(seal: &Seal, h: &History, q: &PredictQuery) -> Result<Consultatio
         exposure: &Exposure::default(),
     };
     conclude(rules, h, s, outcome)
+}
+
+/// A reveal (or allowed prediction) of one partition whose test rows are test rows of another
+/// partition too (the same rows under another split: other folds, a `missing` rule that drops
+/// nothing, a copy of the file): a look at those rows of the other partition, counted there as
+/// one consultation. A partition under a mechanism releases only its mechanism's answers, so
+/// an exact look at its rows through another partition is refused.
+pub fn through(
+    seal: &Seal,
+    h: &History,
+    s: &Subject,
+    rows: usize,
+    via: &str,
+    exact: bool,
+) -> Result<Consultation> {
+    let rules = &seal.rules;
+    if exact && !matches!(rules.mode, GuardMode::Count) {
+        return Err(Error::Input(format!(
+            "{} of these test rows are test rows of partition {}{} too, sealed in {} mode, which releases only its mechanism's answers: an exact score here would be one on its rows. Reveal a run of that partition instead",
+            thousands(rows),
+            s.partition,
+            seal.by.map_or(String::new(), |r| format!(" (run {r})")),
+            rules.mode.name()
+        )));
+    }
+    let outcome = Outcome {
+        source: "reveal",
+        answer: Answer {
+            kind: "overlap",
+            value: None,
+            mechanism: json!({"mode": rules.mode.name(), "via": via, "rows": rows}),
+        },
+        rows,
+        seed: 0,
+        resamples: 0,
+        se: None,
+        scores: Vec::new(),
+        exposure: &Exposure::default(),
+    };
+    let mut c = conclude(rules, h, s, outcome)?;
+    c.warnings.insert(
+        0,
+        format!(
+            "{} of these test rows are test rows of partition {} too: counted there as one consultation ({} of its budget of {})",
+            thousands(rows),
+            s.partition,
+            c.consultations,
+            c.budget
+        ),
+    );
+    Ok(c)
 }
 
 /// A stored partition whose test rows a run's development rows include.

@@ -339,11 +339,7 @@ fn insert_entry(
             }
             let verb = if matches!(
                 name.as_str(),
-                "partitions"
-                    | "partition_rows"
-                    | "partition_labels"
-                    | "partition_keys"
-                    | "partition_development"
+                "partitions" | "partition_rows" | "partition_identities"
             ) {
                 "INSERT OR IGNORE"
             } else {

@@ -62,16 +62,12 @@ pub fn section_queries(kind: &str) -> &'static [(&'static str, &'static str)] {
                 "SELECT * FROM uses WHERE run_id = ?1 ORDER BY partition_id",
             ),
             (
-                "partition_labels",
-                "SELECT * FROM partition_labels WHERE partition_id = (SELECT partition_id FROM runs WHERE id = ?1) ORDER BY label_id",
+                "partition_identities",
+                "SELECT * FROM partition_identities WHERE partition_id = (SELECT partition_id FROM runs WHERE id = ?1)",
             ),
             (
-                "partition_keys",
-                "SELECT * FROM partition_keys WHERE partition_id = (SELECT partition_id FROM runs WHERE id = ?1) ORDER BY key_id",
-            ),
-            (
-                "partition_development",
-                "SELECT * FROM partition_development WHERE partition_id = (SELECT partition_id FROM runs WHERE id = ?1)",
+                "run_identities",
+                "SELECT * FROM run_identities WHERE run_id = ?1",
             ),
         ],
         "reveal" => &[
@@ -89,7 +85,7 @@ pub fn section_queries(kind: &str) -> &'static [(&'static str, &'static str)] {
 /// Sections added after entries were first chained: hashed only when they hold rows, so every
 /// entry written before them keeps its hash (and an empty one adds nothing).
 pub fn sparse(section: &str) -> bool {
-    matches!(section, "uses" | "partition_keys" | "partition_development")
+    matches!(section, "uses" | "partition_identities" | "run_identities")
 }
 
 fn sql_err(context: &'static str) -> impl FnOnce(rusqlite::Error) -> Error {
@@ -268,8 +264,7 @@ impl PartitionRows<'_> {
 /// recomputes every entry from the stored rows, so a difference would still show.
 #[derive(Default)]
 pub struct Known<'a> {
-    /// A fresh partition's `partition_rows`, `partition_labels` and `partition_keys` sections,
-    /// by section name.
+    /// A fresh partition's `partition_rows` section (by section name).
     pub partition: Vec<(&'static str, PartitionRows<'a>)>,
     /// (section name, a function that gives the section's rows to the sink in the section's
     /// order). Never the entry's first section (whose absence means a missing entry).

@@ -390,29 +390,13 @@ impl Ledger {
                 .as_ref()
                 .is_some_and(|(id, n)| *id == prep.partition_id && *n == distinct(&keys)))
         .then(|| {
-            let mut known = vec![(
+            let known = vec![(
                 "partition_rows",
                 chain::PartitionRows {
                     id: &prep.partition_id,
                     keys: &keys,
                 },
             )];
-            // Version 3 keeps its test rows' labelled and key identities beside them (sorted,
-            // each once).
-            if prep.identity == crate::data::Identity::V3 {
-                for (name, keys) in [
-                    ("partition_labels", &prep.ids.test_labels),
-                    ("partition_keys", &prep.ids.test_keys),
-                ] {
-                    known.push((
-                        name,
-                        chain::PartitionRows {
-                            id: &prep.partition_id,
-                            keys,
-                        },
-                    ));
-                }
-            }
             known
         });
         let model_json = serde_json::to_string(&out.refit)
@@ -570,6 +554,18 @@ impl Ledger {
             for (partition, rows) in &uses {
                 used.execute(params![run, partition, rows]).map_err(fail)?;
             }
+            // A run whose features differ from its partition's recipe keeps the test rows'
+            // identities under its own, for its model's predictions.
+            if prep.identity == crate::data::Identity::V3 {
+                let stored = rows::stored(&tx, |p| p.id == prep.partition_id)?;
+                if stored
+                    .first()
+                    .and_then(|p| p.recipe.as_ref())
+                    .is_some_and(|r| *r != prep.recipe)
+                {
+                    rows::insert_run(&tx, run, &prep.recipe, &prep.ids.test).map_err(fail)?;
+                }
+            }
         }
         for c in out.candidates.iter().filter(|c| c.failure.is_some()) {
             tx.execute(
@@ -704,12 +700,7 @@ impl Ledger {
             )
             .map_err(fail)?;
         if !used {
-            for table in [
-                "partition_rows",
-                "partition_labels",
-                "partition_keys",
-                "partition_development",
-            ] {
+            for table in ["partition_rows", "partition_identities"] {
                 tx.execute(
                     &format!("DELETE FROM {table} WHERE partition_id = ?1"),
                     [id],
@@ -916,9 +907,8 @@ impl Ledger {
         for t in [
             "partitions",
             "partition_rows",
-            "partition_labels",
-            "partition_keys",
-            "partition_development",
+            "partition_identities",
+            "run_identities",
             "runs",
             "folds",
             "candidates",
@@ -1044,19 +1034,14 @@ impl Ledger {
         Ok((ids, out))
     }
 
-    /// How other partitions' consultations exposed some rows of a table (a partition's test
-    /// rows, for `run` and `reveal`): how many of them are test rows of a consulted partition
-    /// other than `exclude`, the most consultations (reveals and development uses) of any
-    /// partition holding one of them, and the time of the last. Each partition compares the
-    /// rows the way it identifies its own (`rows::sealed_rows`, the rows labelled with their
-    /// `target` column); `key` is the caller's key column.
+    /// How other partitions' consultations exposed a run's test rows (for `run` and
+    /// `reveal`): how many of them are test rows of a consulted partition other than its own,
+    /// the most consultations (reveals and development uses) of any partition holding one of
+    /// them, and the time of the last (`test_overlaps` finds the rows).
     pub fn exposure(
         &self,
         table: &crate::data::Table,
-        rows: &[usize],
-        key: Option<usize>,
-        target: usize,
-        exclude: Option<&str>,
+        prep: &crate::runner::Prepared,
     ) -> Result<crate::guard::consult::Exposure> {
         let err = || sql_err("read exposure");
         let mut st = self
@@ -1069,58 +1054,52 @@ impl Ledger {
             )
             .map_err(err())?;
         let consulted: Vec<(String, i64, String)> = st
-            .query_map([exclude], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)))
+            .query_map([&prep.partition_id], |r| {
+                Ok((r.get(0)?, r.get(1)?, r.get(2)?))
+            })
             .and_then(|rows| rows.collect())
             .map_err(err())?;
         let mut e = crate::guard::consult::Exposure::default();
         if consulted.is_empty() {
             return Ok(e);
         }
-        let parts = rows::stored(&self.conn, |p| {
-            consulted
-                .binary_search_by(|c| c.0.as_str().cmp(&p.id))
-                .is_ok()
+        let test = membership(prep.rows.len(), &prep.sealed.test_members());
+        let mut most = vec![0i64; prep.rows.len()];
+        let hits = test_overlaps(&self.conn, table, prep, |id| {
+            consulted.binary_search_by(|c| c.0.as_str().cmp(id)).is_ok()
         })?;
-        // The same file by position; others by identity.
-        let mut hits: Vec<(String, Vec<usize>)> = Vec::new();
-        for p in parts.iter().filter(|p| p.data_sha256 == table.sha256) {
-            let assignment: Vec<u8> = self
-                .conn
-                .query_row(
-                    "SELECT assignment FROM partitions WHERE id = ?1",
-                    [&p.id],
-                    |r| r.get(0),
-                )
-                .map_err(err())?;
-            let at: Vec<usize> = (0..rows.len())
-                .filter(|&i| assignment.get(rows[i]) == Some(&Part::Test.code()))
-                .collect();
-            if !at.is_empty() {
-                hits.push((p.id.clone(), at));
-            }
-        }
-        let elsewhere: Vec<rows::Stored> = parts
-            .into_iter()
-            .filter(|p| p.data_sha256 != table.sha256)
-            .collect();
-        let mut ids = rows::TableIds::new(table, rows, key, Some(target), None);
-        hits.extend(rows::sealed_rows(&self.conn, &mut ids, &elsewhere)?);
-        let mut most = vec![0i64; rows.len()];
-        for (id, hit) in hits {
+        for (id, at) in hits {
             let Ok(c) = consulted.binary_search_by(|c| c.0.as_str().cmp(&id)) else {
                 continue;
             };
             let (_, n, last) = &consulted[c];
-            for r in hit {
-                most[r] = most[r].max(*n);
+            let mut any = false;
+            for i in at.into_iter().filter(|&i| test[i]) {
+                most[i] = most[i].max(*n);
+                any = true;
             }
-            if *last > e.last {
+            if any && *last > e.last {
                 e.last = last.clone();
             }
         }
         e.rows = most.iter().filter(|m| **m > 0).count();
         e.most = most.iter().copied().max().unwrap_or(0);
         Ok(e)
+    }
+
+    /// Other partitions whose test rows are test rows of this run's partition too, with how
+    /// many: a reveal here is a look at those rows of theirs as well.
+    pub fn test_partners(
+        &self,
+        table: &crate::data::Table,
+        prep: &crate::runner::Prepared,
+    ) -> Result<Vec<(String, usize)>> {
+        let test = membership(prep.rows.len(), &prep.sealed.test_members());
+        Ok(test_overlaps(&self.conn, table, prep, |_| true)?
+            .into_iter()
+            .map(|(id, at)| (id, at.into_iter().filter(|&i| test[i]).count()))
+            .filter(|(_, n)| *n > 0)
+            .collect())
     }
 
     /// The recipe of a stored version-3 partition (`None` for an older one or none).
@@ -1157,22 +1136,28 @@ impl Ledger {
             .map_err(sql_err("count reveals"))
     }
 
-    /// For each stored partition holding some of `rows` of `table` among its test rows: which
-    /// of them (positions into `rows`), for `predict`: by key, by features and target when the
-    /// file has the `target` column, and by features for partitions whose recipe holds every
-    /// feature of the predicting `model` (`rows::sealed_rows`). `key` is the model's key
-    /// column, for partitions of identity versions 1 and 2.
+    /// For each stored partition holding some of `rows` of a file to predict among its test
+    /// rows: which of them (positions into `rows`), compared as `rows::predicted` says.
+    /// `key` is the model's key column (for partitions of identity versions 1 and 2).
     pub fn sealed_rows(
         &self,
         table: &crate::data::Table,
         rows: &[usize],
         key: Option<usize>,
-        target: Option<usize>,
-        model: Vec<String>,
+        model: &rows::Predictor,
     ) -> Result<Vec<(String, Vec<usize>)>> {
         let parts = rows::stored(&self.conn, |_| true)?;
-        let mut ids = rows::TableIds::new(table, rows, key, target, Some(model));
-        rows::sealed_rows(&self.conn, &mut ids, &parts)
+        let mut ids = rows::TableIds::new(table, rows, key, None);
+        rows::predicted(&self.conn, &mut ids, &parts, model)
+    }
+
+    /// A run's own recipe and its partition's test rows' identities under it, when the run
+    /// stored them (its features differ from its partition's recipe).
+    pub fn run_identities(
+        &self,
+        run: i64,
+    ) -> Result<Option<(crate::data::identity::Recipe, Vec<crate::data::RowKey>)>> {
+        rows::run_ids(&self.conn, run)
     }
 
     /// The stored partitions other than the run's own whose test rows the run develops on,
@@ -1940,48 +1925,69 @@ fn json_str(s: &str) -> Value {
     Value::String(s.to_string())
 }
 
+/// A bitmap over `n` positions marking `members`.
+fn membership(n: usize, members: &[usize]) -> Vec<bool> {
+    let mut m = vec![false; n];
+    for &i in members {
+        if let Some(x) = m.get_mut(i) {
+            *x = true;
+        }
+    }
+    m
+}
+
+/// Stored partitions (other than the run's own, and those `keep` keeps, by id) whose test rows
+/// are rows of this run's table, with the kept positions (indices into `prep.rows`) of those
+/// rows. The same data file: by position, exact whatever rows look alike. Another file (an
+/// edited, grown or reshaped copy): by identity, all the kept rows judged together
+/// (`rows::run_overlaps`).
+fn test_overlaps(
+    conn: &Connection,
+    table: &crate::data::Table,
+    prep: &crate::runner::Prepared,
+    keep: impl Fn(&str) -> bool,
+) -> Result<Vec<(String, Vec<usize>)>> {
+    let err = || sql_err("find overlapping partitions");
+    let own = prep.partition_id.as_str();
+    let others = rows::stored(conn, |p| p.id != own && p.n_test > 0 && keep(&p.id))?;
+    let mut out = Vec::new();
+    let mut st = conn
+        .prepare("SELECT assignment FROM partitions WHERE id = ?1")
+        .map_err(err())?;
+    for p in others.iter().filter(|p| p.data_sha256 == table.sha256) {
+        let assignment: Vec<u8> = st.query_row([&p.id], |r| r.get(0)).map_err(err())?;
+        let at: Vec<usize> = (0..prep.rows.len())
+            .filter(|&i| assignment.get(prep.rows[i]) == Some(&Part::Test.code()))
+            .collect();
+        if !at.is_empty() {
+            out.push((p.id.clone(), at));
+        }
+    }
+    let elsewhere: Vec<rows::Stored> = others
+        .into_iter()
+        .filter(|p| p.data_sha256 != table.sha256)
+        .collect();
+    if !elsewhere.is_empty() {
+        let mut ids = rows::TableIds::new(table, &prep.rows, prep.key, Some(prep.target_column));
+        out.extend(rows::run_overlaps(conn, &mut ids, &elsewhere)?);
+        out.sort();
+    }
+    Ok(out)
+}
+
 /// See `Ledger::development_overlaps`.
 fn development_overlaps(
     conn: &Connection,
     table: &crate::data::Table,
     prep: &crate::runner::Prepared,
 ) -> Result<Vec<crate::guard::consult::Overlapping>> {
-    let err = || sql_err("find development overlaps");
-    let own = prep.partition_id.as_str();
-    let others = rows::stored(conn, |p| p.id != own && p.n_test > 0)?;
-    if others.is_empty() {
-        return Ok(Vec::new());
-    }
-    let dev = prep.development_rows();
-    let mut hits: Vec<(String, usize)> = Vec::new();
-    // The same file: by position, exact whatever rows look alike.
-    let mut st = conn
-        .prepare("SELECT assignment FROM partitions WHERE id = ?1")
-        .map_err(err())?;
-    for p in others.iter().filter(|p| p.data_sha256 == table.sha256) {
-        let assignment: Vec<u8> = st.query_row([&p.id], |r| r.get(0)).map_err(err())?;
-        let n = dev
-            .iter()
-            .filter(|&&r| assignment.get(r) == Some(&Part::Test.code()))
-            .count();
-        if n > 0 {
-            hits.push((p.id.clone(), n));
+    let dev = membership(prep.rows.len(), &prep.sealed.development());
+    let mut out = Vec::new();
+    for (partition, at) in test_overlaps(conn, table, prep, |_| true)? {
+        let rows = at.into_iter().filter(|&i| dev[i]).count();
+        if rows == 0 {
+            continue;
         }
-    }
-    // Other files (edited, grown, reshaped): by row identity, each partition its own way.
-    let elsewhere: Vec<rows::Stored> = others
-        .into_iter()
-        .filter(|p| p.data_sha256 != table.sha256)
-        .collect();
-    if !elsewhere.is_empty() {
-        let mut ids = rows::TableIds::new(table, &dev, prep.key, Some(prep.target_column), None);
-        for (id, rows) in rows::sealed_rows(conn, &mut ids, &elsewhere)? {
-            hits.push((id, rows.len()));
-        }
-        hits.sort();
-    }
-    let mut out = Vec::with_capacity(hits.len());
-    for (partition, rows) in hits {
         out.push(crate::guard::consult::Overlapping {
             seal: seal_of(conn, &partition)?,
             history: history_of(conn, &partition)?,
@@ -1994,15 +2000,16 @@ fn development_overlaps(
 
 /// Earlier partitions whose development rows hold some of this run's test rows, with the runs
 /// that developed on them. The same data file: by position. Another file: by the development
-/// identities a version-3 partition stores (an older one stores none, and is passed over).
+/// fingerprints a version-3 partition stores (an older one stores none, and is passed over),
+/// all the kept rows judged together (`rows::run_developed`).
 fn earlier_developments(
     conn: &Connection,
     table: &crate::data::Table,
     prep: &crate::runner::Prepared,
 ) -> Result<Vec<crate::guard::consult::Earlier>> {
     let err = || sql_err("find earlier development rows");
-    let test = prep.test_rows();
-    if test.is_empty() {
+    let test = membership(prep.rows.len(), &prep.sealed.test_members());
+    if !test.contains(&true) {
         return Ok(Vec::new());
     }
     let mut used = conn
@@ -2014,35 +2021,47 @@ fn earlier_developments(
             earlier.push(p);
         }
     }
+    let mut found: Vec<(String, usize)> = Vec::new();
     let mut assignment_of = conn
         .prepare("SELECT assignment FROM partitions WHERE id = ?1")
         .map_err(err())?;
+    let dev = [Part::Train.code(), Part::Validation.code()];
+    for p in earlier.iter().filter(|p| p.data_sha256 == table.sha256) {
+        let assignment: Vec<u8> = assignment_of
+            .query_row([&p.id], |r| r.get(0))
+            .map_err(err())?;
+        let rows = (0..prep.rows.len())
+            .filter(|&i| {
+                test[i]
+                    && assignment
+                        .get(prep.rows[i])
+                        .is_some_and(|c| dev.contains(c))
+            })
+            .count();
+        found.push((p.id.clone(), rows));
+    }
+    let elsewhere: Vec<rows::Stored> = earlier
+        .into_iter()
+        .filter(|p| p.data_sha256 != table.sha256)
+        .collect();
+    if !elsewhere.is_empty() {
+        let mut ids = rows::TableIds::new(table, &prep.rows, prep.key, Some(prep.target_column));
+        for (id, at) in rows::run_developed(conn, &mut ids, &elsewhere)? {
+            found.push((id, at.into_iter().filter(|&i| test[i]).count()));
+        }
+    }
+    found.sort();
     let mut runs_of = conn
         .prepare("SELECT id FROM runs WHERE partition_id = ?1 ORDER BY id")
         .map_err(err())?;
-    let mut ids = rows::TableIds::new(table, &test, prep.key, Some(prep.target_column), None);
     let mut out = Vec::new();
-    for p in &earlier {
-        let rows = if p.data_sha256 == table.sha256 {
-            let assignment: Vec<u8> = assignment_of
-                .query_row([&p.id], |r| r.get(0))
-                .map_err(err())?;
-            let dev = [Part::Train.code(), Part::Validation.code()];
-            test.iter()
-                .filter(|&&r| assignment.get(r).is_some_and(|c| dev.contains(c)))
-                .count()
-        } else {
-            rows::developed(conn, &mut ids, p)?.unwrap_or(0)
-        };
-        if rows == 0 {
-            continue;
-        }
+    for (partition, rows) in found.into_iter().filter(|(_, n)| *n > 0) {
         let runs: Vec<i64> = runs_of
-            .query_map([&p.id], |r| r.get(0))
+            .query_map([&partition], |r| r.get(0))
             .and_then(|rows| rows.collect())
             .map_err(err())?;
         out.push(crate::guard::consult::Earlier {
-            partition: p.id.clone(),
+            partition,
             runs,
             rows,
         });
@@ -2259,7 +2278,7 @@ fn insert_partition(
         }
     }
     if fresh && prep.identity == crate::data::Identity::V3 {
-        rows::insert_extras(tx, &prep.partition_id, ids, prep.key.is_some())?;
+        rows::insert_sets(tx, &prep.partition_id, ids, prep.key.is_some())?;
     }
     Ok(fresh)
 }
@@ -2472,8 +2491,7 @@ mod tests {
         let given: Vec<Option<crate::data::RowKey>> = keys.iter().copied().map(Some).collect();
         let mut got = Vec::new();
         for (id, rows) in &parts {
-            let m = rows::members(&ledger.conn, rows::Set::Rows, id, rows.len() as i64, &given)
-                .unwrap();
+            let m = rows::members(&ledger.conn, id, rows.len() as i64, &given).unwrap();
             let n = m.iter().filter(|m| **m).count() as i64;
             if n > 0 {
                 got.push((id.to_string(), n));
@@ -2485,7 +2503,7 @@ mod tests {
             vec![("p1".into(), 60), ("p2".into(), 10), ("p4".into(), 10)]
         );
         assert!(
-            rows::members(&ledger.conn, rows::Set::Rows, "p1", 1000, &[None])
+            rows::members(&ledger.conn, "p1", 1000, &[None])
                 .unwrap()
                 .iter()
                 .all(|m| !m)
@@ -2668,22 +2686,22 @@ mod tests {
             assert_eq!(d.identity, v);
             assert_eq!(d.split_settings, old_settings);
         }
-        // The same test rows, identified each way; version 3 also keeps the development rows'
-        // identities (240 rows, all distinct here), and no key identities without a key.
+        // The same test rows, identified each way; version 3 also keeps their labelled
+        // identities and the development rows' fingerprints (60 and 240 rows, all distinct
+        // here), and no key identities without a key.
         assert_eq!(old_keys.len(), new_keys.len());
         assert!(old_keys.iter().all(|k| !new_keys.contains(k)));
-        let dev: Vec<u8> = new
+        let (labels, keys, dev): (Vec<u8>, Option<Vec<u8>>, Vec<u8>) = new
             .conn
-            .query_row("SELECT label_ids FROM partition_development", [], |r| {
-                r.get(0)
-            })
+            .query_row(
+                "SELECT test_labels, test_keys, development FROM partition_identities",
+                [],
+                |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)),
+            )
             .unwrap();
-        assert_eq!(dev.len(), 240 * 16);
-        let keys: i64 = new
-            .conn
-            .query_row("SELECT count(*) FROM partition_keys", [], |r| r.get(0))
-            .unwrap();
-        assert_eq!(keys, 0);
+        assert_eq!(labels.len(), 60 * 16);
+        assert_eq!(keys, None);
+        assert_eq!(dev.len(), 240 * 8);
         for l in [&old, &new] {
             let (entries, breaks) = l.verify().unwrap();
             assert_eq!((entries, breaks.len()), (1, 0), "{breaks:?}");
@@ -2757,7 +2775,7 @@ mod tests {
         ledger
             .conn
             .execute_batch(
-                "PRAGMA foreign_keys = OFF; DELETE FROM partition_rows; DELETE FROM partition_labels; DELETE FROM partition_development; DELETE FROM partitions;",
+                "PRAGMA foreign_keys = OFF; DELETE FROM partition_rows; DELETE FROM partition_identities; DELETE FROM partitions;",
             )
             .unwrap();
         let tx = ledger.conn.transaction().unwrap();

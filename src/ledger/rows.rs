@@ -1,29 +1,34 @@
-//! Row identities in the ledger: what a partition stores of its rows (its test rows' feature,
-//! labelled and key identities, its development rows' labelled and key identities), and which
-//! rows of a table are rows of stored partitions, each partition compared the way it
-//! identifies its own rows (its identity version and, from version 3 on, its recipe: the
-//! feature columns and the key).
+//! Row identities in the ledger: what a partition stores of its rows, and which rows of a
+//! table are rows of stored partitions, each partition compared the way it identifies its own
+//! rows (its identity version and, from version 3 on, its recipe: feature columns and key).
 //!
-//! Version 3 compares a table's rows with a partition's test rows:
-//! - by key, when the table has the partition's key column (found by its name);
-//! - rows that carry their target (a run's, or a file to predict that has the target column):
-//!   by labelled identity, features and target together, so a record that only looks alike
-//!   to a model is not taken for the sealed one;
-//! - rows to predict: also by feature identity, for each partition whose recipe holds every
-//!   feature of the predicting model, since the model then gives such a row exactly the
-//!   prediction it gives the sealed row.
+//! A version-3 partition stores (`src/data/identity.rs` defines the identities):
+//! - `partition_rows`: its test rows' feature identities, one row each (looked up by index);
+//! - `partition_identities`: its test rows' labelled and key identities, and its development
+//!   rows' labelled and key fingerprints, as sorted blobs;
+//! - `run_identities`, for a run whose features differ from its partition's recipe: the test
+//!   rows' feature identities under the run's own recipe, so its model's predictions are
+//!   checked on the features it reads.
 //!
-//! Another file's records can agree with a sealed row by chance, more so when a partition's
-//! rows are told apart by few or coarse cells (one feature and a target of three digits, say).
-//! So a run's rows from another file count as a partition's sealed rows by labelled identity
-//! only when more of them match than chance explains (`beyond_chance`); a key match, a
-//! prediction, and the same file (compared by position) need no such margin.
+//! The same data file is compared by row position, elsewhere. Another file:
+//! - a run's rows (which carry their targets) by labelled identity, and by key, but only when
+//!   the file is *related* to the partition: more of its rows match by content than chance
+//!   explains (`beyond_chance`, judged by how often the partition's own rows share an
+//!   identity). Two unrelated files that share a key column numbered from 1, or a bay whose
+//!   climate and yield agree with one trial plot's, are not taken for each other; a copy of
+//!   the partition's data is, whatever else was done to it;
+//! - rows to predict by feature identity: exactly (every row counts) for a partition whose
+//!   recipe holds every feature of the predicting model, since the model then predicts such a
+//!   row as it predicts the sealed row; beyond chance otherwise. Keys count within a related
+//!   file, and a model's own run's identities exactly.
 
 use super::sql_err;
-use crate::data::identity::{Recipe, feature_ids, key_ids, labelled_ids};
+use crate::data::identity::{
+    Recipe, feature_ids, fingerprints, key_fingerprints, key_ids, labelled_ids,
+};
 use crate::data::{Identity, Legacy, RowKey, Table};
 use crate::error::Result;
-use rusqlite::{Connection, params};
+use rusqlite::{Connection, OptionalExtension, params};
 use serde_json::Value;
 
 /// A stored partition, as far as its rows' identities go.
@@ -32,6 +37,8 @@ pub struct Stored {
     pub id: String,
     pub data_sha256: String,
     pub n_test: i64,
+    /// Its development rows (train and validation).
+    pub n_dev: i64,
     pub identity: Identity,
     /// Version 3: the columns its identities read.
     pub recipe: Option<Recipe>,
@@ -42,14 +49,18 @@ pub struct Stored {
 pub fn stored(conn: &Connection, keep: impl Fn(&Stored) -> bool) -> Result<Vec<Stored>> {
     let err = || sql_err("read partitions");
     let mut st = conn
-        .prepare("SELECT id, data_sha256, n_test, settings FROM partitions ORDER BY id")
+        .prepare(
+            "SELECT id, data_sha256, n_test, n_train + n_validation, settings FROM partitions ORDER BY id",
+        )
         .map_err(err())?;
-    let rows: Vec<(String, String, i64, String)> = st
-        .query_map([], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?)))
+    let rows: Vec<(String, String, i64, i64, String)> = st
+        .query_map([], |r| {
+            Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?, r.get(4)?))
+        })
         .and_then(|rows| rows.collect())
         .map_err(err())?;
     let mut out = Vec::new();
-    for (id, data_sha256, n_test, settings) in rows {
+    for (id, data_sha256, n_test, n_dev, settings) in rows {
         let v: Value = serde_json::from_str(&settings).unwrap_or(Value::Null);
         let Some(identity) = Identity::of_number(v["identity"].as_i64().unwrap_or(1)) else {
             continue;
@@ -62,6 +73,7 @@ pub fn stored(conn: &Connection, keep: impl Fn(&Stored) -> bool) -> Result<Vec<S
             id,
             data_sha256,
             n_test,
+            n_dev,
             identity,
             recipe,
         };
@@ -72,29 +84,52 @@ pub fn stored(conn: &Connection, keep: impl Fn(&Stored) -> bool) -> Result<Vec<S
     Ok(out)
 }
 
-/// A row's (feature, labelled) identities.
-type Pair = (RowKey, RowKey);
-
-/// The stored sets of a partition's test-row identities.
-#[derive(Debug, Clone, Copy)]
-pub enum Set {
-    /// `partition_rows`: feature identities (versions 1 and 2: whole-row identities).
-    Rows,
-    /// `partition_labels`: labelled identities.
-    Labels,
-    /// `partition_keys`: key identities.
-    Keys,
+/// A version-3 partition's stored identity sets, each sorted and distinct.
+#[derive(Debug, Clone, Default)]
+pub struct Sets {
+    pub labels: Vec<RowKey>,
+    pub keys: Vec<RowKey>,
+    pub development: Vec<u64>,
+    pub development_keys: Vec<u64>,
 }
 
-impl Set {
-    /// The table and its identity column.
-    fn table(self) -> (&'static str, &'static str) {
-        match self {
-            Set::Rows => ("partition_rows", "row_key"),
-            Set::Labels => ("partition_labels", "label_id"),
-            Set::Keys => ("partition_keys", "key_id"),
-        }
-    }
+/// The sets of a version-3 partition (`None` when it stores none).
+pub fn sets(conn: &Connection, partition: &str) -> Result<Option<Sets>> {
+    type Blobs = (Vec<u8>, Option<Vec<u8>>, Vec<u8>, Option<Vec<u8>>);
+    let blobs: Option<Blobs> = conn
+        .query_row(
+            "SELECT test_labels, test_keys, development, development_keys FROM partition_identities WHERE partition_id = ?1",
+            [partition],
+            |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?)),
+        )
+        .optional()
+        .map_err(sql_err("read stored identities"))?;
+    Ok(blobs.map(|(l, k, d, dk)| Sets {
+        labels: ids16(&l),
+        keys: ids16(k.as_deref().unwrap_or_default()),
+        development: ids8(&d),
+        development_keys: ids8(dk.as_deref().unwrap_or_default()),
+    }))
+}
+
+fn ids16(blob: &[u8]) -> Vec<RowKey> {
+    blob.chunks_exact(16)
+        .filter_map(|c| RowKey::try_from(c).ok())
+        .collect()
+}
+
+fn ids8(blob: &[u8]) -> Vec<u64> {
+    blob.chunks_exact(8)
+        .filter_map(|c| <[u8; 8]>::try_from(c).ok().map(u64::from_le_bytes))
+        .collect()
+}
+
+fn blob16(ids: &[RowKey]) -> Vec<u8> {
+    ids.iter().flat_map(|k| k.iter().copied()).collect()
+}
+
+fn blob8(ids: &[u64]) -> Vec<u8> {
+    ids.iter().flat_map(|k| k.to_le_bytes()).collect()
 }
 
 /// Some rows of a table, identified in every way the stored partitions need, each way once.
@@ -105,107 +140,106 @@ pub struct TableIds<'a> {
     key: Option<usize>,
     /// The target column, when the rows carry their targets.
     target: Option<usize>,
-    /// The features of the model whose predictions are made, when predicting.
-    model: Option<Vec<String>>,
-    /// Whether labelled matches must exceed chance (a run's rows from another file).
-    chance: bool,
     threads: usize,
-    /// Per recipe's columns: (feature, labelled) identities, or `None` when the table lacks a
-    /// column.
-    features: Vec<(Vec<String>, Option<Vec<Pair>>)>,
+    /// Per recipe's columns: labelled (with a target) or feature identities; `None` when the
+    /// table lacks a column.
+    content: Vec<(Vec<String>, Option<Vec<RowKey>>)>,
+    prints: Vec<(Vec<String>, Option<Vec<u64>>)>,
     keys: Vec<(usize, Vec<Option<RowKey>>)>,
+    key_prints: Vec<(usize, Vec<Option<u64>>)>,
     legacy: Vec<(Legacy, Vec<RowKey>)>,
+}
+
+/// The index of `key` in a cache, computing its entry with `make` the first time.
+fn cached<K: PartialEq, V>(cache: &mut Vec<(K, V)>, key: K, make: impl FnOnce() -> V) -> usize {
+    match cache.iter().position(|(k, _)| *k == key) {
+        Some(at) => at,
+        None => {
+            let v = make();
+            cache.push((key, v));
+            cache.len() - 1
+        }
+    }
 }
 
 impl<'a> TableIds<'a> {
     /// `rows` of `table`; `key` as for whole-row identities; `target` when the rows carry their
-    /// targets; `model` (feature names) when their predictions are made. Without a model the
-    /// rows are a run's, from another file than the partitions', and labelled matches must
-    /// exceed chance.
+    /// targets.
     pub fn new(
         table: &'a Table,
         rows: &'a [usize],
         key: Option<usize>,
         target: Option<usize>,
-        model: Option<Vec<String>>,
     ) -> Self {
         TableIds {
             table,
             rows,
             key,
             target,
-            chance: model.is_none(),
-            model,
             threads: crate::data::all_cores(),
-            features: Vec::new(),
+            content: Vec::new(),
+            prints: Vec::new(),
             keys: Vec::new(),
+            key_prints: Vec::new(),
             legacy: Vec::new(),
         }
     }
 
-    /// The rows' (feature, labelled) identities under `recipe`; `None` when the table lacks
-    /// a column. Without a target the labelled half repeats the feature identity (unused).
-    fn under(&mut self, recipe: &Recipe) -> Option<&[Pair]> {
-        let at = match self
-            .features
-            .iter()
-            .position(|(c, _)| c.as_slice() == recipe.columns())
-        {
-            Some(at) => at,
-            None => {
-                let ids = match self.target {
-                    Some(t) => labelled_ids(self.table, recipe, t, self.rows, self.threads),
-                    None => feature_ids(self.table, recipe, self.rows, self.threads)
-                        .map(|f| f.into_iter().map(|k| (k, k)).collect()),
-                };
-                self.features.push((recipe.columns().to_vec(), ids));
-                self.features.len() - 1
-            }
-        };
-        self.features[at].1.as_deref()
+    /// The rows' content identities under `recipe`: labelled when they carry targets, else
+    /// features only; `None` when the table lacks a recipe column.
+    fn content(&mut self, recipe: &Recipe) -> Option<&[RowKey]> {
+        let (table, rows, target, threads) = (self.table, self.rows, self.target, self.threads);
+        let at = cached(
+            &mut self.content,
+            recipe.columns().to_vec(),
+            || match target {
+                Some(t) => labelled_ids(table, recipe, t, rows, threads)
+                    .map(|p| p.into_iter().map(|(_, l)| l).collect()),
+                None => feature_ids(table, recipe, rows, threads),
+            },
+        );
+        self.content[at].1.as_deref()
     }
 
-    /// The rows' labelled identities under `recipe`, when they carry targets.
-    fn labelled(&mut self, recipe: &Recipe) -> Option<Vec<Option<RowKey>>> {
-        self.target?;
-        Some(self.under(recipe)?.iter().map(|p| Some(p.1)).collect())
+    /// The rows' labelled fingerprints under `recipe` (rows that carry targets).
+    fn prints(&mut self, recipe: &Recipe) -> Option<&[u64]> {
+        let (table, rows, threads) = (self.table, self.rows, self.threads);
+        let target = self.target?;
+        let at = cached(&mut self.prints, recipe.columns().to_vec(), || {
+            fingerprints(table, recipe, target, rows, threads)
+        });
+        self.prints[at].1.as_deref()
     }
 
-    /// The rows' feature identities under `recipe`, when predicting with a model whose
-    /// features the recipe holds (the model then predicts such a row as the sealed one).
-    fn predicted(&mut self, recipe: &Recipe) -> Option<Vec<Option<RowKey>>> {
-        let model = self.model.as_ref().filter(|m| !m.is_empty())?;
-        if !model.iter().all(|f| recipe.columns().contains(f)) {
-            return None;
-        }
-        Some(self.under(recipe)?.iter().map(|p| Some(p.0)).collect())
+    /// The key column of `recipe` in this table.
+    fn key_column(&self, recipe: &Recipe) -> Option<usize> {
+        recipe
+            .key()
+            .and_then(|k| crate::data::identity::find(self.table, k))
     }
 
-    /// The rows' key identities from the column of the recipe's key name; `None` when the
-    /// table has no such column.
     fn keys(&mut self, recipe: &Recipe) -> Option<&[Option<RowKey>]> {
-        let col = recipe.key().and_then(|k| self.table.index_of(k))?;
-        let at = match self.keys.iter().position(|(c, _)| *c == col) {
-            Some(at) => at,
-            None => {
-                let ids = key_ids(self.table, col, self.rows, self.threads);
-                self.keys.push((col, ids));
-                self.keys.len() - 1
-            }
-        };
+        let col = self.key_column(recipe)?;
+        let (table, rows, threads) = (self.table, self.rows, self.threads);
+        let at = cached(&mut self.keys, col, || key_ids(table, col, rows, threads));
         Some(&self.keys[at].1)
+    }
+
+    fn key_prints(&mut self, recipe: &Recipe) -> Option<&[Option<u64>]> {
+        let col = self.key_column(recipe)?;
+        let (table, rows, threads) = (self.table, self.rows, self.threads);
+        let at = cached(&mut self.key_prints, col, || {
+            key_fingerprints(table, col, rows, threads)
+        });
+        Some(&self.key_prints[at].1)
     }
 
     /// The rows' whole-row identities (versions 1 and 2), with the caller's key.
     fn legacy(&mut self, v: Legacy) -> &[RowKey] {
-        let at = match self.legacy.iter().position(|(l, _)| *l == v) {
-            Some(at) => at,
-            None => {
-                let ids = crate::data::row_keys(self.table, self.key, self.rows, self.threads, v);
-                self.legacy.push((v, ids));
-                self.legacy.len() - 1
-            }
-        };
+        let (table, rows, key, threads) = (self.table, self.rows, self.key, self.threads);
+        let at = cached(&mut self.legacy, v, || {
+            crate::data::row_keys(table, key, rows, threads, v)
+        });
         &self.legacy[at].1
     }
 }
@@ -213,18 +247,16 @@ impl<'a> TableIds<'a> {
 /// Lookups by identity cost more than a step of a scan, by about this factor.
 pub const PROBE_COST: i64 = 16;
 
-/// Which of `ids` are stored in a partition's `set` (its primary key is (partition_id,
-/// identity); `stored` is about how many rows it holds). One lookup per distinct identity when
-/// they are few beside the stored rows, else one pass over them in identity order beside the
-/// sorted identities; the answer is the same either way.
-pub(super) fn members(
+/// Which of `ids` are stored in a partition's `partition_rows` (its primary key is
+/// (partition_id, row_key); `stored` is about how many rows it holds). One lookup per distinct
+/// identity when they are few beside the stored rows, else one pass over them in identity
+/// order beside the sorted identities; the answer is the same either way.
+pub fn members(
     conn: &Connection,
-    set: Set,
     partition: &str,
     stored: i64,
     ids: &[Option<RowKey>],
 ) -> Result<Vec<bool>> {
-    let (table, column) = set.table();
     let err = || sql_err("find sealed rows");
     let mut distinct: Vec<RowKey> = ids.iter().flatten().copied().collect();
     distinct.sort_unstable();
@@ -232,9 +264,9 @@ pub(super) fn members(
     let mut found = vec![false; distinct.len()];
     if (distinct.len() as i64).saturating_mul(PROBE_COST) < stored {
         let mut probe = conn
-            .prepare_cached(&format!(
-                "SELECT EXISTS (SELECT 1 FROM {table} WHERE partition_id = ?1 AND {column} = ?2)"
-            ))
+            .prepare_cached(
+                "SELECT EXISTS (SELECT 1 FROM partition_rows WHERE partition_id = ?1 AND row_key = ?2)",
+            )
             .map_err(err())?;
         for (k, f) in distinct.iter().zip(found.iter_mut()) {
             *f = probe
@@ -243,9 +275,9 @@ pub(super) fn members(
         }
     } else {
         let mut scan = conn
-            .prepare_cached(&format!(
-                "SELECT {column} FROM {table} WHERE partition_id = ?1 ORDER BY {column}"
-            ))
+            .prepare_cached(
+                "SELECT row_key FROM partition_rows WHERE partition_id = ?1 ORDER BY row_key",
+            )
             .map_err(err())?;
         let mut rows = scan.query([partition]).map_err(err())?;
         let mut at = 0;
@@ -267,43 +299,133 @@ pub(super) fn members(
         .collect())
 }
 
-/// For each partition of `parts` that holds any of the rows: which rows (positions into the
-/// rows `ids` identifies) are its test rows, compared as the module documentation says.
-pub fn sealed_rows(
+/// How many distinct rows a partition's `partition_rows` holds.
+fn stored_count(conn: &Connection, partition: &str) -> Result<usize> {
+    conn.query_row(
+        "SELECT count(*) FROM partition_rows WHERE partition_id = ?1",
+        [partition],
+        |r| r.get::<_, i64>(0),
+    )
+    .map(|n| n as usize)
+    .map_err(sql_err("count sealed rows"))
+}
+
+/// Whether `found` distinct identities of ours (of `ours` distinct in all) that are among a
+/// stored set is more than chance explains. A set of `stored_rows` rows that holds
+/// `stored_distinct` distinct identities shows how often two records of its kind agree by
+/// chance: c = (rows / distinct - 1) / (rows - 1), the share of pairs of its rows that share
+/// an identity when each identity is held equally often. One of our identities then meets one
+/// of the stored rows by chance with probability about min(1, rows x c), so about
+/// E = ours x that would. More than E + 3 sqrt(E) + 2 is beyond chance (a Poisson bound of about
+/// three standard deviations, and at least three identities). The stored set, not ours, sets
+/// the odds: copies of a row in the file cannot raise them.
+pub fn beyond_chance(found: usize, ours: usize, stored_rows: i64, stored_distinct: usize) -> bool {
+    let (n, d) = (stored_rows as f64, stored_distinct as f64);
+    let c = if n > 1.0 && d > 0.0 {
+        ((n / d - 1.0) / (n - 1.0)).max(0.0)
+    } else {
+        0.0
+    };
+    let e = ours as f64 * (n * c).min(1.0);
+    found as f64 > e + 3.0 * e.sqrt() + 2.0
+}
+
+/// Distinct identities among `ids`, and among those that `hit` marks.
+fn distinct_counts<T: Ord + Copy>(ids: &[T], hit: &[bool]) -> (usize, usize) {
+    let mut all: Vec<T> = ids.to_vec();
+    all.sort_unstable();
+    all.dedup();
+    let mut found: Vec<T> = ids
+        .iter()
+        .zip(hit)
+        .filter(|(_, h)| **h)
+        .map(|(k, _)| *k)
+        .collect();
+    found.sort_unstable();
+    found.dedup();
+    (all.len(), found.len())
+}
+
+/// Rows of a file that are another file's partition's test rows: a run's rows (`ids` with
+/// their target), for each partition of `parts` whose test rows the file holds, the positions
+/// into `ids`' rows. Version 3: by labelled identity and key, in a file related to the
+/// partition (module documentation); versions 1 and 2: by whole-row identity, exactly.
+pub fn run_overlaps(
     conn: &Connection,
     ids: &mut TableIds,
     parts: &[Stored],
 ) -> Result<Vec<(String, Vec<usize>)>> {
     let mut out = Vec::new();
-    if ids.rows.is_empty() {
-        return Ok(out);
-    }
     for p in parts.iter().filter(|p| p.n_test > 0) {
-        let mut hit = vec![false; ids.rows.len()];
-        let mut mark = |m: Vec<bool>| hit.iter_mut().zip(m).for_each(|(h, m)| *h |= m);
-        let member = |set: Set, ids: &[Option<RowKey>]| members(conn, set, &p.id, p.n_test, ids);
-        match (p.identity.legacy(), &p.recipe) {
+        let hit = match (p.identity.legacy(), &p.recipe) {
             (Some(v), _) => {
                 let keys: Vec<Option<RowKey>> = ids.legacy(v).iter().copied().map(Some).collect();
-                mark(member(Set::Rows, &keys)?);
+                members(conn, &p.id, p.n_test, &keys)?
             }
             (None, Some(recipe)) => {
-                if let Some(k) = ids.keys(recipe) {
-                    let k = k.to_vec();
-                    mark(member(Set::Keys, &k)?);
+                let Some(s) = sets(conn, &p.id)? else {
+                    continue;
+                };
+                let Some(content) = ids.content(recipe) else {
+                    continue;
+                };
+                let mut hit: Vec<bool> = content
+                    .iter()
+                    .map(|k| s.labels.binary_search(k).is_ok())
+                    .collect();
+                let (ours, found) = distinct_counts(content, &hit);
+                if !beyond_chance(found, ours, p.n_test, s.labels.len()) {
+                    continue;
                 }
-                if let Some(l) = ids.labelled(recipe) {
-                    let m = member(Set::Labels, &l)?;
-                    let found = m.iter().filter(|m| **m).count();
-                    if !ids.chance || beyond_chance(found, &l, p.n_test) {
-                        mark(m);
+                if !s.keys.is_empty()
+                    && let Some(k) = ids.keys(recipe)
+                {
+                    for (h, k) in hit.iter_mut().zip(k) {
+                        *h |= k.is_some_and(|k| s.keys.binary_search(&k).is_ok());
                     }
                 }
-                if let Some(f) = ids.predicted(recipe) {
-                    mark(member(Set::Rows, &f)?);
-                }
+                hit
             }
-            (None, None) => {}
+            (None, None) => continue,
+        };
+        let rows: Vec<usize> = (0..hit.len()).filter(|&i| hit[i]).collect();
+        if !rows.is_empty() {
+            out.push((p.id.clone(), rows));
+        }
+    }
+    Ok(out)
+}
+
+/// Rows of a file that were another file's partition's development rows: for each
+/// version-3 partition of `parts` (an older one stores none), by labelled and key
+/// fingerprints, in a file related to it.
+pub fn run_developed(
+    conn: &Connection,
+    ids: &mut TableIds,
+    parts: &[Stored],
+) -> Result<Vec<(String, Vec<usize>)>> {
+    let mut out = Vec::new();
+    for p in parts.iter().filter(|p| p.identity == Identity::V3) {
+        let (Some(recipe), Some(s)) = (&p.recipe, sets(conn, &p.id)?) else {
+            continue;
+        };
+        let Some(prints) = ids.prints(recipe) else {
+            continue;
+        };
+        let mut hit: Vec<bool> = prints
+            .iter()
+            .map(|k| s.development.binary_search(k).is_ok())
+            .collect();
+        let (ours, found) = distinct_counts(prints, &hit);
+        if !beyond_chance(found, ours, p.n_dev, s.development.len()) {
+            continue;
+        }
+        if !s.development_keys.is_empty()
+            && let Some(k) = ids.key_prints(recipe)
+        {
+            for (h, k) in hit.iter_mut().zip(k) {
+                *h |= k.is_some_and(|k| s.development_keys.binary_search(&k).is_ok());
+            }
         }
         let rows: Vec<usize> = (0..hit.len()).filter(|&i| hit[i]).collect();
         if !rows.is_empty() {
@@ -313,132 +435,152 @@ pub fn sealed_rows(
     Ok(out)
 }
 
-/// Whether `found` of the rows whose identities are `ids` matching some of `stored` identities
-/// is more than chance explains. Chance is judged by the rows themselves: the share of pairs
-/// of them that share an identity, c, is the chance that two unrelated records agree; a row
-/// then meets one of `stored` identities by chance with probability about min(1, c x stored),
-/// so about E = n x that rows would. More than E + 3 sqrt(E) + 2 is beyond chance (a Poisson
-/// bound of about three standard deviations, and at least three rows).
-pub fn beyond_chance(found: usize, ids: &[Option<RowKey>], stored: i64) -> bool {
-    let mut sorted: Vec<RowKey> = ids.iter().flatten().copied().collect();
-    sorted.sort_unstable();
-    let n = sorted.len() as f64;
-    let shared: f64 = sorted
-        .chunk_by(|a, b| a == b)
-        .map(|g| {
-            let k = g.len() as f64;
-            k * (k - 1.0) / 2.0
-        })
-        .sum();
-    let pairs = n * (n - 1.0) / 2.0;
-    let c = if pairs > 0.0 { shared / pairs } else { 0.0 };
-    let e = n * (c * stored as f64).min(1.0);
-    found as f64 > e + 3.0 * e.sqrt() + 2.0
+/// The model whose predictions are asked for: the features it reads (normalised names), and
+/// its run's own test-row identities when its features differ from its partition's recipe.
+pub struct Predictor<'a> {
+    pub features: Vec<String>,
+    /// (partition, the run's recipe, the partition's test rows' feature identities under it).
+    pub own: Option<(&'a str, Recipe, Vec<RowKey>)>,
 }
 
-/// How many of the rows (which carry their targets) are development rows of a version-3
-/// partition, by its stored labelled or key identities; `None` for an older partition, which
-/// stores none.
-pub fn developed(conn: &Connection, ids: &mut TableIds, p: &Stored) -> Result<Option<usize>> {
-    let Some(recipe) = p.recipe.as_ref().filter(|_| p.identity == Identity::V3) else {
-        return Ok(None);
-    };
-    let (labels, keys): (Option<Vec<u8>>, Option<Vec<u8>>) = match conn.query_row(
-        "SELECT label_ids, key_ids FROM partition_development WHERE partition_id = ?1",
-        [&p.id],
-        |r| Ok((r.get(0)?, r.get(1)?)),
-    ) {
-        Ok(v) => v,
-        Err(rusqlite::Error::QueryReturnedNoRows) => return Ok(None),
-        Err(e) => return Err(sql_err("read development identities")(e)),
-    };
-    let sorted = |blob: &Option<Vec<u8>>| -> Vec<RowKey> {
-        blob.as_deref()
-            .unwrap_or_default()
-            .chunks_exact(16)
-            .filter_map(|c| RowKey::try_from(c).ok())
-            .collect()
-    };
-    let (labels, keys) = (sorted(&labels), sorted(&keys));
-    let mut hit = vec![false; ids.rows.len()];
-    if let Some(l) = ids.labelled(recipe) {
-        let m: Vec<bool> = l
-            .iter()
-            .map(|k| k.is_some_and(|k| labels.binary_search(&k).is_ok()))
-            .collect();
-        let found = m.iter().filter(|m| **m).count();
-        if beyond_chance(found, &l, labels.len() as i64) {
-            hit.iter_mut().zip(m).for_each(|(h, m)| *h |= m);
+/// Rows to predict that are partitions' test rows (module documentation), per partition.
+pub fn predicted(
+    conn: &Connection,
+    ids: &mut TableIds,
+    parts: &[Stored],
+    model: &Predictor,
+) -> Result<Vec<(String, Vec<usize>)>> {
+    let mut out = Vec::new();
+    for p in parts.iter().filter(|p| p.n_test > 0) {
+        let mut hit = vec![false; ids.rows.len()];
+        match (p.identity.legacy(), &p.recipe) {
+            (Some(v), _) => {
+                let keys: Vec<Option<RowKey>> = ids.legacy(v).iter().copied().map(Some).collect();
+                let m = members(conn, &p.id, p.n_test, &keys)?;
+                hit.iter_mut().zip(m).for_each(|(h, m)| *h |= m);
+            }
+            (None, Some(recipe)) => {
+                // Feature identities whatever the file's target: equal features, equal
+                // predictions.
+                let features = {
+                    let (table, rows, threads) = (ids.table, ids.rows, ids.threads);
+                    feature_ids(table, recipe, rows, threads)
+                };
+                let mut related = false;
+                if let Some(f) = features {
+                    let given: Vec<Option<RowKey>> = f.iter().copied().map(Some).collect();
+                    let m = members(conn, &p.id, p.n_test, &given)?;
+                    let exact = !model.features.is_empty()
+                        && model.features.iter().all(|x| recipe.columns().contains(x));
+                    let (ours, found) = distinct_counts(&f, &m);
+                    related = found > 0
+                        && (exact
+                            || beyond_chance(found, ours, p.n_test, stored_count(conn, &p.id)?));
+                    if related {
+                        hit.iter_mut().zip(m).for_each(|(h, m)| *h |= m);
+                    }
+                }
+                if related
+                    && let Some(s) = sets(conn, &p.id)?
+                    && !s.keys.is_empty()
+                    && let Some(k) = ids.keys(recipe)
+                {
+                    for (h, k) in hit.iter_mut().zip(k) {
+                        *h |= k.is_some_and(|k| s.keys.binary_search(&k).is_ok());
+                    }
+                }
+            }
+            (None, None) => {}
+        }
+        if let Some((own, recipe, test)) = &model.own
+            && *own == p.id
+            && let Some(f) = feature_ids(ids.table, recipe, ids.rows, ids.threads)
+        {
+            for (h, k) in hit.iter_mut().zip(&f) {
+                *h |= test.binary_search(k).is_ok();
+            }
+        }
+        let rows: Vec<usize> = (0..hit.len()).filter(|&i| hit[i]).collect();
+        if !rows.is_empty() {
+            out.push((p.id.clone(), rows));
         }
     }
-    if !keys.is_empty()
-        && let Some(k) = ids.keys(recipe)
-    {
-        for (h, k) in hit.iter_mut().zip(k) {
-            *h |= k.is_some_and(|k| keys.binary_search(&k).is_ok());
-        }
-    }
-    Ok(Some(hit.iter().filter(|h| **h).count()))
+    Ok(out)
 }
 
-/// Store a new version-3 partition's labelled and key identities and its development rows'.
-pub fn insert_extras(
+/// Store a new version-3 partition's identity sets.
+pub fn insert_sets(
     tx: &Connection,
     partition: &str,
     ids: &crate::runner::Identities,
     keyed: bool,
 ) -> rusqlite::Result<()> {
-    for (table, column, keys) in [
-        ("partition_labels", "label_id", &ids.test_labels),
-        ("partition_keys", "key_id", &ids.test_keys),
-    ] {
-        let mut st = tx.prepare(&format!(
-            "INSERT OR IGNORE INTO {table} (partition_id, {column}) VALUES (?1, ?2)"
-        ))?;
-        for k in keys {
-            st.execute(params![partition, &k[..]])?;
-        }
-    }
-    let blob =
-        |keys: &[RowKey]| -> Vec<u8> { keys.iter().flat_map(|k| k.iter().copied()).collect() };
     tx.execute(
-        "INSERT OR IGNORE INTO partition_development (partition_id, label_ids, key_ids) VALUES (?1, ?2, ?3)",
+        "INSERT OR IGNORE INTO partition_identities (partition_id, test_labels, test_keys, development, development_keys)
+         VALUES (?1, ?2, ?3, ?4, ?5)",
         params![
             partition,
-            blob(&ids.development),
-            keyed.then(|| blob(&ids.development_keys))
+            blob16(&ids.test_labels),
+            keyed.then(|| blob16(&ids.test_keys)),
+            blob8(&ids.development),
+            keyed.then(|| blob8(&ids.development_keys)),
         ],
     )?;
     Ok(())
+}
+
+/// Store a run's own test-row identities, when its recipe differs from its partition's.
+pub fn insert_run(
+    tx: &Connection,
+    run: i64,
+    recipe: &Recipe,
+    test: &[RowKey],
+) -> rusqlite::Result<()> {
+    let mut sorted = test.to_vec();
+    sorted.sort_unstable();
+    sorted.dedup();
+    tx.execute(
+        "INSERT INTO run_identities (run_id, recipe, test_rows) VALUES (?1, ?2, ?3)",
+        params![run, recipe.to_json().to_string(), blob16(&sorted)],
+    )?;
+    Ok(())
+}
+
+/// A run's own recipe and test-row identities, when it stored them.
+pub fn run_ids(conn: &Connection, run: i64) -> Result<Option<(Recipe, Vec<RowKey>)>> {
+    let row: Option<(String, Vec<u8>)> = conn
+        .query_row(
+            "SELECT recipe, test_rows FROM run_identities WHERE run_id = ?1",
+            [run],
+            |r| Ok((r.get(0)?, r.get(1)?)),
+        )
+        .optional()
+        .map_err(sql_err("read a run's identities"))?;
+    Ok(row.and_then(|(recipe, blob)| {
+        let v: Value = serde_json::from_str(&recipe).ok()?;
+        Some((Recipe::from_json(&v)?, ids16(&blob)))
+    }))
 }
 
 #[cfg(test)]
 mod tests {
     use super::*;
 
-    fn id(i: u32) -> Option<RowKey> {
-        let mut k = [0u8; 16];
-        k[..4].copy_from_slice(&i.to_le_bytes());
-        Some(k)
-    }
-
-    /// Rows that are all told apart: chance explains no match, so three matches are beyond it
-    /// and two are not (the margin of two rows). Rows of eight kinds only: every row meets a
-    /// stored one by chance, so even all of them matching is not evidence.
+    /// A stored set of distinct identities: chance explains no match, so three are beyond it
+    /// and two are not (the margin of two). A stored set of eight kinds of rows: any row meets
+    /// one of them by chance, so even every row matching is not evidence. Copies of a row on
+    /// our side change nothing: the stored set sets the odds.
     #[test]
     fn matches_count_only_beyond_what_chance_explains() {
-        let distinct: Vec<Option<RowKey>> = (0..500).map(id).collect();
-        assert!(!beyond_chance(2, &distinct, 100));
-        assert!(beyond_chance(3, &distinct, 100));
-        let coarse: Vec<Option<RowKey>> = (0..1000).map(|i| id(i % 8)).collect();
-        // c = 8 x C(125, 2) / C(1000, 2) = 0.1241..., so E = 1000 x min(1, 0.99) = 993.
-        assert!(!beyond_chance(1000, &coarse, 8));
-        // Few duplicates among many rows: E = 1000 x (10 / 499500) x 50 = 1.0, and the bound
-        // is 1 + 3 + 2 = 6.
-        let mut few: Vec<Option<RowKey>> = (0..990).map(id).collect();
-        few.extend((0..10).map(id));
-        assert!(!beyond_chance(6, &few, 50));
-        assert!(beyond_chance(7, &few, 50));
-        assert!(!beyond_chance(0, &[], 10));
+        assert!(!beyond_chance(2, 500, 100, 100));
+        assert!(beyond_chance(3, 500, 100, 100));
+        // 200 stored rows of 8 identities: c = (25 - 1) / 199 = 0.1206, rows x c = 24 > 1, so
+        // E = 1000 and nothing is beyond it.
+        assert!(!beyond_chance(1000, 1000, 200, 8));
+        // 1000 stored rows, 990 distinct: c = (1000 / 990 - 1) / 999 = 1.0111e-5, rows x c =
+        // 0.0101, E = 500 x 0.0101 = 5.05, the bound 5.05 + 3 x 2.247 + 2 = 13.8.
+        assert!(!beyond_chance(13, 500, 1000, 990));
+        assert!(beyond_chance(14, 500, 1000, 990));
+        assert!(!beyond_chance(0, 0, 10, 10));
     }
 }

@@ -920,3 +920,397 @@ fn nested_and_merged_runs_count_the_same() {
         dir.probity(&["audit", "--verify"]).expect(0);
     }
 }
+
+/// A split that differs only in what does not move a test row (other folds, a `missing` rule
+/// with nothing missing) is another partition over the same test rows: a reveal there is a
+/// look at the first partition's rows too, counted there; and when the first is under a
+/// mechanism, the exact reveal is refused.
+#[test]
+fn another_partition_over_the_same_test_rows_is_counted_and_cannot_undo_a_mechanism() {
+    let split = "method = \"random\"\nseed = 7\ntest = 0.2\nfolds = 5";
+    let d = diabetes(
+        "same-test-rows",
+        &[
+            ("s.toml", split, ""),
+            (
+                "folds.toml",
+                &split.replace("folds = 5", "folds = 4"),
+                "[guard]\nreveals = 10",
+            ),
+        ],
+    );
+    d.probity(&["run", "s.toml"]).expect(0);
+    d.probity(&["run", "folds.toml"]).expect(0);
+    let (p1, p2) = (partition_of(&d, "1"), partition_of(&d, "2"));
+    assert_ne!(p1, p2);
+    let r = d.probity(&["reveal", "2", "--yes", "--json"]).expect(0);
+    assert!(
+        r.stderr().contains(&format!(
+            "88 of these test rows are test rows of partition {p1} too: counted there as one consultation (1 of its budget of 1)"
+        )),
+        "{}",
+        r.stderr()
+    );
+    d.probity(&["reveal", "1", "--yes"]).expect(0);
+    let a = d.probity(&["audit", "--json"]).expect(3).json();
+    let part = |id: &str| {
+        a["partitions"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .find(|x| x["id"] == id)
+            .unwrap()
+            .clone()
+    };
+    assert_eq!(part(&p1)["reveals"], 2);
+    assert_eq!(part(&p1)["over_budget"], true);
+    // The second partition counts the first one's reveal too.
+    assert_eq!(part(&p2)["reveals"], 2);
+
+    // Under a mechanism: the copy's exact reveal is refused, nothing recorded.
+    let d = diabetes(
+        "same-test-rows-ladder",
+        &[
+            ("s.toml", split, "[guard]\nmode = \"ladder\"\nstep = 5.0"),
+            ("mean.toml", &format!("{split}\n"), "[guard]\nreveals = 10"),
+        ],
+    );
+    d.write(
+        "mean.toml",
+        &std::fs::read_to_string(d.path.join("mean.toml"))
+            .unwrap()
+            .replace(
+                "ignore = [\"part\"]",
+                "ignore = [\"part\"]\nmissing = \"mean\"",
+            ),
+    );
+    d.probity(&["run", "s.toml"]).expect(0);
+    d.probity(&["run", "mean.toml"]).expect(0);
+    assert_ne!(partition_of(&d, "1"), partition_of(&d, "2"));
+    let before = d.counts();
+    let r = d.probity(&["reveal", "2", "--yes"]).expect(2);
+    assert!(
+        r.stderr().contains("sealed in ladder mode")
+            && r.stderr().contains("Reveal a run of that partition"),
+        "{}",
+        r.stderr()
+    );
+    assert!(!r.stdout().contains("rmse"), "{}", r.stdout());
+    assert_eq!(d.counts(), before);
+}
+
+/// Under a mechanism nothing derived from the exact scores is shown: not the bootstrap's
+/// standard error either (with a proportion it gives the score back).
+#[test]
+fn a_mechanism_withholds_the_standard_error() {
+    let d = reusable_dir("no-se");
+    d.write(
+        "l.toml",
+        &std::fs::read_to_string(d.path.join("r.toml"))
+            .unwrap()
+            .replace(
+                "mode = \"reusable\"\nreveals = 1\nthreshold = 0.000001\nnoise = 0.0000001",
+                "mode = \"ladder\"\nstep = 0.1",
+            ),
+    );
+    d.probity(&["run", "l.toml"]).expect(0);
+    let j = d
+        .probity(&["reveal", "1", "--yes", "--json"])
+        .expect(0)
+        .json();
+    assert_eq!(j["mode"], "ladder");
+    assert!(j["optimism"]["se"].is_null(), "{}", j["optimism"]);
+    assert!(j["optimism"]["estimate"].is_null(), "{}", j["optimism"]);
+    let a = d.probity(&["audit", "--json"]).expect(0).json();
+    assert!(a["partitions"][0]["optimism"]["se"].is_null());
+}
+
+/// A run on the same partition that reads fewer features keeps the test rows' identities
+/// under its own features: its model's predictions of the sealed rows (without the feature it
+/// does not read) are refused. A model that reads a column the partition never had (a constant
+/// added to a copy of the development rows) predicts the sealed rows by their features all the
+/// same: a file that holds them all is recognised.
+#[test]
+fn predict_recognises_sealed_rows_whatever_features_the_model_reads() {
+    let split = "method = \"random\"\nseed = 7\ntest = 0.2\nfolds = 5";
+    let d = diabetes("predict-features", &[("s.toml", split, "")]);
+    d.write(
+        "nos6.toml",
+        &spec("diabetes.csv", None, split)
+            .replace("ignore = [\"part\"]", "ignore = [\"part\", \"s6\"]"),
+    );
+    d.probity(&["run", "s.toml"]).expect(0);
+    d.probity(&["run", "nos6.toml"]).expect(0);
+    let p = partition_of(&d, "1");
+    assert_eq!(partition_of(&d, "2"), p);
+    let base = || Csv::read(&std::fs::read_to_string(reference("diabetes.csv")).unwrap());
+    d.write("nos6.csv", &sealed_rows_of(&d, &base()).drop("s6").text());
+    let r = d
+        .probity(&["predict", "2", "--input", "nos6.csv", "--output", "p.csv"])
+        .expect(2);
+    assert!(
+        r.stderr()
+            .contains(&format!("88 rows are test rows of sealed partition {p}")),
+        "{}",
+        r.stderr()
+    );
+    // A model with an extra constant column, fitted on a copy of the development rows alone.
+    let dev = {
+        let c = base();
+        let sealed = sealed_rows_of(&d, &base());
+        c.keep(|_, r| !sealed.rows.contains(&r.to_vec()))
+            .add("z", |_| "1".into())
+    };
+    assert_eq!(dev.rows.len(), 354);
+    d.write("dev.csv", &dev.text());
+    d.write(
+        "z.toml",
+        &spec("dev.csv", None, "method = \"random\"\nseed = 3\nfolds = 5"),
+    );
+    d.probity(&["run", "z.toml"]).expect(0);
+    d.write(
+        "sealed-z.csv",
+        &sealed_rows_of(&d, &base())
+            .drop("y")
+            .add("z", |_| "1".into())
+            .text(),
+    );
+    let r = d
+        .probity(&[
+            "predict",
+            "3",
+            "--input",
+            "sealed-z.csv",
+            "--output",
+            "p.csv",
+        ])
+        .expect(2);
+    assert!(
+        r.stderr()
+            .contains(&format!("88 rows are test rows of sealed partition {p}")),
+        "{}",
+        r.stderr()
+    );
+}
+
+/// A copied file whose split column puts the sealed rows among the validation rows, padded
+/// with copies of one development row, is still counted: the odds of chance come from the
+/// sealed partition, not from the file. And a file that holds the sealed rows but sends only
+/// two of them to validation (the rest to its own test rows) is recognised as a copy, so the
+/// two count.
+#[test]
+fn padding_or_trickling_sealed_rows_is_counted() {
+    let d = Dir::new("padding");
+    d.copy(&reference("diabetes.csv"), "d.csv");
+    d.write(
+        "d.toml",
+        &spec(
+            "d.csv",
+            None,
+            "method = \"random\"\nseed = 7\ntest = 0.2\nfolds = 5",
+        ),
+    );
+    d.probity(&["run", "d.toml"]).expect(0);
+    let p = partition_of(&d, "1");
+    let base = Csv::read(&std::fs::read_to_string(reference("diabetes.csv")).unwrap());
+    let sealed = sealed_rows_of(&d, &base);
+    let is_sealed = |r: &[String]| sealed.rows.contains(&r.to_vec());
+    let column = |file: &str| {
+        format!(
+            "name = \"d\"\ntask = \"regression\"\n[data]\npath = \"{file}\"\ntarget = \"y\"\nignore = [\"part\"]\n[split]\nmethod = \"column\"\ncolumn = \"p2\"\nfolds = 5\n[[model]]\nkind = \"ridge\"\nlambda = [10.0]\n"
+        )
+    };
+    // Padded: the sealed rows as validation, plus 18 copies of one development row.
+    let mut padded = Csv {
+        header: base.header.clone(),
+        rows: base.rows.clone(),
+    };
+    let first_dev = padded.rows.iter().find(|r| !is_sealed(r)).unwrap().clone();
+    for _ in 0..18 {
+        padded.rows.push(first_dev.clone());
+    }
+    let n = padded.rows.len();
+    let padded = padded.add("p2", |i| {
+        if i >= n - 18 {
+            "validation".into()
+        } else {
+            String::new()
+        }
+    });
+    let padded = Csv {
+        rows: padded
+            .rows
+            .iter()
+            .map(|r| {
+                let mut r = r.clone();
+                let last = r.len() - 1;
+                if r[last].is_empty() {
+                    r[last] = if is_sealed(&r[..last]) {
+                        "validation"
+                    } else {
+                        "train"
+                    }
+                    .into();
+                }
+                r
+            })
+            .collect(),
+        header: padded.header,
+    };
+    d.write("padded.csv", &padded.text());
+    d.write("padded.toml", &column("padded.csv"));
+    let j = d
+        .probity(&["run", "padded.toml", "--json"])
+        .expect(0)
+        .json();
+    assert!(
+        warnings(&j).iter().any(|w| w.starts_with("88 of ")
+            && w.contains(&format!("sealed test rows of partition {p}"))),
+        "{:?}",
+        warnings(&j)
+    );
+    // Trickled: two sealed rows to validation, the other 86 to the file's own test rows.
+    let mut k = 0;
+    let trickled = base.add("p2", |_| String::new());
+    let trickled = Csv {
+        rows: trickled
+            .rows
+            .iter()
+            .map(|r| {
+                let mut r = r.clone();
+                let last = r.len() - 1;
+                r[last] = if is_sealed(&r[..last]) {
+                    k += 1;
+                    if k <= 2 { "validation" } else { "test" }
+                } else {
+                    "train"
+                }
+                .into();
+                r
+            })
+            .collect(),
+        header: trickled.header,
+    };
+    d.write("trickled.csv", &trickled.text());
+    d.write("trickled.toml", &column("trickled.csv"));
+    let j = d
+        .probity(&["run", "trickled.toml", "--json"])
+        .expect(0)
+        .json();
+    assert!(
+        warnings(&j)
+            .iter()
+            .any(|w| w.starts_with("2 of ")
+                && w.contains(&format!("sealed test rows of partition {p}"))),
+        "{:?}",
+        warnings(&j)
+    );
+    let a = d.probity(&["audit", "--json"]).expect(3).json();
+    let part = a["partitions"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|x| x["id"] == p.as_str())
+        .unwrap()
+        .clone();
+    assert_eq!(part["consultations"], 2, "{part}");
+}
+
+/// Two unrelated files keyed by an `id` numbered from 1 are not confused: the second file's
+/// run counts no use of the first's partition, and the first model's predictions of a new
+/// batch numbered from 1 are not refused.
+#[test]
+fn unrelated_files_that_share_key_numbers_are_not_confused() {
+    let d = Dir::new("shared-ids");
+    let mut a = String::from("id,x1,x2,y\n");
+    for i in 1..=200 {
+        let (x1, x2) = ((i * 37 % 101) as f64 / 7.0, (i * 53 % 89) as f64 / 3.0);
+        a.push_str(&format!("{i},{x1:.3},{x2:.3},{:.3}\n", 2.0 * x1 - x2 / 4.0));
+    }
+    let mut b = String::from("id,pressure,flow,y\n");
+    for i in 1..=300 {
+        let (p, f) = (900.0 + (i * 29 % 97) as f64, (i * 17 % 43) as f64 / 5.0);
+        b.push_str(&format!("{i},{p:.1},{f:.2},{:.2}\n", p / 100.0 + f));
+    }
+    let mut batch = String::from("id,x1,x2\n");
+    for i in 1..=50 {
+        batch.push_str(&format!(
+            "{i},{:.3},{:.3}\n",
+            i as f64 / 9.0 + 0.0101,
+            i as f64 / 5.0 + 0.0203
+        ));
+    }
+    d.write("a.csv", &a);
+    d.write("b.csv", &b);
+    d.write("batch.csv", &batch);
+    let keyed = |file: &str| {
+        format!(
+            "name = \"k\"\ntask = \"regression\"\n[data]\npath = \"{file}\"\ntarget = \"y\"\nkey = \"id\"\n[split]\nmethod = \"random\"\nseed = 2\ntest = 0.2\nfolds = 4\n[[model]]\nkind = \"ridge\"\nlambda = [1.0]\n"
+        )
+    };
+    d.write("a.toml", &keyed("a.csv"));
+    d.write("b.toml", &keyed("b.csv"));
+    d.probity(&["run", "a.toml"]).expect(0);
+    let j = d.probity(&["run", "b.toml", "--json"]).expect(0).json();
+    assert!(warnings(&j).is_empty(), "{:?}", warnings(&j));
+    d.probity(&["predict", "1", "--input", "batch.csv", "--output", "p.csv"])
+        .expect(0);
+    let a = d.probity(&["audit", "--json"]).expect(0).json();
+    for p in a["partitions"].as_array().unwrap() {
+        assert_eq!(p["consultations"], 0, "{p}");
+    }
+}
+
+/// The rules of a partition are those of its first run in the ledger's order: a run that
+/// started earlier (its grid paused) and is stored later does not change them after a reveal
+/// followed them.
+#[test]
+fn rules_cannot_change_after_a_reveal_followed_them() {
+    let split = "method = \"random\"\nseed = 7\ntest = 0.2\nfolds = 5";
+    let d = diabetes(
+        "seal-order",
+        &[
+            (
+                "ladder.toml",
+                split,
+                "[guard]\nmode = \"ladder\"\nstep = 5.0",
+            ),
+            ("count.toml", split, "[guard]\nreveals = 10"),
+        ],
+    );
+    let go = d.path.join("go");
+    let mut slow = Command::new(assert_cmd::cargo::cargo_bin("probity"))
+        .current_dir(&d.path)
+        .args(["run", "ladder.toml"])
+        .env_remove("PROBITY_LEDGER")
+        .env("PROBITY_PAUSE_AT", "run:grid")
+        .env("PROBITY_RESUME_ON", &go)
+        .stdout(Stdio::piped())
+        .stderr(Stdio::piped())
+        .spawn()
+        .unwrap();
+    let mut err = BufReader::new(slow.stderr.take().unwrap());
+    let mut line = String::new();
+    loop {
+        line.clear();
+        assert!(
+            err.read_line(&mut line).unwrap() > 0,
+            "ended before pausing"
+        );
+        if line.trim_end() == "probity: paused at run:grid" {
+            break;
+        }
+    }
+    d.probity(&["run", "count.toml"]).expect(0);
+    let j = d
+        .probity(&["reveal", "1", "--yes", "--json"])
+        .expect(0)
+        .json();
+    assert_eq!(j["mode"], "count");
+    std::fs::write(&go, "").unwrap();
+    assert!(slow.wait().unwrap().success());
+    let a = d.probity(&["audit", "--json"]).expect(0).json();
+    assert_eq!(a["partitions"][0]["mode"], "count");
+    assert_eq!(a["partitions"][0]["budget"], 10);
+    assert_eq!(a["partitions"][0]["sealed_by_run"], 1);
+}
