@@ -49,7 +49,9 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
         let h = &p.history;
         let over = crate::guard::consult::over_budget(rules, h);
         any_over |= over;
-        let status = if h.consultations() == 0 {
+        let status = if p.test_rows == 0 {
+            "no test rows"
+        } else if h.consultations() == 0 {
             "sealed"
         } else if over {
             "OVER BUDGET"

@@ -1314,3 +1314,33 @@ fn rules_cannot_change_after_a_reveal_followed_them() {
     assert_eq!(a["partitions"][0]["budget"], 10);
     assert_eq!(a["partitions"][0]["sealed_by_run"], 1);
 }
+
+/// `audit`'s table and JSON after a development use, pinned (the chain's head, which depends on
+/// the time of each run, is left out).
+#[test]
+fn audit_with_a_development_use_matches_golden() {
+    let d = diabetes(
+        "audit-golden",
+        &[
+            ("sealed.toml", "method = \"random\"\nseed = 7\ntest = 0.2\nfolds = 5", ""),
+            ("copy.toml", "method = \"random\"\nseed = 7\nvalidation = 0.2", ""),
+        ],
+    );
+    d.probity(&["run", "sealed.toml"]).expect(0);
+    d.probity(&["run", "copy.toml"]).expect(0);
+    let table: String = d
+        .probity(&["audit"])
+        .expect(0)
+        .stdout()
+        .lines()
+        .filter(|l| !l.starts_with("chain: "))
+        .map(|l| format!("{l}\n"))
+        .collect();
+    crate::util::check_golden("audit-development-use.txt", &table);
+    let mut j = d.probity(&["audit", "--json"]).expect(0).json();
+    j["chain"]["head"] = Value::String("<head>".into());
+    crate::util::check_golden(
+        "audit-development-use.json",
+        &format!("{}\n", serde_json::to_string_pretty(&j).unwrap()),
+    );
+}
