@@ -7,26 +7,36 @@
 //! The older identities (`Identity::V1`, `Identity::V2`) hash every cell of the file and live
 //! in the parent module.
 //!
+//! # Column names
+//!
+//! A recipe stores its feature names and its key name normalised (`normalise`): trimmed of
+//! ASCII whitespace and lower-cased with `str::to_lowercase`, so `bmi`, `BMI` and ` Bmi ` name
+//! one column. A table's column matches a recipe name when its own name, normalised the same
+//! way, equals it (`find`). When several columns of a table normalise to the same name, the
+//! first of them in the table is taken, so such a file is always read the same way.
+//!
 //! # Feature identity
 //!
-//! A recipe names the feature columns: sorted by byte order, each name once. When a recipe
-//! column is not in the table, no identity can be formed (`None`). Otherwise a row's identity
-//! is the first 16 bytes of the SHA-256 of:
+//! A recipe names the feature columns: normalised, sorted by byte order, each name once. When
+//! a recipe column is not in the table, no identity can be formed (`None`). Otherwise a row's
+//! identity is the first 16 bytes of the SHA-256 of:
 //!
 //! 1. the bytes `probity-row-v3` and a NUL byte;
-//! 2. for each recipe column, in order: the byte length of its name (u64, little-endian), then
-//!    the name's bytes;
+//! 2. for each recipe column, in order: the byte length of its normalised name (u64,
+//!    little-endian), then the normalised name's bytes;
 //! 3. for each recipe column, in the same order, the row's cell:
 //!    - a missing cell (a numeric column's NaN, a text column's missing code, or a text that
 //!      is empty once trimmed of ASCII whitespace): the byte `0x00`;
 //!    - a number (a numeric column's value, or a text that, trimmed of ASCII whitespace,
 //!      reads as a finite `f64` with Rust's `str::parse`): its canonical form, below;
-//!    - any other text: `0x02`, the trimmed text's byte length (u64, little-endian), then its
-//!      bytes (case kept).
+//!    - any other text: trimmed of ASCII whitespace and lower-cased with `str::to_lowercase`,
+//!      then `0x02`, that text's byte length (u64, little-endian) and its bytes.
 //!
-//! So column order, columns outside the recipe (the target among them, under any name) and
-//! the spelling of a number (`1.5`, `1.50`, `1.5e0`, a text column's `1.5`) do not enter. An
-//! empty recipe gives every row the same identity: a caller names at least one feature.
+//! So column order, the case and surrounding spaces of column names and of text cells
+//! (`Benign` and ` benign` are one cell), columns outside the recipe (the target among them,
+//! under any name) and the spelling of a number (`1.5`, `1.50`, `1.5e0`, a text column's
+//! `1.5`) do not enter. An empty recipe gives every row the same identity: a caller names at
+//! least one feature.
 //!
 //! ## Canonical form of a number x
 //!
@@ -71,6 +81,37 @@
 //! The identity is the first 16 bytes of the SHA-256 of the bytes `probity-key-v3`, a NUL byte
 //! and the normalised text. The key column's name is not part of it, so renaming the column
 //! keeps every identity.
+//!
+//! # Development fingerprint
+//!
+//! A partition's development rows are identified by a 64-bit fingerprint instead of a labelled
+//! identity. It is not SHA-256 for speed: the ledger stores one for every development row
+//! (millions for a large file), and it only feeds a warning (a development row that looks like
+//! a sealed test row), never a count of looks at test rows. It reads the cells a labelled
+//! identity reads, the same way, so the same edits keep it (names do not enter: a partition's
+//! fingerprints are compared under its own recipe). For each row:
+//!
+//! - `h = 0x6a09e667f3bcc908`; for each recipe column in recipe order, then the target
+//!   column: `h = fmix64(h ^ word(cell))`; the fingerprint is `fmix64(h ^ n)`, with `n` the
+//!   number of cells hashed (the recipe's columns and the target).
+//! - `fmix64` is the 64-bit finalizer of MurmurHash3 (Austin Appleby, public domain), with
+//!   wrapping multiplications: `x ^= x >> 33; x *= 0xff51afd7ed558ccd; x ^= x >> 33;
+//!   x *= 0xc4ceb9fe1a85ec53; x ^= x >> 33`.
+//! - `word(cell)`, with the cell read as for a feature identity:
+//!   - missing: `0`;
+//!   - a number whose canonical form is `m` and `d`: `(1 << 62) | (((d + 512) & 0x3ff) << 40)
+//!     | (m & 0xff_ffff_ffff)`, `m` in 40-bit two's complement (`|m| < 10^10 < 2^39`);
+//!   - a number in the fallback form, with bits `b`: `(3 << 62) ^ fmix64(b)`;
+//!   - a text (trimmed and lower-cased): `(2 << 62) | (fnv1a64(bytes) >> 2)`, where `fnv1a64`
+//!     is the 64-bit FNV-1a hash (offset basis `0xcbf29ce484222325`, prime `0x100000001b3`)
+//!     of the text's UTF-8 bytes.
+//!
+//! For a fixed word each step is a bijection of `h` (as `fmix64` is), so two rows whose words
+//! differ in one cell only never share a fingerprint; rows that differ more share one by
+//! chance, about 2^-64 a pair (and two texts share a word with a chance near 2^-62).
+//!
+//! A development row's key fingerprint is `fmix64(fnv1a64(text))` of the normalised key text a
+//! key identity hashes; a row whose key is missing has none.
 
 use super::{Column, RowKey, Table, Values, display_f64};
 use sha2::{Digest, Sha256};
@@ -97,7 +138,7 @@ const BLOCK: usize = 128;
 const MIN_CHUNK: usize = 4096;
 
 /// The columns an identity reads: an optional key, and the feature columns sorted by byte
-/// order, each once.
+/// order, each once; every name normalised (`normalise`).
 #[derive(Debug, Clone, PartialEq, Eq)]
 pub struct Recipe {
     key: Option<String>,
@@ -105,22 +146,24 @@ pub struct Recipe {
 }
 
 impl Recipe {
-    /// A recipe from the key's name and the feature names in any order (duplicates dropped).
+    /// A recipe from the key's name and the feature names in any order and any case (names
+    /// normalised, then duplicates dropped).
     pub fn new<S: AsRef<str>>(key: Option<&str>, features: &[S]) -> Recipe {
-        let mut columns: Vec<String> = features.iter().map(|f| f.as_ref().to_string()).collect();
+        let mut columns: Vec<String> = features.iter().map(|f| normalise(f.as_ref())).collect();
         columns.sort();
         columns.dedup();
         Recipe {
-            key: key.map(str::to_string),
+            key: key.map(normalise),
             columns,
         }
     }
 
+    /// The key's normalised name.
     pub fn key(&self) -> Option<&str> {
         self.key.as_deref()
     }
 
-    /// The feature columns, sorted by byte order, distinct.
+    /// The feature columns' normalised names, sorted by byte order, distinct.
     pub fn columns(&self) -> &[String] {
         &self.columns
     }
@@ -131,8 +174,8 @@ impl Recipe {
     }
 
     /// The recipe `to_json` wrote; `None` for any other shape, including columns that are not
-    /// sorted and distinct: `to_json` never writes those, so such a value is refused, not
-    /// repaired.
+    /// sorted and distinct, or names that are not normalised: `to_json` never writes those, so
+    /// such a value is refused, not repaired.
     pub fn from_json(v: &serde_json::Value) -> Option<Recipe> {
         let fields = v.as_object()?;
         if fields.len() != 2 {
@@ -149,11 +192,38 @@ impl Recipe {
             .iter()
             .map(|c| c.as_str().map(str::to_string))
             .collect::<Option<Vec<String>>>()?;
-        if !columns.windows(2).all(|w| w[0] < w[1]) {
+        if !columns.windows(2).all(|w| w[0] < w[1])
+            || columns.iter().chain(&key).any(|n| normalise(n) != *n)
+        {
             return None;
         }
         Some(Recipe { key, columns })
     }
+}
+
+/// A column name as a recipe stores it: trimmed of ASCII whitespace and lower-cased with
+/// `str::to_lowercase`.
+pub fn normalise(name: &str) -> String {
+    name.trim_ascii().to_lowercase()
+}
+
+/// The index of the first column of `table` whose normalised name equals `name`'s; the first,
+/// so that a table with two columns named alike (`BMI`, `bmi`) is always read the same way.
+pub fn find(table: &Table, name: &str) -> Option<usize> {
+    let want = normalise(name);
+    table
+        .columns
+        .iter()
+        .position(|c| normalise(&c.name) == want)
+}
+
+/// The table's columns for the recipe's, in recipe order; `None` when one is missing.
+fn recipe_columns<'a>(table: &'a Table, recipe: &Recipe) -> Option<Vec<&'a Column>> {
+    recipe
+        .columns
+        .iter()
+        .map(|n| find(table, n).map(|i| &table.columns[i]))
+        .collect()
 }
 
 /// A number's canonical cell (see the module documentation).
@@ -320,22 +390,40 @@ fn general(x: f64, p: &Powers) -> NumberCell {
     }
 }
 
-/// A text cell's bytes (see the module documentation).
-fn text_cell(text: &str) -> Vec<u8> {
+/// How a text cell reads (see the module documentation).
+enum TextCell {
+    Missing,
+    Number(NumberCell),
+    /// Trimmed and lower-cased.
+    Text(String),
+}
+
+fn read_text(text: &str) -> TextCell {
     let t = text.trim_ascii();
     if t.is_empty() {
-        return vec![0];
+        return TextCell::Missing;
     }
     if let Ok(x) = t.parse::<f64>()
         && x.is_finite()
     {
-        return canonical_number(x).bytes();
+        return TextCell::Number(canonical_number(x));
     }
-    let mut out = Vec::with_capacity(9 + t.len());
-    out.push(2);
-    out.extend_from_slice(&(t.len() as u64).to_le_bytes());
-    out.extend_from_slice(t.as_bytes());
-    out
+    TextCell::Text(t.to_lowercase())
+}
+
+/// A text cell's bytes (see the module documentation).
+fn text_cell(text: &str) -> Vec<u8> {
+    match read_text(text) {
+        TextCell::Missing => vec![0],
+        TextCell::Number(n) => n.bytes(),
+        TextCell::Text(t) => {
+            let mut out = Vec::with_capacity(9 + t.len());
+            out.push(2);
+            out.extend_from_slice(&(t.len() as u64).to_le_bytes());
+            out.extend_from_slice(t.as_bytes());
+            out
+        }
+    }
 }
 
 /// Feature identities of `rows` (table row indices), in order, on up to `threads` threads; the
@@ -346,11 +434,7 @@ pub fn feature_ids(
     rows: &[usize],
     threads: usize,
 ) -> Option<Vec<RowKey>> {
-    let columns = recipe
-        .columns
-        .iter()
-        .map(|n| table.column(n))
-        .collect::<Option<Vec<&Column>>>()?;
+    let columns = recipe_columns(table, recipe)?;
     let plan = Plan::of(&recipe.columns, &columns);
     Some(in_chunks(rows, threads, |part| plan.ids(part)))
 }
@@ -547,6 +631,278 @@ fn key_text(column: &Column, row: usize, out: &mut String) {
             }
         }
     }
+}
+
+/// The start of every development fingerprint's chain.
+const FINGERPRINT_START: u64 = 0x6a09_e667_f3bc_c908;
+
+/// Rows whose fingerprints advance together, column by column.
+const FP_BLOCK: usize = 1024;
+
+/// The low 40 bits, where a number's word holds `m`.
+const M_BITS: u64 = 0xff_ffff_ffff;
+
+/// The 64-bit finalizer of MurmurHash3 (fmix64, by Austin Appleby, public domain): a bijection
+/// in which every input bit reaches every output bit, in five cheap operations.
+#[inline(always)]
+fn fmix64(mut x: u64) -> u64 {
+    x ^= x >> 33;
+    x = x.wrapping_mul(0xff51_afd7_ed55_8ccd);
+    x ^= x >> 33;
+    x = x.wrapping_mul(0xc4ce_b9fe_1a85_ec53);
+    x ^ (x >> 33)
+}
+
+/// The 64-bit FNV-1a hash of `bytes`.
+fn fnv1a64(bytes: &[u8]) -> u64 {
+    bytes.iter().fold(0xcbf2_9ce4_8422_2325, |h, &b| {
+        (h ^ u64::from(b)).wrapping_mul(0x0100_0000_01b3)
+    })
+}
+
+/// The word of the number `m * 10^(d - 9)` without `m`: the tag and `d + 512` in 10 bits.
+fn decade_word(d: i64) -> u64 {
+    (1 << 62) | ((((d + 512) as u64) & 0x3ff) << 40)
+}
+
+/// The word of the number `m * 10^(d - 9)`: `m` fits in 40 bits and `d + 512` in 10, so
+/// distinct numbers have distinct words.
+fn decimal_word(m: i64, d: i16) -> u64 {
+    decade_word(i64::from(d)) | ((m as u64) & M_BITS)
+}
+
+impl NumberCell {
+    /// The cell's word in a development fingerprint.
+    fn word(self) -> u64 {
+        match self {
+            NumberCell::Decimal { m, d } => decimal_word(m, d),
+            NumberCell::Bits(b) => (3 << 62) ^ fmix64(b),
+        }
+    }
+}
+
+/// A number's word by the definition (through `common` where it answers).
+fn number_word(x: f64, t: &[Binade; 2048], p: &Powers) -> u64 {
+    match common(x, t) {
+        (m, d, true) => decimal_word(m, d),
+        _ if x.is_nan() => 0,
+        _ => general(x, p).word(),
+    }
+}
+
+/// A text cell's word in a development fingerprint.
+fn text_word(text: &str) -> u64 {
+    match read_text(text) {
+        TextCell::Missing => 0,
+        TextCell::Number(n) => n.word(),
+        TextCell::Text(t) => (2 << 62) | (fnv1a64(t.as_bytes()) >> 2),
+    }
+}
+
+/// What `usual_word` needs for the numbers of one sign and binary exponent: as in `Binade`,
+/// the decade is d0 or d0 + 1, here told by the mantissa bits alone.
+#[derive(Debug, Clone, Copy)]
+struct Signed {
+    /// The mantissa bits of P(d0 + 1), shifted to the top, when it has this binary exponent;
+    /// `u64::MAX`, which no shifted mantissa reaches, when it is larger.
+    next: u64,
+    /// P(9 - d) for the two decades.
+    scale: [f64; 2],
+    /// 0.5 with the numbers' sign.
+    half: f64,
+    /// The word without `m` (`decade_word`) of each decade when it is usual; else `UNUSUAL`.
+    word: [u64; 2],
+}
+
+/// A word no number's word equals (its top bit is set, while a decimal word's tag is 01).
+const UNUSUAL: u64 = 1 << 63;
+
+/// One `Signed` per sign and biased exponent (the top 12 bits of a double).
+fn signed() -> &'static [Signed; 4096] {
+    static TABLE: OnceLock<[Signed; 4096]> = OnceLock::new();
+    TABLE.get_or_init(|| {
+        let p = powers();
+        let at = |j: i64| p[(j + SPAN).clamp(0, 2 * SPAN) as usize];
+        let word = |d: i64| {
+            if USUAL.contains(&d) {
+                decade_word(d)
+            } else {
+                UNUSUAL
+            }
+        };
+        let mut t = [Signed {
+            next: u64::MAX,
+            scale: [1.0; 2],
+            half: 0.5,
+            word: [UNUSUAL; 2],
+        }; 4096];
+        for (top, entry) in (0i64..).zip(t.iter_mut()) {
+            let biased = top & 0x7ff;
+            entry.half = if top > 0x7ff { -0.5 } else { 0.5 };
+            // Subnormals, infinities and NaNs have no usual decade.
+            if biased == 0 || biased == 0x7ff {
+                continue;
+            }
+            // As in `decade`; P(d0 + 1) is at least 2^(biased - 1023), so it has this exponent
+            // or a larger one.
+            let d0 = ((biased - 1023) * 78913) >> 18;
+            let next = at(d0 + 1).to_bits();
+            entry.next = if (next >> 52) as i64 == biased {
+                next << 12
+            } else {
+                u64::MAX
+            };
+            entry.scale = [at(9 - d0), at(8 - d0)];
+            entry.word = [word(d0), word(d0 + 1)];
+        }
+        t
+    })
+}
+
+/// The word of a usual number (as `common` answers for), in fewer operations than `common` and
+/// `decimal_word`: the sign rides in the table, since x * P(k) and adding -0.5 are exactly the
+/// negatives of the operations on |x|, and truncation of the negative sum is -floor. The word
+/// has its top bit set when `common` would not answer (a unit test checks both across every
+/// binary exponent).
+#[inline(always)]
+fn usual_word(x: f64, t: &[Signed; 4096]) -> u64 {
+    let bits = x.to_bits();
+    let e = &t[(bits >> 52) as usize];
+    // Within one exponent, mantissas order as the numbers do.
+    let up = usize::from(bits << 12 >= e.next);
+    // Truncation saturates, so an unusual number's garbage never panics.
+    let m = (x * e.scale[up] + e.half) as i64;
+    let word = e.word[up];
+    // |m| = 10^10 is the carry (m = ±10^9, d + 1); one comparison tells it.
+    if m.wrapping_add(9_999_999_999) as u64 >= 19_999_999_999 {
+        return (word + (1 << 40)) | ((m / 10) as u64 & M_BITS);
+    }
+    word | (m as u64 & M_BITS)
+}
+
+/// How a column's cells become words.
+enum Words<'a> {
+    Numbers(&'a [f64]),
+    /// Each level's word, computed once; a code past them is a missing cell.
+    Text {
+        codes: &'a [u32],
+        words: Vec<u64>,
+    },
+}
+
+impl<'a> Words<'a> {
+    fn of(column: &'a Column) -> Words<'a> {
+        match &column.values {
+            Values::Numeric(v) => Words::Numbers(v),
+            Values::Text { codes, levels } => Words::Text {
+                codes,
+                words: levels.iter().map(|l| text_word(l)).collect(),
+            },
+        }
+    }
+}
+
+/// Development fingerprints of `rows` (table row indices), in order, on up to `threads`
+/// threads: the recipe's columns and the target (`target`, a column of `table`), see the
+/// module documentation; the same values for any thread count. `None` when a recipe column is
+/// not in the table.
+pub fn fingerprints(
+    table: &Table,
+    recipe: &Recipe,
+    target: usize,
+    rows: &[usize],
+    threads: usize,
+) -> Option<Vec<u64>> {
+    let mut sources: Vec<Words> = recipe_columns(table, recipe)?
+        .into_iter()
+        .map(Words::of)
+        .collect();
+    sources.push(Words::of(&table.columns[target]));
+    let count = sources.len() as u64;
+    let (p, t, s) = (powers(), binades(), signed());
+    // A cell the fast path flags (missing or unusual), the slow way.
+    let exact = |x: f64| match usual_word(x, s) {
+        w if w & UNUSUAL == 0 => w,
+        _ => number_word(x, t, p),
+    };
+    Some(in_chunks(rows, threads, |part| {
+        let mut out = Vec::with_capacity(part.len());
+        // A block's rows advance column by column from `before` into `after`: each row's
+        // chain is serial, but the rows of a block are independent, so the processor
+        // overlaps them.
+        let mut state = ([0u64; FP_BLOCK], [0u64; FP_BLOCK]);
+        let (mut before, mut after) = (&mut state.0, &mut state.1);
+        for block in part.chunks(FP_BLOCK) {
+            let n = block.len();
+            before[..n].fill(FINGERPRINT_START);
+            let mut i = 0;
+            while i < sources.len() {
+                let (from, to) = (&before[..n], &mut after[..n]);
+                let mut seen = 0;
+                match (&sources[i], sources.get(i + 1)) {
+                    // Two number columns in one pass: half the reads and writes of the state.
+                    (&Words::Numbers(a), Some(&Words::Numbers(b))) => {
+                        for ((h, &f), &r) in to.iter_mut().zip(from).zip(block) {
+                            let (wa, wb) = (usual_word(a[r], s), usual_word(b[r], s));
+                            seen |= wa | wb;
+                            *h = fmix64(fmix64(f ^ wa) ^ wb);
+                        }
+                        if seen & UNUSUAL != 0 {
+                            for ((h, &f), &r) in to.iter_mut().zip(from).zip(block) {
+                                *h = fmix64(fmix64(f ^ exact(a[r])) ^ exact(b[r]));
+                            }
+                        }
+                        i += 2;
+                    }
+                    (&Words::Numbers(a), _) => {
+                        for ((h, &f), &r) in to.iter_mut().zip(from).zip(block) {
+                            let w = usual_word(a[r], s);
+                            seen |= w;
+                            *h = fmix64(f ^ w);
+                        }
+                        if seen & UNUSUAL != 0 {
+                            for ((h, &f), &r) in to.iter_mut().zip(from).zip(block) {
+                                *h = fmix64(f ^ exact(a[r]));
+                            }
+                        }
+                        i += 1;
+                    }
+                    (Words::Text { codes, words }, _) => {
+                        for ((h, &f), &r) in to.iter_mut().zip(from).zip(block) {
+                            let w = words.get(codes[r] as usize).copied().unwrap_or(0);
+                            *h = fmix64(f ^ w);
+                        }
+                        i += 1;
+                    }
+                }
+                std::mem::swap(&mut before, &mut after);
+            }
+            out.extend(before[..n].iter().map(|&h| fmix64(h ^ count)));
+        }
+        out
+    }))
+}
+
+/// Development key fingerprints of `rows` in the column `key_column` of `table`, in order, on
+/// up to `threads` threads: `None` for a row whose key is missing, else `fmix64(fnv1a64(text))`
+/// of the normalised key text that `key_ids` hashes.
+pub fn key_fingerprints(
+    table: &Table,
+    key_column: usize,
+    rows: &[usize],
+    threads: usize,
+) -> Vec<Option<u64>> {
+    let column = &table.columns[key_column];
+    in_chunks(rows, threads, |part| {
+        let mut text = String::new();
+        part.iter()
+            .map(|&r| {
+                text.clear();
+                key_text(column, r, &mut text);
+                (!text.is_empty()).then(|| fmix64(fnv1a64(text.as_bytes())))
+            })
+            .collect()
+    })
 }
 
 fn first16(h: Sha256) -> RowKey {
