@@ -180,7 +180,9 @@ fn guard_sealed_rows(
         features,
         own: own.map(|(recipe, test)| (d.summary.partition_id.as_str(), recipe, test)),
     };
-    let hits = ledger.sealed_rows(input, &rows, key, &predictor)?;
+    let mut hits = ledger.sealed_rows(input, &rows, key, &predictor)?;
+    // The partition with the most of these rows first (it names the refusal).
+    hits.sort_by(|a, b| b.1.len().cmp(&a.1.len()).then_with(|| a.0.cmp(&b.0)));
     if hits.is_empty() {
         return Ok(());
     }

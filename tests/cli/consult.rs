@@ -1322,8 +1322,16 @@ fn audit_with_a_development_use_matches_golden() {
     let d = diabetes(
         "audit-golden",
         &[
-            ("sealed.toml", "method = \"random\"\nseed = 7\ntest = 0.2\nfolds = 5", ""),
-            ("copy.toml", "method = \"random\"\nseed = 7\nvalidation = 0.2", ""),
+            (
+                "sealed.toml",
+                "method = \"random\"\nseed = 7\ntest = 0.2\nfolds = 5",
+                "",
+            ),
+            (
+                "copy.toml",
+                "method = \"random\"\nseed = 7\nvalidation = 0.2",
+                "",
+            ),
         ],
     );
     d.probity(&["run", "sealed.toml"]).expect(0);
@@ -1342,5 +1350,116 @@ fn audit_with_a_development_use_matches_golden() {
     crate::util::check_golden(
         "audit-development-use.json",
         &format!("{}\n", serde_json::to_string_pretty(&j).unwrap()),
+    );
+}
+
+/// Header and label spellings a model does not care about do not make rows new: a copy whose
+/// `bmi` column is headed `BMI` (a run on it, and a prediction of the sealed rows by a model
+/// fitted on such a copy), and classes written `BENIGN` for `benign`.
+#[test]
+fn recased_headers_and_labels_are_the_same_rows() {
+    let d = Dir::new("recased");
+    d.copy(&reference("diabetes.csv"), "d.csv");
+    let split = "method = \"random\"\nseed = 7\ntest = 0.2\nfolds = 5";
+    d.write("d.toml", &spec("d.csv", None, split));
+    d.probity(&["run", "d.toml"]).expect(0);
+    let p = partition_of(&d, "1");
+    let base = || Csv::read(&std::fs::read_to_string(reference("diabetes.csv")).unwrap());
+    d.write("upper.csv", &base().rename("bmi", "BMI").text());
+    d.write(
+        "upper.toml",
+        &spec("upper.csv", None, &split.replace("seed = 7", "seed = 8")),
+    );
+    let j = d.probity(&["run", "upper.toml", "--json"]).expect(0).json();
+    assert!(
+        warnings(&j).iter().any(|w| w.contains(&format!(
+            "development rows are sealed test rows of partition {p}"
+        ))),
+        "{:?}",
+        warnings(&j)
+    );
+    // A model fitted on the development rows alone, headed `BMI`, predicting the sealed rows.
+    let sealed = sealed_rows_of(&d, &base());
+    let dev = base().keep(|_, r| !sealed.rows.contains(&r.to_vec()));
+    d.write("dev.csv", &dev.rename("bmi", "BMI").text());
+    d.write(
+        "dev.toml",
+        &spec("dev.csv", None, "method = \"random\"\nseed = 3\nfolds = 5"),
+    );
+    d.probity(&["run", "dev.toml"]).expect(0);
+    d.write(
+        "ask.csv",
+        &sealed_rows_of(&d, &base()).rename("bmi", "BMI").text(),
+    );
+    let r = d
+        .probity(&["predict", "3", "--input", "ask.csv", "--output", "p.csv"])
+        .expect(2);
+    assert!(
+        r.stderr()
+            .contains(&format!("88 rows are test rows of sealed partition {p}")),
+        "{}",
+        r.stderr()
+    );
+
+    // Classes recased in a copy that sends the sealed rows to validation.
+    let d = reusable_dir("recased-labels");
+    d.write(
+        "c.toml",
+        &std::fs::read_to_string(d.path.join("r.toml"))
+            .unwrap()
+            .replace(
+                "[guard]\nmode = \"reusable\"\nreveals = 1\nthreshold = 0.000001\nnoise = 0.0000001\n",
+                "",
+            ),
+    );
+    d.probity(&["run", "c.toml"]).expect(0);
+    let p = partition_of(&d, "1");
+    let bc = Csv::read(&std::fs::read_to_string(d.path.join("bc.csv")).unwrap());
+    let sealed = sealed_rows_of(&d, &bc);
+    let relabelled = bc
+        .map("diagnosis", |v| v.to_uppercase())
+        .add("p2", |_| String::new());
+    let upper_sealed: Vec<Vec<String>> = sealed
+        .rows
+        .iter()
+        .map(|r| {
+            let mut r = r.clone();
+            let at = sealed.at("diagnosis");
+            r[at] = r[at].to_uppercase();
+            r
+        })
+        .collect();
+    let relabelled = Csv {
+        rows: relabelled
+            .rows
+            .iter()
+            .map(|r| {
+                let mut r = r.clone();
+                let last = r.len() - 1;
+                r[last] = if upper_sealed.contains(&r[..last].to_vec()) {
+                    "validation"
+                } else {
+                    "train"
+                }
+                .into();
+                r
+            })
+            .collect(),
+        header: relabelled.header,
+    };
+    d.write("upper.csv", &relabelled.text());
+    d.write(
+        "upper.toml",
+        "name = \"bc\"\ntask = \"classification\"\n[data]\npath = \"upper.csv\"\ntarget = \"diagnosis\"\nignore = [\"part\"]\n[split]\nmethod = \"column\"\ncolumn = \"p2\"\nfolds = 3\n[select]\nmetric = \"accuracy\"\n[[model]]\nkind = \"logistic\"\nlambda = [1.0]\n",
+    );
+    let j = d.probity(&["run", "upper.toml", "--json"]).expect(0).json();
+    let n = sealed.rows.len();
+    assert!(
+        warnings(&j)
+            .iter()
+            .any(|w| w.starts_with(&format!("{n} of "))
+                && w.contains(&format!("sealed test rows of partition {p}"))),
+        "{:?}",
+        warnings(&j)
     );
 }
