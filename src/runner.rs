@@ -257,6 +257,7 @@ pub fn prepare(spec: &Spec, table: &Table, identity: crate::data::Identity) -> R
 
 /// `prepare` without the rows' identities (`ids` is empty until `identities` fills it).
 fn prepare_unkeyed(spec: &Spec, table: &Table) -> Result<Prepared> {
+    crate::data::identity::refuse_ambiguous(table)?;
     let d = &spec.data;
     if let Some((want, loc)) = &d.sha256
         && *want != table.sha256

@@ -53,6 +53,7 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
     let text_cols = model.text_columns();
     let text: Vec<&str> = text_cols.iter().map(String::as_str).collect();
     let input = crate::data::load(&a.input, &text, crate::data::all_cores())?;
+    crate::data::identity::refuse_ambiguous(&input)?;
     let (pred, notes) = if matches!(model.fitted, crate::models::Fitted::External) {
         // An external command keeps no model: fit it again on the run's development rows.
         let (spec, table) = super::reveal::reload(&d, None)?;

@@ -222,9 +222,7 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
                 partition: other,
                 ..query.subject.clone()
             };
-            let t = crate::guard::consult::through(
-                seal, history, &subject, *rows, &partition, c.exact,
-            )?;
+            let t = crate::guard::consult::through(seal, history, &subject, *rows, &partition)?;
             records.push(t.record.clone());
             through.push(t);
         }

@@ -217,6 +217,39 @@ pub fn find(table: &Table, name: &str) -> Option<usize> {
         .position(|c| normalise(&c.name) == want)
 }
 
+/// Two columns of `table` whose names normalise alike (`BMI` and ` bmi`), if any: identities
+/// read one of them while a model may read the other, so the commands refuse such a file.
+pub fn ambiguous(table: &Table) -> Option<(&str, &str)> {
+    let mut names: Vec<(String, usize)> = table
+        .columns
+        .iter()
+        .enumerate()
+        .map(|(i, c)| (normalise(&c.name), i))
+        .collect();
+    names.sort();
+    names.windows(2).find(|w| w[0].0 == w[1].0).map(|w| {
+        (
+            table.columns[w[0].1].name.as_str(),
+            table.columns[w[1].1].name.as_str(),
+        )
+    })
+}
+
+/// Refuse a table with two columns named alike (`ambiguous`), naming the file and the columns.
+pub fn refuse_ambiguous(table: &Table) -> crate::error::Result<()> {
+    match ambiguous(table) {
+        None => Ok(()),
+        Some((a, b)) => Err(crate::error::Error::data(
+            &table.path,
+            Some(1),
+            None,
+            format!(
+                "columns '{a}' and '{b}' differ only in case or surrounding spaces; probity tells rows apart by column names read that way, so rename one of them"
+            ),
+        )),
+    }
+}
+
 /// The table's columns for the recipe's, in recipe order; `None` when one is missing.
 fn recipe_columns<'a>(table: &'a Table, recipe: &Recipe) -> Option<Vec<&'a Column>> {
     recipe

@@ -21,11 +21,14 @@ use serde_json::json;
 /// The rules a partition was sealed with: the `[guard]` of the run that first stored it. A
 /// later spec on the same partition cannot loosen them (a copied spec with a larger budget
 /// gets a warning, not a larger budget).
-#[derive(Debug, Clone, Copy, PartialEq)]
+#[derive(Debug, Clone, PartialEq)]
 pub struct Seal {
     pub rules: GuardSpec,
     /// The run that sealed it, when known (the first stored run on the partition).
     pub by: Option<i64>,
+    /// The target column of that run's spec: a run that reads neither it as its target nor
+    /// as a feature uses no sealed target, and consults nothing.
+    pub target: Option<String>,
 }
 
 /// A warning when a spec's `[guard]` differs from the rules its partition was sealed with: the
@@ -485,20 +488,21 @@ pub fn predict(seal: &Seal, h: &History, q: &PredictQuery) -> Result<Consultatio
 /// A reveal (or allowed prediction) of one partition whose test rows are test rows of another
 /// partition too (the same rows under another split: other folds, a `missing` rule that drops
 /// nothing, a copy of the file): a look at those rows of the other partition, counted there as
-/// one consultation. A partition under a mechanism releases only its mechanism's answers, so
-/// an exact look at its rows through another partition is refused.
+/// one consultation. A partition under a mechanism releases only its own mechanism's answers
+/// (from its own state and budget), so any look at its rows through another partition is
+/// refused, whatever that partition's mode: another mechanism with a step of 1e-12 answers as
+/// exactly as a count.
 pub fn through(
     seal: &Seal,
     h: &History,
     s: &Subject,
     rows: usize,
     via: &str,
-    exact: bool,
 ) -> Result<Consultation> {
     let rules = &seal.rules;
-    if exact && !matches!(rules.mode, GuardMode::Count) {
+    if !matches!(rules.mode, GuardMode::Count) {
         return Err(Error::Input(format!(
-            "{} of these test rows are test rows of partition {}{} too, sealed in {} mode, which releases only its mechanism's answers: an exact score here would be one on its rows. Reveal a run of that partition instead",
+            "{} of these test rows are test rows of partition {}{} too, sealed in {} mode, which releases only its own mechanism's answers: a score here would be one on its rows. Reveal a run of that partition instead",
             thousands(rows),
             s.partition,
             seal.by.map_or(String::new(), |r| format!(" (run {r})")),
@@ -685,6 +689,7 @@ mod tests {
                 ..rules(GuardMode::Count, 1)
             },
             by: Some(4),
+            target: None,
         };
         let o = Overlapping {
             partition: "abc".into(),
@@ -706,6 +711,7 @@ mod tests {
             seal: Seal {
                 rules: rules(GuardMode::Count, 1),
                 by: Some(1),
+                target: None,
             },
             history: History {
                 reveals: 1,
@@ -727,6 +733,7 @@ mod tests {
         let seal = Seal {
             rules: rules(GuardMode::Ladder { step: 1.0 }, 5),
             by: None,
+            target: None,
         };
         let q = PredictQuery {
             subject: Subject {
@@ -754,6 +761,7 @@ mod tests {
         let count = Seal {
             rules: rules(GuardMode::Count, 1),
             by: None,
+            target: None,
         };
         let c = predict(&count, &History::default(), &q).unwrap();
         assert_eq!(

@@ -33,6 +33,21 @@ fn url_path(path: &Path) -> String {
     out
 }
 
+/// How often `open` tries again on a busy ledger, 50 ms apart (the 10 s of the busy timeout).
+const OPEN_TRIES: usize = 200;
+
+/// Whether an error is the ledger being busy (another process holding its lock).
+fn is_busy(e: &Error) -> bool {
+    match e {
+        Error::LedgerRefused { msg, .. } => msg.starts_with("is busy"),
+        Error::Ledger { source, .. } => matches!(
+            source.sqlite_error_code(),
+            Some(rusqlite::ErrorCode::DatabaseBusy | rusqlite::ErrorCode::DatabaseLocked)
+        ),
+        _ => false,
+    }
+}
+
 /// Test-row identities written per statement.
 const KEYS_PER_STATEMENT: usize = 500;
 
@@ -191,8 +206,24 @@ fn sql_err(context: &str) -> impl FnOnce(rusqlite::Error) -> Error + '_ {
 }
 
 impl Ledger {
-    /// Open (creating the file when `create`) and migrate.
+    /// Open (creating the file when `create`) and migrate. Processes that open a new ledger
+    /// at once can meet SQLite's busy state where it does not wait (switching the new file to
+    /// WAL while another creates its tables): the open is tried again, for up to the busy
+    /// timeout, before it is refused as busy.
     pub fn open(path: &Path, create: bool) -> Result<Ledger> {
+        let mut tries = 0;
+        loop {
+            match Ledger::open_once(path, create) {
+                Err(e) if is_busy(&e) && tries < OPEN_TRIES => {
+                    tries += 1;
+                    std::thread::sleep(std::time::Duration::from_millis(50));
+                }
+                other => return other,
+            }
+        }
+    }
+
+    fn open_once(path: &Path, create: bool) -> Result<Ledger> {
         if let Some(dir) = path.parent().filter(|d| !d.as_os_str().is_empty())
             && !dir.is_dir()
         {
@@ -1982,14 +2013,28 @@ fn development_overlaps(
     prep: &crate::runner::Prepared,
 ) -> Result<Vec<crate::guard::consult::Overlapping>> {
     let dev = membership(prep.rows.len(), &prep.sealed.development());
+    // The columns this run reads: its target and its features.
+    let name = |c: usize| crate::data::identity::normalise(&table.columns[c].name);
+    let mut reads: Vec<String> = prep.features.iter().map(|&c| name(c)).collect();
+    reads.push(name(prep.target_column));
     let mut out = Vec::new();
     for (partition, at) in test_overlaps(conn, table, prep, |_| true)? {
         let rows = at.into_iter().filter(|&i| dev[i]).count();
         if rows == 0 {
             continue;
         }
+        let seal = seal_of(conn, &partition)?;
+        // A run that reads the partition's target neither as its target nor as a feature
+        // sees no sealed target: another target on the same rows consults nothing.
+        if seal
+            .target
+            .as_deref()
+            .is_some_and(|t| !reads.contains(&crate::data::identity::normalise(t)))
+        {
+            continue;
+        }
         out.push(crate::guard::consult::Overlapping {
-            seal: seal_of(conn, &partition)?,
+            seal,
             history: history_of(conn, &partition)?,
             partition,
             rows,
@@ -2131,6 +2176,9 @@ fn seal_of(conn: &Connection, partition: &str) -> Result<crate::guard::consult::
     let rules = first
         .as_ref()
         .and_then(|(_, text)| crate::spec::stored_guard(text));
+    let target = first
+        .as_ref()
+        .and_then(|(_, text)| crate::spec::stored_target(text));
     Ok(crate::guard::consult::Seal {
         rules: rules.unwrap_or(crate::spec::GuardSpec {
             reveals: 1,
@@ -2139,6 +2187,7 @@ fn seal_of(conn: &Connection, partition: &str) -> Result<crate::guard::consult::
             overlap: crate::spec::Overlap::Count,
         }),
         by: first.map(|f| f.0),
+        target,
     })
 }
 

@@ -244,6 +244,9 @@ impl<'a> TableIds<'a> {
     }
 }
 
+/// The share of repeated identities up to which a stored set counts as distinct records.
+pub const REPEATS: f64 = 0.05;
+
 /// Lookups by identity cost more than a step of a scan, by about this factor.
 pub const PROBE_COST: i64 = 16;
 
@@ -318,16 +321,25 @@ fn stored_count(conn: &Connection, partition: &str) -> Result<usize> {
 /// of the stored rows by chance with probability about min(1, rows x c), so about
 /// E = ours x that would. More than E + 3 sqrt(E) + 2 is beyond chance (a Poisson bound of about
 /// three standard deviations, and at least three identities). The stored set, not ours, sets
-/// the odds: copies of a row in the file cannot raise them.
+/// the odds: copies of a row in the file cannot raise them. A set whose repeats are at most
+/// one in twenty of its rows is taken to hold records entered twice, not coarse cells: its
+/// odds of chance are none (else one duplicate would let rows that match nothing, padded into
+/// a file, raise the bar past every real match).
 pub fn beyond_chance(found: usize, ours: usize, stored_rows: i64, stored_distinct: usize) -> bool {
     let (n, d) = (stored_rows as f64, stored_distinct as f64);
-    let c = if n > 1.0 && d > 0.0 {
+    let c = if n > 1.0 && d > 0.0 && n - d > REPEATS * n {
         ((n / d - 1.0) / (n - 1.0)).max(0.0)
     } else {
         0.0
     };
     let e = ours as f64 * (n * c).min(1.0);
     found as f64 > e + 3.0 * e.sqrt() + 2.0
+}
+
+/// Whether a set of `rows` rows holding `distinct` identities repeats more than `REPEATS` of
+/// them: its cells are too coarse to tell records apart.
+fn coarse(rows: i64, distinct: usize) -> bool {
+    rows as f64 - distinct as f64 > REPEATS * rows as f64
 }
 
 /// Distinct identities among `ids`, and among those that `hit` marks.
@@ -366,23 +378,32 @@ pub fn run_overlaps(
                 let Some(s) = sets(conn, &p.id)? else {
                     continue;
                 };
-                let Some(content) = ids.content(recipe) else {
-                    continue;
-                };
-                let mut hit: Vec<bool> = content
-                    .iter()
-                    .map(|k| s.labels.binary_search(k).is_ok())
-                    .collect();
-                let (ours, found) = distinct_counts(content, &hit);
-                if !beyond_chance(found, ours, p.n_test, s.labels.len()) {
-                    continue;
-                }
-                if !s.keys.is_empty()
-                    && let Some(k) = ids.keys(recipe)
-                {
-                    for (h, k) in hit.iter_mut().zip(k) {
-                        *h |= k.is_some_and(|k| s.keys.binary_search(&k).is_ok());
+                let keys = |ids: &mut TableIds, hit: &mut Vec<bool>| {
+                    if !s.keys.is_empty()
+                        && let Some(k) = ids.keys(recipe)
+                    {
+                        for (h, k) in hit.iter_mut().zip(k) {
+                            *h |= k.is_some_and(|k| s.keys.binary_search(&k).is_ok());
+                        }
                     }
+                };
+                let mut hit = vec![false; ids.rows.len()];
+                if coarse(p.n_test, s.labels.len()) {
+                    // Rows its cells cannot tell apart: the key alone decides.
+                    keys(ids, &mut hit);
+                } else {
+                    let Some(content) = ids.content(recipe) else {
+                        continue;
+                    };
+                    hit = content
+                        .iter()
+                        .map(|k| s.labels.binary_search(k).is_ok())
+                        .collect();
+                    let (ours, found) = distinct_counts(content, &hit);
+                    if !beyond_chance(found, ours, p.n_test, s.labels.len()) {
+                        continue;
+                    }
+                    keys(ids, &mut hit);
                 }
                 hit
             }
@@ -467,15 +488,25 @@ pub fn predicted(
                     feature_ids(table, recipe, rows, threads)
                 };
                 let mut related = false;
-                if let Some(f) = features {
+                let stored = stored_count(conn, &p.id)?;
+                if coarse(p.n_test, stored) {
+                    // Rows its cells cannot tell apart (a few categories): a new record looks
+                    // like a sealed one, so only the key decides.
+                    if let Some(s) = sets(conn, &p.id)?
+                        && !s.keys.is_empty()
+                        && let Some(k) = ids.keys(recipe)
+                    {
+                        for (h, k) in hit.iter_mut().zip(k) {
+                            *h |= k.is_some_and(|k| s.keys.binary_search(&k).is_ok());
+                        }
+                    }
+                } else if let Some(f) = features {
                     let given: Vec<Option<RowKey>> = f.iter().copied().map(Some).collect();
                     let m = members(conn, &p.id, p.n_test, &given)?;
                     let exact = !model.features.is_empty()
                         && model.features.iter().all(|x| recipe.columns().contains(x));
                     let (ours, found) = distinct_counts(&f, &m);
-                    related = found > 0
-                        && (exact
-                            || beyond_chance(found, ours, p.n_test, stored_count(conn, &p.id)?));
+                    related = found > 0 && (exact || beyond_chance(found, ours, p.n_test, stored));
                     if related {
                         hit.iter_mut().zip(m).for_each(|(h, m)| *h |= m);
                     }
@@ -577,10 +608,13 @@ mod tests {
         // 200 stored rows of 8 identities: c = (25 - 1) / 199 = 0.1206, rows x c = 24 > 1, so
         // E = 1000 and nothing is beyond it.
         assert!(!beyond_chance(1000, 1000, 200, 8));
-        // 1000 stored rows, 990 distinct: c = (1000 / 990 - 1) / 999 = 1.0111e-5, rows x c =
-        // 0.0101, E = 500 x 0.0101 = 5.05, the bound 5.05 + 3 x 2.247 + 2 = 13.8.
-        assert!(!beyond_chance(13, 500, 1000, 990));
-        assert!(beyond_chance(14, 500, 1000, 990));
+        // 1000 stored rows, 990 distinct: ten records entered twice, no sign of coarse cells;
+        // chance explains nothing, whatever the file adds.
+        assert!(beyond_chance(3, 1_000_000, 1000, 990));
+        // 1000 stored rows, 900 distinct: c = (1000 / 900 - 1) / 999 = 1.1123e-4, rows x c =
+        // 0.1112, E = 500 x 0.1112 = 55.6, the bound 55.6 + 3 x 7.457 + 2 = 79.97.
+        assert!(!beyond_chance(79, 500, 1000, 900));
+        assert!(beyond_chance(80, 500, 1000, 900));
         assert!(!beyond_chance(0, 0, 10, 10));
     }
 }

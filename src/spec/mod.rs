@@ -450,6 +450,12 @@ pub fn stored_guard(text: &str) -> Option<GuardSpec> {
     check.guard(raw.guard.as_ref(), select.metric).ok()
 }
 
+/// The `[data] target` of a stored spec text, as written; `None` when it does not read.
+pub fn stored_target(text: &str) -> Option<String> {
+    let raw: RawSpec = toml::from_str(text).ok()?;
+    Some(raw.data?.into_inner().target?.into_inner())
+}
+
 /// Validate spec text. `file` names it in errors; `base` resolves the data path.
 pub fn parse(text: &str, file: &Path, base: &Path) -> Result<Spec> {
     let raw: RawSpec = toml::from_str(text).map_err(|e| toml_error(text, file, &e))?;

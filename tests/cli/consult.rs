@@ -1463,3 +1463,245 @@ fn recased_headers_and_labels_are_the_same_rows() {
         warnings(&j)
     );
 }
+
+/// A file with two columns named alike (`BMI` before `bmi`) is refused: identities would read
+/// one while a model reads the other.
+#[test]
+fn columns_named_alike_are_refused() {
+    let d = Dir::new("alike");
+    d.copy(&reference("diabetes.csv"), "d.csv");
+    d.write(
+        "d.toml",
+        &spec(
+            "d.csv",
+            None,
+            "method = \"random\"\nseed = 7\ntest = 0.2\nfolds = 5",
+        ),
+    );
+    d.probity(&["run", "d.toml"]).expect(0);
+    let base = Csv::read(&std::fs::read_to_string(reference("diabetes.csv")).unwrap());
+    let shadow = Csv {
+        header: std::iter::once("BMI".to_string())
+            .chain(base.header.iter().cloned())
+            .collect(),
+        rows: base
+            .rows
+            .iter()
+            .enumerate()
+            .map(|(i, r)| {
+                std::iter::once(format!("{}", (i * 7919) % 1000))
+                    .chain(r.iter().cloned())
+                    .collect()
+            })
+            .collect(),
+    };
+    d.write("shadow.csv", &shadow.text());
+    let before = d.counts();
+    let r = d
+        .probity(&["predict", "1", "--input", "shadow.csv", "--output", "p.csv"])
+        .expect(2);
+    assert!(
+        r.stderr().contains("shadow.csv")
+            && r.stderr()
+                .contains("columns 'BMI' and 'bmi' differ only in case"),
+        "{}",
+        r.stderr()
+    );
+    d.write(
+        "shadow.toml",
+        &spec(
+            "shadow.csv",
+            None,
+            "method = \"random\"\nseed = 8\ntest = 0.2\nfolds = 5",
+        )
+        .replace("ignore = [\"part\"]", "ignore = [\"part\", \"BMI\"]"),
+    );
+    let r = d.probity(&["run", "shadow.toml"]).expect(2);
+    assert!(r.stderr().contains("differ only in case"), "{}", r.stderr());
+    assert_eq!(d.counts(), before);
+}
+
+/// Another partition over the same test rows cannot answer for a partition under a mechanism,
+/// even under a mechanism of its own with a step too small to hide anything.
+#[test]
+fn a_mechanism_of_ones_own_cannot_answer_for_anothers_rows() {
+    let split = "method = \"random\"\nseed = 7\ntest = 0.2\nfolds = 5";
+    let d = diabetes(
+        "fine-ladder",
+        &[
+            ("s.toml", split, "[guard]\nmode = \"ladder\"\nstep = 5.0"),
+            (
+                "fine.toml",
+                &split.replace("folds = 5", "folds = 4"),
+                "[guard]\nmode = \"ladder\"\nstep = 0.000000000001\nreveals = 1000",
+            ),
+        ],
+    );
+    d.probity(&["run", "s.toml"]).expect(0);
+    d.probity(&["run", "fine.toml"]).expect(0);
+    let before = d.counts();
+    let r = d.probity(&["reveal", "2", "--yes"]).expect(2);
+    assert!(
+        r.stderr().contains("sealed in ladder mode"),
+        "{}",
+        r.stderr()
+    );
+    assert_eq!(d.counts(), before);
+}
+
+/// A sealed partition that holds one record entered twice still has no odds of chance: a
+/// copy that sends its rows to validation, padded with thousands of rows that match nothing,
+/// is counted.
+#[test]
+fn padding_with_unmatched_rows_does_not_hide_sealed_rows() {
+    let d = Dir::new("unmatched-padding");
+    let base = Csv::read(&std::fs::read_to_string(reference("diabetes.csv")).unwrap());
+    let mut with_twin = Csv {
+        header: base.header.clone(),
+        rows: base.rows.clone(),
+    };
+    for i in 0..22 {
+        with_twin.rows.push(base.rows[i * 20].clone());
+    }
+    d.write("d.csv", &with_twin.text());
+    d.write(
+        "d.toml",
+        &spec(
+            "d.csv",
+            None,
+            "method = \"random\"\nseed = 7\ntest = 0.2\nfolds = 5",
+        ),
+    );
+    d.probity(&["run", "d.toml"]).expect(0);
+    let p = partition_of(&d, "1");
+    let sealed = sealed_rows_of(&d, &with_twin);
+    let n = sealed.rows.len();
+    let mut padded = with_twin.add("p2", |_| "train".into());
+    let at = padded.header.len() - 1;
+    for r in &mut padded.rows {
+        if sealed.rows.contains(&r[..at].to_vec()) {
+            r[at] = "validation".into();
+        }
+    }
+    for i in 0..6000 {
+        let mut r: Vec<String> = (0..at)
+            .map(|c| {
+                if padded.header[c] == "part" {
+                    "train".into()
+                } else {
+                    format!("{}", 1000 + (i * 31 + c * 17) % 9973)
+                }
+            })
+            .collect();
+        r.push("test".into());
+        padded.rows.push(r);
+    }
+    d.write("padded.csv", &padded.text());
+    d.write(
+        "padded.toml",
+        "name = \"d\"\ntask = \"regression\"\n[data]\npath = \"padded.csv\"\ntarget = \"y\"\nignore = [\"part\"]\n[split]\nmethod = \"column\"\ncolumn = \"p2\"\nfolds = 5\n[[model]]\nkind = \"ridge\"\nlambda = [10.0]\n",
+    );
+    let j = d
+        .probity(&["run", "padded.toml", "--json"])
+        .expect(0)
+        .json();
+    assert!(
+        warnings(&j).iter().any(
+            |w| w.contains(&format!("sealed test rows of partition {p}"))
+                && w.split(' ').next().unwrap().parse::<usize>().unwrap() + 1 >= n
+        ),
+        "{:?}",
+        warnings(&j)
+    );
+}
+
+/// Records of a few categories: a new member looks like a sealed one to every model, so a
+/// prediction of new members is not refused, while the sealed members (by key) are.
+#[test]
+fn coarse_records_are_told_apart_by_key() {
+    let d = Dir::new("coarse");
+    let mut csv = String::from("member,plan,region,channel,claimed\n");
+    for i in 0..600 {
+        let plan = ["basic", "plus", "gold"][i % 3];
+        let region = ["north", "south"][(i / 3) % 2];
+        let channel = ["web", "phone"][(i / 7) % 2];
+        let claimed = if (i * 37) % 5 < 2 { "yes" } else { "no" };
+        csv.push_str(&format!("M{i:05},{plan},{region},{channel},{claimed}\n"));
+    }
+    d.write("claims.csv", &csv);
+    d.write(
+        "c.toml",
+        "name = \"c\"\ntask = \"classification\"\n[data]\npath = \"claims.csv\"\ntarget = \"claimed\"\nkey = \"member\"\n[split]\nmethod = \"random\"\nseed = 4\ntest = 0.2\nfolds = 4\n[[model]]\nkind = \"logistic\"\nlambda = [1.0]\n",
+    );
+    d.probity(&["run", "c.toml"]).expect(0);
+    let mut next = String::from("member,plan,region,channel\n");
+    for i in 0..50 {
+        next.push_str(&format!(
+            "M{:05},{},{},{}\n",
+            5000 + i,
+            ["basic", "plus", "gold"][i % 3],
+            ["north", "south"][i % 2],
+            ["web", "phone"][(i / 2) % 2]
+        ));
+    }
+    d.write("next.csv", &next);
+    d.probity(&["predict", "1", "--input", "next.csv", "--output", "p.csv"])
+        .expect(0);
+    let c = Csv::read(&csv);
+    let sealed = sealed_rows_of(&d, &c).drop("claimed");
+    d.write("sealed.csv", &sealed.text());
+    let r = d
+        .probity(&["predict", "1", "--input", "sealed.csv", "--output", "p.csv"])
+        .expect(2);
+    assert!(
+        r.stderr().contains("120 rows are test rows"),
+        "{}",
+        r.stderr()
+    );
+}
+
+/// The demo specs on the co-operative's bays: a run for another target (outbreaks, which does
+/// not read the yield) on the same rows consults no yield partition, and running every demo in
+/// turn leaves `audit` passing.
+#[test]
+fn another_target_on_the_same_rows_consults_nothing() {
+    let d = Dir::new("demos");
+    let ex = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("experiments");
+    for f in [
+        "bays.csv",
+        "bay-yield.toml",
+        "bay-yield-hash.toml",
+        "outbreak.toml",
+    ] {
+        d.copy(&ex.join(f), f);
+    }
+    d.probity(&["run", "bay-yield.toml"]).expect(0);
+    let j = d
+        .probity(&["run", "outbreak.toml", "--json"])
+        .expect(0)
+        .json();
+    assert!(
+        warnings(&j).iter().all(|w| !w.contains("sealed test rows")),
+        "{:?}",
+        warnings(&j)
+    );
+    d.probity(&["run", "bay-yield-hash.toml"]).expect(0);
+    let a = d.probity(&["audit", "--json"]).expect(0).json();
+    let uses: Vec<i64> = a["partitions"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .flat_map(|p| {
+            p["development_uses"]
+                .as_array()
+                .unwrap()
+                .iter()
+                .map(|u| u["run"].as_i64().unwrap())
+        })
+        .collect();
+    assert_eq!(
+        uses,
+        vec![3],
+        "only the yield run on the same rows counts: {a}"
+    );
+}
