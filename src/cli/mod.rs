@@ -23,6 +23,10 @@ use clap::{Parser, Subcommand};
 use std::io::Write;
 use std::path::{Path, PathBuf};
 
+/// How often a consultation finds the partitions it touches again when new ones were stored
+/// while it looked (`Ledger::consult` returns `None`).
+const FIND_TRIES: usize = 5;
+
 const EXIT_CODES: &str = "Exit codes: 0 ok, 1 internal error, 2 bad input or usage, 3 test budget exceeded, \
 4 ledger integrity failure, 5 replay differs.";
 

@@ -148,10 +148,33 @@ fn guard_sealed_rows(
     allow: bool,
     file: &Path,
 ) -> Result<()> {
+    for _ in 0..super::FIND_TRIES {
+        if guard_once(ledger, d, model, input, pred, allow, file)? {
+            return Ok(());
+        }
+    }
+    Err(Error::Internal(format!(
+        "new partitions kept being stored while this prediction was checked ({} tries); nothing was recorded or written: run it again",
+        super::FIND_TRIES
+    )))
+}
+
+/// One try of `guard_sealed_rows`: `false` when a partition was stored between finding the
+/// partitions touched and recording the consultation (nothing recorded; find them again).
+fn guard_once(
+    ledger: &crate::ledger::Ledger,
+    d: &crate::ledger::RunDetail,
+    model: &StoredModel,
+    input: &crate::data::Table,
+    pred: &[f64],
+    allow: bool,
+    file: &Path,
+) -> Result<bool> {
     let rows: Vec<usize> = (0..input.n_rows()).collect();
     if rows.is_empty() {
-        return Ok(());
+        return Ok(true);
     }
+    let seen = ledger.partitions_seen()?;
     // The key column by the spec's key name; each partition then compares the rows its own
     // way (by key, or by feature cells whatever the file's other columns).
     let key = model.key.as_deref().and_then(|k| input.index_of(k));
@@ -185,7 +208,7 @@ fn guard_sealed_rows(
     // The partition with the most of these rows first (it names the refusal).
     hits.sort_by(|a, b| b.1.len().cmp(&a.1.len()).then_with(|| a.0.cmp(&b.0)));
     if hits.is_empty() {
-        return Ok(());
+        return Ok(true);
     }
     let target = input.column(&model.target);
     if !allow {
@@ -255,7 +278,7 @@ fn guard_sealed_rows(
     let file_text = file.display().to_string();
     // Recording needs a writable ledger of its own.
     let mut writer = crate::ledger::Ledger::open(ledger.path(), false)?;
-    let (ids, consultations) = writer.consult(&partitions, |states| {
+    let stored = writer.consult(&seen, &partitions, |states| {
         let mut records = Vec::new();
         let mut out = Vec::new();
         for (((seal, history), partition), (n, scores)) in states.iter().zip(&partitions).zip(&per)
@@ -280,6 +303,9 @@ fn guard_sealed_rows(
         }
         Ok((records, out))
     })?;
+    let Some((ids, consultations)) = stored else {
+        return Ok(false);
+    };
     for ((id, c), partition) in ids.iter().zip(&consultations).zip(&partitions) {
         warn(&format!(
             "{} rows of sealed partition {partition} were predicted{}: recorded as reveal {id} ({} consultation(s) of the partition now, budget {})",
@@ -296,5 +322,5 @@ fn guard_sealed_rows(
             warn(w);
         }
     }
-    Ok(())
+    Ok(true)
 }

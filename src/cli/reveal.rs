@@ -3,7 +3,7 @@
 //! Order matters: confirm, compute, write the reveal, then print. A reveal whose score was
 //! printed is always in the ledger.
 
-use super::{Global, open_existing, out, out_json, warn};
+use super::{FIND_TRIES, Global, open_existing, out, out_json, warn};
 use crate::error::{Error, Result};
 use crate::ledger::RunDetail;
 use serde_json::{Value, json};
@@ -204,30 +204,44 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
         },
         exposure,
     };
-    // Where simultaneous reveals are lined up in the race tests.
-    crate::failpoint::pause("reveal:consult");
     // Decided and written in one transaction, before anything is printed: a score the user
     // saw is never missing from the count, and two reveals at once each see the other.
-    // Other partitions holding these test rows: the reveal is a look at their rows too.
-    let partners = ledger.test_partners(&table, &prep)?;
-    let mut touched = vec![partition.clone()];
-    touched.extend(partners.iter().map(|(p, _)| p.clone()));
-    let (ids, (c, through)) = ledger.consult(&touched, |states| {
-        let (seal, history) = &states[0];
-        let c = crate::guard::consult::reveal(seal, history, &query)?;
-        let mut records = vec![c.record.clone()];
-        let mut through = Vec::new();
-        for ((seal, history), (other, rows)) in states[1..].iter().zip(&partners) {
-            let subject = crate::guard::consult::Subject {
-                partition: other,
-                ..query.subject.clone()
-            };
-            let t = crate::guard::consult::through(seal, history, &subject, *rows, &partition)?;
-            records.push(t.record.clone());
-            through.push(t);
+    // Other partitions holding these test rows: the reveal is a look at their rows too. They
+    // are found outside the transaction (it may take a while on a large file); a partition
+    // stored meanwhile makes the transaction refuse, and they are found again.
+    let mut stored = None;
+    for _ in 0..FIND_TRIES {
+        let seen = ledger.partitions_seen()?;
+        let partners = ledger.test_partners(&table, &prep)?;
+        // Where simultaneous reveals are lined up in the race tests.
+        crate::failpoint::pause("reveal:consult");
+        let mut touched = vec![partition.clone()];
+        touched.extend(partners.iter().map(|(p, _)| p.clone()));
+        stored = ledger.consult(&seen, &touched, |states| {
+            let (seal, history) = &states[0];
+            let c = crate::guard::consult::reveal(seal, history, &query)?;
+            let mut records = vec![c.record.clone()];
+            let mut through = Vec::new();
+            for ((seal, history), (other, rows)) in states[1..].iter().zip(&partners) {
+                let subject = crate::guard::consult::Subject {
+                    partition: other,
+                    ..query.subject.clone()
+                };
+                let t = crate::guard::consult::through(seal, history, &subject, *rows, &partition)?;
+                records.push(t.record.clone());
+                through.push(t);
+            }
+            Ok((records, (c, through)))
+        })?;
+        if stored.is_some() {
+            break;
         }
-        Ok((records, (c, through)))
-    })?;
+    }
+    let Some((ids, (c, through))) = stored else {
+        return Err(Error::Internal(format!(
+            "new partitions kept being stored while this reveal was checked ({FIND_TRIES} tries); nothing was recorded: run it again"
+        )));
+    };
     let id = ids.first().copied().unwrap_or(0);
     crate::failpoint::pause("reveal:print");
 

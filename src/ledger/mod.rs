@@ -1030,24 +1030,36 @@ impl Ledger {
         seal_of(&self.conn, partition)
     }
 
+    /// The ids of every stored partition, in order: taken before the partitions a
+    /// consultation touches are found, and compared inside its transaction (`consult`).
+    pub fn partitions_seen(&self) -> Result<Vec<String>> {
+        partition_ids(&self.conn)
+    }
+
     /// Consult sealed partitions: their seals and histories are read inside one write
     /// transaction, `decide` builds the records from them, and the records are stored and
     /// chained before the transaction commits. Two consultations at once are serialised, so each
     /// sees the other's record (positions, budgets and mechanism states never race). Returns
-    /// the new reveal ids, in `decide`'s order, and what `decide` returned beside the records.
+    /// the new reveal ids, in `decide`'s order, and what `decide` returned beside the records;
+    /// or `None`, with nothing written, when the stored partitions are no longer `seen` (one
+    /// was stored since the caller found which partitions its rows touch: find them again).
     pub fn consult<T>(
         &mut self,
+        seen: &[String],
         partitions: &[String],
         decide: impl FnOnce(
             &[(crate::guard::consult::Seal, crate::guard::History)],
         ) -> Result<(Vec<RevealRecord>, T)>,
-    ) -> Result<(Vec<i64>, T)> {
+    ) -> Result<Option<(Vec<i64>, T)>> {
         let path = self.path.clone();
         let fail = |e: rusqlite::Error| migrate::refuse_or_fail(&path, e, "write reveal");
         let tx = self
             .conn
             .transaction_with_behavior(rusqlite::TransactionBehavior::Immediate)
             .map_err(fail)?;
+        if partition_ids(&tx)? != seen {
+            return Ok(None);
+        }
         let mut states = Vec::with_capacity(partitions.len());
         for p in partitions {
             states.push((seal_of(&tx, p)?, history_of(&tx, p)?));
@@ -1062,7 +1074,7 @@ impl Ledger {
         }
         crate::failpoint::pause("reveal:commit");
         tx.commit().map_err(fail)?;
-        Ok((ids, out))
+        Ok(Some((ids, out)))
     }
 
     /// How other partitions' consultations exposed a run's test rows (for `run` and
@@ -1957,6 +1969,17 @@ fn json_str(s: &str) -> Value {
 }
 
 /// A bitmap over `n` positions marking `members`.
+/// The ids of every stored partition, in order.
+fn partition_ids(conn: &Connection) -> Result<Vec<String>> {
+    let err = || sql_err("list partitions");
+    let mut st = conn
+        .prepare_cached("SELECT id FROM partitions ORDER BY id")
+        .map_err(err())?;
+    st.query_map([], |r| r.get(0))
+        .and_then(|rows| rows.collect())
+        .map_err(err())
+}
+
 fn membership(n: usize, members: &[usize]) -> Vec<bool> {
     let mut m = vec![false; n];
     for &i in members {

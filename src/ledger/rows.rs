@@ -11,16 +11,20 @@
 //!   checked on the features it reads.
 //!
 //! The same data file is compared by row position, elsewhere. Another file:
-//! - a run's rows (which carry their targets) by labelled identity, and by key, but only when
-//!   the file is *related* to the partition: more of its rows match by content than chance
-//!   explains (`beyond_chance`, judged by how often the partition's own rows share an
-//!   identity). Two unrelated files that share a key column numbered from 1, or a bay whose
-//!   climate and yield agree with one trial plot's, are not taken for each other; a copy of
-//!   the partition's data is, whatever else was done to it;
+//! - a run's rows (which carry their targets) by labelled identity, but only when the file is
+//!   *related* to the partition: more of its rows match by content than chance explains
+//!   (`beyond_chance`, judged by how often the partition's own rows share an identity). A bay
+//!   whose climate and yield agree with one trial plot's is not taken for it; a copy of the
+//!   partition's data is, whatever else was done to it;
 //! - rows to predict by feature identity: exactly (every row counts) for a partition whose
 //!   recipe holds every feature of the predicting model, since the model then predicts such a
-//!   row as it predicts the sealed row; beyond chance otherwise. Keys count within a related
-//!   file, and a model's own run's identities exactly.
+//!   row as it predicts the sealed row; beyond chance otherwise; and a model's own run's
+//!   identities exactly;
+//! - either, by key: the key decides alone, whatever the cells now say, in a file of the same
+//!   kind of records (`TableIds::kin`: the partition's key column and at least one of its
+//!   feature columns, by name), in a related file, and for a coarse partition. Two unrelated
+//!   files that share a key column numbered from 1 but no feature are not taken for each
+//!   other.
 
 use super::sql_err;
 use crate::data::identity::{
@@ -218,6 +222,17 @@ impl<'a> TableIds<'a> {
             .and_then(|k| crate::data::identity::find(self.table, k))
     }
 
+    /// Whether this table holds the same kind of records as a keyed partition: it has the
+    /// partition's key column and at least one of its feature columns (by normalised name).
+    /// Its keys then name the partition's records, whatever its cells now say.
+    fn kin(&self, recipe: &Recipe) -> bool {
+        self.key_column(recipe).is_some()
+            && recipe
+                .columns()
+                .iter()
+                .any(|c| crate::data::identity::find(self.table, c).is_some())
+    }
+
     fn keys(&mut self, recipe: &Recipe) -> Option<&[Option<RowKey>]> {
         let col = self.key_column(recipe)?;
         let (table, rows, threads) = (self.table, self.rows, self.threads);
@@ -388,21 +403,21 @@ pub fn run_overlaps(
                     }
                 };
                 let mut hit = vec![false; ids.rows.len()];
-                if coarse(p.n_test, s.labels.len()) {
-                    // Rows its cells cannot tell apart: the key alone decides.
-                    keys(ids, &mut hit);
-                } else {
-                    let Some(content) = ids.content(recipe) else {
-                        continue;
-                    };
-                    hit = content
+                // Rows its cells cannot tell apart are followed by key alone.
+                let is_coarse = coarse(p.n_test, s.labels.len());
+                let mut related = false;
+                if !is_coarse && let Some(content) = ids.content(recipe) {
+                    let m: Vec<bool> = content
                         .iter()
                         .map(|k| s.labels.binary_search(k).is_ok())
                         .collect();
-                    let (ours, found) = distinct_counts(content, &hit);
-                    if !beyond_chance(found, ours, p.n_test, s.labels.len()) {
-                        continue;
+                    let (ours, found) = distinct_counts(content, &m);
+                    if beyond_chance(found, ours, p.n_test, s.labels.len()) {
+                        hit = m;
+                        related = true;
                     }
+                }
+                if is_coarse || related || ids.kin(recipe) {
                     keys(ids, &mut hit);
                 }
                 hit
@@ -430,18 +445,21 @@ pub fn run_developed(
         let (Some(recipe), Some(s)) = (&p.recipe, sets(conn, &p.id)?) else {
             continue;
         };
-        let Some(prints) = ids.prints(recipe) else {
-            continue;
-        };
-        let mut hit: Vec<bool> = prints
-            .iter()
-            .map(|k| s.development.binary_search(k).is_ok())
-            .collect();
-        let (ours, found) = distinct_counts(prints, &hit);
-        if !beyond_chance(found, ours, p.n_dev, s.development.len()) {
-            continue;
+        let mut hit = vec![false; ids.rows.len()];
+        let mut related = false;
+        if let Some(prints) = ids.prints(recipe) {
+            let m: Vec<bool> = prints
+                .iter()
+                .map(|k| s.development.binary_search(k).is_ok())
+                .collect();
+            let (ours, found) = distinct_counts(prints, &m);
+            if beyond_chance(found, ours, p.n_dev, s.development.len()) {
+                hit = m;
+                related = true;
+            }
         }
-        if !s.development_keys.is_empty()
+        if (related || ids.kin(recipe))
+            && !s.development_keys.is_empty()
             && let Some(k) = ids.key_prints(recipe)
         {
             for (h, k) in hit.iter_mut().zip(k) {
@@ -489,18 +507,10 @@ pub fn predicted(
                 };
                 let mut related = false;
                 let stored = stored_count(conn, &p.id)?;
-                if coarse(p.n_test, stored) {
-                    // Rows its cells cannot tell apart (a few categories): a new record looks
-                    // like a sealed one, so only the key decides.
-                    if let Some(s) = sets(conn, &p.id)?
-                        && !s.keys.is_empty()
-                        && let Some(k) = ids.keys(recipe)
-                    {
-                        for (h, k) in hit.iter_mut().zip(k) {
-                            *h |= k.is_some_and(|k| s.keys.binary_search(&k).is_ok());
-                        }
-                    }
-                } else if let Some(f) = features {
+                // Rows its cells cannot tell apart (a few categories): a new record looks like
+                // a sealed one, so only the key decides.
+                let is_coarse = coarse(p.n_test, stored);
+                if !is_coarse && let Some(f) = features {
                     let given: Vec<Option<RowKey>> = f.iter().copied().map(Some).collect();
                     let m = members(conn, &p.id, p.n_test, &given)?;
                     let exact = !model.features.is_empty()
@@ -511,7 +521,7 @@ pub fn predicted(
                         hit.iter_mut().zip(m).for_each(|(h, m)| *h |= m);
                     }
                 }
-                if related
+                if (related || is_coarse || ids.kin(recipe))
                     && let Some(s) = sets(conn, &p.id)?
                     && !s.keys.is_empty()
                     && let Some(k) = ids.keys(recipe)

@@ -520,6 +520,7 @@ fn mechanisms_release_only_their_answers_everywhere() {
 }
 
 /// A small CSV editor for the evasion cases: the header and the rows as cells.
+#[derive(Clone)]
 struct Csv {
     header: Vec<String>,
     rows: Vec<Vec<String>>,
@@ -999,6 +1000,65 @@ fn another_partition_over_the_same_test_rows_is_counted_and_cannot_undo_a_mechan
     assert_eq!(d.counts(), before);
 }
 
+/// A partition over the same test rows, stored while a reveal is between finding the
+/// partitions it touches and recording itself, is counted too: the reveal finds them again
+/// inside its transaction's view.
+#[test]
+fn a_partition_stored_during_a_reveal_is_counted_by_it() {
+    let split = "method = \"random\"\nseed = 7\ntest = 0.2\nfolds = 5";
+    let d = diabetes(
+        "partner-race",
+        &[
+            ("s.toml", split, ""),
+            ("folds.toml", &split.replace("folds = 5", "folds = 4"), ""),
+        ],
+    );
+    d.probity(&["run", "s.toml"]).expect(0);
+    let go = d.path.join("go");
+    let mut c = Command::new(assert_cmd::cargo::cargo_bin("probity"))
+        .current_dir(&d.path)
+        .args(["reveal", "1", "--yes", "--json"])
+        .env_remove("PROBITY_LEDGER")
+        .env("PROBITY_PAUSE_AT", "reveal:consult")
+        .env("PROBITY_RESUME_ON", &go)
+        .stdout(Stdio::piped())
+        .stderr(Stdio::piped())
+        .spawn()
+        .unwrap();
+    let mut err = BufReader::new(c.stderr.take().unwrap());
+    let mut line = String::new();
+    while line.trim_end() != "probity: paused at reveal:consult" {
+        line.clear();
+        assert!(
+            err.read_line(&mut line).unwrap() > 0,
+            "ended before pausing"
+        );
+    }
+    // The reveal has found no other partition; now one is stored over the same test rows.
+    d.probity(&["run", "folds.toml"]).expect(0);
+    let p2 = partition_of(&d, "2");
+    std::fs::write(&go, "").unwrap();
+    let out = c.wait_with_output().unwrap();
+    let mut rest = String::new();
+    std::io::Read::read_to_string(&mut err, &mut rest).unwrap();
+    assert!(out.status.success(), "{rest}");
+    assert!(
+        rest.contains(&format!(
+            "88 of these test rows are test rows of partition {p2} too"
+        )),
+        "{rest}"
+    );
+    let a = d.probity(&["audit", "--json"]).expect(0).json();
+    let part = a["partitions"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|x| x["id"] == p2.as_str())
+        .unwrap()
+        .clone();
+    assert_eq!(part["reveals"], 1, "{part}");
+}
+
 /// Under a mechanism nothing derived from the exact scores is shown: not the bootstrap's
 /// standard error either (with a proportion it gives the score back).
 #[test]
@@ -1216,9 +1276,63 @@ fn padding_or_trickling_sealed_rows_is_counted() {
     assert_eq!(part["consultations"], 2, "{part}");
 }
 
-/// Two unrelated files keyed by an `id` numbered from 1 are not confused: the second file's
-/// run counts no use of the first's partition, and the first model's predictions of a new
-/// batch numbered from 1 are not refused.
+/// With a key, the key decides: sealed records whose every feature and target was changed
+/// beyond the tenth significant digit (so their cells match nothing stored) are still refused
+/// by `predict`, with or without the target, and a run on such a copy counts them as
+/// development use, because the file holds the partition's key column and its features.
+#[test]
+fn with_a_key_the_key_decides_whatever_the_cells_say() {
+    let d = Dir::new("key-decides");
+    d.write("k.csv", &keyed_diabetes().text());
+    d.write(
+        "k.toml",
+        &spec(
+            "k.csv",
+            Some("patient"),
+            "method = \"random\"\nseed = 7\ntest = 0.2\nfolds = 5",
+        ),
+    );
+    d.probity(&["run", "k.toml"]).expect(0);
+    let p = partition_of(&d, "1");
+    let nudged = |csv: Csv| {
+        let mut csv = csv;
+        for c in [
+            "age", "sex", "bmi", "bp", "s1", "s2", "s3", "s4", "s5", "s6", "y",
+        ] {
+            csv = csv.map(c, |v| {
+                format!("{}", v.parse::<f64>().unwrap() * 1.001 + 0.001)
+            });
+        }
+        csv
+    };
+    let sealed = nudged(sealed_rows_of(&d, &keyed_diabetes()));
+    d.write("n.csv", &sealed.clone().drop("y").text());
+    refused(&d, "n.csv", &p, "every feature nudged, the target dropped");
+    d.write("nt.csv", &sealed.rename("y", "yield").text());
+    refused(&d, "nt.csv", &p, "every cell nudged, the target renamed");
+    // The whole file nudged, every row a development row: the 88 sealed records among them.
+    d.write("all.csv", &nudged(keyed_diabetes()).text());
+    d.write(
+        "all.toml",
+        &spec(
+            "all.csv",
+            Some("patient"),
+            "method = \"random\"\nseed = 7\nvalidation = 0.2\nfolds = 5",
+        ),
+    );
+    let j = d.probity(&["run", "all.toml", "--json"]).expect(0).json();
+    assert!(
+        warnings(&j).iter().any(|w| w.starts_with("88 of ")
+            && w.contains(&format!("sealed test rows of partition {p}"))),
+        "{:?}",
+        warnings(&j)
+    );
+}
+
+/// Two unrelated files keyed by an `id` numbered from 1 but sharing no feature are not
+/// confused: the second file's run counts no use of the first's partition. A batch for the
+/// first model with new ids is predicted; one whose numbering starts again at 1 is refused,
+/// since its keys name sealed records.
 #[test]
 fn unrelated_files_that_share_key_numbers_are_not_confused() {
     let d = Dir::new("shared-ids");
@@ -1232,17 +1346,22 @@ fn unrelated_files_that_share_key_numbers_are_not_confused() {
         let (p, f) = (900.0 + (i * 29 % 97) as f64, (i * 17 % 43) as f64 / 5.0);
         b.push_str(&format!("{i},{p:.1},{f:.2},{:.2}\n", p / 100.0 + f));
     }
-    let mut batch = String::from("id,x1,x2\n");
-    for i in 1..=50 {
-        batch.push_str(&format!(
-            "{i},{:.3},{:.3}\n",
-            i as f64 / 9.0 + 0.0101,
-            i as f64 / 5.0 + 0.0203
-        ));
-    }
+    let batch = |from: usize| {
+        let mut batch = String::from("id,x1,x2\n");
+        for i in 1..=50 {
+            batch.push_str(&format!(
+                "{},{:.3},{:.3}\n",
+                from + i,
+                i as f64 / 9.0 + 0.0101,
+                i as f64 / 5.0 + 0.0203
+            ));
+        }
+        batch
+    };
     d.write("a.csv", &a);
     d.write("b.csv", &b);
-    d.write("batch.csv", &batch);
+    d.write("batch.csv", &batch(1000));
+    d.write("again.csv", &batch(0));
     let keyed = |file: &str| {
         format!(
             "name = \"k\"\ntask = \"regression\"\n[data]\npath = \"{file}\"\ntarget = \"y\"\nkey = \"id\"\n[split]\nmethod = \"random\"\nseed = 2\ntest = 0.2\nfolds = 4\n[[model]]\nkind = \"ridge\"\nlambda = [1.0]\n"
@@ -1255,6 +1374,16 @@ fn unrelated_files_that_share_key_numbers_are_not_confused() {
     assert!(warnings(&j).is_empty(), "{:?}", warnings(&j));
     d.probity(&["predict", "1", "--input", "batch.csv", "--output", "p.csv"])
         .expect(0);
+    let again = d.probity(&["predict", "1", "--input", "again.csv", "--output", "q.csv"]);
+    assert_eq!(again.code(), 2, "{}", again.stderr());
+    assert!(
+        again.stderr().contains(&format!(
+            "test rows of sealed partition {}",
+            partition_of(&d, "1")
+        )),
+        "{}",
+        again.stderr()
+    );
     let a = d.probity(&["audit", "--json"]).expect(0).json();
     for p in a["partitions"].as_array().unwrap() {
         assert_eq!(p["consultations"], 0, "{p}");
