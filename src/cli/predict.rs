@@ -71,7 +71,19 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
     for n in &notes {
         warn(n);
     }
-    guard_sealed_rows(&ledger, &d, &model, &input, &pred, a.allow_sealed, &a.input)?;
+    let mut guarded = false;
+    for _ in 0..super::FIND_TRIES {
+        guarded = guard_sealed_rows(&ledger, &d, &model, &input, &pred, a.allow_sealed, &a.input)?;
+        if guarded {
+            break;
+        }
+    }
+    if !guarded {
+        return Err(Error::Internal(format!(
+            "new partitions kept being stored while this prediction was checked ({} tries); nothing was recorded or written: run it again",
+            super::FIND_TRIES
+        )));
+    }
     write_predictions(
         &a.output,
         &input,
@@ -138,30 +150,10 @@ fn write_predictions(
 /// Rows of a sealed test partition are a look at it whether or not the file holds their
 /// targets: whoever holds the data file scores the predictions at once. Refuse them, or (with
 /// `--allow-sealed`) record one consultation of each partition touched, through its seal, in
-/// one transaction, before the predictions are written.
+/// one transaction, before the predictions are written. `false` when a partition was stored
+/// between finding the partitions touched and recording the consultation: nothing was
+/// recorded, and the caller tries again.
 fn guard_sealed_rows(
-    ledger: &crate::ledger::Ledger,
-    d: &crate::ledger::RunDetail,
-    model: &StoredModel,
-    input: &crate::data::Table,
-    pred: &[f64],
-    allow: bool,
-    file: &Path,
-) -> Result<()> {
-    for _ in 0..super::FIND_TRIES {
-        if guard_once(ledger, d, model, input, pred, allow, file)? {
-            return Ok(());
-        }
-    }
-    Err(Error::Internal(format!(
-        "new partitions kept being stored while this prediction was checked ({} tries); nothing was recorded or written: run it again",
-        super::FIND_TRIES
-    )))
-}
-
-/// One try of `guard_sealed_rows`: `false` when a partition was stored between finding the
-/// partitions touched and recording the consultation (nothing recorded; find them again).
-fn guard_once(
     ledger: &crate::ledger::Ledger,
     d: &crate::ledger::RunDetail,
     model: &StoredModel,
