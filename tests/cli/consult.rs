@@ -274,6 +274,35 @@ fn a_copied_spec_cannot_raise_the_budget() {
 
 /// Start `reveal` processes that all stop just before their transaction, then release them
 /// together; returns each one's JSON document.
+/// `probity ARGS` started with the pause point `reveal:consult` armed to go on once `go`
+/// exists, returned once it has paused there, with its stderr still to read.
+fn paused_reveal(
+    d: &Dir,
+    args: &[&str],
+    go: &std::path::Path,
+) -> (std::process::Child, BufReader<std::process::ChildStderr>) {
+    let mut c = Command::new(assert_cmd::cargo::cargo_bin("probity"))
+        .current_dir(&d.path)
+        .args(args)
+        .env_remove("PROBITY_LEDGER")
+        .env("PROBITY_PAUSE_AT", "reveal:consult")
+        .env("PROBITY_RESUME_ON", go)
+        .stdout(Stdio::piped())
+        .stderr(Stdio::piped())
+        .spawn()
+        .unwrap();
+    let mut err = BufReader::new(c.stderr.take().unwrap());
+    let mut line = String::new();
+    while line.trim_end() != "probity: paused at reveal:consult" {
+        line.clear();
+        assert!(
+            err.read_line(&mut line).unwrap() > 0,
+            "ended before pausing"
+        );
+    }
+    (c, err)
+}
+
 fn reveals_at_once(d: &Dir, n: usize, extra: &[&str]) -> Vec<Value> {
     let go = d.path.join("go");
     let _ = std::fs::remove_file(&go);
@@ -281,29 +310,7 @@ fn reveals_at_once(d: &Dir, n: usize, extra: &[&str]) -> Vec<Value> {
     for _ in 0..n {
         let mut args = vec!["reveal", "1", "--yes", "--json"];
         args.extend_from_slice(extra);
-        let mut c = Command::new(assert_cmd::cargo::cargo_bin("probity"))
-            .current_dir(&d.path)
-            .args(&args)
-            .env_remove("PROBITY_LEDGER")
-            .env("PROBITY_PAUSE_AT", "reveal:consult")
-            .env("PROBITY_RESUME_ON", &go)
-            .stdout(Stdio::piped())
-            .stderr(Stdio::piped())
-            .spawn()
-            .unwrap();
-        let mut err = BufReader::new(c.stderr.take().unwrap());
-        let mut line = String::new();
-        loop {
-            line.clear();
-            assert!(
-                err.read_line(&mut line).unwrap() > 0,
-                "ended before pausing"
-            );
-            if line.trim_end() == "probity: paused at reveal:consult" {
-                break;
-            }
-        }
-        children.push((c, err));
+        children.push(paused_reveal(d, &args, &go));
     }
     // Every process has scored its candidate and waits at the door of its transaction.
     std::fs::write(&go, "").unwrap();
@@ -594,6 +601,23 @@ fn spec(data: &str, key: Option<&str>, split: &str) -> String {
     )
 }
 
+/// Run 1: ridge on keyed_diabetes() (key `patient`, 20 % sealed, seed 7), and its partition.
+fn keyed_run(name: &str) -> (Dir, String) {
+    let d = Dir::new(name);
+    d.write("k.csv", &keyed_diabetes().text());
+    d.write(
+        "k.toml",
+        &spec(
+            "k.csv",
+            Some("patient"),
+            "method = \"random\"\nseed = 7\ntest = 0.2\nfolds = 5",
+        ),
+    );
+    d.probity(&["run", "k.toml"]).expect(0);
+    let p = partition_of(&d, "1");
+    (d, p)
+}
+
 /// The sealed test rows of run 1, as rows of the file it ran on (from its stored assignment).
 fn sealed_rows_of(d: &Dir, csv: &Csv) -> Csv {
     let c = rusqlite::Connection::open(d.ledger()).unwrap();
@@ -637,19 +661,7 @@ fn refused(d: &Dir, file: &str, partition: &str, case: &str) {
 /// the spec's key name, normalised), by the feature cells otherwise.
 #[test]
 fn predict_recognises_keyed_sealed_rows_through_ordinary_edits() {
-    let d = Dir::new("predict-keyed");
-    let csv = keyed_diabetes();
-    d.write("k.csv", &csv.text());
-    d.write(
-        "k.toml",
-        &spec(
-            "k.csv",
-            Some("patient"),
-            "method = \"random\"\nseed = 7\ntest = 0.2\nfolds = 5",
-        ),
-    );
-    d.probity(&["run", "k.toml"]).expect(0);
-    let p = partition_of(&d, "1");
+    let (d, p) = keyed_run("predict-keyed");
     let sealed = || sealed_rows_of(&d, &keyed_diabetes());
     let cases: Vec<(&str, Csv)> = vec![
         ("the target dropped", sealed().drop("y")),
@@ -743,18 +755,7 @@ fn edited_files_do_not_reset_exposure() {
         ),
     ];
     for (case, edit, key) in edits {
-        let d = Dir::new("exposure-edits");
-        d.write("k.csv", &keyed_diabetes().text());
-        d.write(
-            "k.toml",
-            &spec(
-                "k.csv",
-                Some("patient"),
-                "method = \"random\"\nseed = 7\ntest = 0.2\nfolds = 5",
-            ),
-        );
-        d.probity(&["run", "k.toml"]).expect(0);
-        let p = partition_of(&d, "1");
+        let (d, p) = keyed_run("exposure-edits");
         d.write("e.csv", &edit(keyed_diabetes()).text());
         let mut text = spec(
             "e.csv",
@@ -1015,25 +1016,7 @@ fn a_partition_stored_during_a_reveal_is_counted_by_it() {
     );
     d.probity(&["run", "s.toml"]).expect(0);
     let go = d.path.join("go");
-    let mut c = Command::new(assert_cmd::cargo::cargo_bin("probity"))
-        .current_dir(&d.path)
-        .args(["reveal", "1", "--yes", "--json"])
-        .env_remove("PROBITY_LEDGER")
-        .env("PROBITY_PAUSE_AT", "reveal:consult")
-        .env("PROBITY_RESUME_ON", &go)
-        .stdout(Stdio::piped())
-        .stderr(Stdio::piped())
-        .spawn()
-        .unwrap();
-    let mut err = BufReader::new(c.stderr.take().unwrap());
-    let mut line = String::new();
-    while line.trim_end() != "probity: paused at reveal:consult" {
-        line.clear();
-        assert!(
-            err.read_line(&mut line).unwrap() > 0,
-            "ended before pausing"
-        );
-    }
+    let (c, mut err) = paused_reveal(&d, &["reveal", "1", "--yes", "--json"], &go);
     // The reveal has found no other partition; now one is stored over the same test rows.
     d.probity(&["run", "folds.toml"]).expect(0);
     let p2 = partition_of(&d, "2");
@@ -1282,18 +1265,7 @@ fn padding_or_trickling_sealed_rows_is_counted() {
 /// development use, because the file holds the partition's key column and its features.
 #[test]
 fn with_a_key_the_key_decides_whatever_the_cells_say() {
-    let d = Dir::new("key-decides");
-    d.write("k.csv", &keyed_diabetes().text());
-    d.write(
-        "k.toml",
-        &spec(
-            "k.csv",
-            Some("patient"),
-            "method = \"random\"\nseed = 7\ntest = 0.2\nfolds = 5",
-        ),
-    );
-    d.probity(&["run", "k.toml"]).expect(0);
-    let p = partition_of(&d, "1");
+    let (d, p) = keyed_run("key-decides");
     let nudged = |csv: Csv| {
         let mut csv = csv;
         for c in [
