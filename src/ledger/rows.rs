@@ -21,10 +21,13 @@
 //!   row as it predicts the sealed row; beyond chance otherwise; and a model's own run's
 //!   identities exactly;
 //! - either, by key: the key decides alone, whatever the cells now say, in a file of the same
-//!   kind of records (`TableIds::kin`: the partition's key column and at least one of its
-//!   feature columns, by name), in a related file, and for a coarse partition. Two unrelated
-//!   files that share a key column numbered from 1 but no feature are not taken for each
-//!   other.
+//!   kind of records (`TableIds::kin`: the partition's key column and at least half of its
+//!   feature columns, by name), in a related file, and for a coarse partition (one whose test
+//!   rows repeat each other's cells: there, where the key can be read, only the key decides;
+//!   where it cannot, content beyond chance). Two unrelated files that share a key column
+//!   numbered from 1 and a feature name or two are not taken for each other.
+//!
+//! Rows to predict in a partition's own data file are also its test rows by position.
 
 use super::sql_err;
 use crate::data::identity::{
@@ -223,14 +226,22 @@ impl<'a> TableIds<'a> {
     }
 
     /// Whether this table holds the same kind of records as a keyed partition: it has the
-    /// partition's key column and at least one of its feature columns (by normalised name).
-    /// Its keys then name the partition's records, whatever its cells now say.
+    /// partition's key column and at least half of its feature columns (by normalised name).
+    /// Its keys then name the partition's records, whatever its cells now say. (One shared
+    /// name is not enough: `id` and `age` are in many unrelated files.)
     fn kin(&self, recipe: &Recipe) -> bool {
-        self.key_column(recipe).is_some()
-            && recipe
-                .columns()
-                .iter()
-                .any(|c| crate::data::identity::find(self.table, c).is_some())
+        let present = recipe
+            .columns()
+            .iter()
+            .filter(|c| crate::data::identity::find(self.table, c).is_some())
+            .count();
+        self.key_column(recipe).is_some() && present > 0 && 2 * present >= recipe.columns().len()
+    }
+
+    /// Whether a partition's keys can be read here: it stored some, and this table has its key
+    /// column.
+    fn keyed(&self, recipe: &Recipe, s: &Sets) -> bool {
+        !s.keys.is_empty() && self.key_column(recipe).is_some()
     }
 
     fn keys(&mut self, recipe: &Recipe) -> Option<&[Option<RowKey>]> {
@@ -403,10 +414,12 @@ pub fn run_overlaps(
                     }
                 };
                 let mut hit = vec![false; ids.rows.len()];
-                // Rows its cells cannot tell apart are followed by key alone.
+                // Rows its cells cannot tell apart are followed by key alone, where the key
+                // can be read; else by content, beyond chance.
                 let is_coarse = coarse(p.n_test, s.labels.len());
+                let by_key = is_coarse && ids.keyed(recipe, &s);
                 let mut related = false;
-                if !is_coarse && let Some(content) = ids.content(recipe) {
+                if !by_key && let Some(content) = ids.content(recipe) {
                     let m: Vec<bool> = content
                         .iter()
                         .map(|k| s.labels.binary_search(k).is_ok())
@@ -490,8 +503,20 @@ pub fn predicted(
     model: &Predictor,
 ) -> Result<Vec<(String, Vec<usize>)>> {
     let mut out = Vec::new();
+    let mut assignment = conn
+        .prepare_cached("SELECT assignment FROM partitions WHERE id = ?1")
+        .map_err(sql_err("find sealed rows"))?;
     for p in parts.iter().filter(|p| p.n_test > 0) {
         let mut hit = vec![false; ids.rows.len()];
+        if p.data_sha256 == ids.table.sha256 {
+            // The partition's own data file: its test rows by position, exactly.
+            let a: Vec<u8> = assignment
+                .query_row([&p.id], |r| r.get(0))
+                .map_err(sql_err("find sealed rows"))?;
+            for (h, &r) in hit.iter_mut().zip(ids.rows) {
+                *h |= a.get(r) == Some(&crate::split::Part::Test.code());
+            }
+        }
         match (p.identity.legacy(), &p.recipe) {
             (Some(v), _) => {
                 let keys: Vec<Option<RowKey>> = ids.legacy(v).iter().copied().map(Some).collect();
@@ -508,12 +533,19 @@ pub fn predicted(
                 let mut related = false;
                 let stored = stored_count(conn, &p.id)?;
                 // Rows its cells cannot tell apart (a few categories): a new record looks like
-                // a sealed one, so only the key decides.
+                // a sealed one, so the key decides where it can be read; else a file counts
+                // by content only when it is related beyond chance (a copy of the data).
                 let is_coarse = coarse(p.n_test, stored);
-                if !is_coarse && let Some(f) = features {
+                let by_key = is_coarse
+                    && match sets(conn, &p.id)? {
+                        Some(s) => ids.keyed(recipe, &s),
+                        None => false,
+                    };
+                if !by_key && let Some(f) = features {
                     let given: Vec<Option<RowKey>> = f.iter().copied().map(Some).collect();
                     let m = members(conn, &p.id, p.n_test, &given)?;
-                    let exact = !model.features.is_empty()
+                    let exact = !is_coarse
+                        && !model.features.is_empty()
                         && model.features.iter().all(|x| recipe.columns().contains(x));
                     let (ours, found) = distinct_counts(&f, &m);
                     related = found > 0 && (exact || beyond_chance(found, ours, p.n_test, stored));

@@ -1761,6 +1761,128 @@ fn coarse_records_are_told_apart_by_key() {
     );
 }
 
+/// Partly coarse records (ages to five years, whole BMI points: 88 sealed rows, 78 distinct)
+/// without a key: the run's own data file is refused by position, and a copy with a column
+/// added by content, since it matches the sealed rows far beyond chance.
+#[test]
+fn coarse_records_without_a_key_are_refused_in_the_runs_own_file_and_its_copies() {
+    let d = Dir::new("coarse-unkeyed");
+    let coarse = Csv::read(&std::fs::read_to_string(reference("diabetes.csv")).unwrap())
+        .drop("bp")
+        .drop("s1")
+        .drop("s2")
+        .drop("s3")
+        .drop("s4")
+        .drop("s5")
+        .drop("s6")
+        .map("age", |v| {
+            format!("{}", (v.parse::<f64>().unwrap() / 5.0).round() * 5.0)
+        })
+        .map("bmi", |v| format!("{}", v.parse::<f64>().unwrap().round()));
+    d.write("c.csv", &coarse.text());
+    d.write(
+        "c.toml",
+        &spec(
+            "c.csv",
+            None,
+            "method = \"random\"\nseed = 7\ntest = 0.2\nfolds = 5",
+        ),
+    );
+    d.probity(&["run", "c.toml"]).expect(0);
+    let p = partition_of(&d, "1");
+    let sealed = sealed_rows_of(&d, &coarse);
+    let mut distinct: Vec<Vec<String>> = sealed
+        .clone()
+        .drop("y")
+        .drop("part")
+        .rows
+        .into_iter()
+        .collect();
+    distinct.sort();
+    distinct.dedup();
+    assert!(
+        distinct.len() < 84,
+        "{} distinct: not coarse",
+        distinct.len()
+    );
+    d.write("copy.csv", &coarse.add("site", |_| "east".into()).text());
+    // Every look-alike of a sealed row is refused with it (it gets the sealed row's
+    // prediction), so more rows than the 88 sealed ones.
+    for file in ["c.csv", "copy.csv"] {
+        let r = d.probity(&["predict", "1", "--input", file, "--output", "p.csv"]);
+        assert_eq!(r.code(), 2, "{file}: {}", r.stderr());
+        let n: usize = r
+            .stderr()
+            .split(&format!("{file}: "))
+            .nth(1)
+            .and_then(|t| t.split(' ').next())
+            .and_then(|n| n.parse().ok())
+            .unwrap_or(0);
+        assert!(
+            n >= 88
+                && r.stderr()
+                    .contains(&format!("rows are test rows of sealed partition {p}")),
+            "{file}: {}",
+            r.stderr()
+        );
+    }
+    assert_eq!(
+        d.probity(&["audit", "--json"]).expect(0).json()["partitions"][0]["consultations"],
+        0
+    );
+}
+
+/// Two keyed files that share the key's name and values and one feature's name (of the
+/// first's ten) are two projects: the second's runs and predictions charge nothing to the
+/// first's partition.
+#[test]
+fn a_shared_key_and_one_shared_feature_name_do_not_make_files_kin() {
+    let (d, p) = keyed_run("kin-false-alarm");
+    let mut b = String::from("patient,age,income,rooms,y\n");
+    for i in 0..300 {
+        let (age, income, rooms) = (20 + i * 7 % 50, 30 + i * 13 % 70, 1 + i % 6);
+        b.push_str(&format!(
+            "P{:04},{age},{income},{rooms},{}\n",
+            i + 1,
+            income * 3 + rooms * 10 - age
+        ));
+    }
+    d.write("b.csv", &b);
+    d.write(
+        "b.toml",
+        &spec(
+            "b.csv",
+            Some("patient"),
+            "method = \"random\"\nseed = 11\nvalidation = 0.2\nfolds = 5",
+        )
+        .replace("ignore = [\"part\"]\n", ""),
+    );
+    let j = d.probity(&["run", "b.toml", "--json"]).expect(0).json();
+    assert!(warnings(&j).is_empty(), "{:?}", warnings(&j));
+    let mut new = String::from("patient,age,income,rooms\n");
+    for i in 0..20 {
+        new.push_str(&format!(
+            "P{:04},{},{},{}\n",
+            i + 1,
+            30 + i,
+            50 + i,
+            1 + i % 4
+        ));
+    }
+    d.write("new.csv", &new);
+    d.probity(&["predict", "2", "--input", "new.csv", "--output", "p.csv"])
+        .expect(0);
+    let a = d.probity(&["audit", "--json"]).expect(0).json();
+    let part = a["partitions"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|x| x["id"] == p.as_str())
+        .unwrap()
+        .clone();
+    assert_eq!(part["consultations"], 0, "{part}");
+}
+
 /// The demo specs on the co-operative's bays: a run for another target (outbreaks, which does
 /// not read the yield) on the same rows consults no yield partition, and running every demo in
 /// turn leaves `audit` passing.
