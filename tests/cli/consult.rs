@@ -601,20 +601,27 @@ fn spec(data: &str, key: Option<&str>, split: &str) -> String {
     )
 }
 
+/// Run 1 on `csv` (already written) with `spec(csv, key, ...)`: ridge, 20 % sealed, seed 7,
+/// five folds; its partition.
+fn sealed_run(d: &Dir, csv: &str, key: Option<&str>) -> String {
+    let toml = csv.replace(".csv", ".toml");
+    d.write(
+        &toml,
+        &spec(
+            csv,
+            key,
+            "method = \"random\"\nseed = 7\ntest = 0.2\nfolds = 5",
+        ),
+    );
+    d.probity(&["run", &toml]).expect(0);
+    partition_of(d, "1")
+}
+
 /// Run 1: ridge on keyed_diabetes() (key `patient`, 20 % sealed, seed 7), and its partition.
 fn keyed_run(name: &str) -> (Dir, String) {
     let d = Dir::new(name);
     d.write("k.csv", &keyed_diabetes().text());
-    d.write(
-        "k.toml",
-        &spec(
-            "k.csv",
-            Some("patient"),
-            "method = \"random\"\nseed = 7\ntest = 0.2\nfolds = 5",
-        ),
-    );
-    d.probity(&["run", "k.toml"]).expect(0);
-    let p = partition_of(&d, "1");
+    let p = sealed_run(&d, "k.csv", Some("patient"));
     (d, p)
 }
 
@@ -696,16 +703,7 @@ fn predict_recognises_keyed_sealed_rows_through_ordinary_edits() {
 fn predict_recognises_unkeyed_sealed_rows_through_ordinary_edits() {
     let d = Dir::new("predict-unkeyed");
     d.copy(&reference("diabetes.csv"), "d.csv");
-    d.write(
-        "d.toml",
-        &spec(
-            "d.csv",
-            None,
-            "method = \"random\"\nseed = 7\ntest = 0.2\nfolds = 5",
-        ),
-    );
-    d.probity(&["run", "d.toml"]).expect(0);
-    let p = partition_of(&d, "1");
+    let p = sealed_run(&d, "d.csv", None);
     let base = || Csv::read(&std::fs::read_to_string(reference("diabetes.csv")).unwrap());
     let sealed = || sealed_rows_of(&d, &base());
     let nudge = |by: f64| move |v: &str| format!("{}", v.parse::<f64>().unwrap() + by);
@@ -1145,16 +1143,7 @@ fn predict_recognises_sealed_rows_whatever_features_the_model_reads() {
 fn padding_or_trickling_sealed_rows_is_counted() {
     let d = Dir::new("padding");
     d.copy(&reference("diabetes.csv"), "d.csv");
-    d.write(
-        "d.toml",
-        &spec(
-            "d.csv",
-            None,
-            "method = \"random\"\nseed = 7\ntest = 0.2\nfolds = 5",
-        ),
-    );
-    d.probity(&["run", "d.toml"]).expect(0);
-    let p = partition_of(&d, "1");
+    let p = sealed_run(&d, "d.csv", None);
     let base = Csv::read(&std::fs::read_to_string(reference("diabetes.csv")).unwrap());
     let sealed = sealed_rows_of(&d, &base);
     let is_sealed = |r: &[String]| sealed.rows.contains(&r.to_vec());
@@ -1665,16 +1654,7 @@ fn padding_with_unmatched_rows_does_not_hide_sealed_rows() {
         with_twin.rows.push(base.rows[i * 20].clone());
     }
     d.write("d.csv", &with_twin.text());
-    d.write(
-        "d.toml",
-        &spec(
-            "d.csv",
-            None,
-            "method = \"random\"\nseed = 7\ntest = 0.2\nfolds = 5",
-        ),
-    );
-    d.probity(&["run", "d.toml"]).expect(0);
-    let p = partition_of(&d, "1");
+    let p = sealed_run(&d, "d.csv", None);
     let sealed = sealed_rows_of(&d, &with_twin);
     let n = sealed.rows.len();
     let mut padded = with_twin.add("p2", |_| "train".into());
@@ -1780,16 +1760,7 @@ fn coarse_records_without_a_key_are_refused_in_the_runs_own_file_and_its_copies(
         })
         .map("bmi", |v| format!("{}", v.parse::<f64>().unwrap().round()));
     d.write("c.csv", &coarse.text());
-    d.write(
-        "c.toml",
-        &spec(
-            "c.csv",
-            None,
-            "method = \"random\"\nseed = 7\ntest = 0.2\nfolds = 5",
-        ),
-    );
-    d.probity(&["run", "c.toml"]).expect(0);
-    let p = partition_of(&d, "1");
+    let p = sealed_run(&d, "c.csv", None);
     let sealed = sealed_rows_of(&d, &coarse);
     let mut distinct: Vec<Vec<String>> = sealed
         .clone()
