@@ -2048,12 +2048,13 @@ fn development_overlaps(
         }
         let seal = seal_of(conn, &partition)?;
         // A run that reads the partition's target neither as its target nor as a feature
-        // sees no sealed target: another target on the same rows consults nothing.
-        if seal
-            .target
-            .as_deref()
-            .is_some_and(|t| !reads.contains(&crate::data::identity::normalise(t)))
-        {
+        // sees no sealed target: another target on the same rows consults nothing. That is
+        // known only while the file still holds the target under its name: in a file without
+        // it, the run's target may be the sealed one renamed, and it counts.
+        if seal.target.as_deref().is_some_and(|t| {
+            !reads.contains(&crate::data::identity::normalise(t))
+                && crate::data::identity::find(table, t).is_some()
+        }) {
             continue;
         }
         out.push(crate::guard::consult::Overlapping {

@@ -21,8 +21,8 @@
 //!   row as it predicts the sealed row; beyond chance otherwise; and a model's own run's
 //!   identities exactly;
 //! - either, by key: the key decides alone, whatever the cells now say, in a file of the same
-//!   kind of records (`TableIds::kin`: the partition's key column and at least half of its
-//!   feature columns, by name), in a related file, and for a coarse partition (one whose test
+//!   kind of records (`TableIds::kin`: the partition's key column and all of its feature
+//!   columns, or more than half and at least two, by name), in a related file, and for a coarse partition (one whose test
 //!   rows repeat each other's cells: there, where the key can be read, only the key decides;
 //!   where it cannot, content beyond chance). Two unrelated files that share a key column
 //!   numbered from 1 and a feature name or two are not taken for each other.
@@ -226,16 +226,20 @@ impl<'a> TableIds<'a> {
     }
 
     /// Whether this table holds the same kind of records as a keyed partition: it has the
-    /// partition's key column and at least half of its feature columns (by normalised name).
-    /// Its keys then name the partition's records, whatever its cells now say. (One shared
-    /// name is not enough: `id` and `age` are in many unrelated files.)
+    /// partition's key column and every one of its feature columns, or more than half of them
+    /// and at least two (by normalised name). Its keys then name the partition's records,
+    /// whatever its cells now say. (One shared name is not enough: `id` and `age` are in many
+    /// unrelated files.)
     fn kin(&self, recipe: &Recipe) -> bool {
         let present = recipe
             .columns()
             .iter()
             .filter(|c| crate::data::identity::find(self.table, c).is_some())
             .count();
-        self.key_column(recipe).is_some() && present > 0 && 2 * present >= recipe.columns().len()
+        let all = recipe.columns().len();
+        self.key_column(recipe).is_some()
+            && present > 0
+            && (present == all || (present >= 2 && 2 * present > all))
     }
 
     /// Whether a partition's keys can be read here: it stored some, and this table has its key

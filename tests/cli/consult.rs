@@ -1854,6 +1854,84 @@ fn a_shared_key_and_one_shared_feature_name_do_not_make_files_kin() {
     assert_eq!(part["consultations"], 0, "{part}");
 }
 
+/// A copy of the data whose target column is renamed, split with the sealed rows as validation
+/// rows, reads the sealed target under another name: counted, keyed or not. (A run for another
+/// target on the same rows consults nothing only while the file still holds the partition's
+/// target under its name: `another_target_on_the_same_rows_consults_nothing`.)
+#[test]
+fn a_renamed_target_is_still_the_sealed_target() {
+    for key in [None, Some("patient")] {
+        let d = Dir::new("renamed-target");
+        let base = match key {
+            Some(_) => keyed_diabetes(),
+            None => Csv::read(&std::fs::read_to_string(reference("diabetes.csv")).unwrap()),
+        };
+        d.write("d.csv", &base.text());
+        let p = sealed_run(&d, "d.csv", key);
+        d.write("r.csv", &base.rename("y", "outcome").text());
+        d.write(
+            "r.toml",
+            &spec(
+                "r.csv",
+                key,
+                "method = \"random\"\nseed = 7\nvalidation = 0.2\nfolds = 5",
+            )
+            .replace("target = \"y\"", "target = \"outcome\""),
+        );
+        let j = d.probity(&["run", "r.toml", "--json"]).expect(0).json();
+        assert!(
+            warnings(&j).iter().any(|w| w.starts_with("88 of ")
+                && w.contains(&format!("sealed test rows of partition {p}"))),
+            "{key:?}: {:?}",
+            warnings(&j)
+        );
+    }
+}
+
+/// Small partitions: two projects keyed by `id` from 1 whose two features share one name are
+/// not the same records.
+#[test]
+fn two_small_projects_sharing_a_key_and_a_feature_name_are_not_kin() {
+    let d = Dir::new("kin-small");
+    let file = |cols: &str, f: &dyn Fn(usize) -> (usize, usize)| {
+        let mut t = format!("id,{cols},y\n");
+        for i in 1..=300 {
+            let (a, b) = f(i);
+            t.push_str(&format!("{i},{a},{b},{}\n", a * 2 + b * 3));
+        }
+        t
+    };
+    d.write(
+        "a.csv",
+        &file("age,income", &|i| (20 + i * 7 % 50, 30 + i * 13 % 70)),
+    );
+    d.write(
+        "b.csv",
+        &file("age,rooms", &|i| (18 + i * 11 % 60, 1 + i % 6)),
+    );
+    // Other seeds, so that the second's development rows hold the first's test ids.
+    let run = |csv: &str, seed: u64| {
+        let toml = csv.replace(".csv", ".toml");
+        d.write(
+            &toml,
+            &spec(
+                csv,
+                Some("id"),
+                &format!("method = \"random\"\nseed = {seed}\ntest = 0.2\nfolds = 5"),
+            )
+            .replace("ignore = [\"part\"]\n", ""),
+        );
+        d.probity(&["run", &toml, "--json"]).expect(0).json()
+    };
+    run("a.csv", 3);
+    let j = run("b.csv", 11);
+    assert!(warnings(&j).is_empty(), "{:?}", warnings(&j));
+    let a = d.probity(&["audit", "--json"]).expect(0).json();
+    for p in a["partitions"].as_array().unwrap() {
+        assert_eq!(p["consultations"], 0, "{p}");
+    }
+}
+
 /// The demo specs on the co-operative's bays: a run for another target (outbreaks, which does
 /// not read the yield) on the same rows consults no yield partition, and running every demo in
 /// turn leaves `audit` passing.
