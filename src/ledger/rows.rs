@@ -22,9 +22,9 @@
 //!   identities exactly;
 //! - either, by key: the key decides alone, whatever the cells now say, in a file of the same
 //!   kind of records (`TableIds::kin`: the partition's key column and all of its feature
-//!   columns, or more than half and at least two, by name), in a related file, and for a coarse partition (one whose test
-//!   rows repeat each other's cells: there, where the key can be read, only the key decides;
-//!   where it cannot, content beyond chance). Two unrelated files that share a key column
+//!   columns, or more than half and at least two, by name), in a related file, and for a
+//!   coarse partition (one whose test rows repeat each other's cells: there, where the key
+//!   can be read, only the key decides; where it cannot, content beyond chance). Two unrelated files that share a key column
 //!   numbered from 1 and a feature name or two are not taken for each other.
 //!
 //! Rows to predict in a partition's own data file are also its test rows by position.
@@ -540,11 +540,9 @@ pub fn predicted(
                 // a sealed one, so the key decides where it can be read; else a file counts
                 // by content only when it is related beyond chance (a copy of the data).
                 let is_coarse = coarse(p.n_test, stored);
-                let by_key = is_coarse
-                    && match sets(conn, &p.id)? {
-                        Some(s) => ids.keyed(recipe, &s),
-                        None => false,
-                    };
+                let stored_sets = sets(conn, &p.id)?;
+                let by_key =
+                    is_coarse && stored_sets.as_ref().is_some_and(|s| ids.keyed(recipe, s));
                 if !by_key && let Some(f) = features {
                     let given: Vec<Option<RowKey>> = f.iter().copied().map(Some).collect();
                     let m = members(conn, &p.id, p.n_test, &given)?;
@@ -558,7 +556,7 @@ pub fn predicted(
                     }
                 }
                 if (related || is_coarse || ids.kin(recipe))
-                    && let Some(s) = sets(conn, &p.id)?
+                    && let Some(s) = &stored_sets
                     && !s.keys.is_empty()
                     && let Some(k) = ids.keys(recipe)
                 {
