@@ -1,36 +1,66 @@
-//! Named pause points for the crash and race tests. When the CLI arms a point (from
-//! `PROBITY_PAUSE_AT`), the process prints `probity: paused at NAME` on stderr when it gets
-//! there and sleeps, so a test can kill it at a known place (mid-grid, inside the run's
-//! transaction, after a reveal is stored but before it is printed). With a resume file
-//! (`PROBITY_RESUME_ON`), it goes on once that file exists: a barrier that lets a test release
-//! several processes into the same step at once. Unarmed, a pause point is one atomic load.
+//! Named pause points for the crash and race tests, compiled in only with the `test-hooks`
+//! feature (which `cargo test` turns on; a user's build ignores `PROBITY_PAUSE_AT`). When the
+//! CLI arms a point, the process announces `probity: paused at NAME` (through the CLI's
+//! printer) when it gets there and sleeps, so a test can kill it at a known place (mid-grid,
+//! inside the run's transaction, after a reveal is stored but before it is printed). With a
+//! resume file (`PROBITY_RESUME_ON`), it goes on once that file exists: a barrier that lets a
+//! test release several processes into the same step at once. Unarmed, a pause point is one
+//! atomic load; without the feature, nothing.
 
-use std::path::PathBuf;
-use std::sync::OnceLock;
+#[cfg(feature = "test-hooks")]
+mod hooks {
+    use std::path::PathBuf;
+    use std::sync::OnceLock;
 
-static ARMED: OnceLock<(String, Option<PathBuf>)> = OnceLock::new();
+    pub struct Armed {
+        pub name: String,
+        pub resume: Option<PathBuf>,
+        pub announce: fn(&str),
+    }
 
-/// Arm the pause point `name` for this process, to go on once `resume` exists when given
-/// (once; later calls change nothing).
-pub fn arm(name: String, resume: Option<PathBuf>) {
-    let _ = ARMED.set((name, resume));
+    pub static ARMED: OnceLock<Armed> = OnceLock::new();
+}
+
+/// Whether this build has pause points at all.
+pub const COMPILED: bool = cfg!(feature = "test-hooks");
+
+/// Arm the pause point `name` for this process, to go on once `resume` exists when given;
+/// `announce` tells the waiting test that the point was reached (once; later calls change
+/// nothing). Without the `test-hooks` feature it does nothing.
+pub fn arm(name: String, resume: Option<std::path::PathBuf>, announce: fn(&str)) {
+    #[cfg(feature = "test-hooks")]
+    {
+        let _ = hooks::ARMED.set(hooks::Armed {
+            name,
+            resume,
+            announce,
+        });
+    }
+    #[cfg(not(feature = "test-hooks"))]
+    {
+        let _ = (name, resume, announce);
+    }
 }
 
 /// Pause here (for at most ten minutes) when this point is armed.
+#[inline]
 pub fn pause(name: &str) {
-    let Some((_, resume)) = ARMED.get().filter(|(a, _)| a == name) else {
-        return;
-    };
-    // The one write to stderr outside cli/: the signal the crash tests wait for.
-    use std::io::Write;
-    let mut err = std::io::stderr();
-    let _ = writeln!(err, "probity: paused at {name}");
-    let _ = err.flush();
-    let step = std::time::Duration::from_millis(5);
-    for _ in 0..120_000 {
-        if resume.as_ref().is_some_and(|f| f.exists()) {
+    #[cfg(feature = "test-hooks")]
+    {
+        let Some(armed) = hooks::ARMED.get().filter(|a| a.name == name) else {
             return;
+        };
+        (armed.announce)(name);
+        let step = std::time::Duration::from_millis(5);
+        for _ in 0..120_000 {
+            if armed.resume.as_ref().is_some_and(|f| f.exists()) {
+                return;
+            }
+            std::thread::sleep(step);
         }
-        std::thread::sleep(step);
+    }
+    #[cfg(not(feature = "test-hooks"))]
+    {
+        let _ = name;
     }
 }

@@ -68,13 +68,25 @@ pub enum Command {
     Report(report::Args),
 }
 
+/// The signal a crash or race test waits for on stderr.
+fn announce_pause(name: &str) {
+    use std::io::Write;
+    let mut err = std::io::stderr();
+    let _ = writeln!(err, "probity: paused at {name}");
+    let _ = err.flush();
+}
+
 /// Parse the process arguments, run, print any error; returns the exit code.
 pub fn main() -> i32 {
-    // The crash tests' pause points (src/failpoint.rs); unset in ordinary use.
-    if let Ok(point) = std::env::var("PROBITY_PAUSE_AT") {
+    // The crash tests' pause points (src/failpoint.rs): only in a build with the test hooks,
+    // so a user's environment cannot make a release binary wait inside a transaction.
+    if crate::failpoint::COMPILED
+        && let Ok(point) = std::env::var("PROBITY_PAUSE_AT")
+    {
         crate::failpoint::arm(
             point,
             std::env::var_os("PROBITY_RESUME_ON").map(PathBuf::from),
+            announce_pause,
         );
     }
     let cli = match Cli::try_parse() {

@@ -57,7 +57,10 @@ fn invariants_hold_as_absences() {
             for f in [
                 "println!",
                 "eprintln!",
+                "eprint!(",
                 "print!(",
+                "io::stderr",
+                "io::stdout",
                 "Utc::now",
                 "std::env::var",
                 "env::var(",
