@@ -35,6 +35,17 @@ pub struct Column {
 }
 
 impl Column {
+    /// A row's value as a number that orders like the column's values (text by its levels'
+    /// byte order); `None` for a missing cell.
+    pub fn ordered(&self, row: usize) -> Option<f64> {
+        match &self.values {
+            Values::Numeric(v) => Some(v[row]).filter(|x| !x.is_nan()),
+            Values::Text { codes, .. } => Some(codes[row])
+                .filter(|&c| c != MISSING_CODE)
+                .map(f64::from),
+        }
+    }
+
     pub fn is_missing(&self, row: usize) -> bool {
         match &self.values {
             Values::Numeric(v) => v[row].is_nan(),

@@ -1,6 +1,7 @@
 //! Numbers that say how far a test score can be trusted: the percentile bootstrap, the expected
-//! maximum of k standard normals, and the Hoeffding-plus-union width. Pure functions; the
-//! bootstrap draws from the seeded ChaCha20 stream it is given.
+//! maximum of k standard normals, and the Hoeffding-plus-union width; and how closely one
+//! column follows another (whether a run's target is a sealed target under another name).
+//! Pure functions; the bootstrap draws from the seeded ChaCha20 stream it is given.
 
 use crate::split::rng::bounded;
 use rand_chacha::ChaCha20Rng;
@@ -340,6 +341,166 @@ pub fn resampled_t(diffs: &[f64], ratio: f64) -> Option<ResampledT> {
         low: mean - q * se,
         high: mean + q * se,
     })
+}
+
+/// Average ranks (1-based; tied values share the mean of their ranks), in `v`'s order.
+fn average_ranks(v: &[f64]) -> Vec<f64> {
+    let mut order: Vec<usize> = (0..v.len()).collect();
+    order.sort_by(|&i, &j| v[i].total_cmp(&v[j]).then(i.cmp(&j)));
+    let mut ranks = vec![0.0; v.len()];
+    let mut start = 0;
+    while start < order.len() {
+        let mut end = start + 1;
+        while end < order.len() && v[order[end]].total_cmp(&v[order[start]]).is_eq() {
+            end += 1;
+        }
+        // Positions start..end (0-based) hold equal values: ranks start+1..=end.
+        let mean = (start + 1 + end) as f64 / 2.0;
+        for &i in &order[start..end] {
+            ranks[i] = mean;
+        }
+        start = end;
+    }
+    ranks
+}
+
+/// Spearman's rank correlation (Spearman 1904, "The proof and measurement of association
+/// between two things"; cited from memory): Pearson's correlation of the average ranks.
+/// `None` when either column is constant (no ranking to compare) or the lengths differ.
+pub fn spearman(a: &[f64], b: &[f64]) -> Option<f64> {
+    if a.len() != b.len() || a.len() < 2 {
+        return None;
+    }
+    let (ra, rb) = (average_ranks(a), average_ranks(b));
+    let n = a.len() as f64;
+    let (ma, mb) = (ra.iter().sum::<f64>() / n, rb.iter().sum::<f64>() / n);
+    let (mut sab, mut saa, mut sbb) = (0.0, 0.0, 0.0);
+    for (x, y) in ra.iter().zip(&rb) {
+        let (dx, dy) = (x - ma, y - mb);
+        sab += dx * dy;
+        saa += dx * dx;
+        sbb += dy * dy;
+    }
+    (saa > 0.0 && sbb > 0.0).then(|| (sab / (saa * sbb).sqrt()).clamp(-1.0, 1.0))
+}
+
+/// The distinct values of `v` in order, and each row's index among them.
+fn classes(v: &[f64]) -> (usize, Vec<usize>) {
+    let mut levels = v.to_vec();
+    levels.sort_by(f64::total_cmp);
+    levels.dedup_by(|x, y| x.total_cmp(y).is_eq());
+    let codes = v
+        .iter()
+        .map(|x| levels.partition_point(|l| l.total_cmp(x).is_lt()))
+        .collect();
+    (levels.len(), codes)
+}
+
+/// Cramér's V of the two columns' contingency table (Cramér 1946, Mathematical Methods of
+/// Statistics; cited from memory; checked against scipy's implementation), without a
+/// continuity correction: sqrt(chi^2 / (n (min(r, c) - 1))), 1 when each value of one column
+/// goes with one value of the other. `None` when either column is constant.
+pub fn cramer_v(a: &[f64], b: &[f64]) -> Option<f64> {
+    if a.len() != b.len() || a.is_empty() {
+        return None;
+    }
+    let ((r, ca), (c, cb)) = (classes(a), classes(b));
+    if r < 2 || c < 2 {
+        return None;
+    }
+    let mut table = vec![0.0f64; r * c];
+    for (&i, &j) in ca.iter().zip(&cb) {
+        table[i * c + j] += 1.0;
+    }
+    let n = a.len() as f64;
+    let rows: Vec<f64> = (0..r)
+        .map(|i| table[i * c..(i + 1) * c].iter().sum())
+        .collect();
+    let cols: Vec<f64> = (0..c)
+        .map(|j| (0..r).map(|i| table[i * c + j]).sum())
+        .collect();
+    let mut chi2 = 0.0;
+    for i in 0..r {
+        for j in 0..c {
+            let e = rows[i] * cols[j] / n;
+            chi2 += (table[i * c + j] - e).powi(2) / e;
+        }
+    }
+    Some((chi2 / (n * (r.min(c) - 1) as f64)).sqrt().min(1.0))
+}
+
+/// Columns with at most this many distinct values are also compared as classes.
+pub const FEW_VALUES: usize = 20;
+
+/// How closely column `b` follows column `a` over the same rows, from 0 (not at all) to 1 (one
+/// is the other, renamed, rescaled or relabelled): the larger of |Spearman's rho| and, when
+/// both columns take few values (at most `FEW_VALUES`, and at most one per five rows, the usual
+/// floor of five expected rows a cell for a contingency table: common practice, no source),
+/// Cramér's V. Two constant columns follow each other; one constant beside a varying one does
+/// not. `None` below three rows: too few to tell. Each column is a number per row in an order
+/// that means something for it (text by its levels' byte order); no missing values.
+pub fn association(a: &[f64], b: &[f64]) -> Option<f64> {
+    if a.len() != b.len() || a.len() < 3 {
+        return None;
+    }
+    let rho = spearman(a, b).map_or(0.0, f64::abs);
+    let (da, db) = (classes(a).0, classes(b).0);
+    let few = da.max(db) <= FEW_VALUES && 5 * da.max(db) <= a.len();
+    let v = match (few, da, db) {
+        (true, 1, 1) => 1.0,
+        (true, _, _) => cramer_v(a, b).unwrap_or(0.0),
+        (false, _, _) => 0.0,
+    };
+    Some(rho.max(v))
+}
+
+#[cfg(test)]
+mod association_tests {
+    use super::*;
+
+    #[test]
+    fn spearman_and_cramer_v_match_scipy() {
+        // tests/reference/association.json: scipy.stats.spearmanr and
+        // scipy.stats.contingency.association(method="cramer", correction=False) (scipy 1.17.1),
+        // written by tests/reference/make_association.py.
+        let text = include_str!("../../tests/reference/association.json");
+        let v: serde_json::Value = serde_json::from_str(text).unwrap();
+        let col = |x: &serde_json::Value| -> Vec<f64> {
+            x.as_array()
+                .unwrap()
+                .iter()
+                .map(|c| c.as_f64().unwrap())
+                .collect()
+        };
+        let cases = v["cases"].as_array().unwrap();
+        assert_eq!(cases.len(), 8);
+        for c in cases {
+            let (a, b) = (col(&c["a"]), col(&c["b"]));
+            let rho = spearman(&a, &b).unwrap();
+            let want = c["spearman"].as_f64().unwrap();
+            assert!((rho - want).abs() < 1e-12, "{a:?} {b:?}: {rho} vs {want}");
+            let cv = cramer_v(&a, &b).unwrap();
+            let want = c["cramer_v"].as_f64().unwrap();
+            assert!((cv - want).abs() < 1e-12, "{a:?} {b:?}: {cv} vs {want}");
+        }
+    }
+
+    #[test]
+    fn association_takes_classes_only_when_they_are_few() {
+        // Three classes relabelled out of order: rho is -0.5, V is 1 (15 rows, 3 values).
+        let a = [0., 1., 2., 0., 1., 2., 0., 1., 2., 0., 1., 2., 0., 1., 2.];
+        let b = [2., 0., 1., 2., 0., 1., 2., 0., 1., 2., 0., 1., 2., 0., 1.];
+        assert_eq!(association(&a, &b), Some(1.0));
+        // Ten distinct values in ten rows: every table is a one-to-one map, so only ranks count.
+        let x: Vec<f64> = (1..=10).map(f64::from).collect();
+        let y = [5., 3., 9., 1., 7., 2., 10., 4., 8., 6.];
+        let r = association(&x, &y).unwrap();
+        assert!((r - 0.248485).abs() < 1e-6, "{r}");
+        // Constant columns: both constant follow each other; one alone does not.
+        assert_eq!(association(&[1.0; 6], &[7.0; 6]), Some(1.0));
+        assert_eq!(association(&[1.0; 6], &[1., 2., 3., 4., 5., 6.]), Some(0.0));
+        assert_eq!(association(&[1.0, 2.0], &[1.0, 2.0]), None);
+    }
 }
 
 #[cfg(test)]

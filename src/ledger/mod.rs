@@ -2041,30 +2041,116 @@ fn development_overlaps(
     let mut reads: Vec<String> = prep.features.iter().map(|&c| name(c)).collect();
     reads.push(name(prep.target_column));
     let mut out = Vec::new();
-    for (partition, at) in test_overlaps(conn, table, prep, |_| true)? {
-        let rows = at.into_iter().filter(|&i| dev[i]).count();
+    for (partition, at) in overlaps_under_sealed_targets(conn, table, prep)? {
+        let at: Vec<usize> = at.into_iter().filter(|&i| dev[i]).collect();
+        let rows = at.len();
         if rows == 0 {
             continue;
         }
         let seal = seal_of(conn, &partition)?;
-        // A run that reads the partition's target neither as its target nor as a feature
-        // sees no sealed target: another target on the same rows consults nothing. That is
-        // known only while the file still holds the target under its name: in a file without
-        // it, the run's target may be the sealed one renamed, and it counts.
-        if seal.target.as_deref().is_some_and(|t| {
-            !reads.contains(&crate::data::identity::normalise(t))
-                && crate::data::identity::find(table, t).is_some()
-        }) {
-            continue;
+        // A run that reads the partition's target neither as its target nor as a feature sees
+        // no sealed target, unless its own target is that target in another form: under
+        // another name (the file lacks the sealed one, or holds something else under its
+        // name), rescaled or relabelled (it follows the sealed one on these rows).
+        let mut because = None;
+        if let Some(t) = seal.target.as_deref()
+            && !reads.contains(&crate::data::identity::normalise(t))
+        {
+            let mine = &table.columns[prep.target_column].name;
+            let seen = target_seen(conn, table, prep, &partition, t, &at)?;
+            match crate::guard::consult::another_target(t, mine, &seen) {
+                None => continue,
+                b => because = b,
+            }
         }
         out.push(crate::guard::consult::Overlapping {
             seal,
             history: history_of(conn, &partition)?,
             partition,
             rows,
+            because,
         });
     }
     Ok(out)
+}
+
+/// `test_overlaps`, and in another file the rows found with each partition's sealed target
+/// read under its own name where the run's target is another column: a run for another target
+/// (or the sealed one rescaled) carries other labels, but its file may still hold the sealed
+/// records (whether it then consults them is `target_seen`'s to say).
+fn overlaps_under_sealed_targets(
+    conn: &Connection,
+    table: &crate::data::Table,
+    prep: &crate::runner::Prepared,
+) -> Result<Vec<(String, Vec<usize>)>> {
+    let mut found = test_overlaps(conn, table, prep, |_| true)?;
+    let norm = crate::data::identity::normalise;
+    let mine = norm(&table.columns[prep.target_column].name);
+    let others = rows::stored(conn, |p| {
+        p.id != prep.partition_id && p.n_test > 0 && p.data_sha256 != table.sha256
+    })?;
+    // One set of identities per column read as a sealed target.
+    let mut tables: Vec<(usize, rows::TableIds)> = Vec::new();
+    for p in &others {
+        let Some(t) = seal_of(conn, &p.id)?.target else {
+            continue;
+        };
+        let Some(col) = crate::data::identity::find(table, &t).filter(|_| norm(&t) != mine) else {
+            continue;
+        };
+        let at = match tables.iter().position(|(c, _)| *c == col) {
+            Some(at) => at,
+            None => {
+                let ids = rows::TableIds::new(table, &prep.rows, prep.key, Some(col));
+                tables.push((col, ids));
+                tables.len() - 1
+            }
+        };
+        for (id, rows) in rows::run_overlaps(conn, &mut tables[at].1, std::slice::from_ref(p))? {
+            match found.iter_mut().find(|(f, _)| *f == id) {
+                Some((_, have)) => {
+                    have.extend(rows);
+                    have.sort_unstable();
+                    have.dedup();
+                }
+                None => found.push((id, rows)),
+            }
+        }
+    }
+    found.sort();
+    Ok(found)
+}
+
+/// What a run's rows at `at` (positions into `prep.rows`, a partition's test rows) tell of that
+/// partition's target `sealed`, for a run whose target is another column.
+fn target_seen(
+    conn: &Connection,
+    table: &crate::data::Table,
+    prep: &crate::runner::Prepared,
+    partition: &str,
+    sealed: &str,
+    at: &[usize],
+) -> Result<crate::guard::consult::TargetSeen> {
+    use crate::guard::consult::TargetSeen;
+    let Some(col) = crate::data::identity::find(table, sealed) else {
+        return Ok(TargetSeen::Missing);
+    };
+    let rows: Vec<usize> = at.iter().map(|&i| prep.rows[i]).collect();
+    // The partition's own data file holds its targets by construction.
+    let own_file = rows::stored(conn, |p| p.id == partition)?
+        .first()
+        .is_some_and(|p| p.data_sha256 == table.sha256);
+    if !own_file && !rows::holds_target(conn, table, &rows, partition, col)? {
+        return Ok(TargetSeen::NotTheTarget);
+    }
+    let (sealed_col, mine) = (&table.columns[col], &table.columns[prep.target_column]);
+    let (a, b): (Vec<f64>, Vec<f64>) = rows
+        .iter()
+        .filter_map(|&r| Some((sealed_col.ordered(r)?, mine.ordered(r)?)))
+        .unzip();
+    Ok(TargetSeen::Follows(crate::guard::stats::association(
+        &a, &b,
+    )))
 }
 
 /// Earlier partitions whose development rows hold some of this run's test rows, with the runs

@@ -21,11 +21,12 @@
 //!   row as it predicts the sealed row; beyond chance otherwise; and a model's own run's
 //!   identities exactly;
 //! - either, by key: the key decides alone, whatever the cells now say, in a file of the same
-//!   kind of records (`TableIds::kin`: the partition's key column and all of its feature
-//!   columns, or more than half and at least two, by name), in a related file, and for a
-//!   coarse partition (one whose test rows repeat each other's cells: there, where the key
-//!   can be read, only the key decides; where it cannot, content beyond chance). Two unrelated files that share a key column
-//!   numbered from 1 and a feature name or two are not taken for each other.
+//!   kind of records (`TableIds::kin`: the partition's key column and two of its feature
+//!   columns, or its only one, by name), in a related file, and for a coarse partition (one
+//!   whose test rows repeat each other's cells: there, where the key can be read, only the
+//!   key decides; where it cannot, content beyond chance, which very coarse cells never
+//!   reach). Two unrelated files that share a key column numbered from 1 and one feature name
+//!   (of two or more) are not taken for each other.
 //!
 //! Rows to predict in a partition's own data file are also its test rows by position.
 
@@ -226,10 +227,10 @@ impl<'a> TableIds<'a> {
     }
 
     /// Whether this table holds the same kind of records as a keyed partition: it has the
-    /// partition's key column and every one of its feature columns, or more than half of them
-    /// and at least two (by normalised name). Its keys then name the partition's records,
-    /// whatever its cells now say. (One shared name is not enough: `id` and `age` are in many
-    /// unrelated files.)
+    /// partition's key column and two of its feature columns, or its only one (by normalised
+    /// name). Its keys then name the partition's records, whatever its cells now say, and
+    /// however many of its columns an extract left out. (One shared feature name of several
+    /// is not enough: `id` and `age` are in many unrelated files.)
     fn kin(&self, recipe: &Recipe) -> bool {
         let present = recipe
             .columns()
@@ -237,9 +238,7 @@ impl<'a> TableIds<'a> {
             .filter(|c| crate::data::identity::find(self.table, c).is_some())
             .count();
         let all = recipe.columns().len();
-        self.key_column(recipe).is_some()
-            && present > 0
-            && (present == all || (present >= 2 && 2 * present > all))
+        self.key_column(recipe).is_some() && present > 0 && (present == all || present >= 2)
     }
 
     /// Whether a partition's keys can be read here: it stored some, and this table has its key
@@ -447,6 +446,41 @@ pub fn run_overlaps(
         }
     }
     Ok(out)
+}
+
+/// Whether column `target` of a file (another than the partition's own) holds a partition's
+/// sealed targets on `rows` (the file's row indices, found as that partition's test rows): with
+/// it as the target, at least nine in ten of the rows have one of the partition's labelled
+/// test identities. An older partition keeps whole-row identities, which found the rows with
+/// every cell: there the column's name is all there is to go by.
+pub fn holds_target(
+    conn: &Connection,
+    table: &Table,
+    rows: &[usize],
+    partition: &str,
+    target: usize,
+) -> Result<bool> {
+    let Some(p) = stored(conn, |p| p.id == partition)?.into_iter().next() else {
+        return Ok(false);
+    };
+    match (p.identity.legacy(), &p.recipe) {
+        (Some(_), _) => Ok(true),
+        (None, Some(recipe)) => {
+            let Some(s) = sets(conn, &p.id)? else {
+                return Ok(false);
+            };
+            let mut ids = TableIds::new(table, rows, None, Some(target));
+            let Some(labels) = ids.content(recipe) else {
+                return Ok(false);
+            };
+            let found = labels
+                .iter()
+                .filter(|l| s.labels.binary_search(l).is_ok())
+                .count();
+            Ok(!labels.is_empty() && 10 * found >= 9 * labels.len())
+        }
+        (None, None) => Ok(false),
+    }
 }
 
 /// Rows of a file that were another file's partition's development rows: for each

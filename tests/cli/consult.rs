@@ -625,6 +625,34 @@ fn keyed_run(name: &str) -> (Dir, String) {
     (d, p)
 }
 
+/// Run `csv` (already written) with run 1's seed and fraction as validation rows
+/// (`spec(csv, key, ...)` edited by `edit`), and assert it counts its 88 sealed rows against
+/// partition `p`.
+fn counted_as_validation(
+    d: &Dir,
+    csv: &str,
+    key: Option<&str>,
+    p: &str,
+    edit: &dyn Fn(String) -> String,
+) {
+    let toml = csv.replace(".csv", ".toml");
+    d.write(
+        &toml,
+        &edit(spec(
+            csv,
+            key,
+            "method = \"random\"\nseed = 7\nvalidation = 0.2\nfolds = 5",
+        )),
+    );
+    let j = d.probity(&["run", &toml, "--json"]).expect(0).json();
+    assert!(
+        warnings(&j).iter().any(|w| w.starts_with("88 of ")
+            && w.contains(&format!("sealed test rows of partition {p}"))),
+        "{csv} {key:?}: {:?}",
+        warnings(&j)
+    );
+}
+
 /// The sealed test rows of run 1, as rows of the file it ran on (from its stored assignment).
 fn sealed_rows_of(d: &Dir, csv: &Csv) -> Csv {
     let c = rusqlite::Connection::open(d.ledger()).unwrap();
@@ -1273,21 +1301,7 @@ fn with_a_key_the_key_decides_whatever_the_cells_say() {
     refused(&d, "nt.csv", &p, "every cell nudged, the target renamed");
     // The whole file nudged, every row a development row: the 88 sealed records among them.
     d.write("all.csv", &nudged(keyed_diabetes()).text());
-    d.write(
-        "all.toml",
-        &spec(
-            "all.csv",
-            Some("patient"),
-            "method = \"random\"\nseed = 7\nvalidation = 0.2\nfolds = 5",
-        ),
-    );
-    let j = d.probity(&["run", "all.toml", "--json"]).expect(0).json();
-    assert!(
-        warnings(&j).iter().any(|w| w.starts_with("88 of ")
-            && w.contains(&format!("sealed test rows of partition {p}"))),
-        "{:?}",
-        warnings(&j)
-    );
+    counted_as_validation(&d, "all.csv", Some("patient"), &p, &|s| s);
 }
 
 /// Two unrelated files keyed by an `id` numbered from 1 but sharing no feature are not
@@ -1854,38 +1868,82 @@ fn a_shared_key_and_one_shared_feature_name_do_not_make_files_kin() {
     assert_eq!(part["consultations"], 0, "{part}");
 }
 
-/// A copy of the data whose target column is renamed, split with the sealed rows as validation
-/// rows, reads the sealed target under another name: counted, keyed or not. (A run for another
-/// target on the same rows consults nothing only while the file still holds the partition's
-/// target under its name: `another_target_on_the_same_rows_consults_nothing`.)
+/// The sealed target in another form, in a copy of the data whose sealed rows are validation
+/// rows: renamed, copied into a new column, rescaled (grams for the same numbers), or renamed
+/// with something else put under its old name. Each is counted, keyed or not, with the reason.
+/// An unrelated new target on the same copy is not (nor is one on the same file:
+/// `another_target_on_the_same_rows_consults_nothing`).
 #[test]
-fn a_renamed_target_is_still_the_sealed_target() {
+fn a_target_in_another_form_is_still_the_sealed_target() {
     for key in [None, Some("patient")] {
-        let d = Dir::new("renamed-target");
+        let d = Dir::new("target-forms");
         let base = match key {
             Some(_) => keyed_diabetes(),
             None => Csv::read(&std::fs::read_to_string(reference("diabetes.csv")).unwrap()),
         };
         d.write("d.csv", &base.text());
         let p = sealed_run(&d, "d.csv", key);
-        d.write("r.csv", &base.rename("y", "outcome").text());
-        d.write(
-            "r.toml",
-            &spec(
-                "r.csv",
-                key,
-                "method = \"random\"\nseed = 7\nvalidation = 0.2\nfolds = 5",
-            )
-            .replace("target = \"y\"", "target = \"outcome\""),
-        );
-        let j = d.probity(&["run", "r.toml", "--json"]).expect(0).json();
-        assert!(
-            warnings(&j).iter().any(|w| w.starts_with("88 of ")
-                && w.contains(&format!("sealed test rows of partition {p}"))),
-            "{key:?}: {:?}",
-            warnings(&j)
-        );
+        let y = base.at("y");
+        let copy = base.clone();
+        let copied = copy.clone().add("harvest", |n| copy.rows[n][y].clone());
+        let rescaled = copy
+            .clone()
+            .add("harvest", |n| format!("{}000", copy.rows[n][y]));
+        let swapped = copy.clone().rename("y", "harvest").add("y", |_| "0".into());
+        // A count of visits that has nothing to do with the outcome.
+        let visits = copy
+            .clone()
+            .add("harvest", |n| ((n * 7919) % 13).to_string());
+        for (case, csv, counted) in [
+            ("renamed", copy.clone().rename("y", "harvest"), true),
+            ("copied", copied, true),
+            ("rescaled", rescaled, true),
+            ("swapped", swapped, true),
+            ("unrelated", visits, false),
+        ] {
+            d.write("r.csv", &csv.text());
+            d.write(
+                "r.toml",
+                &spec(
+                    "r.csv",
+                    key,
+                    "method = \"random\"\nseed = 7\nvalidation = 0.2\nfolds = 5",
+                )
+                .replace("target = \"y\"", "target = \"harvest\"")
+                .replace(
+                    "ignore = [\"part\"]",
+                    if case == "renamed" {
+                        "ignore = [\"part\"]"
+                    } else {
+                        "ignore = [\"part\", \"y\"]"
+                    },
+                ),
+            );
+            let j = d.probity(&["run", "r.toml", "--json"]).expect(0).json();
+            let w = warnings(&j);
+            let found = w.iter().any(|w| {
+                w.starts_with("88 of ")
+                    && w.contains(&format!("sealed test rows of partition {p}"))
+                    && w.contains("Counted though this run's target is another column")
+            });
+            assert_eq!(found, counted, "{key:?} {case}: {w:?}");
+        }
     }
+}
+
+/// A slim extract that keeps the key, the target and a few of the features (three of ten),
+/// split with the sealed rows as validation rows: the key still names the sealed records.
+#[test]
+fn a_slim_extract_that_keeps_the_key_is_followed() {
+    let (d, p) = keyed_run("slim-extract");
+    let mut slim = keyed_diabetes();
+    for c in ["bp", "s1", "s2", "s3", "s4", "s5", "s6"] {
+        slim = slim.drop(c);
+    }
+    // And every kept feature nudged, so that no row's content is the sealed row's.
+    let slim = slim.map("bmi", |v| format!("{v}1"));
+    d.write("slim.csv", &slim.text());
+    counted_as_validation(&d, "slim.csv", Some("patient"), &p, &|s| s);
 }
 
 /// Small partitions: two projects keyed by `id` from 1 whose two features share one name are
