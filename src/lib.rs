@@ -15,6 +15,7 @@ pub mod data;
 pub mod error;
 pub mod external;
 pub mod failpoint;
+pub mod files;
 #[cfg(feature = "test-hooks")]
 #[doc(hidden)]
 pub mod fuzzing;

@@ -14,6 +14,12 @@ pub struct Args {
 }
 
 pub fn run(g: &Global, a: Args) -> Result<i32> {
+    if let Some(kind) = crate::files::not_regular(&a.file) {
+        return Err(Error::Input(format!(
+            "{}: is {kind}, not a bundle file; pass the path of a file `probity pack` wrote",
+            a.file.display()
+        )));
+    }
     let text = std::fs::read_to_string(&a.file).map_err(|e| Error::Io {
         action: "cannot read bundle",
         path: a.file.clone(),

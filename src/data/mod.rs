@@ -495,10 +495,21 @@ pub fn file_sha256(path: &Path) -> Result<String> {
     Ok(crate::spec::hex(&Sha256::digest(&bytes)))
 }
 
-fn read(path: &Path) -> Result<Vec<u8>> {
-    if path.is_dir() {
-        return Err(Error::data(path, None, None, "is a folder, not a CSV file"));
+/// Refuse a data path that is not a regular file, before anything opens it.
+fn regular(path: &Path) -> Result<()> {
+    match crate::files::not_regular(path) {
+        Some(kind) => Err(Error::data(
+            path,
+            None,
+            None,
+            format!("is {kind}, not a CSV file; pass the path of a file on disk"),
+        )),
+        None => Ok(()),
     }
+}
+
+fn read(path: &Path) -> Result<Vec<u8>> {
+    regular(path)?;
     std::fs::read(path).map_err(|e| Error::Io {
         action: "cannot read data file",
         path: path.to_path_buf(),
@@ -509,9 +520,7 @@ fn read(path: &Path) -> Result<Vec<u8>> {
 /// Load a CSV file on `threads` threads (the table is the same for any number). Columns named
 /// in `text_columns` are read as text even when numeric.
 pub fn load(path: &Path, text_columns: &[&str], threads: usize) -> Result<Table> {
-    if path.is_dir() {
-        return Err(Error::data(path, None, None, "is a folder, not a CSV file"));
-    }
+    regular(path)?;
     if let Some(t) = fast::load(path, text_columns, threads.max(1), FAST_BLOCK)? {
         return Ok(t);
     }
@@ -525,9 +534,7 @@ pub fn load(path: &Path, text_columns: &[&str], threads: usize) -> Result<Table>
 /// records the hash.
 #[doc(hidden)]
 pub fn parse_only(path: &Path, text_columns: &[&str], threads: usize) -> Result<Table> {
-    if path.is_dir() {
-        return Err(Error::data(path, None, None, "is a folder, not a CSV file"));
-    }
+    regular(path)?;
     if let Some(t) = fast::load_hashing(path, text_columns, threads.max(1), FAST_BLOCK, false)? {
         return Ok(t);
     }

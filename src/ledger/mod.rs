@@ -235,10 +235,12 @@ impl Ledger {
                 ),
             });
         }
-        if path.is_dir() {
+        if let Some(kind) = crate::files::not_regular(path) {
             return Err(Error::LedgerRefused {
                 path: path.to_path_buf(),
-                msg: "is a folder; pass the path of a ledger file".into(),
+                msg: format!(
+                    "is {kind}, not a ledger file; pass the path of a ledger file (or of none yet, to create one)"
+                ),
             });
         }
         if !create && !path.exists() {

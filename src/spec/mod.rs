@@ -417,11 +417,11 @@ pub struct Spec {
 
 /// Read and validate a spec file.
 pub fn load(path: &Path) -> Result<Spec> {
-    if path.is_dir() {
+    if let Some(kind) = crate::files::not_regular(path) {
         return Err(Error::spec(
             path,
             None,
-            "is a folder, not a spec file; pass the path of a .toml spec",
+            format!("is {kind}, not a spec file; pass the path of a .toml spec"),
         ));
     }
     let text = std::fs::read_to_string(path).map_err(|e| Error::Io {

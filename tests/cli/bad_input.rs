@@ -412,3 +412,48 @@ fn contradictory_column_roles_are_refused() {
         &["bad.toml:8:19", "key or split column"],
     );
 }
+
+/// A named pipe or a device as the data, the spec, the bundle or the ledger is refused (exit 2,
+/// naming what it is) without waiting on it, and nothing is left beside it.
+#[test]
+fn pipes_and_devices_are_refused_without_blocking() {
+    let d = with_ledger("pipes");
+    let ok = std::process::Command::new("mkfifo")
+        .arg(d.path.join("pipe"))
+        .status()
+        .unwrap();
+    assert!(ok.success());
+    let before = d.counts();
+    let quick = |args: &[&str], fragments: &[&str]| {
+        let r = d.probity_within(args, 30);
+        assert_eq!(r.code(), 2, "{args:?}: {}", r.stderr());
+        for f in fragments {
+            assert!(
+                r.stderr().contains(f),
+                "{args:?}: expected {f:?} in {}",
+                r.stderr()
+            );
+        }
+        assert_eq!(d.counts(), before, "{args:?}");
+    };
+    for (data, kind) in [("pipe", "a named pipe"), ("/dev/zero", "a device")] {
+        d.write(
+            "p.toml",
+            &SMALL_SPEC.replace("path = \"small.csv\"", &format!("path = \"{data}\"")),
+        );
+        quick(&["run", "p.toml"], &[kind, "not a CSV file"]);
+        quick(&["check", "p.toml"], &[kind, "not a CSV file"]);
+    }
+    quick(&["run", "pipe"], &["a named pipe", "not a spec file"]);
+    quick(&["merge", "pipe"], &["a named pipe", "not a bundle file"]);
+    quick(&["merge", "/dev/zero"], &["a device", "not a bundle file"]);
+    quick(
+        &["run", "small.toml", "--ledger", "pipe"],
+        &["a named pipe", "not a ledger file"],
+    );
+    let r = d.probity_within(&["run", "small.toml", "--ledger", "/dev/null"], 30);
+    assert_eq!(r.code(), 2, "{}", r.stderr());
+    assert!(r.stderr().contains("a device"), "{}", r.stderr());
+    assert!(!std::path::Path::new("/dev/null-journal").exists());
+    assert!(!std::path::Path::new("/dev/null-wal").exists());
+}

@@ -50,10 +50,17 @@ impl Dir {
 
     /// Run probity here with the ledger at .probity/ledger.sqlite (the default).
     pub fn probity(&self, args: &[&str]) -> Run {
+        self.probity_within(args, 600)
+    }
+
+    /// `probity`, killed after `seconds` (its exit code is then -1): for cases that must not
+    /// wait on anything.
+    pub fn probity_within(&self, args: &[&str], seconds: u64) -> Run {
         let mut cmd = assert_cmd::Command::cargo_bin("probity").unwrap();
         cmd.current_dir(&self.path)
             .args(args)
-            .env_remove("PROBITY_LEDGER");
+            .env_remove("PROBITY_LEDGER")
+            .timeout(std::time::Duration::from_secs(seconds));
         let out = cmd.output().unwrap();
         Run {
             args: args.iter().map(|s| s.to_string()).collect(),
