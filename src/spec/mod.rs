@@ -112,7 +112,14 @@ pub struct SelectSpec {
     pub rule: Rule,
     /// Wrap the whole selection in an outer cross-validation (Varma & Simon 2006).
     pub nested: bool,
+    /// The most candidates the grid may hold (a limit on the work, not part of the
+    /// experiment: it stays out of the canonical hash).
+    pub max_candidates: u64,
 }
+
+/// The default of `[select] max_candidates`: a grid is counted before it is expanded, and one
+/// larger than this is refused (each candidate is fitted on every fold and stored).
+pub const MAX_CANDIDATES: u64 = 100_000;
 
 /// How reveals of the test partition are answered.
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -382,6 +389,13 @@ pub struct CommandSpec {
 impl ModelSpec {
     /// The grid's product in a stable order: parameters by name, the last varying fastest,
     /// values in the order written.
+    /// How many candidates `expand` gives, without expanding (saturating).
+    pub fn count(&self) -> u64 {
+        self.grid
+            .iter()
+            .fold(1u64, |n, (_, v)| n.saturating_mul(v.len() as u64))
+    }
+
     pub fn expand(&self) -> Vec<Vec<(String, ParamValue)>> {
         let mut out: Vec<Vec<(String, ParamValue)>> = vec![Vec::new()];
         for (name, values) in &self.grid {
@@ -566,8 +580,22 @@ impl Check<'_> {
             return Err(self.top("no [[model]] table: add at least one, for example [[model]] kind = \"ridge\" lambda = [0.1, 1, 10]"));
         }
         let mut models: Vec<ModelSpec> = Vec::new();
+        // Candidates counted before any grid is expanded: a few long lists multiply.
+        let mut candidates: u64 = 0;
         for m in &raw.model {
             let ms = self.model(m)?;
+            candidates = candidates.saturating_add(ms.count());
+            if candidates > select.max_candidates {
+                return Err(self.err(
+                    m,
+                    format!(
+                        "with this [[model]] the grid holds more than {} candidates ({} here alone), over [select] max_candidates = {}; narrow its lists and ranges, or raise max_candidates (each candidate is fitted on every fold and stored)",
+                        select.max_candidates,
+                        ms.count(),
+                        select.max_candidates
+                    ),
+                ));
+            }
             if !ms.family.serves(task) {
                 let serves: Vec<&str> = Family::ALL
                     .iter()
@@ -940,10 +968,18 @@ impl Check<'_> {
         let nested = r
             .and_then(|r| r.nested.as_ref())
             .is_some_and(|n| *n.get_ref());
+        let max_candidates = match r.and_then(|r| r.max_candidates.as_ref()) {
+            None => MAX_CANDIDATES,
+            Some(m) if *m.get_ref() >= 1 => *m.get_ref() as u64,
+            Some(m) => {
+                return Err(self.err(m, "max_candidates must be an integer >= 1"));
+            }
+        };
         Ok(SelectSpec {
             metric,
             rule,
             nested,
+            max_candidates,
         })
     }
 

@@ -53,6 +53,7 @@ pub struct RawSelect {
     pub metric: Option<Spanned<String>>,
     pub rule: Option<Spanned<String>>,
     pub nested: Option<Spanned<bool>>,
+    pub max_candidates: Option<Spanned<i64>>,
 }
 
 #[derive(Debug, Deserialize)]

@@ -457,3 +457,46 @@ fn pipes_and_devices_are_refused_without_blocking() {
     assert!(!std::path::Path::new("/dev/null-journal").exists());
     assert!(!std::path::Path::new("/dev/null-wal").exists());
 }
+
+/// A grid is counted before it is expanded: seven parameters of ten values (ten million
+/// candidates) are refused at once, naming the [[model]] and the limit; the limit is the
+/// spec's to set in [select].
+#[test]
+fn a_grid_over_the_candidate_limit_is_refused_before_it_is_expanded() {
+    let d = with_ledger("grid-cap");
+    let params: Vec<String> = (0..7)
+        .map(|i| format!("p{i} = [0, 1, 2, 3, 4, 5, 6, 7, 8, 9]"))
+        .collect();
+    let toml = format!(
+        "{SMALL_SPEC}\n[[model]]\nkind = \"command\"\nrun = [\"true\"]\nparams = {{ {} }}\n",
+        params.join(", ")
+    );
+    d.write("big.toml", &toml);
+    let before = d.counts();
+    let r = d.probity_within(&["check", "big.toml"], 30);
+    assert_eq!(r.code(), 2, "{}", r.stderr());
+    assert!(
+        r.stderr().contains("big.toml:24:1")
+            && r.stderr().contains("10000000 here alone")
+            && r.stderr().contains("max_candidates = 100000"),
+        "{}",
+        r.stderr()
+    );
+    assert_eq!(d.counts(), before);
+    // Ridge over 2,000 penalties passes by default and is refused under a limit of 1,000.
+    let ridge = SMALL_SPEC.replace(
+        "lambda = [0.1, 1, 10]",
+        "lambda = { from = 0.001, to = 1000, steps = 2000, scale = \"log\" }",
+    );
+    d.write("r.toml", &ridge);
+    d.probity(&["check", "r.toml"]).expect(0);
+    d.write(
+        "r.toml",
+        &ridge.replace("[split]", "[select]\nmax_candidates = 1000\n\n[split]"),
+    );
+    refused(
+        &d,
+        &["run", "r.toml"],
+        &["r.toml:", "more than 1000 candidates", "2000 here alone"],
+    );
+}
