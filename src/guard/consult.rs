@@ -557,6 +557,12 @@ pub struct Overlapping {
 /// 0.87; the demo's outbreaks and yields about 0.07.
 pub const FOLLOWS: f64 = 0.8;
 
+/// The same for one of the run's features: a feature that follows the sealed target this
+/// closely is that target under another name (a copy, a rescaling). Higher than `FOLLOWS`,
+/// since honest features of another target may well track the sealed one loosely. Our own
+/// threshold (no source).
+pub const FEATURE_FOLLOWS: f64 = 0.95;
+
 /// What a run for another target can tell of a partition's sealed target on the shared rows.
 #[derive(Debug, Clone, PartialEq)]
 pub enum TargetSeen {
@@ -565,9 +571,12 @@ pub enum TargetSeen {
     /// The column under that name does not hold the sealed targets on these rows (the rows'
     /// identities with it as the target are not the sealed ones).
     NotTheTarget,
-    /// The sealed target is there; the run's target follows it this closely (`None`: too few
-    /// rows to tell).
-    Follows(Option<f64>),
+    /// The sealed target is there: how closely the run's target follows it (`None`: too few
+    /// rows to tell), and each of the run's features (by name).
+    Follows {
+        target: Option<f64>,
+        features: Vec<(String, f64)>,
+    },
 }
 
 /// Whether a run for another target consults the partition (and why, for its warning), given
@@ -580,13 +589,20 @@ pub fn another_target(sealed: &str, target: &str, seen: &TargetSeen) -> Option<S
         TargetSeen::NotTheTarget => Some(format!(
             "the file's column `{sealed}` does not hold the partition's sealed targets on these rows, so this run's target `{target}` may be them"
         )),
-        TargetSeen::Follows(None) => Some(format!(
+        TargetSeen::Follows { target: None, .. } => Some(format!(
             "too few of these rows to tell whether this run's target `{target}` follows the partition's target `{sealed}`"
         )),
-        TargetSeen::Follows(Some(a)) if *a >= FOLLOWS => Some(format!(
+        TargetSeen::Follows {
+            target: Some(a), ..
+        } if *a >= FOLLOWS => Some(format!(
             "this run's target `{target}` follows the partition's target `{sealed}` on them (association {a:.2}, counted from {FOLLOWS})"
         )),
-        TargetSeen::Follows(Some(_)) => None,
+        TargetSeen::Follows { features, .. } => features
+            .iter()
+            .find(|(_, a)| *a >= FEATURE_FOLLOWS)
+            .map(|(f, a)| format!(
+                "this run's feature `{f}` follows the partition's target `{sealed}` on them (association {a:.2}, counted from {FEATURE_FOLLOWS} for a feature)"
+            )),
     }
 }
 

@@ -399,7 +399,9 @@ fn classes(v: &[f64]) -> (usize, Vec<usize>) {
 /// Cramér's V of the two columns' contingency table (Cramér 1946, Mathematical Methods of
 /// Statistics; cited from memory; checked against scipy's implementation), without a
 /// continuity correction: sqrt(chi^2 / (n (min(r, c) - 1))), 1 when each value of one column
-/// goes with one value of the other. `None` when either column is constant.
+/// goes with one value of the other. The table is kept sparse (its occupied cells, at most one
+/// per row), using chi^2 = n (sum of O^2 / (row total x column total) - 1). `None` when either
+/// column is constant.
 pub fn cramer_v(a: &[f64], b: &[f64]) -> Option<f64> {
     if a.len() != b.len() || a.is_empty() {
         return None;
@@ -408,44 +410,45 @@ pub fn cramer_v(a: &[f64], b: &[f64]) -> Option<f64> {
     if r < 2 || c < 2 {
         return None;
     }
-    let mut table = vec![0.0f64; r * c];
+    let mut rows = vec![0.0f64; r];
+    let mut cols = vec![0.0f64; c];
     for (&i, &j) in ca.iter().zip(&cb) {
-        table[i * c + j] += 1.0;
+        rows[i] += 1.0;
+        cols[j] += 1.0;
+    }
+    let mut cells: Vec<(usize, usize)> = ca.into_iter().zip(cb).collect();
+    cells.sort_unstable();
+    let mut sum = 0.0;
+    let mut at = 0;
+    while at < cells.len() {
+        let mut end = at + 1;
+        while end < cells.len() && cells[end] == cells[at] {
+            end += 1;
+        }
+        let (i, j) = cells[at];
+        let o = (end - at) as f64;
+        sum += o * o / (rows[i] * cols[j]);
+        at = end;
     }
     let n = a.len() as f64;
-    let rows: Vec<f64> = (0..r)
-        .map(|i| table[i * c..(i + 1) * c].iter().sum())
-        .collect();
-    let cols: Vec<f64> = (0..c)
-        .map(|j| (0..r).map(|i| table[i * c + j]).sum())
-        .collect();
-    let mut chi2 = 0.0;
-    for i in 0..r {
-        for j in 0..c {
-            let e = rows[i] * cols[j] / n;
-            chi2 += (table[i * c + j] - e).powi(2) / e;
-        }
-    }
+    let chi2 = (n * (sum - 1.0)).max(0.0);
     Some((chi2 / (n * (r.min(c) - 1) as f64)).sqrt().min(1.0))
 }
 
-/// Columns with at most this many distinct values are also compared as classes.
-pub const FEW_VALUES: usize = 20;
-
 /// How closely column `b` follows column `a` over the same rows, from 0 (not at all) to 1 (one
 /// is the other, renamed, rescaled or relabelled): the larger of |Spearman's rho| and, when
-/// both columns take few values (at most `FEW_VALUES`, and at most one per five rows, the usual
-/// floor of five expected rows a cell for a contingency table: common practice, no source),
-/// Cramér's V. Two constant columns follow each other; one constant beside a varying one does
-/// not. `None` below three rows: too few to tell. Each column is a number per row in an order
-/// that means something for it (text by its levels' byte order); no missing values.
+/// both columns take few values (each value holding two rows or more on average, so that a
+/// one-to-one table is no longer a matter of course), Cramér's V. Two constant columns follow
+/// each other; one constant beside a varying one does not. `None` below three rows: too few
+/// to tell. Each column is a number per row in an order that means something for it (text by
+/// its levels' byte order); no missing values.
 pub fn association(a: &[f64], b: &[f64]) -> Option<f64> {
     if a.len() != b.len() || a.len() < 3 {
         return None;
     }
     let rho = spearman(a, b).map_or(0.0, f64::abs);
     let (da, db) = (classes(a).0, classes(b).0);
-    let few = da.max(db) <= FEW_VALUES && 5 * da.max(db) <= a.len();
+    let few = 2 * da <= a.len() && 2 * db <= a.len();
     let v = match (few, da, db) {
         (true, 1, 1) => 1.0,
         (true, _, _) => cramer_v(a, b).unwrap_or(0.0),
@@ -491,6 +494,14 @@ mod association_tests {
         let a = [0., 1., 2., 0., 1., 2., 0., 1., 2., 0., 1., 2., 0., 1., 2.];
         let b = [2., 0., 1., 2., 0., 1., 2., 0., 1., 2., 0., 1., 2., 0., 1.];
         assert_eq!(association(&a, &b), Some(1.0));
+        // Four classes relabelled out of order on 18 rows: still a one-to-one table.
+        let a: Vec<f64> = (0..18).map(|i| f64::from(i % 4)).collect();
+        let b: Vec<f64> = a
+            .iter()
+            .map(|x| [2.0, 0.0, 3.0, 1.0][*x as usize])
+            .collect();
+        let v = association(&a, &b).unwrap();
+        assert!((v - 1.0).abs() < 1e-12, "{v}");
         // Ten distinct values in ten rows: every table is a one-to-one map, so only ranks count.
         let x: Vec<f64> = (1..=10).map(f64::from).collect();
         let y = [5., 3., 9., 1., 7., 2., 10., 4., 8., 6.];

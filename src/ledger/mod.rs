@@ -2145,14 +2145,25 @@ fn target_seen(
     if !own_file && !rows::holds_target(conn, table, &rows, partition, col)? {
         return Ok(TargetSeen::NotTheTarget);
     }
-    let (sealed_col, mine) = (&table.columns[col], &table.columns[prep.target_column]);
-    let (a, b): (Vec<f64>, Vec<f64>) = rows
+    // How closely a column of the run follows the sealed target, on the rows where both have
+    // a value.
+    let follows = |c: usize| {
+        let (sealed_col, other) = (&table.columns[col], &table.columns[c]);
+        let (a, b): (Vec<f64>, Vec<f64>) = rows
+            .iter()
+            .filter_map(|&r| Some((sealed_col.ordered(r)?, other.ordered(r)?)))
+            .unzip();
+        crate::guard::stats::association(&a, &b)
+    };
+    let features = prep
+        .features
         .iter()
-        .filter_map(|&r| Some((sealed_col.ordered(r)?, mine.ordered(r)?)))
-        .unzip();
-    Ok(TargetSeen::Follows(crate::guard::stats::association(
-        &a, &b,
-    )))
+        .filter_map(|&c| Some((table.columns[c].name.clone(), follows(c)?)))
+        .collect();
+    Ok(TargetSeen::Follows {
+        target: follows(prep.target_column),
+        features,
+    })
 }
 
 /// Earlier partitions whose development rows hold some of this run's test rows, with the runs

@@ -1869,8 +1869,9 @@ fn a_shared_key_and_one_shared_feature_name_do_not_make_files_kin() {
 }
 
 /// The sealed target in another form, in a copy of the data whose sealed rows are validation
-/// rows: renamed, copied into a new column, rescaled (grams for the same numbers), or renamed
-/// with something else put under its old name. Each is counted, keyed or not, with the reason.
+/// rows: renamed, copied into a new column, rescaled (grams for the same numbers), renamed
+/// with something else put under its old name, or copied in as a feature of a run for an
+/// unrelated target. Each is counted, keyed or not, with the reason.
 /// An unrelated new target on the same copy is not (nor is one on the same file:
 /// `another_target_on_the_same_rows_consults_nothing`).
 #[test]
@@ -1894,8 +1895,11 @@ fn a_target_in_another_form_is_still_the_sealed_target() {
         let visits = copy
             .clone()
             .add("harvest", |n| ((n * 7919) % 13).to_string());
+        // The unrelated target again, with the outcome copied in as a feature under a new name.
+        let as_feature = visits.clone().add("ykg", |n| copy.rows[n][y].clone());
         for (case, csv, counted) in [
             ("renamed", copy.clone().rename("y", "harvest"), true),
+            ("a feature", as_feature, true),
             ("copied", copied, true),
             ("rescaled", rescaled, true),
             ("swapped", swapped, true),
