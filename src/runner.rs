@@ -715,12 +715,19 @@ pub fn entries(spec: &Spec) -> Vec<ModelSpec> {
 /// Check the grid against the data before any fitting: poly features must be numeric
 /// features, no k of knn may exceed a fold's fitting rows, and every fold's fitting rows must
 /// hold every class. (Nested cross-validation's inner folds are checked as they are made.)
+/// Every check of the grid against the data before any fit: k against the smallest fold,
+/// classes in every fold, poly features, and, given the `memory` available (bytes), that one
+/// fit of each family fits in it.
 pub fn check_grid(
     spec: &Spec,
     table: &Table,
     prep: &Prepared,
     entries: &[ModelSpec],
+    memory: Option<u64>,
 ) -> Result<()> {
+    if let Some(available) = memory {
+        check_memory(spec, table, prep, entries, available)?;
+    }
     let folds = prep.sealed.folds();
     if let Some(fewest) = folds.iter().map(|f| f.fit.len()).min() {
         for e in entries.iter().filter(|e| e.family == Family::Knn) {
@@ -763,6 +770,93 @@ pub fn check_grid(
         }
     }
     Ok(())
+}
+
+/// The encoded columns the features can make at most: one per numeric feature, one per level
+/// of a text feature (what one-hot encoding of every level would give).
+pub fn encoded_width(table: &Table, prep: &Prepared) -> u64 {
+    prep.features
+        .iter()
+        .map(|&c| match &table.columns[c].values {
+            Values::Numeric(_) => 1,
+            Values::Text { levels, .. } => levels.len().max(1) as u64,
+        })
+        .sum()
+}
+
+/// About how many bytes one fit of `family` holds at its peak on `n` rows of `p` encoded
+/// columns (`classes` for logistic): the design matrix, and for the families that solve
+/// with a p x p matrix (ols, ridge, lasso, poly; logistic with one block per class after the
+/// first) three such matrices (the Gram or Hessian, its decomposition, workspace). `None` for
+/// families whose memory grows with the rows alone.
+pub fn fit_bytes(family: Family, n: u64, p: u64, classes: u64) -> Option<u64> {
+    let q = match family {
+        Family::Ols | Family::Ridge | Family::Lasso => p + 1,
+        // One feature becomes up to 20 powers.
+        Family::Poly => p + 21,
+        Family::Logistic => (p + 1).saturating_mul(classes.saturating_sub(1).max(1)),
+        _ => return None,
+    };
+    Some(
+        8u64.saturating_mul(
+            n.saturating_mul(p)
+                .saturating_add(3u64.saturating_mul(q.saturating_mul(q))),
+        ),
+    )
+}
+
+/// Refuse (exit 2, at the [[model]]) a family whose one fit needs more memory than is
+/// available, before anything is allocated for it.
+fn check_memory(
+    spec: &Spec,
+    table: &Table,
+    prep: &Prepared,
+    entries: &[ModelSpec],
+    available: u64,
+) -> Result<()> {
+    let p = encoded_width(table, prep);
+    let n = prep
+        .sealed
+        .folds()
+        .iter()
+        .map(|f| f.fit.len())
+        .max()
+        .unwrap_or(0) as u64;
+    let classes = prep.classes.len() as u64;
+    for e in entries {
+        let Some(need) = fit_bytes(e.family, n, p, classes) else {
+            continue;
+        };
+        if need > available {
+            return Err(Error::spec(
+                &spec.file,
+                Some(e.loc),
+                format!(
+                    "{}: one fit on {n} rows of up to {p} encoded columns needs about {} (its matrices grow with the columns squared), more than the {} of memory available; use fewer features or text levels, or another family (knn, or a command model), or give more memory (--memory)",
+                    e.family.name(),
+                    bytes_text(need),
+                    bytes_text(available)
+                ),
+            ));
+        }
+    }
+    Ok(())
+}
+
+/// Bytes in binary units, one decimal: "3.2 GiB".
+pub fn bytes_text(b: u64) -> String {
+    let units = ["bytes", "KiB", "MiB", "GiB", "TiB", "PiB"];
+    let mut v = b as f64;
+    let mut u = 0;
+    while v >= 1024.0 && u + 1 < units.len() {
+        v /= 1024.0;
+        u += 1;
+    }
+    if u == 0 {
+        format!("{b} bytes")
+    } else {
+        format!("{v:.1} {}", units[u])
+    }
 }
 
 /// Every class of a classification task must have a row among `fit` (positions among the kept
@@ -1391,7 +1485,7 @@ pub fn fmt_params(p: &Params) -> String {
 
 /// Run the experiment. `threads` only changes speed, never a result.
 pub fn run(spec: &Spec, table: &Table, threads: usize) -> Result<RunOutcome> {
-    run_reporting(spec, table, threads, &|_, _| {})
+    run_reporting(spec, table, threads, None, &|_, _| {})
 }
 
 /// `run`, calling `progress(done, total)` as cross-validation tasks finish (for a display; the
@@ -1400,9 +1494,10 @@ pub fn run_reporting(
     spec: &Spec,
     table: &Table,
     threads: usize,
+    memory: Option<u64>,
     progress: &(dyn Fn(usize, usize) + Sync),
 ) -> Result<RunOutcome> {
-    run_recording(spec, table, threads, progress, None)
+    run_recording(spec, table, threads, memory, progress, None)
 }
 
 /// What the CLI stores while a run goes on: its start once the spec has passed every check,
@@ -1425,12 +1520,13 @@ pub fn run_recording(
     spec: &Spec,
     table: &Table,
     threads: usize,
+    memory: Option<u64>,
     progress: &(dyn Fn(usize, usize) + Sync),
     record: Option<&mut dyn Recorder>,
 ) -> Result<RunOutcome> {
     let mut prep = prepare_unkeyed(spec, table)?;
     let entries = entries(spec);
-    check_grid(spec, table, &prep, &entries)?;
+    check_grid(spec, table, &prep, &entries, memory)?;
     let grids: Vec<Vec<Params>> = entries.iter().map(ModelSpec::expand).collect();
     let folds = prep.sealed.folds();
     let mut notes = Notes::new();
@@ -2315,5 +2411,25 @@ mod tests {
             // The direct pass over the development rows is another sum, with other bits.
             assert_ne!(refit(DevGram::Not).1, out.refit.fitted);
         }
+    }
+}
+
+#[cfg(test)]
+mod memory_tests {
+    use super::*;
+
+    #[test]
+    fn fit_bytes_grow_with_the_columns_squared() {
+        // ridge on 20,000 columns: three 20,001-square matrices dominate (about 9.6 GB).
+        let b = fit_bytes(Family::Ridge, 1000, 20_000, 0).unwrap();
+        assert_eq!(b, 8 * (1000 * 20_000 + 3 * 20_001 * 20_001));
+        // Logistic with four classes: three blocks of 11 parameters.
+        assert_eq!(
+            fit_bytes(Family::Logistic, 100, 10, 4),
+            Some(8 * (100 * 10 + 3 * 33 * 33))
+        );
+        assert_eq!(fit_bytes(Family::Knn, 1000, 20_000, 0), None);
+        assert_eq!(bytes_text(512), "512 bytes");
+        assert_eq!(bytes_text(3 << 29), "1.5 GiB");
     }
 }

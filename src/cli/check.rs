@@ -13,6 +13,10 @@ use std::path::PathBuf;
 pub struct Args {
     /// The experiment spec (TOML)
     pub spec: PathBuf,
+    /// The memory a fit may use, e.g. 8G (K, M, G, T: binary units) [default: what the
+    /// system reports available]
+    #[arg(long, value_name = "SIZE", value_parser = super::parse_size)]
+    pub memory: Option<u64>,
     /// Print JSON instead of a table
     #[arg(long)]
     pub json: bool,
@@ -23,7 +27,7 @@ pub fn run(_g: &Global, a: Args) -> Result<i32> {
     // Nothing is stored, so no identity is computed.
     let prep = crate::runner::prepare(&spec, &table, crate::data::Identity::CURRENT)?;
     let entries = crate::runner::entries(&spec);
-    crate::runner::check_grid(&spec, &table, &prep, &entries)?;
+    crate::runner::check_grid(&spec, &table, &prep, &entries, super::memory(a.memory))?;
     let n_cands: usize = entries.iter().map(|e| e.expand().len()).sum();
     let s = &prep.sealed;
     let folds: Vec<serde_json::Value> =

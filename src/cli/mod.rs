@@ -410,6 +410,58 @@ pub(crate) fn user() -> String {
         .unwrap_or_else(|| "unknown".into())
 }
 
+/// A size in bytes from `8G`, `512M`, `1.5T` or a plain number (binary units; `iB` and `B`
+/// after the letter are accepted).
+pub(crate) fn parse_size(s: &str) -> std::result::Result<u64, String> {
+    let t = s.trim();
+    let lower = t.to_ascii_lowercase();
+    let body = lower.trim_end_matches("ib").trim_end_matches('b');
+    let (num, mult) = match body.chars().last() {
+        Some('k') => (&body[..body.len() - 1], 1u64 << 10),
+        Some('m') => (&body[..body.len() - 1], 1 << 20),
+        Some('g') => (&body[..body.len() - 1], 1 << 30),
+        Some('t') => (&body[..body.len() - 1], 1 << 40),
+        _ => (body, 1),
+    };
+    match num.trim().parse::<f64>() {
+        Ok(v) if v.is_finite() && v > 0.0 && v * (mult as f64) < 1.8e19 => {
+            Ok((v * mult as f64) as u64)
+        }
+        _ => Err(format!(
+            "'{s}' is not a size; write a number of bytes, or one with K, M, G or T (8G)"
+        )),
+    }
+}
+
+/// The memory a run may use: `given` (`--memory`), else what the system reports available
+/// (Linux: `MemAvailable`, and the cgroup's limit less its use when that is lower); `None`
+/// where neither is known (no check).
+pub(crate) fn memory(given: Option<u64>) -> Option<u64> {
+    given.or_else(|| {
+        let meminfo = std::fs::read_to_string("/proc/meminfo").ok();
+        let available = meminfo.as_deref().and_then(|m| {
+            m.lines()
+                .find(|l| l.starts_with("MemAvailable:"))
+                .and_then(|l| l.split_whitespace().nth(1))
+                .and_then(|kb| kb.parse::<u64>().ok())
+                .map(|kb| kb.saturating_mul(1024))
+        });
+        let read = |f: &str| {
+            std::fs::read_to_string(format!("/sys/fs/cgroup/{f}"))
+                .ok()
+                .and_then(|t| t.trim().parse::<u64>().ok())
+        };
+        let cgroup = match (read("memory.max"), read("memory.current")) {
+            (Some(max), Some(used)) => Some(max.saturating_sub(used)),
+            _ => None,
+        };
+        match (available, cgroup) {
+            (Some(a), Some(c)) => Some(a.min(c)),
+            (a, c) => a.or(c),
+        }
+    })
+}
+
 /// Phase timings on stderr when `PROBITY_TIMINGS` is set (for benchmarking; see DEVELOPERS.md).
 pub(crate) struct Phases {
     on: bool,
@@ -445,6 +497,24 @@ impl Phases {
                 (now - self.last).as_secs_f64()
             );
             self.last = now;
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::parse_size;
+
+    #[test]
+    fn sizes_read_in_binary_units() {
+        assert_eq!(parse_size("1024"), Ok(1024));
+        assert_eq!(parse_size("8G"), Ok(8 << 30));
+        assert_eq!(parse_size("8gib"), Ok(8 << 30));
+        assert_eq!(parse_size("512MB"), Ok(512 << 20));
+        assert_eq!(parse_size("1.5K"), Ok(1536));
+        assert_eq!(parse_size("2T"), Ok(2 << 40));
+        for bad in ["", "G", "-1G", "lots", "0", "1e30T", "nanG"] {
+            assert!(parse_size(bad).is_err(), "{bad}");
         }
     }
 }

@@ -21,6 +21,10 @@ pub struct Args {
     /// Run the external commands the stored spec names (they are shown first)
     #[arg(long)]
     pub allow_commands: bool,
+    /// The memory a fit may use, e.g. 8G (K, M, G, T: binary units) [default: what the
+    /// system reports available]
+    #[arg(long, value_name = "SIZE", value_parser = super::parse_size)]
+    pub memory: Option<u64>,
     /// Print JSON instead of text
     #[arg(long)]
     pub json: bool,
@@ -109,7 +113,9 @@ fn replay_and_store(
 ) -> Result<serde_json::Value> {
     let outcome = {
         let progress = super::progress::Progress::start(a.json);
-        crate::runner::run_reporting(spec, table, threads, &|d, t| progress.tasks(d, t))?
+        crate::runner::run_reporting(spec, table, threads, super::memory(a.memory), &|d, t| {
+            progress.tasks(d, t)
+        })?
     };
     let cmp = ledger.compare(a.run, &spec.canonical_hash(), &outcome)?;
     let identical = cmp.differences.is_empty();

@@ -21,6 +21,10 @@ pub struct Args {
     /// Worker threads (results are identical for any number) [default: all cores]
     #[arg(long, value_name = "N")]
     pub threads: Option<usize>,
+    /// The memory a fit may use, e.g. 8G (K, M, G, T: binary units) [default: what the
+    /// system reports available]
+    #[arg(long, value_name = "SIZE", value_parser = super::parse_size)]
+    pub memory: Option<u64>,
     /// Print JSON instead of a table
     #[arg(long)]
     pub json: bool,
@@ -160,6 +164,7 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
         &spec,
         &table,
         threads,
+        super::memory(a.memory),
         &|d, t| progress.tasks(d, t),
         Some(&mut store),
     );

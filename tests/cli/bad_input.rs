@@ -500,3 +500,52 @@ fn a_grid_over_the_candidate_limit_is_refused_before_it_is_expanded() {
         &["r.toml:", "more than 1000 candidates", "2000 here alone"],
     );
 }
+
+/// A family whose matrices grow with the columns squared is refused before it allocates them
+/// when one fit needs more memory than is available (`--memory` here, so the case does not
+/// depend on this machine), naming the [[model]] and both sizes; k-nearest neighbours on the
+/// same file is not held to it.
+#[test]
+fn a_fit_larger_than_memory_is_refused_before_it_allocates() {
+    let d = crate::util::Dir::new("memory");
+    let cols = 2000;
+    let mut csv: Vec<String> = (0..cols).map(|j| format!("x{j}")).collect();
+    csv.push("y".into());
+    let mut text = csv.join(",") + "\n";
+    for i in 0..40u64 {
+        let row: Vec<String> = (0..=cols as u64)
+            .map(|j| ((i * 31 + j * 7) % 97).to_string())
+            .collect();
+        text.push_str(&row.join(","));
+        text.push('\n');
+    }
+    d.write("wide.csv", &text);
+    let spec = "name = \"wide\"\ntask = \"regression\"\n[data]\npath = \"wide.csv\"\ntarget = \"y\"\n[split]\nmethod = \"random\"\nseed = 1\ntest = 0.25\nfolds = 3\n\n[[model]]\nkind = \"ridge\"\nlambda = [1.0]\n";
+    d.write("wide.toml", spec);
+    for cmd in ["check", "run"] {
+        let r = d.probity(&[cmd, "wide.toml", "--memory", "64M"]);
+        assert_eq!(r.code(), 2, "{}", r.stderr());
+        let err = r.stderr();
+        assert!(
+            err.contains("wide.toml:12:1")
+                && err.contains("ridge: one fit on 20 rows of up to 2000 encoded columns")
+                && err.contains("more than the 64.0 MiB of memory available"),
+            "{err}"
+        );
+    }
+    assert!(!d.ledger().exists(), "nothing stored");
+    d.probity(&["check", "wide.toml", "--memory", "1G"])
+        .expect(0);
+    d.write(
+        "knn.toml",
+        &spec.replace(
+            "kind = \"ridge\"\nlambda = [1.0]",
+            "kind = \"knn\"\nk = [3]",
+        ),
+    );
+    d.probity(&["check", "knn.toml", "--memory", "64M"])
+        .expect(0);
+    let r = d.probity(&["check", "wide.toml", "--memory", "lots"]);
+    assert_eq!(r.code(), 2);
+    assert!(r.stderr().contains("is not a size"), "{}", r.stderr());
+}
