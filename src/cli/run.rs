@@ -117,6 +117,9 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
     let progress = super::progress::Progress::start(a.json);
     progress.phase("reading the data");
     let threads = a.threads.unwrap_or_else(crate::data::all_cores).max(1);
+    if let Some(n) = &a.note {
+        crate::ledger::check_note(n)?;
+    }
     if phases.parse_only {
         // The benchmark's floor: the spec and the data file read and parsed as for a run,
         // without the file's SHA-256; then nothing else.

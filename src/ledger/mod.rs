@@ -1810,6 +1810,7 @@ impl Ledger {
 
     /// Append a note to a run, as its own chained entry; returns the note id.
     pub fn write_note(&mut self, run: i64, at: &str, user: &str, text: &str) -> Result<i64> {
+        check_note(text)?;
         let path = self.path.clone();
         let fail = |e: rusqlite::Error| migrate::refuse_or_fail(&path, e, "write note");
         let tx = self
@@ -2279,6 +2280,21 @@ fn history_of(conn: &Connection, partition: &str) -> Result<crate::guard::Histor
         .and_then(|rows| rows.collect())
         .map_err(sql_err("read development uses"))?;
     Ok(h)
+}
+
+/// The longest note the ledger keeps, in bytes: notes are read in listings and carried in
+/// bundles, and a page of text says what a note needs to.
+pub const NOTE_MAX_BYTES: usize = 16 * 1024;
+
+/// Refuse (exit 2) a note longer than `NOTE_MAX_BYTES`.
+pub fn check_note(text: &str) -> Result<()> {
+    if text.len() > NOTE_MAX_BYTES {
+        return Err(Error::Input(format!(
+            "the note is {} bytes, more than the {NOTE_MAX_BYTES} a note may hold; shorten it, or keep the long text in a file and note where it is",
+            text.len()
+        )));
+    }
+    Ok(())
 }
 
 /// The rules a partition was sealed with: the `[guard]` of the first run stored on it, in the

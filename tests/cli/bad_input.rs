@@ -549,3 +549,18 @@ fn a_fit_larger_than_memory_is_refused_before_it_allocates() {
     assert_eq!(r.code(), 2);
     assert!(r.stderr().contains("is not a size"), "{}", r.stderr());
 }
+
+/// A note longer than 16 KiB is refused, on `run --note` before the grid and by `note`,
+/// and nothing is stored.
+#[test]
+fn an_overlong_note_is_refused() {
+    let d = with_ledger("long-note");
+    let long = "x".repeat(16 * 1024 + 1);
+    refused(
+        &d,
+        &["run", "small.toml", "--note", &long],
+        &["16385 bytes", "16384"],
+    );
+    refused(&d, &["note", "1", &long], &["16385 bytes", "16384"]);
+    d.probity(&["note", "1", &"x".repeat(16 * 1024)]).expect(0);
+}
