@@ -155,6 +155,19 @@ impl Ledger {
             if at != sections.len() {
                 return Err(bad());
             }
+            // Every section's columns are the schema's own, in order: values are stored under
+            // the names they were hashed beside, and no name from a bundle reaches SQL.
+            for ((name, rows), cols) in sections.iter().zip(&columns) {
+                let schema = self.section_columns(&kind, name)?;
+                if *cols != schema || rows.iter().any(|r| r.len() != schema.len()) {
+                    return Err(Error::Input(format!(
+                        "bundle entry {} ({kind}): its {name} section has the columns [{}], not this ledger's [{}]; it was not packed by this version of probity, or it was edited; nothing was merged",
+                        i + 1,
+                        cols.join(", "),
+                        schema.join(", ")
+                    )));
+                }
+            }
             let computed = entry_hash(&prev, &sections);
             if computed != claimed {
                 return Err(Error::Integrity(format!(
@@ -232,7 +245,15 @@ impl Ledger {
                         .ok_or_else(|| Error::Input(format!("the bundle's {kind} {hash} belongs to a run that is neither in the bundle nor in this ledger; pack its run too")))?,
                 ),
             };
-            let new_id = insert_entry(&tx, &kind, local_run, &sections, &columns).map_err(fail)?;
+            let n = merged + skipped + 1;
+            let unfit = |e: rusqlite::Error| match migrate::refuse_or_fail(&path, e, "merge") {
+                Error::Ledger { source, .. } => Error::Integrity(format!(
+                    "bundle entry {n} ({kind} {hash}) does not fit this ledger ({source}); nothing was merged"
+                )),
+                other => other,
+            };
+            let new_id = insert_entry(&tx, &kind, local_run, &sections, &columns).map_err(unfit)?;
+            read_back(&tx, &kind, new_id, local_run, &sections, &columns, n, &hash)?;
             super::chain::append(&tx, &kind, new_id, Some((&hash, &prev)))?;
             merged += 1;
         }
@@ -242,6 +263,21 @@ impl Ledger {
 }
 
 impl Ledger {
+    /// The columns of an entry section in this ledger's schema, in order.
+    fn section_columns(&self, kind: &str, section: &str) -> Result<Vec<String>> {
+        let sql = section_queries(kind)
+            .iter()
+            .find(|(n, _)| *n == section)
+            .map(|(_, q)| *q)
+            .ok_or_else(|| {
+                Error::Input(format!(
+                    "a bundle section {section} is not part of a {kind} entry"
+                ))
+            })?;
+        let st = self.conn.prepare(sql).map_err(sql_err("merge"))?;
+        Ok(st.column_names().into_iter().map(str::to_string).collect())
+    }
+
     /// Refuse a bundle's partition row (its columns by name) that this ledger stores otherwise.
     fn same_partition(&self, cols: &[String], row: &[Sql]) -> Result<()> {
         let at = |c: &str| cols.iter().position(|x| x == c).and_then(|i| row.get(i));
@@ -278,7 +314,7 @@ impl Ledger {
                     .and_then(|i| stored.get(i)),
             );
             let there = version(at("settings"));
-            return Err(Error::Input(format!(
+            return Err(Error::Integrity(format!(
                 "the bundle's partition {id} is stored differently in this ledger{}: runs over it could not be verified here; nothing was merged (merge it into a ledger that does not hold this partition)",
                 if here != there {
                     format!(
@@ -293,7 +329,47 @@ impl Ledger {
     }
 }
 
-/// Insert one entry's rows with fresh local ids; returns the new main id.
+/// The sections a partition brings, stored once for every run over it.
+fn shared(section: &str) -> bool {
+    matches!(
+        section,
+        "partitions" | "partition_rows" | "partition_identities"
+    )
+}
+
+/// A bundled row as this ledger stores it: the entry's own id fresh (`new_id`), the run it
+/// belongs to by its local id, and links into the other ledger's id space cleared. `None` for
+/// a row that is not kept (a replay's result names a run of the other ledger).
+fn local_row(
+    kind: &str,
+    new_id: i64,
+    local_run: Option<i64>,
+    section: &str,
+    cols: &[String],
+    row: &[Sql],
+) -> Option<Vec<Sql>> {
+    if section == "replays" {
+        return None;
+    }
+    Some(
+        cols.iter()
+            .zip(row)
+            .map(|(c, v)| match (section, c.as_str()) {
+                ("runs", "id") | ("reveals", "id") | ("notes", "id") => Sql::Integer(new_id),
+                (_, "run_id") if kind == "run" => Sql::Integer(new_id),
+                (_, "run_id") => Sql::Integer(local_run.unwrap_or(0)),
+                (_, "reveal_id") => Sql::Integer(new_id),
+                // A replay's original is linked only when it is in this ledger under the same id space.
+                ("runs", "replay_of") => Sql::Null,
+                _ => v.clone(),
+            })
+            .collect(),
+    )
+}
+
+/// Insert one entry's rows with fresh local ids; returns the new main id. Column names are the
+/// schema's (checked equal to the bundle's before anything is written). A partition this
+/// ledger already holds is not written again: `read_back` then requires it to be the same.
 fn insert_entry(
     tx: &rusqlite::Transaction,
     kind: &str,
@@ -310,57 +386,96 @@ fn insert_entry(
         "runs" | "reveals" | "notes" => 2,
         _ => 3,
     });
+    let mut known_partition = false;
     for i in order {
         let ((name, rows), cols) = (&sections[i], &columns[i]);
+        if name == "partitions"
+            && let Some(Some(Sql::Text(id))) = rows.first().map(|r| r.first())
+        {
+            known_partition = tx.query_row(
+                "SELECT EXISTS (SELECT 1 FROM partitions WHERE id = ?1)",
+                [id],
+                |r| r.get(0),
+            )?;
+        }
+        if shared(name) && known_partition {
+            continue;
+        }
         for row in rows {
-            let mut names = Vec::new();
-            let mut vals: Vec<Sql> = Vec::new();
-            for (c, v) in cols.iter().zip(row) {
-                let is_main = matches!(
-                    (kind, name.as_str(), c.as_str()),
-                    ("run", "runs", "id") | ("reveal", "reveals", "id") | ("note", "notes", "id")
-                );
-                if is_main {
-                    continue; // a fresh id here
-                }
-                let v = match (name.as_str(), c.as_str()) {
-                    (_, "run_id") if kind == "run" => Sql::Integer(new_id),
-                    (_, "run_id") => Sql::Integer(local_run.unwrap_or(0)),
-                    (_, "reveal_id") => Sql::Integer(new_id),
-                    // A replay's original is linked only when it is in this ledger under the same id space.
-                    ("runs", "replay_of") | ("replays", "replay_of") => Sql::Null,
-                    _ => v.clone(),
-                };
-                names.push(c.clone());
-                vals.push(v);
-            }
-            if name == "replays" {
-                continue; // a replay's result names a run id of the other ledger
-            }
-            let verb = if matches!(
-                name.as_str(),
-                "partitions" | "partition_rows" | "partition_identities"
-            ) {
-                "INSERT OR IGNORE"
-            } else {
-                "INSERT"
+            let Some(vals) = local_row(kind, new_id, local_run, name, cols, row) else {
+                continue;
             };
+            let main = matches!(
+                (kind, name.as_str()),
+                ("run", "runs") | ("reveal", "reveals") | ("note", "notes")
+            );
+            // The main row takes a fresh id; the rest keep every column.
+            let (names, vals): (Vec<&String>, Vec<Sql>) = cols
+                .iter()
+                .zip(vals)
+                .filter(|(c, _)| !(main && c.as_str() == "id"))
+                .unzip();
             let sql = format!(
-                "{verb} INTO {name} ({}) VALUES ({})",
-                names.join(", "),
+                "INSERT INTO {name} ({}) VALUES ({})",
+                names
+                    .iter()
+                    .map(|c| c.as_str())
+                    .collect::<Vec<_>>()
+                    .join(", "),
                 (1..=names.len())
                     .map(|i| format!("?{i}"))
                     .collect::<Vec<_>>()
                     .join(", ")
             );
             tx.execute(&sql, rusqlite::params_from_iter(vals.iter()))?;
-            if matches!(
-                (kind, name.as_str()),
-                ("run", "runs") | ("reveal", "reveals") | ("note", "notes")
-            ) {
+            if main {
                 new_id = tx.last_insert_rowid();
             }
         }
     }
     Ok(new_id)
+}
+
+/// Read a merged entry back from the ledger and require every section to hold exactly the
+/// bundle's rows (as `local_row` stores them): nothing dropped, coerced or merged into rows the
+/// ledger already held. A partition this ledger held before must be the bundle's, row for row.
+#[allow(clippy::too_many_arguments)]
+fn read_back(
+    tx: &rusqlite::Transaction,
+    kind: &str,
+    new_id: i64,
+    local_run: Option<i64>,
+    sections: &Sections,
+    columns: &[Vec<String>],
+    n: usize,
+    hash: &str,
+) -> Result<()> {
+    let stored = super::chain::sections(tx, kind, new_id)?.ok_or_else(|| {
+        Error::Integrity(format!(
+            "bundle entry {n} ({kind} {hash}) was not stored whole; nothing was merged"
+        ))
+    })?;
+    for (name, rows) in &stored {
+        let expected: Vec<Vec<Sql>> = sections
+            .iter()
+            .zip(columns)
+            .find(|((s, _), _)| s == name)
+            .map(|((_, r), cols)| {
+                r.iter()
+                    .filter_map(|row| local_row(kind, new_id, local_run, name, cols, row))
+                    .collect()
+            })
+            .unwrap_or_default();
+        if *rows != expected {
+            let why = if shared(name) {
+                "this ledger holds that partition with other content"
+            } else {
+                "the stored rows differ from the bundle's"
+            };
+            return Err(Error::Integrity(format!(
+                "bundle entry {n} ({kind} {hash}): its {name} section conflicts with this ledger ({why}); nothing was merged"
+            )));
+        }
+    }
+    Ok(())
 }

@@ -1,6 +1,7 @@
 //! The one integration-test binary: drives `probity` end to end and runs the reference checks.
 
 mod bad_input;
+mod bundles;
 mod classification;
 mod commands;
 mod concurrency;

@@ -1,0 +1,181 @@
+//! Hostile bundles: a merge trusts no part of a bundle's structure. Each case is built from an
+//! honest pack, edited, and (where the edit touches hashed values) re-hashed by `rehash` with
+//! the published recipe (`probity::ledger::chain::entry_hash`), so that only the receiver's own
+//! checks stand between it and the ledger.
+
+use crate::fixtures::small_dir;
+use crate::util::Dir;
+use rusqlite::types::Value as Sql;
+use serde_json::{Value, json};
+
+fn decode(v: &Value) -> Sql {
+    match v {
+        Value::Null => Sql::Null,
+        Value::Number(n) => Sql::Integer(n.as_i64().unwrap()),
+        Value::String(s) => Sql::Text(s.clone()),
+        Value::Object(o) => match (o.get("r"), o.get("b")) {
+            (Some(Value::String(h)), None) => {
+                Sql::Real(f64::from_bits(u64::from_str_radix(h, 16).unwrap()))
+            }
+            (None, Some(Value::String(h))) => Sql::Blob(
+                (0..h.len())
+                    .step_by(2)
+                    .map(|i| u8::from_str_radix(&h[i..i + 2], 16).unwrap())
+                    .collect(),
+            ),
+            _ => panic!("{v}"),
+        },
+        _ => panic!("{v}"),
+    }
+}
+
+/// Recompute every entry's hash from its sections, in order, carrying each new hash into the
+/// later entries that link to the old one: a forged bundle that is consistent in itself.
+fn rehash(bundle: &mut Value) {
+    let entries = bundle["entries"].as_array_mut().unwrap();
+    let mut renamed: Vec<(String, String)> = Vec::new();
+    for e in entries.iter_mut() {
+        for field in ["prev_hash", "run_entry"] {
+            if let Some(h) = e[field].as_str()
+                && let Some((_, new)) = renamed.iter().find(|(old, _)| old == h)
+            {
+                e[field] = json!(new);
+            }
+        }
+        let sections: probity::ledger::chain::Sections = e["sections"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|s| {
+                let rows = s["rows"]
+                    .as_array()
+                    .unwrap()
+                    .iter()
+                    .map(|r| r.as_array().unwrap().iter().map(decode).collect())
+                    .collect();
+                (s["name"].as_str().unwrap().to_string(), rows)
+            })
+            .collect();
+        let new = probity::ledger::chain::entry_hash(e["prev_hash"].as_str().unwrap(), &sections);
+        let old = e["entry_hash"].as_str().unwrap().to_string();
+        e["entry_hash"] = json!(new);
+        renamed.push((old, new));
+    }
+}
+
+/// Alice's run 1 with a reveal and a note, packed; Bob's ledger with his own run of the same
+/// spec on the same data (so the same partition); and the bundle as JSON.
+fn alice_and_bob(name: &str) -> (Dir, Value) {
+    let alice = small_dir(&format!("{name}-alice"));
+    alice.probity(&["run", "small.toml"]).expect(0);
+    alice.probity(&["reveal", "1", "--yes"]).expect(0);
+    alice.probity(&["note", "1", "checked"]).expect(0);
+    alice.probity(&["pack", "1", "--out", "a.json"]).expect(0);
+    let bundle =
+        serde_json::from_str(&std::fs::read_to_string(alice.path.join("a.json")).unwrap()).unwrap();
+    let bob = small_dir(&format!("{name}-bob"));
+    bob.probity(&["run", "small.toml"]).expect(0);
+    (bob, bundle)
+}
+
+fn section<'a>(bundle: &'a mut Value, kind: &str, name: &str) -> &'a mut Value {
+    bundle["entries"]
+        .as_array_mut()
+        .unwrap()
+        .iter_mut()
+        .find(|e| e["kind"] == kind)
+        .unwrap()["sections"]
+        .as_array_mut()
+        .unwrap()
+        .iter_mut()
+        .find(|s| s["name"] == name)
+        .unwrap()
+}
+
+/// Merge `bundle` into `bob`: exit `code`, every fragment in the message, Bob's ledger unchanged
+/// and its chain intact.
+fn refused(bob: &Dir, bundle: &Value, code: i32, fragments: &[&str]) {
+    let before = bob.counts();
+    bob.write("b.json", &bundle.to_string());
+    let r = bob.probity(&["merge", "b.json"]).expect(code);
+    for f in fragments {
+        assert!(r.stderr().contains(f), "expected {f:?} in {}", r.stderr());
+    }
+    assert_eq!(bob.counts(), before, "a refused merge writes nothing");
+    bob.probity(&["audit", "--verify"]).expect(0);
+}
+
+/// The entry hash covers values, not the names they are stored under: two names swapped
+/// (a reveal's budget and resamples) keep every hash, and a name holding SQL would be run.
+/// Both are refused (exit 2) because the columns are not the schema's.
+#[test]
+fn column_names_from_a_bundle_never_reach_sql() {
+    let (bob, honest) = alice_and_bob("bundle-names");
+    let mut swapped = honest.clone();
+    let cols = &mut section(&mut swapped, "reveal", "reveals")["columns"];
+    let names: Vec<String> = serde_json::from_value(cols.clone()).unwrap();
+    let (b, r) = (
+        names.iter().position(|c| c == "budget").unwrap(),
+        names.iter().position(|c| c == "resamples").unwrap(),
+    );
+    cols[b] = json!("resamples");
+    cols[r] = json!("budget");
+    refused(
+        &bob,
+        &swapped,
+        2,
+        &["reveals section has the columns", "nothing was merged"],
+    );
+    let mut injected = honest.clone();
+    section(&mut injected, "note", "notes")["columns"][4] =
+        json!("text) SELECT 1; UPDATE notes SET text = 'rewritten' --");
+    refused(&bob, &injected, 2, &["notes section has the columns"]);
+    // The honest bundle still merges.
+    bob.write("a.json", &honest.to_string());
+    bob.probity(&["merge", "a.json"]).expect(0);
+    let a = bob.probity(&["audit", "--json"]).expect(0).json();
+    assert_eq!(a["partitions"][0]["reveals"], 1);
+}
+
+/// A forged run over the receiver's own partition with one extra test-row identity: it
+/// re-hashes cleanly, but storing it would change the receiver's earlier run. Refused (exit 4)
+/// as a conflict, and the receiver's chain still verifies.
+#[test]
+fn a_bundle_cannot_change_a_partition_the_ledger_holds() {
+    let (bob, mut forged) = alice_and_bob("bundle-partition");
+    let rows = section(&mut forged, "run", "partition_rows")["rows"]
+        .as_array_mut()
+        .unwrap();
+    let mut extra = rows[0].clone();
+    extra[1] = json!({"b": "ff".repeat(16)});
+    rows.push(extra);
+    rehash(&mut forged);
+    refused(
+        &bob,
+        &forged,
+        4,
+        &[
+            "partition_rows section conflicts with this ledger",
+            "nothing was merged",
+        ],
+    );
+}
+
+/// A constraint the bundle's rows break (two candidates under one id) ends with exit 4 and a
+/// message, never exit 1.
+#[test]
+fn rows_that_break_the_schema_are_an_integrity_failure() {
+    let (bob, mut forged) = alice_and_bob("bundle-constraint");
+    let rows = section(&mut forged, "run", "candidates")["rows"]
+        .as_array_mut()
+        .unwrap();
+    let copy = rows[0].clone();
+    rows.push(copy);
+    rehash(&mut forged);
+    refused(
+        &bob,
+        &forged,
+        4,
+        &["does not fit this ledger", "nothing was merged"],
+    );
+}
