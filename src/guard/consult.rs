@@ -551,10 +551,10 @@ pub struct Overlapping {
 
 /// A run whose target is another column than a partition's sealed target, on rows that are
 /// that partition's test rows, consults it anyway when its target follows the sealed one that
-/// closely (`stats::association`: |Spearman's rho|, or Cramér's V for few classes): its
-/// validation scores are then, near enough, scores on the sealed targets. Our own threshold
-/// (no source): a copy, a change of units or a relabelling give 1, a median split about
-/// 0.87; the demo's outbreaks and yields about 0.07.
+/// closely (`stats::association`: |Spearman's rho|, or Cramér's V for few classes, from 50
+/// shared rows; an exact relation below): its validation scores are then, near enough, scores
+/// on the sealed targets. Our own threshold (no source): a copy, a change of units or a
+/// relabelling give 1, a median split about 0.87; the demo's outbreaks and yields about 0.07.
 pub const FOLLOWS: f64 = 0.8;
 
 /// The same for one of the run's features: a feature that follows the sealed target this
@@ -571,10 +571,10 @@ pub enum TargetSeen {
     /// The column under that name does not hold the sealed targets on these rows (the rows'
     /// identities with it as the target are not the sealed ones).
     NotTheTarget,
-    /// The sealed target is there: how closely the run's target follows it (`None`: too few
-    /// rows to tell), and each of the run's features (by name).
+    /// The sealed target is there: how closely the run's target follows it, and each of the
+    /// run's features (by name).
     Follows {
-        target: Option<f64>,
+        target: f64,
         features: Vec<(String, f64)>,
     },
 }
@@ -589,12 +589,7 @@ pub fn another_target(sealed: &str, target: &str, seen: &TargetSeen) -> Option<S
         TargetSeen::NotTheTarget => Some(format!(
             "the file's column `{sealed}` does not hold the partition's sealed targets on these rows, so this run's target `{target}` may be them"
         )),
-        TargetSeen::Follows { target: None, .. } => Some(format!(
-            "too few of these rows to tell whether this run's target `{target}` follows the partition's target `{sealed}`"
-        )),
-        TargetSeen::Follows {
-            target: Some(a), ..
-        } if *a >= FOLLOWS => Some(format!(
+        TargetSeen::Follows { target: a, .. } if *a >= FOLLOWS => Some(format!(
             "this run's target `{target}` follows the partition's target `{sealed}` on them (association {a:.2}, counted from {FOLLOWS})"
         )),
         TargetSeen::Follows { features, .. } => features

@@ -275,7 +275,7 @@ impl Ledger {
                 ))
             })?;
         let st = self.conn.prepare(sql).map_err(sql_err("merge"))?;
-        Ok(st.column_names().into_iter().map(str::to_string).collect())
+        Ok(st.column_names().map(str::to_string).collect())
     }
 
     /// Refuse a bundle's partition row (its columns by name) that this ledger stores otherwise.

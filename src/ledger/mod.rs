@@ -2147,22 +2147,24 @@ fn target_seen(
         return Ok(TargetSeen::NotTheTarget);
     }
     // How closely a column of the run follows the sealed target, on the rows where both have
-    // a value.
-    let follows = |c: usize| {
+    // a value; as classes when the column is read as classes (a classification target, a text
+    // feature).
+    let follows = |c: usize, classes: bool| {
         let (sealed_col, other) = (&table.columns[col], &table.columns[c]);
         let (a, b): (Vec<f64>, Vec<f64>) = rows
             .iter()
             .filter_map(|&r| Some((sealed_col.ordered(r)?, other.ordered(r)?)))
             .unzip();
-        crate::guard::stats::association(&a, &b)
+        crate::guard::stats::association(&a, &b, classes)
     };
+    let text = |c: usize| matches!(table.columns[c].values, crate::data::Values::Text { .. });
     let features = prep
         .features
         .iter()
-        .filter_map(|&c| Some((table.columns[c].name.clone(), follows(c)?)))
+        .map(|&c| (table.columns[c].name.clone(), follows(c, text(c))))
         .collect();
     Ok(TargetSeen::Follows {
-        target: follows(prep.target_column),
+        target: follows(prep.target_column, !prep.classes.is_empty()),
         features,
     })
 }
