@@ -939,6 +939,11 @@ pub fn predict_with(
 }
 
 /// The model entry and grid point of candidate `id` (1-based, in the run's order).
+/// Whether candidate `id` (1-based, in the run's order) is an external command family.
+pub fn is_command(spec: &Spec, id: usize) -> bool {
+    candidate_entry(spec, id).is_ok_and(|(e, _)| e.command.is_some())
+}
+
 fn candidate_entry(spec: &Spec, id: usize) -> Result<(ModelSpec, Params)> {
     let mut n = 0;
     for entry in entries(spec) {

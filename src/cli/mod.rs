@@ -410,6 +410,67 @@ pub(crate) fn user() -> String {
         .unwrap_or_else(|| "unknown".into())
 }
 
+/// Consent before a stored run's external command runs again (`reveal`, `predict`): a run
+/// merged from another ledger, or one whose recorded inputs no longer hash as they did, runs
+/// its command only with `--allow-commands`, which lists the argv and the inputs' hashes
+/// first. A command of the user's own run, with its inputs unchanged, needs no flag.
+pub(crate) fn command_consent(
+    ledger: &crate::ledger::Ledger,
+    d: &crate::ledger::RunDetail,
+    spec: &crate::spec::Spec,
+    candidate: usize,
+    allow: bool,
+    what: &str,
+) -> Result<()> {
+    if !crate::runner::is_command(spec, candidate) {
+        return Ok(());
+    }
+    let cmds: Vec<&crate::spec::CommandSpec> = spec
+        .models
+        .iter()
+        .filter_map(|m| m.command.as_ref())
+        .collect();
+    let mut now: Vec<(String, String)> = Vec::new();
+    let mut unreadable = false;
+    for c in &cmds {
+        match crate::external::input_hashes(c) {
+            Ok(h) => now.extend(h),
+            Err(_) => unreadable = true,
+        }
+    }
+    now.sort();
+    let mut stored = ledger.run_inputs(d.summary.id)?;
+    stored.sort();
+    let why = if ledger.run_merged(d.summary.id)? {
+        "came from another ledger"
+    } else if unreadable || now != stored {
+        "has command inputs that changed since it ran"
+    } else {
+        return Ok(());
+    };
+    let argv: Vec<String> = cmds
+        .iter()
+        .map(|c| format!("{:?} in {}", c.run, c.workdir.display()))
+        .collect();
+    if !allow {
+        return Err(Error::Input(format!(
+            "run {} {why}: {what} would run its external command ({}) as you; read it, then pass --allow-commands to run it",
+            d.summary.id,
+            argv.join("; ")
+        )));
+    }
+    for a in &argv {
+        warn(&format!(
+            "running the command of run {} ({why}): {a}",
+            d.summary.id
+        ));
+    }
+    for (path, sha) in &now {
+        warn(&format!("  input {path}: SHA-256 {sha}"));
+    }
+    Ok(())
+}
+
 /// A size in bytes from `8G`, `512M`, `1.5T` or a plain number (binary units; `iB` and `B`
 /// after the letter are accepted).
 pub(crate) fn parse_size(s: &str) -> std::result::Result<u64, String> {

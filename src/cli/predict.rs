@@ -24,6 +24,10 @@ pub struct Args {
     /// Score rows of a sealed test partition anyway, recording it as a reveal of that partition
     #[arg(long)]
     pub allow_sealed: bool,
+    /// Run the candidate's external command even though the run came from another ledger or
+    /// its inputs changed (the command and its inputs' hashes are listed first)
+    #[arg(long)]
+    pub allow_commands: bool,
 }
 
 pub fn run(g: &Global, a: Args) -> Result<i32> {
@@ -36,6 +40,8 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
     let d = super::stored_run(&ledger, a.run)?;
     let stored: StoredModel = serde_json::from_str(&d.model_json)
         .map_err(|e| Error::Internal(format!("stored model of run {}: {e}", a.run)))?;
+    // Whether the user has been asked about the run's command already (a refit runs it).
+    let mut consented = false;
     let model = match a.candidate {
         None => stored,
         Some(c) if c == stored.candidate as i64 => stored,
@@ -47,6 +53,15 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
                 )));
             }
             let (spec, table) = super::reveal::reload(&d, None)?;
+            super::command_consent(
+                &ledger,
+                &d,
+                &spec,
+                c as usize,
+                a.allow_commands,
+                "predicting",
+            )?;
+            consented = true;
             crate::runner::refit(&spec, &table, c as usize)?
         }
     };
@@ -57,6 +72,16 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
     let (pred, notes) = if matches!(model.fitted, crate::models::Fitted::External) {
         // An external command keeps no model: fit it again on the run's development rows.
         let (spec, table) = super::reveal::reload(&d, None)?;
+        if !consented {
+            super::command_consent(
+                &ledger,
+                &d,
+                &spec,
+                model.candidate,
+                a.allow_commands,
+                "predicting",
+            )?;
+        }
         let prep = crate::runner::prepare(&spec, &table, crate::data::Identity::CURRENT)?;
         let dev = prep.sealed.development();
         let rows: Vec<usize> = (0..input.n_rows()).collect();

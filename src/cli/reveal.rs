@@ -25,6 +25,10 @@ pub struct Args {
     /// The data file, when it moved (its SHA-256 must match the run's)
     #[arg(long, value_name = "PATH")]
     pub data: Option<PathBuf>,
+    /// Run the candidate's external command even though the run came from another ledger or
+    /// its inputs changed (the command and its inputs' hashes are listed first)
+    #[arg(long)]
+    pub allow_commands: bool,
     /// Print JSON instead of text
     #[arg(long)]
     pub json: bool,
@@ -89,6 +93,14 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
         })?
         .clone();
     let (spec, table) = reload(&d, a.data.as_deref())?;
+    super::command_consent(
+        &ledger,
+        &d,
+        &spec,
+        candidate as usize,
+        a.allow_commands,
+        "revealing it",
+    )?;
     // The ledger's identity version: its partitions', this one's included.
     // The partition's own identity version, as it was stored.
     let identity = ledger

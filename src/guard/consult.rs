@@ -576,6 +576,8 @@ pub enum TargetSeen {
     Follows {
         target: f64,
         features: Vec<(String, f64)>,
+        /// The shared rows where the sealed target and the run's target both have a value.
+        rows: usize,
     },
 }
 
@@ -588,6 +590,10 @@ pub fn another_target(sealed: &str, target: &str, seen: &TargetSeen) -> Option<S
         )),
         TargetSeen::NotTheTarget => Some(format!(
             "the file's column `{sealed}` does not hold the partition's sealed targets on these rows, so this run's target `{target}` may be them"
+        )),
+        TargetSeen::Follows { rows, .. } if *rows < crate::guard::stats::FEW_ROWS => Some(format!(
+            "on {rows} shared rows there is no telling whether this run's target `{target}` follows the partition's target `{sealed}` (it takes {})",
+            crate::guard::stats::FEW_ROWS
         )),
         TargetSeen::Follows { target: a, .. } if *a >= FOLLOWS => Some(format!(
             "this run's target `{target}` follows the partition's target `{sealed}` on them (association {a:.2}, counted from {FOLLOWS})"

@@ -1840,6 +1840,17 @@ impl Ledger {
     }
 
     /// The input files fingerprinted with a run: (path as written, SHA-256).
+    /// Whether run `run` came from another ledger (merged from a bundle).
+    pub fn run_merged(&self, run: i64) -> Result<bool> {
+        self.conn
+            .query_row(
+                "SELECT EXISTS (SELECT 1 FROM chain WHERE kind = 'run' AND ref_id = ?1 AND origin IS NOT NULL)",
+                [run],
+                |r| r.get(0),
+            )
+            .map_err(sql_err("read run origin"))
+    }
+
     pub fn run_inputs(&self, run: i64) -> Result<Vec<(String, String)>> {
         let mut st = self
             .conn
@@ -2147,25 +2158,37 @@ fn target_seen(
         return Ok(TargetSeen::NotTheTarget);
     }
     // How closely a column of the run follows the sealed target, on the rows where both have
-    // a value; as classes when the column is read as classes (a classification target, a text
-    // feature).
+    // a value; as classes when either is read as classes (a classification target, text).
+    // Returns the association and the rows it was judged on.
     let follows = |c: usize, classes: bool| {
         let (sealed_col, other) = (&table.columns[col], &table.columns[c]);
         let (a, b): (Vec<f64>, Vec<f64>) = rows
             .iter()
             .filter_map(|&r| Some((sealed_col.ordered(r)?, other.ordered(r)?)))
             .unzip();
-        crate::guard::stats::association(&a, &b, classes)
+        (crate::guard::stats::association(&a, &b, classes), a.len())
     };
     let text = |c: usize| matches!(table.columns[c].values, crate::data::Values::Text { .. });
+    // Classes on either side: a text sealed target relabelled as numeric codes is a copy too.
     let features = prep
         .features
         .iter()
-        .map(|&c| (table.columns[c].name.clone(), follows(c, text(c))))
+        .map(|&c| {
+            // A feature with a value on too few of the rows says too little to count.
+            let (a, n) = follows(c, text(c) || text(col));
+            let a = if n < crate::guard::stats::FEW_ROWS {
+                0.0
+            } else {
+                a
+            };
+            (table.columns[c].name.clone(), a)
+        })
         .collect();
+    let (target, rows) = follows(prep.target_column, !prep.classes.is_empty() || text(col));
     Ok(TargetSeen::Follows {
-        target: follows(prep.target_column, !prep.classes.is_empty()),
+        target,
         features,
+        rows,
     })
 }
 

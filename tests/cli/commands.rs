@@ -272,3 +272,84 @@ with open(os.environ["PROBITY_OUT"], "w") as f:
     let bad = c.iter().find(|x| x["params"]["scale"] == 0.5).unwrap();
     assert!(bad["failure"].as_str().unwrap().contains("sum to"), "{bad}");
 }
+
+/// A command family runs again (reveal, predict) without a flag only for the user's own run
+/// with its inputs unchanged. After an input changed, or in a run merged from another ledger,
+/// it runs only with `--allow-commands`, which lists the command and its inputs' hashes first;
+/// a refusal records nothing.
+#[test]
+fn merged_or_changed_commands_run_only_with_consent() {
+    let alice = setup("consent-alice", MEAN_MODEL, "");
+    let j = alice.probity(&["run", "c.toml", "--json"]).expect(0).json();
+    let id = j["candidates"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|c| c["model"] == "command" && c["params"]["shift"] == 0.0)
+        .unwrap()["id"]
+        .as_i64()
+        .unwrap()
+        .to_string();
+    alice.probity(&["pack", "1", "--out", "a.json"]).expect(0);
+    alice
+        .probity(&["reveal", "1", "--candidate", &id, "--yes"])
+        .expect(0);
+    // The model file edited since the run.
+    alice.write("model.py", &format!("{MEAN_MODEL}\n# edited\n"));
+    let before = alice.counts();
+    for args in [
+        vec!["reveal", "1", "--candidate", &id, "--yes"],
+        vec![
+            "predict",
+            "1",
+            "--candidate",
+            &id,
+            "--input",
+            "small.csv",
+            "--output",
+            "p.csv",
+        ],
+    ] {
+        let r = alice.probity(&args).expect(2);
+        assert!(
+            r.stderr()
+                .contains("has command inputs that changed since it ran")
+                && r.stderr().contains("--allow-commands"),
+            "{}",
+            r.stderr()
+        );
+    }
+    assert_eq!(alice.counts(), before);
+    let r = alice
+        .probity(&[
+            "reveal",
+            "1",
+            "--candidate",
+            &id,
+            "--yes",
+            "--allow-commands",
+        ])
+        .expect(0);
+    assert!(
+        r.stderr().contains("running the command of run 1")
+            && r.stderr().contains("input model.py: SHA-256"),
+        "{}",
+        r.stderr()
+    );
+    // Bob merges Alice's run: its command came from another ledger.
+    let bob = small_dir("consent-bob");
+    std::fs::copy(alice.path.join("a.json"), bob.path.join("a.json")).unwrap();
+    bob.probity(&["merge", "a.json"]).expect(0);
+    let before = bob.counts();
+    let r = bob
+        .probity(&["reveal", "1", "--candidate", &id, "--yes"])
+        .expect(2);
+    assert!(
+        r.stderr().contains("came from another ledger") && r.stderr().contains("python3"),
+        "{}",
+        r.stderr()
+    );
+    assert_eq!(bob.counts(), before);
+    // A built-in candidate of the same merged run needs no consent.
+    bob.probity(&["reveal", "1", "--yes"]).expect(0);
+}
