@@ -494,7 +494,41 @@ pub fn association(a: &[f64], b: &[f64], classes: bool) -> f64 {
     } else {
         0.0
     };
-    rho.max(v)
+    // A few classes of `b` over many values of `a`: a coarsened copy whatever the labels' order
+    // (`low`, `medium`, `high` sort as `high`, `low`, `medium`).
+    let eta = if classes && db < da && db <= FEW_CLASSES && 5 * db <= n {
+        correlation_ratio(a, b)
+    } else {
+        0.0
+    };
+    rho.max(v).max(eta)
+}
+
+/// The correlation ratio eta of `a` grouped by the values of `b` (Pearson 1903; cited from
+/// memory): sqrt(between-group sum of squares / total sum of squares), 1 when `b`'s classes
+/// hold one value of `a` each, whatever order their labels sort in. 0 when `a` is constant.
+pub fn correlation_ratio(a: &[f64], b: &[f64]) -> f64 {
+    let n = a.len().min(b.len());
+    if n == 0 {
+        return 0.0;
+    }
+    let (k, codes) = classes(&b[..n]);
+    let mean = a[..n].iter().sum::<f64>() / n as f64;
+    let (mut sums, mut counts) = (vec![0.0; k], vec![0.0; k]);
+    for (x, &c) in a[..n].iter().zip(&codes) {
+        sums[c] += x;
+        counts[c] += 1.0;
+    }
+    let total: f64 = a[..n].iter().map(|x| (x - mean) * (x - mean)).sum();
+    if total == 0.0 {
+        return 0.0;
+    }
+    let between: f64 = sums
+        .iter()
+        .zip(&counts)
+        .map(|(s, c)| c * (s / c - mean) * (s / c - mean))
+        .sum();
+    (between / total).clamp(0.0, 1.0).sqrt()
 }
 
 /// Whether each value of `a` goes with one value of `b` and each value of `b` with one of `a`.
@@ -519,9 +553,9 @@ mod association_tests {
 
     #[test]
     fn spearman_and_cramer_v_match_scipy() {
-        // tests/reference/association.json: scipy.stats.spearmanr and
-        // scipy.stats.contingency.association(method="cramer", correction=False) (scipy 1.17.1),
-        // written by tests/reference/make_association.py.
+        // tests/reference/association.json: scipy.stats.spearmanr,
+        // scipy.stats.contingency.association(method="cramer", correction=False) and eta from
+        // scipy.stats.f_oneway (scipy 1.17.1), written by tests/reference/make_association.py.
         let text = include_str!("../../tests/reference/association.json");
         let v: serde_json::Value = serde_json::from_str(text).unwrap();
         let col = |x: &serde_json::Value| -> Vec<f64> {
@@ -532,7 +566,7 @@ mod association_tests {
                 .collect()
         };
         let cases = v["cases"].as_array().unwrap();
-        assert_eq!(cases.len(), 8);
+        assert_eq!(cases.len(), 9);
         for c in cases {
             let (a, b) = (col(&c["a"]), col(&c["b"]));
             let rho = spearman(&a, &b).unwrap();
@@ -541,6 +575,13 @@ mod association_tests {
             let cv = cramer_v(&a, &b).unwrap();
             let want = c["cramer_v"].as_f64().unwrap();
             assert!((cv - want).abs() < 1e-12, "{a:?} {b:?}: {cv} vs {want}");
+            if let Some(want) = c.get("eta").and_then(|e| e.as_f64()) {
+                let eta = correlation_ratio(&a, &b);
+                assert!(
+                    (eta - want).abs() < 1e-12,
+                    "{a:?} {b:?}: eta {eta} vs {want}"
+                );
+            }
         }
     }
 
@@ -571,6 +612,14 @@ mod association_tests {
         let per: Vec<f64> = (0..60).map(|i| f64::from((i / 2) * 7 % 30)).collect();
         let outcome: Vec<f64> = (0..60).map(|i| f64::from((i / 2) % 2)).collect();
         assert!(association(&outcome, &per, true) < 0.5);
+        // Three classes cut from 60 values, labelled out of order: eta sees the coarsening.
+        let y: Vec<f64> = (0..60).map(|i| f64::from(i * 17 % 60)).collect();
+        let cut: Vec<f64> = y
+            .iter()
+            .map(|v| [1.0, 2.0, 0.0][(*v / 20.0) as usize])
+            .collect();
+        assert!(association(&y, &cut, true) > 0.9);
+        assert!(association(&y, &cut, false) < 0.8);
         // Between FEW_ROWS and MIN_ROWS: an exact monotone relation counts (a logarithm, a
         // rounded change of units), a loose one does not.
         let few: Vec<f64> = (0..12).map(|i| f64::from(i * 5 % 12) + 1.5).collect();

@@ -1840,15 +1840,31 @@ impl Ledger {
     }
 
     /// The input files fingerprinted with a run: (path as written, SHA-256).
-    /// Whether run `run` came from another ledger (merged from a bundle).
+    /// Whether run `run` came from another ledger (merged from a bundle), or replays one that
+    /// did (a replay repeats the run it replays, command and all).
     pub fn run_merged(&self, run: i64) -> Result<bool> {
-        self.conn
-            .query_row(
-                "SELECT EXISTS (SELECT 1 FROM chain WHERE kind = 'run' AND ref_id = ?1 AND origin IS NOT NULL)",
-                [run],
-                |r| r.get(0),
-            )
-            .map_err(sql_err("read run origin"))
+        let mut at = Some(run);
+        let mut seen = Vec::new();
+        while let Some(id) = at {
+            if seen.contains(&id) {
+                break;
+            }
+            seen.push(id);
+            let (merged, replay_of): (bool, Option<i64>) = self
+                .conn
+                .query_row(
+                    "SELECT EXISTS (SELECT 1 FROM chain WHERE kind = 'run' AND ref_id = ?1 AND origin IS NOT NULL),
+                            (SELECT replay_of FROM runs WHERE id = ?1)",
+                    [id],
+                    |r| Ok((r.get(0)?, r.get(1)?)),
+                )
+                .map_err(sql_err("read run origin"))?;
+            if merged {
+                return Ok(true);
+            }
+            at = replay_of;
+        }
+        Ok(false)
     }
 
     pub fn run_inputs(&self, run: i64) -> Result<Vec<(String, String)>> {

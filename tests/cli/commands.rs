@@ -352,4 +352,15 @@ fn merged_or_changed_commands_run_only_with_consent() {
     assert_eq!(bob.counts(), before);
     // A built-in candidate of the same merged run needs no consent.
     bob.probity(&["reveal", "1", "--yes"]).expect(0);
+    // A replay the user agreed to repeats the merged run; its command still needs consent.
+    // (Alice's model file changed since her run: the replay differs, exit 5, and is stored.)
+    bob.probity(&["replay", "1", "--allow-commands"]).expect(5);
+    let r = bob
+        .probity(&["reveal", "2", "--candidate", &id, "--yes"])
+        .expect(2);
+    assert!(
+        r.stderr().contains("came from another ledger"),
+        "{}",
+        r.stderr()
+    );
 }

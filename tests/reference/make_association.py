@@ -3,7 +3,10 @@
 Writes tests/reference/association.json: for fixed small columns, Spearman's rank correlation
 (scipy.stats.spearmanr, average ranks for ties) and Cramer's V without continuity correction
 (scipy.stats.contingency.association(method="cramer", correction=False)) of their contingency
-table (scipy.stats.contingency.crosstab). The library and its version are recorded in the file.
+table (scipy.stats.contingency.crosstab); and the correlation ratio eta of a grouped by b, from the
+one-way ANOVA F of scipy.stats.f_oneway (eta^2 = F (k - 1) / (F (k - 1) + n - k)), for the cases
+where every group of b holds two rows or more. The library and its version are recorded in the
+file.
 Run: python3 tests/reference/make_association.py (needs scipy and numpy)
 """
 import json
@@ -29,6 +32,9 @@ cases = [
     # Three classes relabelled out of order: ranks disagree, the table does not.
     ([0.0, 1.0, 2.0, 0.0, 1.0, 2.0, 0.0, 1.0, 2.0, 0.0, 1.0, 2.0, 0.0, 1.0, 2.0],
      [2.0, 0.0, 1.0, 2.0, 0.0, 1.0, 2.0, 0.0, 1.0, 2.0, 0.0, 1.0, 2.0, 0.0, 1.0]),
+    # A coarsened copy: twelve values cut into three classes labelled out of order.
+    ([1.2, 3.4, 2.2, 5.1, 4.4, 6.0, 7.5, 8.1, 2.9, 6.6, 9.0, 1.8],
+     [1.0, 1.0, 1.0, 2.0, 2.0, 2.0, 0.0, 0.0, 1.0, 2.0, 0.0, 1.0]),
     # Two classes against three, partly related.
     ([0.0, 0.0, 0.0, 0.0, 0.0, 1.0, 1.0, 1.0, 1.0, 1.0, 0.0, 1.0, 0.0, 1.0, 1.0],
      [0.0, 0.0, 1.0, 0.0, 2.0, 2.0, 1.0, 2.0, 2.0, 1.0, 0.0, 2.0, 1.0, 2.0, 0.0]),
@@ -39,10 +45,20 @@ for a, b in cases:
     rho = stats.spearmanr(a, b).statistic
     _, table = contingency.crosstab(np.array(a), np.array(b))
     v = contingency.association(table, method="cramer", correction=False)
-    out_cases.append({"a": a, "b": b, "spearman": float(rho), "cramer_v": float(v)})
+    case = {"a": a, "b": b, "spearman": float(rho), "cramer_v": float(v)}
+    groups = {}
+    for x, g in zip(a, b):
+        groups.setdefault(g, []).append(x)
+    if len(groups) >= 2 and all(len(g) >= 2 for g in groups.values()):
+        f = stats.f_oneway(*groups.values()).statistic
+        k, n = len(groups), len(a)
+        if np.isfinite(f):
+            case["eta"] = float(np.sqrt(f * (k - 1) / (f * (k - 1) + n - k)))
+    out_cases.append(case)
 out = {
     "source": f"scipy {scipy.__version__} (numpy {np.__version__}): scipy.stats.spearmanr, "
-    "scipy.stats.contingency.crosstab and association(method='cramer', correction=False)",
+    "scipy.stats.contingency.crosstab and association(method='cramer', correction=False), "
+    "scipy.stats.f_oneway (eta)",
     "cases": out_cases,
 }
 path = pathlib.Path(__file__).with_name("association.json")
