@@ -37,6 +37,10 @@ pub struct Args {
     /// Write to this file instead of standard output
     #[arg(long, value_name = "FILE")]
     pub out: Option<PathBuf>,
+    /// CSV: prefix text cells that start with =, +, - or @ with ' so a spreadsheet does not
+    /// run them as formulas (numbers are kept; without it every cell is exact)
+    #[arg(long)]
+    pub spreadsheet_safe: bool,
 }
 
 pub fn run(g: &Global, a: Args) -> Result<i32> {
@@ -76,9 +80,9 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
         });
     }
     let text = match (a.what, a.format) {
-        (What::Runs, Format::Csv) => export::runs_csv(&runs)?,
-        (What::Candidates, Format::Csv) => export::candidates_csv(&runs)?,
-        (What::Folds, Format::Csv) => export::folds_csv(&runs)?,
+        (What::Runs, Format::Csv) => export::runs_csv(&runs, a.spreadsheet_safe)?,
+        (What::Candidates, Format::Csv) => export::candidates_csv(&runs, a.spreadsheet_safe)?,
+        (What::Folds, Format::Csv) => export::folds_csv(&runs, a.spreadsheet_safe)?,
         (what, Format::Json) => {
             let v = match what {
                 What::Runs => export::runs_json(&runs),

@@ -28,6 +28,10 @@ pub struct Args {
     /// its inputs changed (the command and its inputs' hashes are listed first)
     #[arg(long)]
     pub allow_commands: bool,
+    /// Prefix key and class cells that start with =, +, - or @ with ' so a spreadsheet does not
+    /// run them as formulas (numbers are kept; without it every cell is exact)
+    #[arg(long)]
+    pub spreadsheet_safe: bool,
 }
 
 pub fn run(g: &Global, a: Args) -> Result<i32> {
@@ -115,6 +119,7 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
         model.key.as_deref(),
         &pred,
         &model.classes,
+        a.spreadsheet_safe,
     )?;
     eprintln!(
         "wrote {} predictions of run {} candidate {} to {}",
@@ -132,6 +137,7 @@ fn write_predictions(
     key: Option<&str>,
     pred: &[f64],
     classes: &[String],
+    safe: bool,
 ) -> Result<()> {
     let io = |e: std::io::Error| Error::Io {
         action: "cannot write predictions to",
@@ -155,13 +161,23 @@ fn write_predictions(
         for (i, p) in pred.chunks(width).enumerate() {
             let mut rec = Vec::new();
             if let Some(k) = key_col {
-                rec.push(k.text(i));
+                let cell = k.text(i);
+                rec.push(if safe {
+                    crate::report::spreadsheet_safe(&cell).into_owned()
+                } else {
+                    cell
+                });
             }
             if classes.is_empty() {
                 rec.push(format!("{}", p[0]));
             } else {
                 // The predicted class is the most probable, ties to the first class.
-                rec.push(classes[crate::metrics::argmax(p)].clone());
+                let class = &classes[crate::metrics::argmax(p)];
+                rec.push(if safe {
+                    crate::report::spreadsheet_safe(class).into_owned()
+                } else {
+                    class.clone()
+                });
                 rec.extend(p.iter().map(|v| format!("{v}")));
             }
             w.write_record(&rec)

@@ -112,12 +112,21 @@ fn metrics_of(runs: &[RunExport]) -> Vec<&'static str> {
         .collect()
 }
 
-fn csv_text(header: Vec<String>, rows: impl Iterator<Item = Vec<String>>) -> Result<String> {
+fn csv_text(
+    header: Vec<String>,
+    rows: impl Iterator<Item = Vec<String>>,
+    safe: bool,
+) -> Result<String> {
     let mut w = csv::Writer::from_writer(Vec::new());
     let fail = |e: csv::Error| Error::Internal(format!("write CSV: {e}"));
     w.write_record(&header).map_err(fail)?;
     for row in rows {
-        w.write_record(&row).map_err(fail)?;
+        if safe {
+            w.write_record(row.iter().map(|c| super::spreadsheet_safe(c).into_owned()))
+                .map_err(fail)?;
+        } else {
+            w.write_record(&row).map_err(fail)?;
+        }
     }
     let bytes = w
         .into_inner()
@@ -126,10 +135,11 @@ fn csv_text(header: Vec<String>, rows: impl Iterator<Item = Vec<String>>) -> Res
 }
 
 /// One line per run.
-pub fn runs_csv(runs: &[RunExport]) -> Result<String> {
+pub fn runs_csv(runs: &[RunExport], safe: bool) -> Result<String> {
     csv_text(
         RUN_COLUMNS.iter().map(|c| c.to_string()).collect(),
         runs.iter().map(run_cells),
+        safe,
     )
 }
 
@@ -179,7 +189,7 @@ pub fn runs_json(runs: &[RunExport]) -> Value {
 
 /// One line per candidate: its identity, then for each metric present the train and
 /// validation means and standard errors (`validation_rmse`, `validation_rmse_se`, ...).
-pub fn candidates_csv(runs: &[RunExport]) -> Result<String> {
+pub fn candidates_csv(runs: &[RunExport], safe: bool) -> Result<String> {
     let metrics = metrics_of(runs);
     let mut header: Vec<String> = [
         "run",
@@ -228,7 +238,7 @@ pub fn candidates_csv(runs: &[RunExport]) -> Result<String> {
             row
         })
     });
-    csv_text(header, rows)
+    csv_text(header, rows, safe)
 }
 
 pub fn candidates_json(runs: &[RunExport]) -> Value {
@@ -274,7 +284,7 @@ const FOLD_COLUMNS: [&str; 7] = [
 ];
 
 /// One line per stored fold score (long form).
-pub fn folds_csv(runs: &[RunExport]) -> Result<String> {
+pub fn folds_csv(runs: &[RunExport], safe: bool) -> Result<String> {
     let rows = runs.iter().flat_map(|r| {
         let id = r.detail.summary.id;
         r.fold_scores
@@ -291,7 +301,11 @@ pub fn folds_csv(runs: &[RunExport]) -> Result<String> {
                 ]
             })
     });
-    csv_text(FOLD_COLUMNS.iter().map(|c| c.to_string()).collect(), rows)
+    csv_text(
+        FOLD_COLUMNS.iter().map(|c| c.to_string()).collect(),
+        rows,
+        safe,
+    )
 }
 
 pub fn folds_json(runs: &[RunExport]) -> Value {

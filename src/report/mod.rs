@@ -8,6 +8,18 @@ pub mod plot;
 pub mod table;
 
 /// A number with 6 significant digits for tables (JSON always carries the exact value).
+/// A CSV cell a spreadsheet will not run as a formula: a text cell that starts with `=`, `+`,
+/// `-` or `@` gets a leading `'` (numbers such as `-1.5` are left as they are). For
+/// `--spreadsheet-safe`; without it every cell is kept exactly.
+pub fn spreadsheet_safe(cell: &str) -> std::borrow::Cow<'_, str> {
+    let risky = cell.starts_with(['=', '+', '-', '@']);
+    if risky && cell.trim().parse::<f64>().is_err() {
+        std::borrow::Cow::Owned(format!("'{cell}"))
+    } else {
+        std::borrow::Cow::Borrowed(cell)
+    }
+}
+
 pub fn num(v: Option<f64>) -> String {
     match v {
         None => "-".to_string(),
@@ -61,6 +73,19 @@ pub fn params_text(p: &serde_json::Value) -> String {
 
 #[cfg(test)]
 mod tests {
+    #[test]
+    fn formulas_are_defused_and_numbers_kept() {
+        use super::spreadsheet_safe as safe;
+        assert_eq!(safe("=HYPERLINK(\"x\")"), "'=HYPERLINK(\"x\")");
+        assert_eq!(safe("+1+2"), "'+1+2");
+        assert_eq!(safe("-cmd"), "'-cmd");
+        assert_eq!(safe("@SUM(A1)"), "'@SUM(A1)");
+        assert_eq!(safe("-1.5"), "-1.5");
+        assert_eq!(safe("+3e-2"), "+3e-2");
+        assert_eq!(safe("bay 4"), "bay 4");
+        assert_eq!(safe(""), "");
+    }
+
     use super::*;
 
     #[test]

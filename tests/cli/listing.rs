@@ -298,3 +298,46 @@ fn compare_table_matches_golden() {
         .collect();
     crate::util::check_golden("small-compare.txt", &table);
 }
+
+/// Cells are exact by default; `--spreadsheet-safe` defuses text that a spreadsheet would run as
+/// a formula (a note `=2+3`, a key `@SUM`) and leaves numbers alone.
+#[test]
+fn spreadsheet_safe_output_defuses_formulas_and_keeps_numbers() {
+    let d = crate::fixtures::small_dir("sheet-safe");
+    d.probity(&["run", "small.toml", "--note", "=2+3"])
+        .expect(0);
+    let exact = d.probity(&["export", "runs"]).expect(0).stdout();
+    assert!(exact.contains(",=2+3"), "{exact}");
+    let safe = d
+        .probity(&["export", "runs", "--spreadsheet-safe"])
+        .expect(0)
+        .stdout();
+    assert!(safe.contains("'=2+3") && !safe.contains(",=2+3"), "{safe}");
+    // Numbers are kept: the same count of minus signs outside the defused cell.
+    assert_eq!(
+        exact.matches(",-").count(),
+        safe.matches(",-").count(),
+        "{exact}\n{safe}"
+    );
+    // Predictions: the demo's bays, next week's first record keyed like a formula.
+    let ex = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("experiments");
+    for f in ["bays.csv", "bay-yield.toml"] {
+        d.copy(&ex.join(f), f);
+    }
+    let next = std::fs::read_to_string(ex.join("bays-next-week.csv")).unwrap();
+    let mut lines: Vec<String> = next.lines().map(str::to_string).collect();
+    let first = lines[1].split_once(',').unwrap().1.to_string();
+    lines[1] = format!("@SUM(A1),{first}");
+    d.write("next.csv", &(lines.join("\n") + "\n"));
+    d.probity(&["run", "bay-yield.toml"]).expect(0);
+    for (flag, cell) in [
+        (None, "\n@SUM(A1),"),
+        (Some("--spreadsheet-safe"), "\n'@SUM(A1),"),
+    ] {
+        let mut args = vec!["predict", "2", "--input", "next.csv", "--output", "p.csv"];
+        args.extend(flag);
+        d.probity(&args).expect(0);
+        let p = std::fs::read_to_string(d.path.join("p.csv")).unwrap();
+        assert!(p.contains(cell), "{flag:?}: {p}");
+    }
+}
