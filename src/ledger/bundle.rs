@@ -10,6 +10,11 @@ use serde_json::{Value, json};
 
 pub const FORMAT: &str = "probity-bundle-1";
 
+/// The longest text value a bundle may bring (a spec, a warning, a setting), in bytes: far
+/// above anything probity writes, far below what would strain the receiver. Notes have their
+/// own, smaller limit (`NOTE_MAX_BYTES`).
+pub const TEXT_MAX_BYTES: usize = 1 << 20;
+
 fn encode(v: &Sql) -> Value {
     match v {
         Sql::Null => Value::Null,
@@ -158,6 +163,24 @@ impl Ledger {
             // Every section's columns are the schema's own, in order: values are stored under
             // the names they were hashed beside, and no name from a bundle reaches SQL.
             for ((name, rows), cols) in sections.iter().zip(&columns) {
+                for row in rows {
+                    for (c, v) in cols.iter().zip(row) {
+                        let limit = if name == "notes" && c == "text" {
+                            super::NOTE_MAX_BYTES
+                        } else {
+                            TEXT_MAX_BYTES
+                        };
+                        if let Sql::Text(t) = v
+                            && t.len() > limit
+                        {
+                            return Err(Error::Input(format!(
+                                "bundle entry {} ({kind}): a {name}.{c} text of {} bytes, more than the {limit} a ledger keeps; nothing was merged",
+                                i + 1,
+                                t.len()
+                            )));
+                        }
+                    }
+                }
                 let schema = self.section_columns(&kind, name)?;
                 if *cols != schema || rows.iter().any(|r| r.len() != schema.len()) {
                     return Err(Error::Input(format!(

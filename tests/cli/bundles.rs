@@ -179,3 +179,31 @@ fn rows_that_break_the_schema_are_an_integrity_failure() {
         &["does not fit this ledger", "nothing was merged"],
     );
 }
+
+/// Text beyond what a ledger keeps (a 17 KiB note, a 2 MiB spec) is refused (exit 2) before
+/// anything is written, however consistent the bundle's hashes.
+#[test]
+fn oversized_text_in_a_bundle_is_refused() {
+    let (bob, honest) = alice_and_bob("bundle-sizes");
+    let mut long_note = honest.clone();
+    section(&mut long_note, "note", "notes")["rows"][0][4] = json!("x".repeat(17 * 1024));
+    rehash(&mut long_note);
+    refused(
+        &bob,
+        &long_note,
+        2,
+        &["notes.text text of 17408 bytes", "16384"],
+    );
+    let mut long_spec = honest.clone();
+    let runs = section(&mut long_spec, "run", "runs");
+    let cols: Vec<String> = serde_json::from_value(runs["columns"].clone()).unwrap();
+    let at = cols.iter().position(|c| c == "spec_text").unwrap();
+    runs["rows"][0][at] = json!("#".repeat(2 << 20));
+    rehash(&mut long_spec);
+    refused(
+        &bob,
+        &long_spec,
+        2,
+        &["runs.spec_text text of 2097152 bytes"],
+    );
+}
