@@ -18,11 +18,51 @@ pub struct Loc {
 impl Loc {
     /// Line and column of a byte offset in `text`.
     pub fn of_offset(text: &str, offset: usize) -> Loc {
-        let offset = offset.min(text.len());
-        let before = &text[..offset];
-        let line = before.matches('\n').count() + 1;
-        let line_start = before.rfind('\n').map(|i| i + 1).unwrap_or(0);
-        let col = before[line_start..].chars().count() + 1;
+        Lines::new(text).loc(offset)
+    }
+}
+
+/// Line starts of a text, so that many positions cost a binary search each rather than a
+/// scan from the start.
+pub struct Lines<'a> {
+    text: &'a str,
+    starts: Vec<usize>,
+    // The last column asked for (line start, offset, column): columns asked in increasing
+    // order along one long line are counted on from there.
+    last: std::cell::Cell<(usize, usize, usize)>,
+}
+
+impl<'a> Lines<'a> {
+    pub fn new(text: &'a str) -> Lines<'a> {
+        let mut starts = vec![0];
+        starts.extend(
+            text.bytes()
+                .enumerate()
+                .filter(|(_, b)| *b == b'\n')
+                .map(|(i, _)| i + 1),
+        );
+        Lines {
+            text,
+            starts,
+            last: std::cell::Cell::new((0, 0, 1)),
+        }
+    }
+
+    /// Line and column of a byte offset (one past the text's end at most).
+    pub fn loc(&self, offset: usize) -> Loc {
+        let mut offset = offset.min(self.text.len());
+        while !self.text.is_char_boundary(offset) {
+            offset -= 1;
+        }
+        let line = self.starts.partition_point(|&s| s <= offset);
+        let start = self.starts[line - 1];
+        let (l_start, l_off, l_col) = self.last.get();
+        let col = if l_start == start && l_off <= offset {
+            l_col + self.text[l_off..offset].chars().count()
+        } else {
+            self.text[start..offset].chars().count() + 1
+        };
+        self.last.set((start, offset, col));
         Loc { line, col }
     }
 }
@@ -181,6 +221,27 @@ mod tests {
         assert_eq!(Loc::of_offset(t, 0), Loc { line: 1, col: 1 });
         assert_eq!(Loc::of_offset(t, 6), Loc { line: 2, col: 1 });
         assert_eq!(Loc::of_offset(t, 9), Loc { line: 2, col: 4 });
+    }
+
+    #[test]
+    fn indexed_positions_match_a_scan_in_any_order() {
+        // Columns count characters, not bytes; offsets are asked out of order as well.
+        let t = "naïve = \"ü\"\n\nkey = 'é' # ß\nlast";
+        let scan = |offset: usize| {
+            let before = &t[..offset];
+            let line = before.matches('\n').count() + 1;
+            let start = before.rfind('\n').map(|i| i + 1).unwrap_or(0);
+            Loc {
+                line,
+                col: before[start..].chars().count() + 1,
+            }
+        };
+        let lines = Lines::new(t);
+        let offsets: Vec<usize> = (0..=t.len()).filter(|&o| t.is_char_boundary(o)).collect();
+        for &o in offsets.iter().chain(offsets.iter().rev()).chain(offsets.iter().step_by(3)) {
+            assert_eq!(lines.loc(o), scan(o), "offset {o}");
+        }
+        assert_eq!(lines.loc(t.len() + 10), scan(t.len()));
     }
 
     #[test]

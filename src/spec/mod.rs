@@ -386,9 +386,11 @@ pub struct CommandSpec {
     pub timeout: u64,
 }
 
+/// What makes two `[[model]]` entries the same: family, standardisation and grid, with the
+/// same equality as `==` on them (values by `ParamValue::key`).
+type RepeatKey = (&'static str, bool, Vec<(String, Vec<(u8, u64, String)>)>);
+
 impl ModelSpec {
-    /// The grid's product in a stable order: parameters by name, the last varying fastest,
-    /// values in the order written.
     /// How many candidates `expand` gives, without expanding (saturating).
     pub fn count(&self) -> u64 {
         self.grid
@@ -396,6 +398,17 @@ impl ModelSpec {
             .fold(1u64, |n, (_, v)| n.saturating_mul(v.len() as u64))
     }
 
+    fn repeat_key(&self) -> RepeatKey {
+        let grid = self
+            .grid
+            .iter()
+            .map(|(name, values)| (name.clone(), values.iter().map(ParamValue::key).collect()))
+            .collect();
+        (self.family.name(), self.standardize, grid)
+    }
+
+    /// The grid's product in a stable order: parameters by name, the last varying fastest,
+    /// values in the order written.
     pub fn expand(&self) -> Vec<Vec<(String, ParamValue)>> {
         let mut out: Vec<Vec<(String, ParamValue)>> = vec![Vec::new()];
         for (name, values) in &self.grid {
@@ -429,6 +442,9 @@ pub struct Spec {
     pub text: String,
 }
 
+/// The largest spec file read. Parsing holds several times the text in memory.
+pub const SPEC_MAX_BYTES: u64 = 16 << 20;
+
 /// Read and validate a spec file.
 pub fn load(path: &Path) -> Result<Spec> {
     if let Some(kind) = crate::files::not_regular(path) {
@@ -438,11 +454,25 @@ pub fn load(path: &Path) -> Result<Spec> {
             format!("is {kind}, not a spec file; pass the path of a .toml spec"),
         ));
     }
-    let text = std::fs::read_to_string(path).map_err(|e| Error::Io {
+    let io = |e| Error::Io {
         action: "cannot read spec",
         path: path.to_path_buf(),
         source: e,
-    })?;
+    };
+    let mut text = String::new();
+    // Read at most one byte past the limit, so that a huge file is refused without being held.
+    std::io::Read::read_to_string(
+        &mut std::io::Read::take(std::fs::File::open(path).map_err(io)?, SPEC_MAX_BYTES + 1),
+        &mut text,
+    )
+    .map_err(io)?;
+    if text.len() as u64 > SPEC_MAX_BYTES {
+        return Err(Error::spec(
+            path,
+            None,
+            format!("is over {} MiB, more than a spec may be; a grid is written as lists and ranges in a few [[model]] tables, not one table per candidate", SPEC_MAX_BYTES >> 20),
+        ));
+    }
     let base = path.parent().map(Path::to_path_buf).unwrap_or_default();
     parse(&text, path, &base)
 }
@@ -452,10 +482,7 @@ pub fn load(path: &Path) -> Result<Spec> {
 /// when the text or its `[guard]` does not read.
 pub fn stored_guard(text: &str) -> Option<GuardSpec> {
     let raw: RawSpec = toml::from_str(text).ok()?;
-    let check = Check {
-        text,
-        file: Path::new(""),
-    };
+    let check = Check::new(text, Path::new(""));
     let task = match raw.task.as_ref().map(|t| t.get_ref().as_str()) {
         Some("classification") => Task::Classification,
         _ => Task::Regression,
@@ -473,7 +500,7 @@ pub fn stored_target(text: &str) -> Option<String> {
 /// Validate spec text. `file` names it in errors; `base` resolves the data path.
 pub fn parse(text: &str, file: &Path, base: &Path) -> Result<Spec> {
     let raw: RawSpec = toml::from_str(text).map_err(|e| toml_error(text, file, &e))?;
-    Check { text, file }.spec(raw, base)
+    Check::new(text, file).spec(raw, base)
 }
 
 fn toml_error(text: &str, file: &Path, e: &toml::de::Error) -> Error {
@@ -498,11 +525,21 @@ fn toml_error(text: &str, file: &Path, e: &toml::de::Error) -> Error {
 struct Check<'a> {
     text: &'a str,
     file: &'a Path,
+    // Positions are asked for every table and key, so they come from an index built once:
+    // a spec of many [[model]] tables stays linear.
+    lines: crate::error::Lines<'a>,
 }
 
-impl Check<'_> {
+impl<'a> Check<'a> {
+    fn new(text: &'a str, file: &'a Path) -> Check<'a> {
+        Check {
+            text,
+            file,
+            lines: crate::error::Lines::new(text),
+        }
+    }
     fn loc<T>(&self, s: &Spanned<T>) -> Loc {
-        Loc::of_offset(self.text, s.span().start)
+        self.lines.loc(s.span().start)
     }
     fn err<T>(&self, at: &Spanned<T>, msg: impl Into<String>) -> Error {
         Error::spec(self.file, Some(self.loc(at)), msg)
@@ -580,6 +617,7 @@ impl Check<'_> {
             return Err(self.top("no [[model]] table: add at least one, for example [[model]] kind = \"ridge\" lambda = [0.1, 1, 10]"));
         }
         let mut models: Vec<ModelSpec> = Vec::new();
+        let mut seen: std::collections::BTreeMap<RepeatKey, usize> = Default::default();
         // Candidates counted before any grid is expanded: a few long lists multiply.
         let mut candidates: u64 = 0;
         for m in &raw.model {
@@ -612,15 +650,14 @@ impl Check<'_> {
                     ),
                 ));
             }
-            if let Some(prev) = models.iter().find(|p| {
-                p.family == ms.family && p.grid == ms.grid && p.standardize == ms.standardize
-            }) {
+            // Looked up by key, not by scanning the earlier entries: a spec of many tables
+            // stays linear.
+            if let Some(line) = seen.insert(ms.repeat_key(), ms.loc.line) {
                 return Err(self.err(
                     m,
                     format!(
-                        "this [[model]] repeats the {} entry at line {}; remove one",
+                        "this [[model]] repeats the {} entry at line {line}; remove one",
                         ms.family.name(),
-                        prev.loc.line
                     ),
                 ));
             }

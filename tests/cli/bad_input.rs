@@ -501,6 +501,35 @@ fn a_grid_over_the_candidate_limit_is_refused_before_it_is_expanded() {
     );
 }
 
+/// Positions and repeats are looked up, not rescanned: 50,000 [[model]] tables (half a minute
+/// and more when every position was counted from the top) are checked at once, and a repeat of
+/// the first table at the very end is named with both lines. A spec over 16 MiB is refused
+/// before it is parsed.
+#[test]
+fn a_spec_of_many_model_tables_is_checked_in_linear_time() {
+    let d = with_ledger("many-tables");
+    let mut toml = SMALL_SPEC.replace("[split]", "[select]\nmax_candidates = 1000000\n\n[split]");
+    let first = toml.lines().count() + 2;
+    for i in 0..50_000 {
+        toml.push_str(&format!("\n[[model]]\nkind = \"ridge\"\nlambda = [{i}.5]\n"));
+    }
+    toml.push_str("\n[[model]]\nkind = \"ridge\"\nlambda = [0.5]\n");
+    let last = toml.lines().count() - 2;
+    d.write("many.toml", &toml);
+    let r = d.probity_within(&["check", "many.toml"], 60);
+    assert_eq!(r.code(), 2, "{}", r.stderr());
+    assert!(
+        r.stderr().contains(&format!("many.toml:{last}:1"))
+            && r.stderr().contains(&format!("repeats the ridge entry at line {first}")),
+        "{}",
+        r.stderr()
+    );
+    let mut huge = SMALL_SPEC.to_string();
+    huge.push_str(&format!("# {}\n", "x".repeat(17 << 20)));
+    d.write("huge.toml", &huge);
+    refused(&d, &["check", "huge.toml"], &["huge.toml", "over 16 MiB"]);
+}
+
 /// A family whose matrices grow with the columns squared is refused before it allocates them
 /// when one fit needs more memory than is available (`--memory` here, so the case does not
 /// depend on this machine), naming the [[model]] and both sizes; k-nearest neighbours on the
