@@ -238,7 +238,11 @@ mod tests {
         };
         let lines = Lines::new(t);
         let offsets: Vec<usize> = (0..=t.len()).filter(|&o| t.is_char_boundary(o)).collect();
-        for &o in offsets.iter().chain(offsets.iter().rev()).chain(offsets.iter().step_by(3)) {
+        for &o in offsets
+            .iter()
+            .chain(offsets.iter().rev())
+            .chain(offsets.iter().step_by(3))
+        {
             assert_eq!(lines.loc(o), scan(o), "offset {o}");
         }
         assert_eq!(lines.loc(t.len() + 10), scan(t.len()));

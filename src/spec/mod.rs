@@ -470,7 +470,10 @@ pub fn load(path: &Path) -> Result<Spec> {
         return Err(Error::spec(
             path,
             None,
-            format!("is over {} MiB, more than a spec may be; a grid is written as lists and ranges in a few [[model]] tables, not one table per candidate", SPEC_MAX_BYTES >> 20),
+            format!(
+                "is over {} MiB, more than a spec may be; a grid is written as lists and ranges in a few [[model]] tables, not one table per candidate",
+                SPEC_MAX_BYTES >> 20
+            ),
         ));
     }
     let base = path.parent().map(Path::to_path_buf).unwrap_or_default();

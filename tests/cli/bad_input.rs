@@ -511,7 +511,9 @@ fn a_spec_of_many_model_tables_is_checked_in_linear_time() {
     let mut toml = SMALL_SPEC.replace("[split]", "[select]\nmax_candidates = 1000000\n\n[split]");
     let first = toml.lines().count() + 2;
     for i in 0..50_000 {
-        toml.push_str(&format!("\n[[model]]\nkind = \"ridge\"\nlambda = [{i}.5]\n"));
+        toml.push_str(&format!(
+            "\n[[model]]\nkind = \"ridge\"\nlambda = [{i}.5]\n"
+        ));
     }
     toml.push_str("\n[[model]]\nkind = \"ridge\"\nlambda = [0.5]\n");
     let last = toml.lines().count() - 2;
@@ -520,7 +522,8 @@ fn a_spec_of_many_model_tables_is_checked_in_linear_time() {
     assert_eq!(r.code(), 2, "{}", r.stderr());
     assert!(
         r.stderr().contains(&format!("many.toml:{last}:1"))
-            && r.stderr().contains(&format!("repeats the ridge entry at line {first}")),
+            && r.stderr()
+                .contains(&format!("repeats the ridge entry at line {first}")),
         "{}",
         r.stderr()
     );
