@@ -328,6 +328,11 @@ fn reveals_at_once(d: &Dir, n: usize, extra: &[&str]) -> Vec<Value> {
 
 #[test]
 fn simultaneous_reveals_in_count_mode_each_print_their_true_position() {
+    if !crate::util::pauses_compiled(
+        "simultaneous_reveals_in_count_mode_each_print_their_true_position",
+    ) {
+        return;
+    }
     let d = diabetes(
         "race-count",
         &[(
@@ -355,6 +360,9 @@ fn simultaneous_reveals_in_count_mode_each_print_their_true_position() {
 
 #[test]
 fn simultaneous_reveals_in_ladder_mode_see_each_other() {
+    if !crate::util::pauses_compiled("simultaneous_reveals_in_ladder_mode_see_each_other") {
+        return;
+    }
     let d = diabetes(
         "race-ladder",
         &[(
@@ -395,6 +403,11 @@ fn reusable_dir(name: &str) -> Dir {
 
 #[test]
 fn simultaneous_reveals_in_reusable_mode_get_one_answer_per_budget_unit() {
+    if !crate::util::pauses_compiled(
+        "simultaneous_reveals_in_reusable_mode_get_one_answer_per_budget_unit",
+    ) {
+        return;
+    }
     let d = reusable_dir("race-reusable");
     d.probity(&["run", "r.toml"]).expect(0);
     let docs = reveals_at_once(&d, 2, &[]);
@@ -1032,6 +1045,9 @@ fn another_partition_over_the_same_test_rows_is_counted_and_cannot_undo_a_mechan
 /// inside its transaction's view.
 #[test]
 fn a_partition_stored_during_a_reveal_is_counted_by_it() {
+    if !crate::util::pauses_compiled("a_partition_stored_during_a_reveal_is_counted_by_it") {
+        return;
+    }
     let split = "method = \"random\"\nseed = 7\ntest = 0.2\nfolds = 5";
     let d = diabetes(
         "partner-race",
@@ -1370,6 +1386,9 @@ fn unrelated_files_that_share_key_numbers_are_not_confused() {
 /// followed them.
 #[test]
 fn rules_cannot_change_after_a_reveal_followed_them() {
+    if !crate::util::pauses_compiled("rules_cannot_change_after_a_reveal_followed_them") {
+        return;
+    }
     let split = "method = \"random\"\nseed = 7\ntest = 0.2\nfolds = 5";
     let d = diabetes(
         "seal-order",

@@ -143,3 +143,13 @@ pub fn check_golden(name: &str, actual: &str) {
         path.display()
     );
 }
+
+/// Whether the binary under test has its pause points (`src/failpoint.rs`: a debug build with
+/// the test hooks). `cargo test --release` builds none, so the tests that stop a process at one
+/// say that they were skipped and return.
+pub fn pauses_compiled(test: &str) -> bool {
+    if !probity::failpoint::COMPILED {
+        eprintln!("{test}: skipped, this build has no pause points (a release build)");
+    }
+    probity::failpoint::COMPILED
+}
