@@ -43,7 +43,12 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
     };
     let d = super::stored_run(&ledger, a.run)?;
     let stored: StoredModel = serde_json::from_str(&d.model_json)
-        .map_err(|e| Error::Internal(format!("stored model of run {}: {e}", a.run)))?;
+        .map_err(|e| {
+            Error::Integrity(format!(
+                "the stored model of run {} does not read ({e}): the run's record was altered; `probity audit --verify` checks the ledger",
+                a.run
+            ))
+        })?;
     // Whether the user has been asked about the run's command already (a refit runs it).
     let mut consented = false;
     let model = match a.candidate {
@@ -151,7 +156,11 @@ fn write_predictions(
         let mut w = csv::Writer::from_path(&tmp).map_err(|e| io(std::io::Error::other(e)))?;
         let mut header = Vec::new();
         if let Some(k) = key_col {
-            header.push(k.name.clone());
+            header.push(if safe {
+                crate::report::spreadsheet_safe(&k.name).into_owned()
+            } else {
+                k.name.clone()
+            });
         }
         header.push("prediction".to_string());
         header.extend(classes.iter().map(|c| format!("p_{c}")));

@@ -108,9 +108,11 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
         .unwrap_or(crate::data::Identity::CURRENT);
     let prep = crate::runner::prepare(&spec, &table, identity)?;
     if prep.partition_id != d.summary.partition_id {
-        return Err(Error::Internal(format!(
-            "rebuilt partition {} differs from the stored {}",
-            prep.partition_id, d.summary.partition_id
+        // The data's hash and the stored spec were checked: only an altered record (edited,
+        // or merged from a forged bundle) can name another partition than they give.
+        return Err(Error::Integrity(format!(
+            "run {} is stored over partition {}, but its spec and data give partition {}: the run's record was altered (edited, or merged from a forged bundle); `probity audit --verify` checks the ledger",
+            a.run, d.summary.partition_id, prep.partition_id
         )));
     }
     if prep.sealed.count(crate::split::Part::Test) == 0 {

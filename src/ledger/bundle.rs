@@ -121,6 +121,13 @@ impl Ledger {
         for (i, e) in entries.iter().enumerate() {
             let bad = || Error::Integrity(format!("bundle entry {} is malformed", i + 1));
             let kind = e["kind"].as_str().ok_or_else(bad)?.to_string();
+            if !super::chain::KINDS.contains(&kind.as_str()) {
+                return Err(Error::Integrity(format!(
+                    "bundle entry {} is of kind {kind:?}, not one of {}: it was not packed by this version of probity, or it was edited; nothing was merged",
+                    i + 1,
+                    super::chain::KINDS.join(", ")
+                )));
+            }
             let prev = e["prev_hash"].as_str().ok_or_else(bad)?.to_string();
             let claimed = e["entry_hash"].as_str().ok_or_else(bad)?.to_string();
             let mut sections: Sections = Vec::new();
@@ -189,6 +196,18 @@ impl Ledger {
                         cols.join(", "),
                         schema.join(", ")
                     )));
+                }
+            }
+            for ((name, rows), cols) in sections.iter().zip(&columns) {
+                for row in rows {
+                    for (c, v) in cols.iter().zip(row) {
+                        if let Some(why) = unreadable(name, c, v) {
+                            return Err(Error::Integrity(format!(
+                                "bundle entry {} ({kind}): its {name}.{c} {why}; it was not packed by probity, or it was edited; nothing was merged",
+                                i + 1
+                            )));
+                        }
+                    }
                 }
             }
             let computed = entry_hash(&prev, &sections);
@@ -349,6 +368,42 @@ impl Ledger {
             )));
         }
         Ok(())
+    }
+}
+
+/// Why a bundled value could not be read back later as the ledger reads that column (the
+/// columns that hold JSON or a spec), or `None`. A forged value that hashes cleanly would
+/// otherwise be stored and fail only when a later command reads it.
+fn unreadable(section: &str, column: &str, v: &Sql) -> Option<String> {
+    let json = matches!(
+        (section, column),
+        ("partitions", "settings")
+            | ("candidates", "params")
+            | ("reveals", "mechanism" | "optimism")
+            | ("nested", "selections")
+            | ("replays", "differences")
+            | ("run_identities", "recipe")
+    );
+    let text = match v {
+        Sql::Text(t) => t,
+        _ if json || matches!((section, column), ("runs", "model_json" | "spec_text")) => {
+            return Some("is not text".into());
+        }
+        _ => return None,
+    };
+    if json {
+        return serde_json::from_str::<Value>(text)
+            .err()
+            .map(|e| format!("is not JSON ({e})"));
+    }
+    match (section, column) {
+        ("runs", "model_json") => serde_json::from_str::<crate::runner::StoredModel>(text)
+            .err()
+            .map(|e| format!("is not a stored model ({e})")),
+        ("runs", "spec_text") => toml::from_str::<toml::Table>(text)
+            .err()
+            .map(|e| format!("is not TOML ({})", e.message().trim())),
+        _ => None,
     }
 }
 

@@ -18,6 +18,9 @@ pub const GENESIS: &str = "00000000000000000000000000000000000000000000000000000
 /// An entry's content: (section name, rows).
 pub type Sections = Vec<(String, Vec<Vec<Sql>>)>;
 
+/// The kinds of chained entries.
+pub const KINDS: [&str; 3] = ["run", "reveal", "note"];
+
 /// The queries that make up each kind of entry, in order; `?1` is the entry's id.
 pub fn section_queries(kind: &str) -> &'static [(&'static str, &'static str)] {
     match kind {

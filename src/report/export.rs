@@ -119,7 +119,16 @@ fn csv_text(
 ) -> Result<String> {
     let mut w = csv::Writer::from_writer(Vec::new());
     let fail = |e: csv::Error| Error::Internal(format!("write CSV: {e}"));
-    w.write_record(&header).map_err(fail)?;
+    if safe {
+        w.write_record(
+            header
+                .iter()
+                .map(|c| super::spreadsheet_safe(c).into_owned()),
+        )
+        .map_err(fail)?;
+    } else {
+        w.write_record(&header).map_err(fail)?;
+    }
     for row in rows {
         if safe {
             w.write_record(row.iter().map(|c| super::spreadsheet_safe(c).into_owned()))

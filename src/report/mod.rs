@@ -7,12 +7,12 @@ pub mod json;
 pub mod plot;
 pub mod table;
 
-/// A number with 6 significant digits for tables (JSON always carries the exact value).
 /// A CSV cell a spreadsheet will not run as a formula: a text cell that starts with `=`, `+`,
-/// `-` or `@` gets a leading `'` (numbers such as `-1.5` are left as they are). For
-/// `--spreadsheet-safe`; without it every cell is kept exactly.
+/// `-`, `@`, a tab or a carriage return gets a leading `'` (numbers such as `-1.5` are left as
+/// they are). The characters are those OWASP's "CSV Injection" page lists (from memory). For
+/// `--spreadsheet-safe`, on header cells too; without it every cell is kept exactly.
 pub fn spreadsheet_safe(cell: &str) -> std::borrow::Cow<'_, str> {
-    let risky = cell.starts_with(['=', '+', '-', '@']);
+    let risky = cell.starts_with(['=', '+', '-', '@', '\t', '\r']);
     if risky && cell.trim().parse::<f64>().is_err() {
         std::borrow::Cow::Owned(format!("'{cell}"))
     } else {
@@ -20,6 +20,7 @@ pub fn spreadsheet_safe(cell: &str) -> std::borrow::Cow<'_, str> {
     }
 }
 
+/// A number with 6 significant digits for tables (JSON always carries the exact value).
 pub fn num(v: Option<f64>) -> String {
     match v {
         None => "-".to_string(),
@@ -82,6 +83,8 @@ mod tests {
         assert_eq!(safe("@SUM(A1)"), "'@SUM(A1)");
         assert_eq!(safe("-1.5"), "-1.5");
         assert_eq!(safe("+3e-2"), "+3e-2");
+        assert_eq!(safe("\t=1+1"), "'\t=1+1");
+        assert_eq!(safe("\r=1+1"), "'\r=1+1");
         assert_eq!(safe("bay 4"), "bay 4");
         assert_eq!(safe(""), "");
     }

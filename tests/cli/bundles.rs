@@ -207,3 +207,107 @@ fn oversized_text_in_a_bundle_is_refused() {
         &["runs.spec_text text of 2097152 bytes"],
     );
 }
+
+/// Replace every string `from` in the bundle by `to` (an id under all the names it is stored).
+fn replace_text(v: &mut Value, from: &str, to: &str) {
+    match v {
+        Value::String(s) if s == from => *s = to.to_string(),
+        Value::Array(a) => a.iter_mut().for_each(|x| replace_text(x, from, to)),
+        Value::Object(o) => o.values_mut().for_each(|x| replace_text(x, from, to)),
+        _ => {}
+    }
+}
+
+/// An entry of a kind the ledger does not chain is refused at once (exit 4), not left to a
+/// constraint of the schema (which exited 1).
+#[test]
+fn an_entry_of_an_unknown_kind_is_refused() {
+    let (bob, mut forged) = alice_and_bob("bundle-kind");
+    let note = forged["entries"]
+        .as_array_mut()
+        .unwrap()
+        .iter_mut()
+        .find(|e| e["kind"] == "note")
+        .unwrap();
+    note["kind"] = json!("memo");
+    note["sections"] = json!([]);
+    rehash(&mut forged);
+    refused(
+        &bob,
+        &forged,
+        4,
+        &["of kind \"memo\"", "nothing was merged"],
+    );
+}
+
+/// Values that hash cleanly but that the ledger could not read back later (a stored model
+/// that is not one, split settings that are not JSON, a spec that is not TOML) are refused at
+/// the merge (exit 4), not stored to fail a later `predict` with exit 1.
+#[test]
+fn values_the_ledger_could_not_read_back_are_refused() {
+    let (bob, honest) = alice_and_bob("bundle-content");
+    let cases: [(&str, &str, Value, &str); 4] = [
+        (
+            "runs",
+            "model_json",
+            json!("{not json"),
+            "runs.model_json is not a stored model",
+        ),
+        (
+            "runs",
+            "model_json",
+            json!("{\"candidate\": 1}"),
+            "runs.model_json is not a stored model",
+        ),
+        (
+            "runs",
+            "spec_text",
+            json!("name = = 1"),
+            "runs.spec_text is not TOML",
+        ),
+        (
+            "partitions",
+            "settings",
+            json!("{]"),
+            "partitions.settings is not JSON",
+        ),
+    ];
+    for (name, column, value, fragment) in cases {
+        let mut forged = honest.clone();
+        let s = section(&mut forged, "run", name);
+        let cols: Vec<String> = serde_json::from_value(s["columns"].clone()).unwrap();
+        let at = cols.iter().position(|c| c == column).unwrap();
+        s["rows"][0][at] = value;
+        rehash(&mut forged);
+        refused(&bob, &forged, 4, &[fragment, "nothing was merged"]);
+    }
+}
+
+/// A run moved under another partition id (every place the id is stored, re-hashed) merges,
+/// since the receiver cannot rebuild a partition without the data; `reveal` rebuilds it from
+/// the spec and the data and refuses the altered record with exit 4 (it was exit 1), and
+/// nothing is counted.
+#[test]
+fn a_run_under_a_forged_partition_id_is_refused_at_reveal() {
+    let (bob, mut forged) = alice_and_bob("bundle-partition-id");
+    let id = section(&mut forged, "run", "runs");
+    let cols: Vec<String> = serde_json::from_value(id["columns"].clone()).unwrap();
+    let at = cols.iter().position(|c| c == "partition_id").unwrap();
+    let old = id["rows"][0][at].as_str().unwrap().to_string();
+    replace_text(&mut forged, &old, "0123456789abcdef");
+    rehash(&mut forged);
+    bob.write("b.json", &forged.to_string());
+    bob.probity(&["merge", "b.json"]).expect(0);
+    let before = bob.counts();
+    let r = bob
+        .probity(&["reveal", "2", "--yes", "--data", "small.csv"])
+        .expect(4);
+    assert!(
+        r.stderr()
+            .contains("stored over partition 0123456789abcdef")
+            && r.stderr().contains("record was altered"),
+        "{}",
+        r.stderr()
+    );
+    assert_eq!(bob.counts(), before, "nothing is counted");
+}

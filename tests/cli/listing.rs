@@ -340,4 +340,36 @@ fn spreadsheet_safe_output_defuses_formulas_and_keeps_numbers() {
         let p = std::fs::read_to_string(d.path.join("p.csv")).unwrap();
         assert!(p.contains(cell), "{flag:?}: {p}");
     }
+    // The header too (a key column named like a formula). A cell led by a tab reaches the
+    // output without it (the reader trims cells), and is defused as `=...`.
+    let spec = std::fs::read_to_string(ex.join("bay-yield.toml"))
+        .unwrap()
+        .replace("key = \"record\"", "key = \"-record\"")
+        .lines()
+        .filter(|l| !l.starts_with("sha256"))
+        .collect::<Vec<_>>()
+        .join("\n");
+    d.write("odd.toml", &spec);
+    let bays = std::fs::read_to_string(ex.join("bays.csv")).unwrap();
+    let (head, rest) = bays.split_once('\n').unwrap();
+    d.write(
+        "bays.csv",
+        &format!("{}\n{rest}", head.replace("record", "-record")),
+    );
+    lines[0] = lines[0].replace("record", "-record");
+    lines[1] = format!("\"\t=1+1\",{first}");
+    d.write("next.csv", &(lines.join("\n") + "\n"));
+    d.probity(&["run", "odd.toml"]).expect(0);
+    d.probity(&[
+        "predict",
+        "3",
+        "--input",
+        "next.csv",
+        "--output",
+        "p.csv",
+        "--spreadsheet-safe",
+    ])
+    .expect(0);
+    let p = std::fs::read_to_string(d.path.join("p.csv")).unwrap();
+    assert!(p.starts_with("'-record,prediction\n'=1+1,"), "{p}");
 }
