@@ -1595,6 +1595,15 @@ pub fn run_recording(
     } = after?;
     prep.ids = keys?;
     let mut warnings = prep.warnings.clone();
+    for e in &entries {
+        if let Some(w) = e
+            .command
+            .as_ref()
+            .and_then(|c| crate::external::sandbox::warning(c, e.loc.line))
+        {
+            warnings.push(w);
+        }
+    }
     for c in candidates.iter().filter(|c| c.failure.is_some()) {
         warnings.push(format!(
             "candidate {} ({} {}) failed on {}",

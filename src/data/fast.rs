@@ -91,6 +91,7 @@ pub(super) fn load_hashing(
         columns: assemble(headers, nums, texts),
         // One record per line after the header: row i is on line i + 2.
         lines: (0..rows as u64).map(|r| r + 2).collect(),
+        raw: Default::default(),
     }))
 }
 

@@ -197,9 +197,99 @@ pub struct Table {
     pub columns: Vec<Column>,
     /// CSV line number of each data row (header = 1), for error messages.
     pub lines: Vec<u64>,
+    /// The cells as written, read again on first use (`raw`).
+    pub(crate) raw: std::sync::OnceLock<std::result::Result<std::sync::Arc<RawRows>, String>>,
+}
+
+/// The data file's records as written, for the files handed to an external command: its cells
+/// go there byte for byte (`29.60` stays `29.60`), not as the parsed numbers print. Holds the
+/// file's bytes and where each record starts.
+pub struct RawRows {
+    bytes: Vec<u8>,
+    starts: Vec<usize>,
+}
+
+impl std::fmt::Debug for RawRows {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        write!(
+            f,
+            "RawRows({} bytes, {} rows)",
+            self.bytes.len(),
+            self.starts.len()
+        )
+    }
+}
+
+impl RawRows {
+    /// Read `table`'s file again; refused when its bytes no longer hash as they did when the
+    /// table was read, or hold another number of records.
+    fn read(table: &Table) -> std::result::Result<RawRows, String> {
+        let bytes = std::fs::read(&table.path)
+            .map_err(|e| format!("cannot read {} again: {e}", table.path.display()))?;
+        if !table.sha256.is_empty() && crate::spec::hex(&Sha256::digest(&bytes)) != table.sha256 {
+            return Err(format!(
+                "{} changed while the run used it; run again on a file that stays as it is",
+                table.path.display()
+            ));
+        }
+        let skip = if bytes.starts_with(b"\xEF\xBB\xBF") {
+            3
+        } else {
+            0
+        };
+        let mut rdr = csv::ReaderBuilder::new()
+            .has_headers(true)
+            .flexible(false)
+            .from_reader(&bytes[skip..]);
+        let mut rec = csv::ByteRecord::new();
+        let mut starts = Vec::with_capacity(table.n_rows());
+        loop {
+            match rdr.read_byte_record(&mut rec) {
+                Ok(true) => starts.push(skip + rec.position().map_or(0, |p| p.byte() as usize)),
+                Ok(false) => break,
+                Err(e) => return Err(format!("cannot read {} again: {e}", table.path.display())),
+            }
+        }
+        if starts.len() != table.n_rows() {
+            return Err(format!(
+                "{} holds {} records on a second reading, not {}",
+                table.path.display(),
+                starts.len(),
+                table.n_rows()
+            ));
+        }
+        Ok(RawRows { bytes, starts })
+    }
+
+    /// Row `row`'s fields as written (unquoted, untrimmed).
+    pub fn record(&self, row: usize) -> std::result::Result<csv::StringRecord, String> {
+        let at = *self
+            .starts
+            .get(row)
+            .ok_or_else(|| format!("no row {row}"))?;
+        let mut rdr = csv::ReaderBuilder::new()
+            .has_headers(false)
+            .flexible(true)
+            .from_reader(&self.bytes[at..]);
+        let mut rec = csv::StringRecord::new();
+        match rdr.read_record(&mut rec) {
+            Ok(true) => Ok(rec),
+            Ok(false) => Err(format!("no record at row {row}")),
+            Err(e) => Err(format!("cannot read row {row} again: {e}")),
+        }
+    }
 }
 
 impl Table {
+    /// The file's records as written (read once, on first use, and checked against `sha256`).
+    pub fn raw(&self) -> std::result::Result<&RawRows, String> {
+        self.raw
+            .get_or_init(|| RawRows::read(self).map(std::sync::Arc::new))
+            .as_ref()
+            .map(|r| &**r)
+            .map_err(Clone::clone)
+    }
+
     pub fn n_rows(&self) -> usize {
         self.lines.len()
     }
@@ -708,6 +798,7 @@ pub fn parse(bytes: &[u8], path: &Path, sha256: String, text_columns: &[&str]) -
         sha256,
         columns: assemble(headers, nums, texts),
         lines,
+        raw: Default::default(),
     })
 }
 

@@ -380,10 +380,14 @@ pub struct CommandSpec {
     pub run: Vec<String>,
     /// The spec file's folder: the command's working directory.
     pub workdir: PathBuf,
-    /// (as written, resolved) for each file whose SHA-256 is recorded with the run.
+    /// (as written, resolved) for each file or folder whose SHA-256 is recorded with the run;
+    /// the only paths of the spec's folder the boxed command can read.
     pub inputs: Vec<(String, PathBuf)>,
     /// Seconds before the command is stopped.
     pub timeout: u64,
+    /// Whether the command runs in the box (`src/external/sandbox.rs`); `sandbox = false` in
+    /// the spec turns it off for this family.
+    pub sandbox: bool,
 }
 
 /// What makes two `[[model]]` entries the same: family, standardisation and grid, with the
@@ -624,7 +628,7 @@ impl<'a> Check<'a> {
         // Candidates counted before any grid is expanded: a few long lists multiply.
         let mut candidates: u64 = 0;
         for m in &raw.model {
-            let ms = self.model(m)?;
+            let ms = self.model(m, &data.path)?;
             candidates = candidates.saturating_add(ms.count());
             if candidates > select.max_candidates {
                 return Err(self.err(
@@ -1126,7 +1130,7 @@ impl<'a> Check<'a> {
         })
     }
 
-    fn model(&self, m: &Spanned<RawModel>) -> Result<ModelSpec> {
+    fn model(&self, m: &Spanned<RawModel>, data: &Path) -> Result<ModelSpec> {
         let r = m.get_ref();
         let kind = r.kind.as_ref().ok_or_else(|| {
             self.err(
@@ -1151,13 +1155,14 @@ impl<'a> Check<'a> {
                 )
             })?;
         if family == Family::Command {
-            return self.command_model(m);
+            return self.command_model(m, data);
         }
         for (present, key) in [
             (r.run.is_some(), "run"),
             (r.params.is_some(), "params"),
             (r.inputs.is_some(), "inputs"),
             (r.timeout.is_some(), "timeout"),
+            (r.sandbox.is_some(), "sandbox"),
         ] {
             if present {
                 return Err(self.err(
@@ -1224,7 +1229,7 @@ impl<'a> Check<'a> {
     }
 
     /// `kind = "command"`: run (argv), params (name -> list), inputs, timeout.
-    fn command_model(&self, m: &Spanned<RawModel>) -> Result<ModelSpec> {
+    fn command_model(&self, m: &Spanned<RawModel>, data: &Path) -> Result<ModelSpec> {
         let r = m.get_ref();
         for (v, key) in [
             (&r.lambda, "lambda"),
@@ -1266,6 +1271,8 @@ impl<'a> Check<'a> {
                     ));
                 }
                 let mut vals = Vec::new();
+                // Repeats found by key, not by scanning: a long list stays linear.
+                let mut seen = std::collections::BTreeSet::new();
                 for it in list {
                     let pv = match it {
                         toml::Value::Integer(i) if i >= 0 => ParamValue::Int(i as u64),
@@ -1282,7 +1289,7 @@ impl<'a> Check<'a> {
                             ));
                         }
                     };
-                    if vals.contains(&pv) {
+                    if !seen.insert(pv.key()) {
                         return Err(self.err(p, format!("params.{name} lists {pv} twice")));
                     }
                     vals.push(pv);
@@ -1290,18 +1297,41 @@ impl<'a> Check<'a> {
                 grid.push((name.clone(), vals));
             }
         }
+        let sandbox = r.sandbox.as_ref().is_none_or(|s| *s.get_ref());
+        let data_real = std::fs::canonicalize(data).unwrap_or_else(|_| data.to_path_buf());
         let inputs = r
             .inputs
             .iter()
             .flatten()
             .map(|i| {
                 let path = base.join(i.get_ref());
-                if !path.is_file() {
-                    return Err(self.err(i, format!("input file {} does not exist (inputs are relative to the spec file's folder)", path.display())));
+                if !path.is_file() && !path.is_dir() {
+                    return Err(self.err(i, format!("input {} does not exist (inputs are files or folders, relative to the spec file's folder)", path.display())));
+                }
+                // The box lets the command read its inputs: never the data file, which holds
+                // the sealed rows' targets.
+                let real = std::fs::canonicalize(&path).unwrap_or_else(|_| path.clone());
+                if data_real.starts_with(&real) {
+                    return Err(self.err(i, format!("input {} {} the data file, which holds the sealed test rows; a command sees the fitting rows only through PROBITY_FIT. List the command's own files instead", path.display(), if real == data_real { "is" } else { "holds" })));
                 }
                 Ok((i.get_ref().clone(), path))
             })
             .collect::<Result<Vec<_>>>()?;
+        // The boxed command runs in a scratch folder: a program named by a relative path is found
+        // through `inputs`, which the box lets it read.
+        // So is a file of the spec's folder named in the argv: undeclared, the box would hide it.
+        if sandbox {
+            for (i, arg) in run.get_ref().iter().enumerate() {
+                let relative = !arg.is_empty() && !Path::new(arg).is_absolute();
+                let path_like = i == 0 && arg.contains('/');
+                if relative
+                    && (path_like || base.join(arg).is_file())
+                    && !inputs.iter().any(|(t, _)| t == arg)
+                {
+                    return Err(self.err(run, format!("{arg:?} names a file of the spec's folder, which the command's box does not show: list it in inputs = [\"{arg}\"] (the command runs in a scratch folder, and reads its inputs by absolute path)")));
+                }
+            }
+        }
         let timeout = match &r.timeout {
             None => 600,
             Some(t) if *t.get_ref() >= 1 => *t.get_ref() as u64,
@@ -1319,6 +1349,7 @@ impl<'a> Check<'a> {
                 workdir: base,
                 inputs,
                 timeout,
+                sandbox,
             }),
         })
     }
@@ -1523,6 +1554,10 @@ impl Spec {
                         v["run"] = json!(c.run);
                         v["inputs"] = json!(c.inputs.iter().map(|i| i.0.clone()).collect::<Vec<_>>());
                         v["timeout"] = json!(c.timeout);
+                        // Only written when off, so the hash of every boxed spec is unchanged.
+                        if !c.sandbox {
+                            v["sandbox"] = json!(false);
+                        }
                     }
                     v
                 }

@@ -83,4 +83,6 @@ pub struct RawModel {
     pub params: Option<Spanned<toml::Table>>,
     pub inputs: Option<Vec<Spanned<String>>>,
     pub timeout: Option<Spanned<i64>>,
+    /// `kind = "command"`: `false` runs the command outside the box (recorded and warned).
+    pub sandbox: Option<Spanned<bool>>,
 }

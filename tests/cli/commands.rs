@@ -210,7 +210,7 @@ fn command_specs_are_checked() {
     d.write("b.toml", &format!("{SMALL_SPEC}\n[[model]]\nkind = \"command\"\nrun = [\"python3\", \"m.py\"]\ninputs = [\"m.py\"]\n"));
     let r = d.probity(&["run", "b.toml"]).expect(2);
     assert!(
-        r.stderr().contains("input file") && r.stderr().contains("does not exist"),
+        r.stderr().contains("input ") && r.stderr().contains("does not exist"),
         "{}",
         r.stderr()
     );
@@ -258,7 +258,15 @@ with open(os.environ["PROBITY_OUT"], "w") as f:
         .unwrap()
         .to_string()
         + "[[model]]\nkind = \"command\"\nrun = [\"python3\", \"prior.py\"]\nparams = { scale = [1.0, 0.5] }\n";
+    // Undeclared, the script is outside the command's box: refused before anything runs.
     d.write("o.toml", &spec);
+    let r = d.probity(&["check", "o.toml"]).expect(2);
+    assert!(
+        r.stderr().contains("o.toml:") && r.stderr().contains("list it in inputs = [\"prior.py\"]"),
+        "{}",
+        r.stderr()
+    );
+    d.write("o.toml", &(spec + "inputs = [\"prior.py\"]\n"));
     let j = d.probity(&["run", "o.toml", "--json"]).expect(0).json();
     let c = j["candidates"].as_array().unwrap();
     let ok = c.iter().find(|x| x["params"]["scale"] == 1.0).unwrap();
@@ -363,4 +371,156 @@ fn merged_or_changed_commands_run_only_with_consent() {
         "{}",
         r.stderr()
     );
+}
+
+/// What a command tries from inside: the data file by absolute and relative path and through
+/// the parent's `/proc` entry, the ledger, a file written beside the spec, the descriptors it
+/// was given, and whether the cells it was handed are as written (two decimals each). It
+/// always fails, so that its findings come back in the run's failure message.
+const PROBE: &str = r#"
+import csv, json, os, sys
+p = json.loads(os.environ["PROBITY_PARAMS"])
+here = p["dir"]
+out = []
+def tryread(label, path):
+    try:
+        with open(path, "rb") as f:
+            f.read(1)
+        out.append(label + "=read")
+    except OSError:
+        out.append(label + "=denied")
+tryread("abs", here + "/small.csv")
+tryread("rel", "small.csv")
+tryread("proc", "/proc/%d/cwd/small.csv" % os.getppid())
+tryread("ledger", here + "/.probity/ledger.sqlite")
+tryread("input", sys.argv[0])
+try:
+    with open(here + "/side.txt", "w") as f:
+        f.write("x")
+    out.append("write=done")
+except OSError:
+    out.append("write=denied")
+fds = sorted(int(x) for x in os.listdir("/proc/self/fd"))
+out.append("fds=" + ",".join(str(x) for x in fds))
+cells = []
+for name in ("PROBITY_FIT", "PROBITY_SCORE"):
+    rows = list(csv.reader(open(os.environ[name])))
+    j = rows[0].index("x1")
+    cells += [r[j] for r in rows[1:]]
+ok = all(len(c.split(".")[1]) == 2 for c in cells)
+out.append("cells=" + ("as-written" if ok else "rewritten:" + cells[0]))
+sys.exit("probe: " + " ".join(out))
+"#;
+
+/// The probe's findings from a run of `spec` in `d`.
+fn probe(d: &Dir, spec: &str) -> (String, Vec<String>) {
+    d.write("probe.toml", spec);
+    let j = d.probity(&["run", "probe.toml", "--json"]).expect(0).json();
+    let failure = j["candidates"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|c| c["model"] == "command")
+        .unwrap()["failure"]
+        .as_str()
+        .unwrap()
+        .to_string();
+    let warnings = j["warnings"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|w| w.as_str().unwrap().to_string())
+        .collect();
+    (failure, warnings)
+}
+
+/// A boxed command reads its inputs and scratch files and nothing else of the user's: the data
+/// file (absolute, relative, or through /proc), the ledger and the spec's folder are closed to
+/// it, it writes nowhere else, it holds no descriptor beyond 0-2 (and the one listing them),
+/// and its files keep the data file's cells byte for byte. The same probe with
+/// `sandbox = false` reads the data file and writes beside the spec, so the probe can see a
+/// leak when there is one; that run carries a warning, and the spec hash records the choice.
+#[test]
+fn a_boxed_command_cannot_reach_the_data_file_or_the_ledger() {
+    let d = small_dir("cmd-box");
+    let csv: String = crate::fixtures::small_csv()
+        .lines()
+        .enumerate()
+        .map(|(i, l)| {
+            if i == 0 {
+                return format!("{l}\n");
+            }
+            let mut f: Vec<String> = l.split(',').map(str::to_string).collect();
+            f[1] = format!("{:.2}", f[1].parse::<f64>().unwrap());
+            f.join(",") + "\n"
+        })
+        .collect();
+    d.write("small.csv", &csv);
+    d.probity(&["run", "small.toml"]).expect(0); // the ledger exists
+    d.write("probe.py", PROBE);
+    let here = std::fs::canonicalize(&d.path).unwrap();
+    let spec = |extra: &str| {
+        format!(
+            "{SMALL_SPEC}\n[[model]]\nkind = \"command\"\nrun = [\"python3\", \"probe.py\"]\nparams = {{ dir = [\"{}\"] }}\ninputs = [\"probe.py\"]\n{extra}",
+            here.display()
+        )
+    };
+    let (boxed, warnings) = probe(&d, &spec(""));
+    assert!(
+        boxed.contains(
+            "probe: abs=denied rel=denied proc=denied ledger=denied input=read write=denied fds=0,1,2,3 cells=as-written"
+        ),
+        "{boxed}"
+    );
+    assert!(!here.join("side.txt").exists());
+    assert!(
+        !warnings.iter().any(|w| w.contains("outside the box")),
+        "{warnings:?}"
+    );
+    let (open, warnings) = probe(&d, &spec("sandbox = false\n"));
+    assert!(
+        open.contains("abs=read") && open.contains("ledger=read") && open.contains("write=done"),
+        "{open}"
+    );
+    assert!(
+        warnings
+            .iter()
+            .any(|w| w.contains("ran outside the box (sandbox = false)")),
+        "{warnings:?}"
+    );
+    let hash = |run: &str| {
+        d.probity(&["show", run, "--json"]).expect(0).json()["spec"]["sha256"]
+            .as_str()
+            .unwrap()
+            .to_string()
+    };
+    assert_ne!(
+        hash("2"),
+        hash("3"),
+        "sandbox = false changes the spec hash"
+    );
+}
+
+/// Inputs are checked against the box: one that is (or holds) the data file is refused, and a
+/// folder input is readable whole and fingerprinted by its contents.
+#[test]
+fn inputs_cannot_open_the_box_to_the_data() {
+    let d = small_dir("cmd-box-inputs");
+    for (input, word) in [
+        ("small.csv", "is the data file"),
+        (".", "holds the data file"),
+    ] {
+        d.write(
+            "i.toml",
+            &format!(
+                "{SMALL_SPEC}\n[[model]]\nkind = \"command\"\nrun = [\"python3\", \"-c\", \"pass\"]\ninputs = [\"{input}\"]\n"
+            ),
+        );
+        let r = d.probity(&["check", "i.toml"]).expect(2);
+        assert!(
+            r.stderr().contains("i.toml:") && r.stderr().contains(word),
+            "{input}: {}",
+            r.stderr()
+        );
+    }
 }

@@ -65,6 +65,11 @@ fn invariants_hold_as_absences() {
                 "std::env::var",
                 "env::var(",
             ] {
+                // The command's box reads PATH and HOME to decide what the command may read
+                // (never what a run computes).
+                if path == "src/external/sandbox.rs" && f == "std::env::var" {
+                    continue;
+                }
                 assert!(!code.contains(f), "{path}: {f} belongs in cli/ only");
             }
         }

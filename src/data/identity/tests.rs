@@ -51,6 +51,7 @@ fn table(columns: Vec<Column>) -> Table {
         sha256: String::new(),
         columns,
         lines: (2..n as u64 + 2).collect(),
+        raw: Default::default(),
     }
 }
 

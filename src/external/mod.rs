@@ -1,9 +1,11 @@
 //! External command families: a model fitted by the user's own program, run without a shell.
 //!
 //! For each fit, a fresh private folder gets `fit.csv` (the feature columns and the target of the
-//! fitting rows) and `score.csv` (the feature columns only: never the target, never the key);
-//! the command is told where they are, and where to write its predictions, in environment
-//! variables, and runs in the spec file's folder. probity validates what comes back.
+//! fitting rows) and `score.csv` (the feature columns only: never the target, never the key),
+//! their cells as written in the data file; the command is told where they are, and where to
+//! write its predictions, in environment variables, and runs in that folder, in its box
+//! (`sandbox`): it reads the system, its declared inputs (named in its argv by absolute path)
+//! and the folder, and nothing of the data file. probity validates what comes back.
 //!
 //! This is the one module that starts processes; it measures elapsed time only to enforce the
 //! timeout (nothing timed is stored) and takes its scratch folder from the system's temporary
@@ -18,6 +20,8 @@ use std::path::Path;
 use std::process::{Command, Stdio};
 use std::time::{Duration, Instant};
 
+pub mod sandbox;
+
 /// One fit-and-predict job.
 pub struct Job<'a> {
     pub cmd: &'a CommandSpec,
@@ -30,16 +34,67 @@ pub struct Job<'a> {
     pub classes: &'a [String],
 }
 
-/// SHA-256 (hex) of each input file of a command family, in the order written.
+/// SHA-256 (hex) of each input of a command family, in the order written: a file's bytes, or
+/// for a folder, every entry beneath it in byte order of its relative path (`tree_hash`).
 pub fn input_hashes(cmd: &CommandSpec) -> Result<Vec<(String, String)>, String> {
     cmd.inputs
         .iter()
         .map(|(text, path)| {
-            let bytes = std::fs::read(path)
-                .map_err(|e| format!("cannot read input {}: {e}", path.display()))?;
-            Ok((text.clone(), crate::spec::hex(&Sha256::digest(&bytes))))
+            let hash = if path.is_dir() {
+                tree_hash(path)?
+            } else {
+                let bytes = std::fs::read(path)
+                    .map_err(|e| format!("cannot read input {}: {e}", path.display()))?;
+                crate::spec::hex(&Sha256::digest(&bytes))
+            };
+            Ok((text.clone(), hash))
         })
         .collect()
+}
+
+/// A folder's fingerprint: SHA-256 over one line per entry beneath it, sorted by relative
+/// path: `f <path> <sha256 of the bytes>` for a file, `l <path> <target>` for a symbolic link
+/// (not followed), `d <path>` for a folder.
+fn tree_hash(root: &Path) -> Result<String, String> {
+    let mut lines: Vec<(Vec<u8>, String)> = Vec::new();
+    let mut stack = vec![root.to_path_buf()];
+    while let Some(dir) = stack.pop() {
+        let rd = std::fs::read_dir(&dir)
+            .map_err(|e| format!("cannot read input folder {}: {e}", dir.display()))?;
+        for entry in rd {
+            let entry =
+                entry.map_err(|e| format!("cannot read input folder {}: {e}", dir.display()))?;
+            let path = entry.path();
+            let rel = path
+                .strip_prefix(root)
+                .unwrap_or(&path)
+                .to_string_lossy()
+                .into_owned();
+            let t = entry
+                .file_type()
+                .map_err(|e| format!("cannot read {}: {e}", path.display()))?;
+            let line = if t.is_symlink() {
+                let to = std::fs::read_link(&path)
+                    .map_err(|e| format!("cannot read {}: {e}", path.display()))?;
+                format!("l {rel} {}", to.to_string_lossy())
+            } else if t.is_dir() {
+                stack.push(path.clone());
+                format!("d {rel}")
+            } else {
+                let bytes = std::fs::read(&path)
+                    .map_err(|e| format!("cannot read input {}: {e}", path.display()))?;
+                format!("f {rel} {}", crate::spec::hex(&Sha256::digest(&bytes)))
+            };
+            lines.push((rel.into_bytes(), line));
+        }
+    }
+    lines.sort();
+    let mut h = Sha256::new();
+    for (_, line) in &lines {
+        h.update(line.as_bytes());
+        h.update(b"\n");
+    }
+    Ok(crate::spec::hex(&h.finalize()))
 }
 
 fn write_csv(
@@ -52,8 +107,11 @@ fn write_csv(
     let mut w = csv::Writer::from_path(path)
         .map_err(|e| format!("cannot write {}: {e}", path.display()))?;
     w.write_record(header).map_err(|e| e.to_string())?;
+    // Cells as written in the file, not as the parsed numbers print (`29.60` stays `29.60`).
+    let raw = table.raw()?;
     for &r in rows {
-        w.write_record(cols.iter().map(|&c| table.columns[c].text(r)))
+        let rec = raw.record(r)?;
+        w.write_record(cols.iter().map(|&c| rec.get(c).unwrap_or("")))
             .map_err(|e| e.to_string())?;
     }
     w.flush().map_err(|e| e.to_string())
@@ -118,9 +176,37 @@ pub fn fit_predict(
         .collect();
     let stderr = std::fs::File::create(&err_path)
         .map_err(|e| format!("cannot make {}: {e}", err_path.display()))?;
-    let mut child = Command::new(&job.cmd.run[0])
-        .args(&job.cmd.run[1..])
-        .current_dir(&job.cmd.workdir)
+    // The command runs in its scratch folder: a path in its argv that names a declared input
+    // (the program's own included) is given absolute.
+    let absolute = |arg: &String| match job.cmd.inputs.iter().find(|(t, _)| t == arg) {
+        Some((_, p)) => p.as_os_str().to_os_string(),
+        None => arg.into(),
+    };
+    let inputs: serde_json::Map<String, serde_json::Value> = job
+        .cmd
+        .inputs
+        .iter()
+        .map(|(t, p)| (t.clone(), p.to_string_lossy().into_owned().into()))
+        .collect();
+    let mut command = Command::new(absolute(&job.cmd.run[0]));
+    let grants = job.cmd.sandbox.then(|| {
+        let mut protected = vec![
+            fit_table.path.clone(),
+            score_table.path.clone(),
+            job.cmd.workdir.clone(),
+        ];
+        protected.extend(std::env::current_dir().ok());
+        sandbox::grants(job.cmd, dir.path(), &protected)
+    });
+    sandbox::apply(&mut command, grants.as_ref())?;
+    let mut child = command
+        .args(job.cmd.run[1..].iter().map(absolute))
+        .current_dir(dir.path())
+        .env("TMPDIR", dir.path())
+        .env(
+            "PROBITY_INPUTS",
+            serde_json::Value::Object(inputs).to_string(),
+        )
         .env("PROBITY_FIT", &fit_path)
         .env("PROBITY_SCORE", &score_path)
         .env("PROBITY_OUT", &out_path)
@@ -172,7 +258,12 @@ pub fn fit_predict(
         let code = status.code().map_or("killed by a signal".to_string(), |c| {
             format!("exit status {c}")
         });
-        return Err(format!("{code}; stderr: {}", tail(&err_text, 5)));
+        let boxed = if job.cmd.sandbox {
+            " (the command ran in its box: it reads the system's folders, its inputs and its scratch folder only; see the README)"
+        } else {
+            ""
+        };
+        return Err(format!("{code}; stderr: {}{boxed}", tail(&err_text, 5)));
     }
     read_predictions(&out_path, score_rows.len(), job.classes)
 }
