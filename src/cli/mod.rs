@@ -235,7 +235,13 @@ fn existing(g: &Global) -> Result<PathBuf> {
             path.display()
         )));
     }
+    keep_out_of_boxes(&path);
     Ok(path)
+}
+
+/// The ledger's folder is never granted to a command's box, wherever it is.
+fn keep_out_of_boxes(ledger: &Path) {
+    crate::external::sandbox::keep_out(ledger.parent().unwrap_or(ledger));
 }
 
 /// Write a report file and say where it went.
@@ -271,6 +277,7 @@ pub(crate) fn open_for_write(g: &Global) -> Result<crate::ledger::Ledger> {
             source: e,
         })?;
     }
+    keep_out_of_boxes(&path);
     crate::ledger::Ledger::open(&path, true)
 }
 

@@ -8,8 +8,8 @@
 //! - its declared inputs, files or folders, read-only;
 //! - its scratch folder, read and write.
 //!
-//! A folder that holds the data file, the spec's folder or the current folder is never
-//! granted: those hold the sealed rows (and, usually, the ledger). A data file is kept out
+//! A folder that holds the data file, the spec's folder, the current folder or the ledger's
+//! folder is never granted: those hold the sealed rows and the record of their use. A data file is kept out
 //! even when it sits under a system folder, since that folder is then skipped. The rules are
 //! built in the parent; the child only applies them (`restrict_self`, two system calls)
 //! between fork and exec, where nothing may allocate.
@@ -43,6 +43,16 @@ pub fn warning(cmd: &CommandSpec, line: usize) -> Option<String> {
         Boxing::Unavailable(why) => Some(format!(
             "the command family at line {line} ran outside the box: {why}; it could read the data file, sealed test rows included (Landlock needs Linux 5.13 or newer, with landlock among the kernel's security modules)"
         )),
+    }
+}
+
+/// Paths no box may reach beyond those of each job (the ledger's folder, which the CLI knows).
+static KEPT_OUT: std::sync::Mutex<Vec<PathBuf>> = std::sync::Mutex::new(Vec::new());
+
+/// Keep `path`, and every folder that holds it, out of every box made from now on.
+pub fn keep_out(path: &Path) {
+    if let Ok(mut k) = KEPT_OUT.lock() {
+        k.push(path.to_path_buf());
     }
 }
 
@@ -109,7 +119,12 @@ fn installation(dir: &Path) -> PathBuf {
 /// refused before this (`spec`), so here they are only skipped.
 pub fn grants(cmd: &CommandSpec, scratch: &Path, protected: &[PathBuf]) -> Grants {
     let real = |p: &Path| std::fs::canonicalize(p).ok();
-    let protected: Vec<PathBuf> = protected.iter().filter_map(|p| real(p)).collect();
+    let kept: Vec<PathBuf> = KEPT_OUT.lock().map(|k| k.clone()).unwrap_or_default();
+    let protected: Vec<PathBuf> = protected
+        .iter()
+        .chain(&kept)
+        .filter_map(|p| real(p))
+        .collect();
     let home = std::env::var_os("HOME").and_then(|h| real(Path::new(&h)));
     // A grant covers everything beneath it: one that holds a protected path is never made.
     let safe = |p: &Path| {
@@ -348,5 +363,9 @@ mod tests {
         assert!(!g.read.contains(&PathBuf::from("/etc")));
         assert!(g.read.contains(&real(Path::new("/usr"))));
         assert_eq!(g.write, vec![real(scratch.path())]);
+        // A ledger's folder kept out (as the CLI does with its ledger) keeps out what holds it.
+        keep_out(Path::new("/usr/share"));
+        let g = grants(&cmd, scratch.path(), &protected);
+        assert!(!g.read.contains(&real(Path::new("/usr"))), "{:?}", g.read);
     }
 }
