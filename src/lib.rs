@@ -26,6 +26,7 @@ pub mod models;
 pub mod par;
 pub mod report;
 pub mod runner;
+pub mod signing;
 pub mod spec;
 pub mod split;
 #[cfg(test)]

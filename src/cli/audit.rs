@@ -83,10 +83,25 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
             "status": status,
         }));
     }
-    let warnings = ledger.overlap_findings()?;
+    let mut warnings = ledger.overlap_findings()?;
+    let merges = ledger.merges()?;
+    for m in merges.iter().filter(|m| m["verdict"] != "trusted") {
+        warnings.push(format!(
+            "merge {} ({} by {}@{}) brought {} entries from a bundle {}, merged with --allow-unverified: nothing shows who made them",
+            m["merge"],
+            m["merged_at"].as_str().unwrap_or(""),
+            m["user"].as_str().unwrap_or(""),
+            m["host"].as_str().unwrap_or(""),
+            m["entries_merged"],
+            match (m["signer"].as_str(), m["public_key"].as_str()) {
+                (Some(n), Some(k)) => format!("signed by {n:?} with key {k}, which this ledger does not trust"),
+                _ => "that was not signed".to_string(),
+            }
+        ));
+    }
     if a.json {
         out_json(
-            &json!({"partitions": rows, "warnings": warnings, "chain": chain, "unfinished": crate::report::json::unfinished(&starts)}),
+            &json!({"partitions": rows, "warnings": warnings, "merges": merges, "chain": chain, "unfinished": crate::report::json::unfinished(&starts)}),
         )?;
     } else {
         let mut text = crate::report::table::audit(&rows, &warnings);

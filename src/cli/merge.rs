@@ -11,6 +11,10 @@ use std::path::PathBuf;
 pub struct Args {
     /// The bundle file
     pub file: PathBuf,
+    /// Merge a bundle that is unsigned or signed with a key this ledger does not trust (the
+    /// merge is recorded as unverified)
+    #[arg(long)]
+    pub allow_unverified: bool,
 }
 
 pub fn run(g: &Global, a: Args) -> Result<i32> {
@@ -32,10 +36,25 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
         ))
     })?;
     let mut ledger = open_for_write(g)?;
-    let (merged, skipped) = ledger.merge(&bundle)?;
+    let m = ledger.merge(&bundle, a.allow_unverified, &super::reveal::who())?;
+    let by = match &m.signer {
+        crate::ledger::bundle::Signer::Trusted {
+            name,
+            key,
+            trusted_as,
+        } => format!("signed by {name:?} with key {key}, trusted here as {trusted_as:?}"),
+        crate::ledger::bundle::Signer::Untrusted { name, key } => format!(
+            "signed by {name:?} with key {key}, which this ledger does not trust (merged with --allow-unverified, recorded)"
+        ),
+        crate::ledger::bundle::Signer::Unsigned => {
+            "unsigned (merged with --allow-unverified, recorded)".to_string()
+        }
+    };
     eprintln!(
-        "merged {merged} entries from {} ({skipped} already present)",
-        a.file.display()
+        "merged {} entries from {} ({} already present); {by}",
+        m.merged,
+        a.file.display(),
+        m.skipped
     );
     Ok(0)
 }

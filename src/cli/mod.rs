@@ -6,6 +6,7 @@ mod check;
 mod compare;
 mod export;
 mod history;
+mod key;
 mod merge;
 mod note;
 mod pack;
@@ -62,6 +63,7 @@ pub enum Command {
     Note(note::Args),
     Pack(pack::Args),
     Merge(merge::Args),
+    Key(key::Args),
     Export(export::Args),
     Compare(compare::Args),
     Plot(plot::Args),
@@ -109,6 +111,7 @@ pub fn main() -> i32 {
         Command::Note(a) => note::run(&cli.global, a),
         Command::Pack(a) => pack::run(&cli.global, a),
         Command::Merge(a) => merge::run(&cli.global, a),
+        Command::Key(a) => key::run(&cli.global, a),
         Command::Export(a) => export::run(&cli.global, a),
         Command::Compare(a) => compare::run(&cli.global, a),
         Command::Plot(a) => plot::run(&cli.global, a),

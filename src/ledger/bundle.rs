@@ -46,20 +46,104 @@ fn decode(v: &Value) -> Option<Sql> {
     })
 }
 
+/// Who signed a bundle, as this ledger sees it.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub enum Signer {
+    /// Signed with a key this ledger trusts, under the name it trusts it as.
+    Trusted {
+        name: String,
+        key: String,
+        trusted_as: String,
+    },
+    /// Signed with a key this ledger does not list.
+    Untrusted { name: String, key: String },
+    /// No signature.
+    Unsigned,
+}
+
+impl Signer {
+    fn verdict(&self) -> &'static str {
+        match self {
+            Signer::Trusted { .. } => "trusted",
+            Signer::Untrusted { .. } => "untrusted",
+            Signer::Unsigned => "unsigned",
+        }
+    }
+}
+
+/// What a merge did.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct Merged {
+    pub merged: usize,
+    pub skipped: usize,
+    pub signer: Signer,
+}
+
+/// The runs a bundle of `runs` must carry: those, and every run with a reveal or a development
+/// use of a partition the bundle ships (each run ships its own partition), until no more are
+/// needed; in id order. So a bundle carries every consultation of each partition it ships.
+fn closure(conn: &rusqlite::Connection, runs: &[i64]) -> Result<Vec<i64>> {
+    let mut all: std::collections::BTreeSet<i64> = runs.iter().copied().collect();
+    let mut st = conn
+        .prepare(
+            "WITH shipped AS (SELECT DISTINCT partition_id FROM runs WHERE id IN (SELECT value FROM json_each(?1)))
+             SELECT run_id FROM reveals WHERE partition_id IN shipped
+             UNION SELECT run_id FROM uses WHERE partition_id IN shipped",
+        )
+        .map_err(sql_err("pack"))?;
+    loop {
+        let ids = json!(all.iter().collect::<Vec<_>>()).to_string();
+        let more: Vec<i64> = st
+            .query_map([&ids], |r| r.get(0))
+            .and_then(|rows| rows.collect())
+            .map_err(sql_err("pack"))?;
+        let before = all.len();
+        all.extend(more);
+        if all.len() == before {
+            return Ok(all.into_iter().collect());
+        }
+    }
+}
+
+/// For each partition the runs ship, in id order: its reveals and development uses in this
+/// ledger, as `{"id", "reveals", "uses"}`.
+fn consultation_counts(conn: &rusqlite::Connection, runs: &[i64]) -> Result<Vec<Value>> {
+    let mut st = conn
+        .prepare(
+            "SELECT p.partition_id,
+                    (SELECT count(*) FROM reveals r WHERE r.partition_id = p.partition_id),
+                    (SELECT count(*) FROM uses u WHERE u.partition_id = p.partition_id)
+             FROM (SELECT DISTINCT partition_id FROM runs WHERE id IN (SELECT value FROM json_each(?1))) p
+             ORDER BY p.partition_id",
+        )
+        .map_err(sql_err("pack"))?;
+    st.query_map([json!(runs).to_string()], |r| {
+        Ok(json!({"id": r.get::<_, String>(0)?, "reveals": r.get::<_, i64>(1)?, "uses": r.get::<_, i64>(2)?}))
+    })
+    .and_then(|rows| rows.collect())
+    .map_err(sql_err("pack"))
+}
+
 impl Ledger {
-    /// The chained entries of `runs` (with their reveals and notes), in chain order, as a bundle.
-    pub fn pack(&self, runs: &[i64], created_at: &str) -> Result<Value> {
+    /// The chained entries of `runs`, with their reveals and notes, in chain order, as a bundle
+    /// (unsigned: `signing` signs it). Every run with a reveal or a development use of a
+    /// partition the bundle ships comes too (`closure`), and `partitions` counts those
+    /// consultations. A merged entry keeps the hashes it came with, so it is known again
+    /// wherever it has been merged before. Returns the bundle and the runs it carries.
+    pub fn pack(&self, runs: &[i64], created_at: &str) -> Result<(Value, Vec<i64>)> {
+        let runs = closure(&self.conn, runs)?;
+        let counts = consultation_counts(&self.conn, &runs)?;
         let mut st = self
             .conn
             .prepare(
-                "SELECT seq, kind, ref_id, prev_hash, entry_hash FROM chain WHERE
+                "SELECT seq, kind, ref_id, coalesce(origin_prev, prev_hash), coalesce(origin, entry_hash) FROM chain WHERE
                    (kind = 'run' AND ref_id IN (SELECT value FROM json_each(?1)))
                    OR (kind = 'reveal' AND ref_id IN (SELECT id FROM reveals WHERE run_id IN (SELECT value FROM json_each(?1))))
                    OR (kind = 'note' AND ref_id IN (SELECT id FROM notes WHERE run_id IN (SELECT value FROM json_each(?1))))
                  ORDER BY seq",
             )
             .map_err(sql_err("pack"))?;
-        let ids = json!(runs).to_string();
+        let ids = json!(&runs).to_string();
         let links: Vec<(i64, String, i64, String, String)> = st
             .query_map([&ids], |r| {
                 Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?, r.get(4)?))
@@ -90,7 +174,7 @@ impl Ledger {
                     };
                     self.conn
                         .query_row(
-                            &format!("SELECT c.entry_hash FROM chain c JOIN {table} t ON c.kind = 'run' AND c.ref_id = t.run_id WHERE t.id = ?1"),
+                            &format!("SELECT coalesce(c.origin, c.entry_hash) FROM chain c JOIN {table} t ON c.kind = 'run' AND c.ref_id = t.run_id WHERE t.id = ?1"),
                             [id],
                             |r| r.get(0),
                         )
@@ -100,18 +184,44 @@ impl Ledger {
             };
             entries.push(json!({"seq": seq, "kind": kind, "id": id, "prev_hash": prev, "entry_hash": hash, "run_entry": run_entry, "sections": sections}));
         }
-        Ok(json!({"format": FORMAT, "created_at": created_at, "entries": entries}))
+        Ok((
+            json!({"format": FORMAT, "created_at": created_at, "entries": entries, "partitions": counts}),
+            runs,
+        ))
     }
 
-    /// Merge a bundle: verify every entry's hash, skip entries already present, refuse a fork
-    /// (exit 4), and append the rest (with new local ids) in one transaction. Returns
-    /// (merged, skipped).
-    pub fn merge(&mut self, bundle: &Value) -> Result<(usize, usize)> {
+    /// Merge a bundle: check its signature against the keys this ledger trusts (an unsigned
+    /// bundle, or one signed with another key, only with `allow_unverified`), verify every
+    /// entry's hash and the signed counts of each shipped partition's consultations, skip
+    /// entries already present, refuse a fork (exit 4), and append the rest (with new local
+    /// ids) in one transaction, with a record of the merge (`merges`) that each merged entry
+    /// names.
+    pub fn merge(
+        &mut self,
+        bundle: &Value,
+        allow_unverified: bool,
+        who: &crate::guard::consult::Who,
+    ) -> Result<Merged> {
         if bundle["format"] != FORMAT {
             return Err(Error::Input(format!(
                 "not a probity bundle (format {}); make one with `probity pack`",
                 bundle["format"]
             )));
+        }
+        let signer = self.signer(bundle)?;
+        match (&signer, allow_unverified) {
+            (Signer::Trusted { .. }, _) | (_, true) => {}
+            (Signer::Untrusted { name, key }, false) => {
+                return Err(Error::Integrity(format!(
+                    "the bundle is signed by {name:?} with key {key}, which this ledger does not trust; nothing was merged. If that key is theirs (ask them for `probity key show`), trust it with `probity key trust {} {key}`; or merge with --allow-unverified, which is recorded",
+                    shell_word(name)
+                )));
+            }
+            (Signer::Unsigned, false) => {
+                return Err(Error::Integrity(
+                    "the bundle is not signed, so nothing says who made it; nothing was merged. Ask its sender to pack it with a signing key (`probity key new`), or merge with --allow-unverified, which is recorded".into(),
+                ));
+            }
         }
         let entries = bundle["entries"]
             .as_array()
@@ -227,6 +337,9 @@ impl Ledger {
                 columns,
             ));
         }
+        // 1b. The signed counts: every reveal and development use of each shipped partition in
+        // the sender's ledger travels in the bundle, none left out.
+        check_counts(bundle, &parsed, !matches!(signer, Signer::Unsigned))?;
         // 2. A partition both hold must be stored alike: each run's entry hashes its partition,
         // so a merged run over a partition stored otherwise here (its rows identified by
         // another version, say) could never verify.
@@ -246,6 +359,21 @@ impl Ledger {
             .conn
             .transaction_with_behavior(rusqlite::TransactionBehavior::Immediate)
             .map_err(fail)?;
+        let (key, name, trusted_as) = match &signer {
+            Signer::Trusted {
+                name,
+                key,
+                trusted_as,
+            } => (Some(key), Some(name), Some(trusted_as)),
+            Signer::Untrusted { name, key } => (Some(key), Some(name), None),
+            Signer::Unsigned => (None, None, None),
+        };
+        tx.execute(
+            "INSERT INTO merges (merged_at, user, host, tool_version, bundle_created_at, signer, public_key, verdict, trusted_as, merged, skipped) VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, 0, 0)",
+            rusqlite::params![who.at, who.user, who.host, who.tool_version, bundle["created_at"].as_str().unwrap_or(""), name, key, signer.verdict(), trusted_as],
+        )
+        .map_err(fail)?;
+        let merge_id = tx.last_insert_rowid();
         let (mut merged, mut skipped) = (0, 0);
         for (kind, prev, hash, run_entry, sections, columns) in parsed {
             let present: bool = tx
@@ -296,11 +424,132 @@ impl Ledger {
             };
             let new_id = insert_entry(&tx, &kind, local_run, &sections, &columns).map_err(unfit)?;
             read_back(&tx, &kind, new_id, local_run, &sections, &columns, n, &hash)?;
-            super::chain::append(&tx, &kind, new_id, Some((&hash, &prev)))?;
+            let local = super::chain::append(&tx, &kind, new_id, Some((&hash, &prev)))?;
+            tx.execute(
+                "UPDATE chain SET merge_id = ?1 WHERE entry_hash = ?2",
+                rusqlite::params![merge_id, local],
+            )
+            .map_err(fail)?;
             merged += 1;
         }
+        tx.execute(
+            "UPDATE merges SET merged = ?1, skipped = ?2 WHERE id = ?3",
+            rusqlite::params![merged as i64, skipped as i64, merge_id],
+        )
+        .map_err(fail)?;
         tx.commit().map_err(fail)?;
-        Ok((merged, skipped))
+        Ok(Merged {
+            merged,
+            skipped,
+            signer,
+        })
+    }
+
+    /// The bundle's signer, its signature checked (exit 4 when it does not match).
+    fn signer(&self, bundle: &Value) -> Result<Signer> {
+        let sig = &bundle["signature"];
+        if sig.is_null() {
+            return Ok(Signer::Unsigned);
+        }
+        let bad = |why: &str| {
+            Error::Integrity(format!(
+                "the bundle's signature {why}: it was changed after it was signed, or not made by probity; nothing was merged"
+            ))
+        };
+        let (Some(name), Some(key), Some(hex)) = (
+            sig["signer"].as_str(),
+            sig["public_key"].as_str(),
+            sig["signature"].as_str(),
+        ) else {
+            return Err(bad("is incomplete"));
+        };
+        let key = crate::signing::public_key(key).map_err(|e| bad(&e))?;
+        let message = crate::signing::signed_message(bundle, name, &key)
+            .ok_or_else(|| bad("covers a bundle that lacks its entries or counts"))?;
+        crate::signing::verify(&key, &message, hex)
+            .map_err(|e| bad(&format!("by {name:?} (key {key}) fails: {e}")))?;
+        Ok(match self.trusted_name(&key)? {
+            Some(trusted_as) => Signer::Trusted {
+                name: name.to_string(),
+                key,
+                trusted_as,
+            },
+            None => Signer::Untrusted {
+                name: name.to_string(),
+                key,
+            },
+        })
+    }
+
+    /// The name this ledger trusts `key` under, if it does.
+    pub fn trusted_name(&self, key: &str) -> Result<Option<String>> {
+        self.conn
+            .query_row(
+                "SELECT name FROM trusted_keys WHERE public_key = ?1",
+                [key],
+                |r| r.get(0),
+            )
+            .optional()
+            .map_err(sql_err("read trusted keys"))
+    }
+
+    /// Trust `key` to sign bundles as `name`; refused (exit 2) when it is trusted already.
+    pub fn trust(&mut self, key: &str, name: &str, at: &str, by: &str) -> Result<()> {
+        let key = crate::signing::public_key(key).map_err(Error::Input)?;
+        if name.trim().is_empty() || name.chars().any(char::is_control) {
+            return Err(Error::Input(
+                "a key's name must not be empty or hold control characters".into(),
+            ));
+        }
+        if let Some(n) = self.trusted_name(&key)? {
+            return Err(Error::Input(format!(
+                "key {key} is trusted already, as {n:?}"
+            )));
+        }
+        let path = self.path.clone();
+        self.conn
+            .execute(
+                "INSERT INTO trusted_keys (public_key, name, added_at, added_by) VALUES (?1, ?2, ?3, ?4)",
+                rusqlite::params![key, name, at, by],
+            )
+            .map_err(|e| migrate::refuse_or_fail(&path, e, "trust a key"))?;
+        Ok(())
+    }
+
+    /// The keys this ledger trusts: (public key, name, added at, added by), by name then key.
+    pub fn trusted_keys(&self) -> Result<Vec<(String, String, String, String)>> {
+        let mut st = self
+            .conn
+            .prepare("SELECT public_key, name, added_at, added_by FROM trusted_keys ORDER BY name, public_key")
+            .map_err(sql_err("read trusted keys"))?;
+        st.query_map([], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?)))
+            .and_then(|rows| rows.collect())
+            .map_err(sql_err("read trusted keys"))
+    }
+
+    /// Every merge, oldest first, as JSON objects (for `audit`).
+    pub fn merges(&self) -> Result<Vec<Value>> {
+        let mut st = self
+            .conn
+            .prepare("SELECT id, merged_at, user, host, bundle_created_at, signer, public_key, verdict, trusted_as, merged, skipped FROM merges ORDER BY id")
+            .map_err(sql_err("read merges"))?;
+        st.query_map([], |r| {
+            Ok(json!({
+                "merge": r.get::<_, i64>(0)?,
+                "merged_at": r.get::<_, String>(1)?,
+                "user": r.get::<_, String>(2)?,
+                "host": r.get::<_, String>(3)?,
+                "bundle_created_at": r.get::<_, String>(4)?,
+                "signer": r.get::<_, Option<String>>(5)?,
+                "public_key": r.get::<_, Option<String>>(6)?,
+                "verdict": r.get::<_, String>(7)?,
+                "trusted_as": r.get::<_, Option<String>>(8)?,
+                "entries_merged": r.get::<_, i64>(9)?,
+                "entries_skipped": r.get::<_, i64>(10)?,
+            }))
+        })
+        .and_then(|rows| rows.collect())
+        .map_err(sql_err("read merges"))
     }
 }
 
@@ -369,6 +618,94 @@ impl Ledger {
         }
         Ok(())
     }
+}
+
+/// A name as one shell word, for a command line the user may copy.
+fn shell_word(name: &str) -> String {
+    if !name.is_empty()
+        && name
+            .chars()
+            .all(|c| c.is_ascii_alphanumeric() || "-_.@".contains(c))
+    {
+        name.to_string()
+    } else {
+        format!("'{}'", name.replace('\'', "'\\''"))
+    }
+}
+
+type Parsed = (
+    String,
+    String,
+    String,
+    Option<String>,
+    Sections,
+    Vec<Vec<String>>,
+);
+
+/// Compare the consultations a bundle carries with the counts it states for each partition
+/// it ships (required when `signed`): a reveal or development use left out, or added, is an
+/// integrity failure (exit 4).
+fn check_counts(bundle: &Value, parsed: &[Parsed], signed: bool) -> Result<()> {
+    let Some(stated) = bundle["partitions"].as_array() else {
+        if signed {
+            return Err(Error::Integrity(
+                "the signed bundle states no counts of its partitions' reveals; nothing was merged"
+                    .into(),
+            ));
+        }
+        return Ok(());
+    };
+    let mut carried: std::collections::BTreeMap<String, (u64, u64)> = Default::default();
+    let mut shipped: std::collections::BTreeSet<String> = Default::default();
+    for (_, _, _, _, sections, columns) in parsed {
+        for ((name, rows), cols) in sections.iter().zip(columns) {
+            let column = match name.as_str() {
+                "reveals" | "uses" => "partition_id",
+                "partitions" => "id",
+                _ => continue,
+            };
+            let Some(at) = cols.iter().position(|c| c == column) else {
+                continue;
+            };
+            for row in rows {
+                let Some(Sql::Text(p)) = row.get(at) else {
+                    continue;
+                };
+                match name.as_str() {
+                    "reveals" => carried.entry(p.clone()).or_default().0 += 1,
+                    "uses" => carried.entry(p.clone()).or_default().1 += 1,
+                    _ => {
+                        shipped.insert(p.clone());
+                    }
+                }
+            }
+        }
+    }
+    let bad = || {
+        Error::Integrity("the bundle's partition counts are malformed; nothing was merged".into())
+    };
+    let mut counted = std::collections::BTreeSet::new();
+    for p in stated {
+        let id = p["id"].as_str().ok_or_else(bad)?;
+        let want = (
+            p["reveals"].as_u64().ok_or_else(bad)?,
+            p["uses"].as_u64().ok_or_else(bad)?,
+        );
+        let have = carried.get(id).copied().unwrap_or_default();
+        if have != want {
+            return Err(Error::Integrity(format!(
+                "partition {id}: the bundle carries {} reveal(s) and {} development use(s), but states that its sender's ledger holds {} and {}: consultations were left out or added after packing; nothing was merged",
+                have.0, have.1, want.0, want.1
+            )));
+        }
+        counted.insert(id.to_string());
+    }
+    if let Some(p) = shipped.iter().find(|p| !counted.contains(*p)) {
+        return Err(Error::Integrity(format!(
+            "the bundle ships partition {p} but states no count of its reveals; nothing was merged"
+        )));
+    }
+    Ok(())
 }
 
 /// Why a bundled value could not be read back later as the ledger reads that column (the

@@ -43,6 +43,10 @@ pub const MIGRATIONS: &[(&str, &str)] = &[
         "0009_identity_v3.sql",
         include_str!("../../migrations/0009_identity_v3.sql"),
     ),
+    (
+        "0010_signed_bundles.sql",
+        include_str!("../../migrations/0010_signed_bundles.sql"),
+    ),
 ];
 
 /// The schema version this binary writes.

@@ -2937,19 +2937,26 @@ mod tests {
         }
         // Bundles: not into a ledger that stores the partition in another version; into an
         // empty one, which keeps the bundle's version for it.
-        let bundle = old.pack(&[1], "2026-12-03T00:00:02Z").unwrap();
-        let e = new.merge(&bundle).unwrap_err().to_string();
+        let who = crate::guard::consult::Who {
+            at: "2026-12-03T00:00:02Z".into(),
+            user: "u".into(),
+            host: "h".into(),
+            tool_version: "t".into(),
+        };
+        let bundle = old.pack(&[1], "2026-12-03T00:00:02Z").unwrap().0;
+        let e = new.merge(&bundle, true, &who).unwrap_err().to_string();
         assert!(e.contains("version 3 here, version 1 in the bundle"), "{e}");
         assert_eq!(new.verify().unwrap().0, 1);
         let mut empty = Ledger::open(&old_dir.join("empty.sqlite"), true).unwrap();
-        assert_eq!(empty.merge(&bundle).unwrap(), (1, 0));
+        let m = empty.merge(&bundle, true, &who).unwrap();
+        assert_eq!((m.merged, m.skipped), (1, 0));
         assert_eq!(
             empty.partition_identity(&old_id).unwrap(),
             Some(Identity::V1)
         );
         assert!(empty.verify().unwrap().1.is_empty());
-        let back = new.pack(&[1], "2026-12-03T00:00:03Z").unwrap();
-        assert!(old.merge(&back).is_err());
+        let back = new.pack(&[1], "2026-12-03T00:00:03Z").unwrap().0;
+        assert!(old.merge(&back, true, &who).is_err());
         drop((old, new, empty));
         let _ = std::fs::remove_dir_all(old_dir);
         let _ = std::fs::remove_dir_all(new_dir);

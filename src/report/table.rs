@@ -101,6 +101,18 @@ fn seconds(t: &str) -> String {
     t.chars().take(19).collect::<String>().replace('T', " ")
 }
 
+/// The keys a ledger trusts to sign bundles: (public key, name, added at, added by).
+pub fn trusted_keys(keys: &[(String, String, String, String)]) -> String {
+    if keys.is_empty() {
+        return "no trusted keys: `probity key trust NAME KEY` adds one (a teammate's `probity key show`)\n".into();
+    }
+    let mut t = new_table(vec!["name", "public key", "added (UTC)", "by"]);
+    for (k, n, at, by) in keys {
+        t.add_row(vec![n.clone(), k.clone(), seconds(at), by.clone()]);
+    }
+    format!("{t}\n")
+}
+
 /// Runs that recorded a start but were never stored: still going, or killed. Empty when none.
 pub fn unfinished(starts: &[crate::ledger::starts::Unfinished]) -> String {
     if starts.is_empty() {

@@ -32,6 +32,9 @@ fn decode(v: &Value) -> Sql {
 /// Recompute every entry's hash from its sections, in order, carrying each new hash into the
 /// later entries that link to the old one: a forged bundle that is consistent in itself.
 fn rehash(bundle: &mut Value) {
+    // A forger cannot sign for the sender: the forged bundle goes unsigned, and is merged with
+    // --allow-unverified, so that the receiver's own checks are what is tested.
+    bundle.as_object_mut().unwrap().remove("signature");
     let entries = bundle["entries"].as_array_mut().unwrap();
     let mut renamed: Vec<(String, String)> = Vec::new();
     for e in entries.iter_mut() {
@@ -70,11 +73,13 @@ fn alice_and_bob(name: &str) -> (Dir, Value) {
     alice.probity(&["run", "small.toml"]).expect(0);
     alice.probity(&["reveal", "1", "--yes"]).expect(0);
     alice.probity(&["note", "1", "checked"]).expect(0);
+    alice.public_key("alice");
     alice.probity(&["pack", "1", "--out", "a.json"]).expect(0);
     let bundle =
         serde_json::from_str(&std::fs::read_to_string(alice.path.join("a.json")).unwrap()).unwrap();
     let bob = small_dir(&format!("{name}-bob"));
     bob.probity(&["run", "small.toml"]).expect(0);
+    bob.trusts(&alice, "alice");
     (bob, bundle)
 }
 
@@ -97,7 +102,9 @@ fn section<'a>(bundle: &'a mut Value, kind: &str, name: &str) -> &'a mut Value {
 fn refused(bob: &Dir, bundle: &Value, code: i32, fragments: &[&str]) {
     let before = bob.counts();
     bob.write("b.json", &bundle.to_string());
-    let r = bob.probity(&["merge", "b.json"]).expect(code);
+    let r = bob
+        .probity(&["merge", "b.json", "--allow-unverified"])
+        .expect(code);
     for f in fragments {
         assert!(r.stderr().contains(f), "expected {f:?} in {}", r.stderr());
     }
@@ -297,7 +304,8 @@ fn a_run_under_a_forged_partition_id_is_refused_at_reveal() {
     replace_text(&mut forged, &old, "0123456789abcdef");
     rehash(&mut forged);
     bob.write("b.json", &forged.to_string());
-    bob.probity(&["merge", "b.json"]).expect(0);
+    bob.probity(&["merge", "b.json", "--allow-unverified"])
+        .expect(0);
     let before = bob.counts();
     let r = bob
         .probity(&["reveal", "2", "--yes", "--data", "small.csv"])
@@ -310,4 +318,155 @@ fn a_run_under_a_forged_partition_id_is_refused_at_reveal() {
         r.stderr()
     );
     assert_eq!(bob.counts(), before, "nothing is counted");
+}
+
+/// Sign `bundle` as its sender would, with the key file in `signer`'s config folder (a sender
+/// running a modified probity, say): the library's own message and signature.
+fn sign_as(signer: &Dir, bundle: &mut Value) {
+    let key = probity::signing::Key::load(
+        &signer
+            .path
+            .join(".config")
+            .join("probity")
+            .join("signing-key.json"),
+    )
+    .unwrap();
+    let public = key.public_hex();
+    let message = probity::signing::signed_message(bundle, &key.name, &public).unwrap();
+    bundle["signature"] =
+        json!({"signer": key.name, "public_key": public, "signature": key.sign(&message)});
+}
+
+/// Who made a bundle is checked: an unsigned bundle and one signed with a key the receiver does
+/// not trust are refused (exit 4) until the key is trusted, or merged with --allow-unverified,
+/// which `audit` then reports; a bundle changed after signing fails its signature.
+#[test]
+fn only_bundles_signed_with_a_trusted_key_merge_unasked() {
+    let alice = small_dir("sign-alice");
+    alice.probity(&["run", "small.toml"]).expect(0);
+    alice.probity(&["reveal", "1", "--yes"]).expect(0);
+    let r = alice.probity(&["pack", "1", "--out", "a.json"]).expect(2);
+    assert!(
+        r.stderr().contains("probity key new") && r.stderr().contains("--unsigned"),
+        "{}",
+        r.stderr()
+    );
+    let key = alice.public_key("alice");
+    let r = alice.probity(&["pack", "1", "--out", "a.json"]).expect(0);
+    assert!(
+        r.stderr()
+            .contains(&format!("signed by \"alice\" (key {key})")),
+        "{}",
+        r.stderr()
+    );
+    alice
+        .probity(&["pack", "1", "--out", "u.json", "--unsigned"])
+        .expect(0);
+    let signed: Value =
+        serde_json::from_str(&std::fs::read_to_string(alice.path.join("a.json")).unwrap()).unwrap();
+    let unsigned: Value =
+        serde_json::from_str(&std::fs::read_to_string(alice.path.join("u.json")).unwrap()).unwrap();
+    assert!(unsigned["signature"].is_null());
+
+    let bob = small_dir("sign-bob");
+    bob.probity(&["run", "small.toml"]).expect(0);
+    let before = bob.counts();
+    bob.write("a.json", &signed.to_string());
+    let r = bob.probity(&["merge", "a.json"]).expect(4);
+    assert!(
+        r.stderr().contains("does not trust")
+            && r.stderr()
+                .contains(&format!("probity key trust alice {key}")),
+        "{}",
+        r.stderr()
+    );
+    bob.write("u.json", &unsigned.to_string());
+    let r = bob.probity(&["merge", "u.json"]).expect(4);
+    assert!(r.stderr().contains("is not signed"), "{}", r.stderr());
+    assert_eq!(bob.counts(), before);
+
+    // Changed after signing: another creation time, or an entry left out.
+    let mut later = signed.clone();
+    later["created_at"] = json!("2020-01-01T00:00:00.000Z");
+    let mut fewer = signed.clone();
+    fewer["entries"].as_array_mut().unwrap().pop();
+    for b in [&later, &fewer] {
+        bob.write("x.json", &b.to_string());
+        let r = bob
+            .probity(&["merge", "x.json", "--allow-unverified"])
+            .expect(4);
+        assert!(r.stderr().contains("signature"), "{}", r.stderr());
+    }
+    assert_eq!(bob.counts(), before);
+
+    // Trusted, it merges and says by whom; the merge is on record.
+    bob.probity(&["key", "trust", "alice", &key]).expect(0);
+    let r = bob.probity(&["merge", "a.json"]).expect(0);
+    assert!(
+        r.stderr().contains("trusted here as \"alice\""),
+        "{}",
+        r.stderr()
+    );
+    let a = bob.probity(&["audit", "--json"]).expect(0).json();
+    assert_eq!(a["merges"][0]["verdict"], "trusted");
+    assert_eq!(a["merges"][0]["trusted_as"], "alice");
+    assert!(a["warnings"].as_array().unwrap().is_empty(), "{a}");
+
+    // Unverified, it merges only when asked, and audit says so.
+    let carol = small_dir("sign-carol");
+    carol.write("u.json", &unsigned.to_string());
+    carol
+        .probity(&["merge", "u.json", "--allow-unverified"])
+        .expect(0);
+    let a = carol.probity(&["audit", "--json"]).expect(0).json();
+    assert_eq!(a["merges"][0]["verdict"], "unsigned");
+    assert!(
+        a["warnings"][0]
+            .as_str()
+            .unwrap()
+            .contains("that was not signed"),
+        "{a}"
+    );
+    let text = carol.probity(&["audit"]).expect(0).stdout();
+    assert!(text.contains("--allow-unverified"), "{text}");
+}
+
+/// A bundle carries every consultation of each partition it ships, and says how many: packing
+/// run 1 brings run 2 (same partition) and its reveal. A sender whose bundle leaves a reveal
+/// out, signed all the same, is refused by the count.
+#[test]
+fn a_bundle_carries_and_counts_every_reveal_of_its_partitions() {
+    let alice = small_dir("count-alice");
+    alice.probity(&["run", "small.toml"]).expect(0);
+    alice.probity(&["run", "small.toml"]).expect(0);
+    alice.probity(&["reveal", "2", "--yes"]).expect(0);
+    alice.public_key("alice");
+    let r = alice.probity(&["pack", "1", "--out", "a.json"]).expect(0);
+    assert!(
+        r.stderr().contains("also packed runs [2]"),
+        "{}",
+        r.stderr()
+    );
+    let bundle: Value =
+        serde_json::from_str(&std::fs::read_to_string(alice.path.join("a.json")).unwrap()).unwrap();
+    assert_eq!(bundle["partitions"][0]["reveals"], 1);
+    assert_eq!(bundle["partitions"][0]["uses"], 0);
+    let bob = small_dir("count-bob");
+    bob.trusts(&alice, "alice");
+    bob.write("a.json", &bundle.to_string());
+    let mut partial = bundle.clone();
+    partial["entries"]
+        .as_array_mut()
+        .unwrap()
+        .retain(|e| e["kind"] != "reveal");
+    sign_as(&alice, &mut partial);
+    refused(
+        &bob,
+        &partial,
+        4,
+        &["carries 0 reveal(s)", "holds 1 and 0", "left out"],
+    );
+    bob.probity(&["merge", "a.json"]).expect(0);
+    let a = bob.probity(&["audit", "--json"]).expect(0).json();
+    assert_eq!(a["partitions"][0]["reveals"], 1);
 }

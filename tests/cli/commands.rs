@@ -298,6 +298,7 @@ fn merged_or_changed_commands_run_only_with_consent() {
         .as_i64()
         .unwrap()
         .to_string();
+    alice.public_key("alice");
     alice.probity(&["pack", "1", "--out", "a.json"]).expect(0);
     alice
         .probity(&["reveal", "1", "--candidate", &id, "--yes"])
@@ -346,6 +347,7 @@ fn merged_or_changed_commands_run_only_with_consent() {
     );
     // Bob merges Alice's run: its command came from another ledger.
     let bob = small_dir("consent-bob");
+    bob.trusts(&alice, "alice");
     std::fs::copy(alice.path.join("a.json"), bob.path.join("a.json")).unwrap();
     bob.probity(&["merge", "a.json"]).expect(0);
     let before = bob.counts();

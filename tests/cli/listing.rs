@@ -373,3 +373,62 @@ fn spreadsheet_safe_output_defuses_formulas_and_keeps_numbers() {
     let p = std::fs::read_to_string(d.path.join("p.csv")).unwrap();
     assert!(p.starts_with("'-record,prediction\n'=1+1,"), "{p}");
 }
+
+/// `key list`: the trusted keys as a table and as JSON (`{"trusted_keys": [{name, public_key,
+/// added_at, added_by}]}`, by name), the JSON pinned by a golden file with the time and the user masked.
+#[test]
+fn trusted_keys_list_matches_golden() {
+    let d = crate::fixtures::small_dir("key-list");
+    let r = d.probity(&["key", "list"]).expect(2);
+    assert!(r.stderr().contains("no ledger found"), "{}", r.stderr());
+    // Two public keys from RFC 8032, section 7.1 (TESTs 1 and 2): fixed, so the files are too.
+    d.probity(&[
+        "key",
+        "trust",
+        "bram",
+        "3d4017c3e843895a92b70aa74d1b7ebc9c982ccf2ec4968cc0cd55f12af4660c",
+    ])
+    .expect(0);
+    d.probity(&[
+        "key",
+        "trust",
+        "ada",
+        "D75A980182B10AB7D54BFED3C964073A0EE172F3DAA62325AF021A68F707511A",
+    ])
+    .expect(0);
+    let r = d
+        .probity(&[
+            "key",
+            "trust",
+            "ada-again",
+            "d75a980182b10ab7d54bfed3c964073a0ee172f3daa62325af021a68f707511a",
+        ])
+        .expect(2);
+    assert!(
+        r.stderr().contains("trusted already, as \"ada\""),
+        "{}",
+        r.stderr()
+    );
+    d.probity(&["key", "trust", "x", "00"]).expect(2);
+    let mut j = d.probity(&["key", "list", "--json"]).expect(0).json();
+    for k in j["trusted_keys"].as_array_mut().unwrap() {
+        assert!(k["added_at"].as_str().unwrap().ends_with('Z'));
+        assert!(k["added_by"].as_str().unwrap().contains('@'));
+        k["added_at"] = serde_json::json!("<time>");
+        k["added_by"] = serde_json::json!("<user@host>");
+    }
+    crate::util::check_golden(
+        "key-list.json",
+        &(serde_json::to_string_pretty(&j).unwrap() + "\n"),
+    );
+    // The table's widths follow the user and host names, so its lines are checked, not pinned.
+    let table = d.probity(&["key", "list"]).expect(0).stdout();
+    let rows: Vec<&str> = table.lines().filter(|l| l.contains('┆')).collect();
+    assert_eq!(rows.len(), 3, "{table}");
+    assert!(
+        rows[0].contains("name")
+            && rows[0].contains("public key")
+            && rows[0].contains("added (UTC)")
+    );
+    assert!(rows[1].contains("ada") && rows[1].contains("d75a9801") && rows[2].contains("bram"));
+}

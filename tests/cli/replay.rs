@@ -266,9 +266,11 @@ fn bundles_merge_verified_and_never_mix_histories() {
     let alice = small_dir("alice");
     alice.probity(&["run", "small.toml"]).expect(0);
     alice.probity(&["reveal", "1", "--yes"]).expect(0);
+    alice.public_key("alice");
     alice.probity(&["pack", "1", "--out", "a.json"]).expect(0);
     let bob = small_dir("bob");
     bob.probity(&["run", "small.toml"]).expect(0);
+    bob.trusts(&alice, "alice");
     std::fs::copy(alice.path.join("a.json"), bob.path.join("a.json")).unwrap();
     let r = bob.probity(&["merge", "a.json"]).expect(0);
     assert!(r.stderr().contains("merged 2 entries"), "{}", r.stderr());
@@ -303,6 +305,7 @@ fn bundles_merge_verified_and_never_mix_histories() {
         .unwrap();
     fold_scores["rows"][0][6] = serde_json::json!({"r": "3ff0000000000000"});
     let carol = small_dir("carol");
+    carol.trusts(&alice, "alice");
     carol.write("bad.json", &j.to_string());
     let r = carol.probity(&["merge", "bad.json"]).expect(4);
     assert!(
@@ -318,8 +321,11 @@ fn bundles_merge_verified_and_never_mix_histories() {
     alice.probity(&["note", "1", "alice's note"]).expect(0);
     copy.probity(&["note", "1", "a different note"]).expect(0);
     alice.probity(&["pack", "1", "--out", "a2.json"]).expect(0);
+    copy.public_key("alice-copy");
     copy.probity(&["pack", "1", "--out", "c2.json"]).expect(0);
     let dave = small_dir("dave");
+    dave.trusts(&alice, "alice");
+    dave.trusts(&copy, "alice-copy");
     std::fs::copy(alice.path.join("a2.json"), dave.path.join("a2.json")).unwrap();
     std::fs::copy(copy.path.join("c2.json"), dave.path.join("c2.json")).unwrap();
     dave.probity(&["merge", "a2.json"]).expect(0);

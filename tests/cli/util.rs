@@ -53,6 +53,25 @@ impl Dir {
         self.probity_within(args, 600)
     }
 
+    /// This person's public signing key, made on first use.
+    pub fn public_key(&self, name: &str) -> String {
+        let r = self.probity(&["key", "show"]);
+        let line = if r.code() == 0 {
+            r.stdout()
+        } else {
+            self.probity(&["key", "new", "--name", name])
+                .expect(0)
+                .stdout()
+        };
+        line.split_whitespace().last().unwrap().to_string()
+    }
+
+    /// Trust `signer`'s key (made if need be) in this folder's ledger, under `name`.
+    pub fn trusts(&self, signer: &Dir, name: &str) {
+        let key = signer.public_key(name);
+        self.probity(&["key", "trust", name, &key]).expect(0);
+    }
+
     /// `probity`, killed after `seconds` (its exit code is then -1): for cases that must not
     /// wait on anything.
     pub fn probity_within(&self, args: &[&str], seconds: u64) -> Run {
@@ -60,6 +79,9 @@ impl Dir {
         cmd.current_dir(&self.path)
             .args(args)
             .env_remove("PROBITY_LEDGER")
+            .env_remove("PROBITY_KEY")
+            // Each folder is a person of its own: its signing key lives in its own config.
+            .env("XDG_CONFIG_HOME", self.path.join(".config"))
             .timeout(std::time::Duration::from_secs(seconds));
         let out = cmd.output().unwrap();
         Run {
