@@ -1595,6 +1595,15 @@ pub fn run_recording(
     } = after?;
     prep.ids = keys?;
     let mut warnings = prep.warnings.clone();
+    if entries.iter().any(|e| {
+        e.command
+            .as_ref()
+            .is_some_and(crate::external::sandbox::boxed)
+    }) {
+        warnings.extend(crate::external::sandbox::linked_data_warning(
+            &spec.data.path,
+        ));
+    }
     for e in &entries {
         if let Some(w) = e
             .command

@@ -242,9 +242,13 @@ fn existing(g: &Global) -> Result<PathBuf> {
     Ok(path)
 }
 
-/// The ledger's folder is never granted to a command's box, wherever it is.
+/// The ledger's folder is never granted to a command's box, wherever it is, nor the folder of
+/// the file it links to.
 fn keep_out_of_boxes(ledger: &Path) {
     crate::external::sandbox::keep_out(ledger.parent().unwrap_or(ledger));
+    if let Ok(real) = std::fs::canonicalize(ledger) {
+        crate::external::sandbox::keep_out(real.parent().unwrap_or(&real));
+    }
 }
 
 /// Write a report file and say where it went.
@@ -451,17 +455,19 @@ pub(crate) fn command_consent(
     now.sort();
     let mut stored = ledger.run_inputs(d.summary.id)?;
     stored.sort();
-    let why = if ledger.run_merged(d.summary.id)? {
+    let merged = ledger.run_merged(d.summary.id)?;
+    if merged {
+        // Another ledger's spec does not decide to run outside the box here.
+        crate::external::sandbox::force();
+    }
+    let why = if merged {
         "came from another ledger"
     } else if unreadable || now != stored {
         "has command inputs that changed since it ran"
     } else {
         return Ok(());
     };
-    let argv: Vec<String> = cmds
-        .iter()
-        .map(|c| format!("{:?} in {}", c.run, c.workdir.display()))
-        .collect();
+    let argv: Vec<String> = cmds.iter().map(|c| command_line(c)).collect();
     if !allow {
         return Err(Error::Input(format!(
             "run {} {why}: {what} would run its external command ({}) as you; read it, then pass --allow-commands to run it",
@@ -479,6 +485,20 @@ pub(crate) fn command_consent(
         warn(&format!("  input {path}: SHA-256 {sha}"));
     }
     Ok(())
+}
+
+/// A command as consent lists it: its argv, its folder, and whether it runs outside the box.
+pub(crate) fn command_line(c: &crate::spec::CommandSpec) -> String {
+    format!(
+        "{:?} in {}{}",
+        c.run,
+        c.workdir.display(),
+        if crate::external::sandbox::boxed(c) {
+            ""
+        } else {
+            ", outside the box (sandbox = false): it can read the data file"
+        }
+    )
 }
 
 /// A size in bytes from `8G`, `512M`, `1.5T` or a plain number (binary units; `iB` and `B`

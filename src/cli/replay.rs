@@ -35,12 +35,16 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
     let d = super::stored_run(&ledger, a.run)?;
     // The spec comes from the ledger, not from the file on disk, which may have changed.
     let (spec, table) = super::reveal::reload(&d, a.data.as_deref())?;
-    // A replay runs what the ledger says; external commands only with explicit consent.
+    // A replay runs what the ledger says; external commands only with explicit consent, and a
+    // merged run's in the box whatever its spec says.
+    if ledger.run_merged(d.summary.id)? {
+        crate::external::sandbox::force();
+    }
     let commands: Vec<String> = spec
         .models
         .iter()
         .filter_map(|m| m.command.as_ref())
-        .map(|c| format!("{:?} in {}", c.run, c.workdir.display()))
+        .map(super::command_line)
         .collect();
     if !commands.is_empty() {
         if !a.allow_commands {

@@ -43,18 +43,39 @@ pub fn input_hashes(cmd: &CommandSpec) -> Result<Vec<(String, String)>, String> 
             let hash = if path.is_dir() {
                 tree_hash(path)?
             } else {
-                let bytes = std::fs::read(path)
-                    .map_err(|e| format!("cannot read input {}: {e}", path.display()))?;
-                crate::spec::hex(&Sha256::digest(&bytes))
+                file_hash(path)?
             };
             Ok((text.clone(), hash))
         })
         .collect()
 }
 
+/// SHA-256 (hex) of a regular file's bytes, read in blocks (an input may be large); anything
+/// else (a pipe, a device) is refused rather than read.
+fn file_hash(path: &Path) -> Result<String, String> {
+    if let Some(kind) = crate::files::not_regular(path) {
+        return Err(format!("input {} is {kind}, not a file", path.display()));
+    }
+    let mut f = std::fs::File::open(path)
+        .map_err(|e| format!("cannot read input {}: {e}", path.display()))?;
+    let mut h = Sha256::new();
+    let mut buf = vec![0u8; 1 << 16];
+    loop {
+        let n = f
+            .read(&mut buf)
+            .map_err(|e| format!("cannot read input {}: {e}", path.display()))?;
+        if n == 0 {
+            break;
+        }
+        h.update(&buf[..n]);
+    }
+    Ok(crate::spec::hex(&h.finalize()))
+}
+
 /// A folder's fingerprint: SHA-256 over one line per entry beneath it, sorted by relative
 /// path: `f <path> <sha256 of the bytes>` for a file, `l <path> <target>` for a symbolic link
-/// (not followed), `d <path>` for a folder.
+/// (not followed), `d <path>` for a folder; each path and target written as a JSON string, so
+/// that no name can pass for a line break. Pipes, devices and sockets are refused.
 fn tree_hash(root: &Path) -> Result<String, String> {
     let mut lines: Vec<(Vec<u8>, String)> = Vec::new();
     let mut stack = vec![root.to_path_buf()];
@@ -73,17 +94,17 @@ fn tree_hash(root: &Path) -> Result<String, String> {
             let t = entry
                 .file_type()
                 .map_err(|e| format!("cannot read {}: {e}", path.display()))?;
+            let name = serde_json::Value::String(rel.clone()).to_string();
             let line = if t.is_symlink() {
                 let to = std::fs::read_link(&path)
                     .map_err(|e| format!("cannot read {}: {e}", path.display()))?;
-                format!("l {rel} {}", to.to_string_lossy())
+                let to = serde_json::Value::String(to.to_string_lossy().into_owned());
+                format!("l {name} {to}")
             } else if t.is_dir() {
                 stack.push(path.clone());
-                format!("d {rel}")
+                format!("d {name}")
             } else {
-                let bytes = std::fs::read(&path)
-                    .map_err(|e| format!("cannot read input {}: {e}", path.display()))?;
-                format!("f {rel} {}", crate::spec::hex(&Sha256::digest(&bytes)))
+                format!("f {name} {}", file_hash(&path)?)
             };
             lines.push((rel.into_bytes(), line));
         }
@@ -151,7 +172,13 @@ pub fn fit_predict(
     let fit_path = dir.path().join("fit.csv");
     let score_path = dir.path().join("score.csv");
     let out_path = dir.path().join("predictions.csv");
-    let err_path = dir.path().join("stderr.txt");
+    // The command's stderr goes to a file of probity's own, outside the scratch folder: one
+    // the command could replace (by a link to the data file, say) would be read back.
+    let own = tempfile::Builder::new()
+        .prefix("probity-stderr-")
+        .tempdir()
+        .map_err(|e| format!("cannot make a folder for the command's stderr: {e}"))?;
+    let err_path = own.path().join("stderr.txt");
     let mut fit_names = job.features.to_vec();
     fit_names.push(job.target.to_string());
     write_csv(
@@ -189,7 +216,11 @@ pub fn fit_predict(
         .map(|(t, p)| (t.clone(), p.to_string_lossy().into_owned().into()))
         .collect();
     let mut command = Command::new(absolute(&job.cmd.run[0]));
-    let grants = job.cmd.sandbox.then(|| {
+    // Its own process group, so that what it leaves behind can be ended with it.
+    #[cfg(unix)]
+    std::os::unix::process::CommandExt::process_group(&mut command, 0);
+    let boxed = sandbox::boxed(job.cmd);
+    let grants = boxed.then(|| {
         let mut protected = vec![
             fit_table.path.clone(),
             score_table.path.clone(),
@@ -239,6 +270,7 @@ pub fn fit_predict(
         match child.try_wait() {
             Ok(Some(s)) => break s,
             Ok(None) if start.elapsed() > limit => {
+                sandbox::end_group(child.id());
                 let _ = child.kill();
                 let _ = child.wait();
                 return Err(format!(
@@ -250,15 +282,14 @@ pub fn fit_predict(
             Err(e) => return Err(format!("cannot wait for the command: {e}")),
         }
     };
-    let mut err_text = String::new();
-    if let Ok(mut f) = std::fs::File::open(&err_path) {
-        let _ = f.read_to_string(&mut err_text);
-    }
+    // Whatever the command left running in the background ends with it.
+    sandbox::end_group(child.id());
+    let err_text = last_bytes(&err_path, 64 << 10);
     if !status.success() {
         let code = status.code().map_or("killed by a signal".to_string(), |c| {
             format!("exit status {c}")
         });
-        let boxed = if job.cmd.sandbox {
+        let boxed = if boxed {
             " (the command ran in its box: it reads the system's folders, its inputs and its scratch folder only; see the README)"
         } else {
             ""
@@ -268,11 +299,55 @@ pub fn fit_predict(
     read_predictions(&out_path, score_rows.len(), job.classes)
 }
 
+/// The last `max` bytes of a file of probity's own, as text.
+fn last_bytes(path: &Path, max: u64) -> String {
+    use std::io::{Seek, SeekFrom};
+    let Ok(mut f) = std::fs::File::open(path) else {
+        return String::new();
+    };
+    let len = f.metadata().map_or(0, |m| m.len());
+    let _ = f.seek(SeekFrom::Start(len.saturating_sub(max)));
+    let mut bytes = Vec::new();
+    let _ = f.take(max).read_to_end(&mut bytes);
+    String::from_utf8_lossy(&bytes).into_owned()
+}
+
+/// Open the predictions file the command wrote, as a regular file only: not through a link
+/// (it could name the data file), not a pipe or a device (they could block or never end), and
+/// not larger than `max` bytes.
+fn open_written(path: &Path, max: u64) -> Result<std::fs::File, String> {
+    let mut opts = std::fs::OpenOptions::new();
+    opts.read(true);
+    #[cfg(target_os = "linux")]
+    std::os::unix::fs::OpenOptionsExt::custom_flags(&mut opts, libc::O_NOFOLLOW | libc::O_NONBLOCK);
+    let f = opts.open(path).map_err(|e| {
+        if e.kind() == std::io::ErrorKind::NotFound {
+            format!("wrote no predictions file ({e})")
+        } else {
+            format!("wrote a predictions file that is not a plain file ({e})")
+        }
+    })?;
+    let meta = f
+        .metadata()
+        .map_err(|e| format!("unreadable predictions: {e}"))?;
+    if !meta.is_file() {
+        return Err("wrote a predictions file that is not a plain file".into());
+    }
+    if meta.len() > max {
+        return Err(format!(
+            "wrote a predictions file of {} bytes, more than {max} for its rows",
+            meta.len()
+        ));
+    }
+    Ok(f)
+}
+
 /// Read and check the predictions file: row count, numbers, no NaN, probabilities in [0, 1]
 /// summing to 1 within 1e-6, predicted classes among the classes.
 fn read_predictions(path: &Path, n: usize, classes: &[String]) -> Result<Vec<f64>, String> {
-    let mut rdr =
-        csv::Reader::from_path(path).map_err(|e| format!("wrote no predictions file ({e})"))?;
+    // Room for 256 bytes a cell: far more than any number needs.
+    let max = (1u64 << 20) + (n as u64) * (classes.len() as u64 + 1) * 256;
+    let mut rdr = csv::Reader::from_reader(open_written(path, max)?);
     let header: Vec<String> = rdr
         .headers()
         .map_err(|e| format!("unreadable predictions: {e}"))?

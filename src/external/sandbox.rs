@@ -1,7 +1,7 @@
 //! The box an external command runs in. On Linux with Landlock (5.13 or newer), the command's
 //! file-system access is limited to:
 //! - the system's folders (`/usr`, `/lib*`, `/bin`, `/sbin`, `/etc`, `/opt`, `/proc`, `/sys`),
-//!   read-only, and `/dev`, read and write (for `/dev/null`);
+//!   read-only, and a few devices (`/dev/null`, `/dev/urandom`...), read and write;
 //! - the installation of every program on `PATH` and of the program it runs (the folder above
 //!   a `bin`, `sbin` or `shims` folder: an interpreter under a version manager keeps its
 //!   libraries beside its `bin`), read-only;
@@ -9,7 +9,8 @@
 //! - its scratch folder, read and write.
 //!
 //! A folder that holds the data file, the spec's folder, the current folder or the ledger's
-//! folder is never granted: those hold the sealed rows and the record of their use. A data file is kept out
+//! folder is never granted: those hold the sealed rows and the record of their use; nor is
+//! anything inside those folders but the declared inputs. A data file is kept out
 //! even when it sits under a system folder, since that folder is then skipped. The rules are
 //! built in the parent; the child only applies them (`restrict_self`, two system calls)
 //! between fork and exec, where nothing may allocate.
@@ -33,7 +34,7 @@ pub fn boxing() -> Boxing {
 
 /// The warning a run stores for a command family that runs outside the box, if it does.
 pub fn warning(cmd: &CommandSpec, line: usize) -> Option<String> {
-    if !cmd.sandbox {
+    if !boxed(cmd) {
         return Some(format!(
             "the command family at line {line} ran outside the box (sandbox = false): it could read the data file, sealed test rows included, and its scores cannot show whether it did"
         ));
@@ -53,6 +54,26 @@ static KEPT_OUT: std::sync::Mutex<Vec<PathBuf>> = std::sync::Mutex::new(Vec::new
 pub fn keep_out(path: &Path) {
     if let Ok(mut k) = KEPT_OUT.lock() {
         k.push(path.to_path_buf());
+    }
+}
+
+/// The warning a run with boxed commands stores when its data file has other names (hard
+/// links): the box keeps out the name it knows, and the spec's inputs were searched for the
+/// others, but one in a folder the box grants would be readable.
+pub fn linked_data_warning(data: &Path) -> Option<String> {
+    #[cfg(unix)]
+    {
+        use std::os::unix::fs::MetadataExt;
+        let links = std::fs::metadata(data).ok()?.nlink();
+        (links > 1).then(|| format!(
+            "the data file {} has {links} names (hard links); a command's box keeps out this one, and no input may be another, but a name in a system folder would be readable to it: remove the other links",
+            data.display()
+        ))
+    }
+    #[cfg(not(unix))]
+    {
+        let _ = data;
+        None
     }
 }
 
@@ -81,6 +102,29 @@ const SYSTEM: [&str; 12] = [
     "/proc",
     "/sys",
 ];
+
+/// The device files a command may use, read and write: no disk, no shared memory.
+const DEVICES: [&str; 6] = [
+    "/dev/null",
+    "/dev/zero",
+    "/dev/full",
+    "/dev/random",
+    "/dev/urandom",
+    "/dev/tty",
+];
+
+/// Set by the CLI for a command from another ledger: boxed whatever its spec says.
+static FORCED: std::sync::atomic::AtomicBool = std::sync::atomic::AtomicBool::new(false);
+
+/// Box every command from now on, `sandbox = false` or not (a merged run's commands).
+pub fn force() {
+    FORCED.store(true, std::sync::atomic::Ordering::SeqCst);
+}
+
+/// Whether `cmd` runs in the box.
+pub fn boxed(cmd: &CommandSpec) -> bool {
+    cmd.sandbox || FORCED.load(std::sync::atomic::Ordering::SeqCst)
+}
 
 /// The program `argv0` names: a path (relative ones against `workdir`), else the first
 /// executable file of that name on `PATH`, as the child's exec would find it.
@@ -126,11 +170,15 @@ pub fn grants(cmd: &CommandSpec, scratch: &Path, protected: &[PathBuf]) -> Grant
         .filter_map(|p| real(p))
         .collect();
     let home = std::env::var_os("HOME").and_then(|h| real(Path::new(&h)));
-    // A grant covers everything beneath it: one that holds a protected path is never made.
+    // A grant covers everything beneath it: one that holds a protected path is never made, and
+    // nothing inside a protected folder (the spec's, the current one, the ledger's) is granted
+    // but the declared inputs.
     let safe = |p: &Path| {
         p.parent().is_some()
             && home.as_deref() != Some(p)
-            && !protected.iter().any(|q| q.starts_with(p))
+            && !protected
+                .iter()
+                .any(|q| q.starts_with(p) || (q.is_dir() && p.starts_with(q)))
     };
     let mut read: Vec<PathBuf> = Vec::new();
     let add = |p: PathBuf, read: &mut Vec<PathBuf>| {
@@ -146,7 +194,10 @@ pub fn grants(cmd: &CommandSpec, scratch: &Path, protected: &[PathBuf]) -> Grant
     let mut programs: Vec<PathBuf> = std::env::var_os("PATH")
         .map(|p| std::env::split_paths(&p).collect())
         .unwrap_or_default();
-    if let Some(p) = program_path(&cmd.run[0], &cmd.workdir).and_then(|p| real(&p))
+    // The program's own installation, unless it is a declared input (granted as itself).
+    let declared = cmd.inputs.iter().any(|(t, _)| *t == cmd.run[0]);
+    if !declared
+        && let Some(p) = program_path(&cmd.run[0], &cmd.workdir).and_then(|p| real(&p))
         && let Some(dir) = p.parent()
     {
         programs.push(dir.to_path_buf());
@@ -162,15 +213,22 @@ pub fn grants(cmd: &CommandSpec, scratch: &Path, protected: &[PathBuf]) -> Grant
             }
         }
     }
-    let devices = real(Path::new("/dev"))
-        .into_iter()
-        .filter(|p| safe(p))
+    // Devices one by one: the whole of /dev would hold disks (readable by root) and /dev/shm.
+    let devices = DEVICES
+        .iter()
+        .filter_map(|d| real(Path::new(d)))
+        .filter(|p| p.starts_with("/dev") && !protected.iter().any(|q| q.starts_with(p)))
         .collect();
     Grants {
         read,
         devices,
         write: real(scratch).into_iter().collect(),
     }
+}
+
+/// End every process of the group `pid` leads (the command and what it started).
+pub fn end_group(pid: u32) {
+    imp::end_group(pid)
 }
 
 /// Prepare `command`'s child: it keeps no descriptor beyond 0-2 that probity's own parent left
@@ -186,7 +244,7 @@ mod imp {
     use super::{Boxing, Grants};
     use landlock::{
         ABI, Access, AccessFs, PathBeneath, PathFd, Ruleset, RulesetAttr, RulesetCreatedAttr,
-        RulesetStatus,
+        RulesetStatus, Scope,
     };
 
     /// The newest file-system rights the box names; an older kernel enforces what it knows
@@ -214,6 +272,13 @@ mod imp {
                 Some(libc::ENOSYS) => "this kernel has no Landlock".into(),
                 _ => format!("Landlock did not answer ({e})"),
             })
+        }
+    }
+
+    pub fn end_group(pid: u32) {
+        // SAFETY: a signal to a process group probity made (`process_group(0)` at spawn).
+        unsafe {
+            libc::kill(-(pid as libc::pid_t), libc::SIGKILL);
         }
     }
 
@@ -255,8 +320,12 @@ mod imp {
             Ok(PathBeneath::new(fd, access))
         };
         let read = AccessFs::from_read(ABI_USED);
+        // Signals and abstract sockets are scoped too where the kernel can (ABI 6): the command
+        // cannot kill probity, or talk to a service outside its box that way.
         let mut ruleset = Ruleset::default()
             .handle_access(AccessFs::from_all(ABI_USED))
+            .map_err(fail)?
+            .scope(Scope::Signal | Scope::AbstractUnixSocket)
             .map_err(fail)?
             .create()
             .map_err(fail)?;
@@ -301,6 +370,8 @@ mod imp {
     pub fn boxing() -> Boxing {
         Boxing::Unavailable("Landlock is a Linux feature".into())
     }
+
+    pub fn end_group(_: u32) {}
 
     pub fn apply(_: &mut std::process::Command, _: Option<&Grants>) -> Result<(), String> {
         Ok(())

@@ -1314,20 +1314,24 @@ impl<'a> Check<'a> {
                 if data_real.starts_with(&real) {
                     return Err(self.err(i, format!("input {} {} the data file, which holds the sealed test rows; a command sees the fitting rows only through PROBITY_FIT. List the command's own files instead", path.display(), if real == data_real { "is" } else { "holds" })));
                 }
+                if let Some(why) = input_problem(&real, &data_real) {
+                    return Err(self.err(i, format!("input {}: {why}", path.display())));
+                }
                 Ok((i.get_ref().clone(), path))
             })
             .collect::<Result<Vec<_>>>()?;
         // The boxed command runs in a scratch folder: a program named by a relative path is found
         // through `inputs`, which the box lets it read.
-        // So is a file of the spec's folder named in the argv: undeclared, the box would hide it.
+        // So is a file of the spec's folder named in the argv (relative or absolute):
+        // undeclared, the box would hide it.
         if sandbox {
             for (i, arg) in run.get_ref().iter().enumerate() {
                 let relative = !arg.is_empty() && !Path::new(arg).is_absolute();
                 let path_like = i == 0 && arg.contains('/');
-                if relative
-                    && (path_like || base.join(arg).is_file())
-                    && !inputs.iter().any(|(t, _)| t == arg)
-                {
+                let inside = !arg.is_empty()
+                    && std::fs::canonicalize(base.join(arg))
+                        .is_ok_and(|p| p.is_file() && p.starts_with(&base));
+                if ((relative && path_like) || inside) && !inputs.iter().any(|(t, _)| t == arg) {
                     return Err(self.err(run, format!("{arg:?} names a file of the spec's folder, which the command's box does not show: list it in inputs = [\"{arg}\"] (the command runs in a scratch folder, and reads its inputs by absolute path)")));
                 }
             }
@@ -1603,6 +1607,60 @@ impl Spec {
         s["missing"] = v["data"]["missing"].clone();
         s.to_string()
     }
+}
+
+/// Why an input (canonical path) cannot be granted to a command's box, if it cannot: a system
+/// tree of the kernel's (`/proc`, `/sys`, `/dev`: endless files, devices, other processes), a
+/// pipe, device or socket (a read would block or never end), or a file that is the data file
+/// under another name (a hard link: the same file, whatever its path). Folders are walked
+/// whole, without following links.
+fn input_problem(input: &Path, data: &Path) -> Option<String> {
+    if ["/proc", "/sys", "/dev"]
+        .iter()
+        .any(|k| input.starts_with(k))
+    {
+        return Some("a folder of the kernel's (/proc, /sys, /dev) cannot be an input".into());
+    }
+    let same_file = {
+        #[cfg(unix)]
+        {
+            use std::os::unix::fs::MetadataExt;
+            let d = std::fs::metadata(data).ok().map(|m| (m.dev(), m.ino()));
+            move |m: &std::fs::Metadata| d == Some((m.dev(), m.ino()))
+        }
+        #[cfg(not(unix))]
+        {
+            let _ = data;
+            |_: &std::fs::Metadata| false
+        }
+    };
+    let mut stack = vec![input.to_path_buf()];
+    while let Some(p) = stack.pop() {
+        let Ok(meta) = std::fs::symlink_metadata(&p) else {
+            continue;
+        };
+        let t = meta.file_type();
+        if t.is_dir() {
+            match std::fs::read_dir(&p) {
+                Ok(rd) => stack.extend(rd.filter_map(|e| e.ok().map(|e| e.path()))),
+                Err(e) => return Some(format!("cannot read {} ({e})", p.display())),
+            }
+        } else if t.is_file() {
+            if same_file(&meta) {
+                return Some(format!(
+                    "{} is the data file under another name (a hard link); the data file holds the sealed test rows, so no input may reach it",
+                    p.display()
+                ));
+            }
+        } else if !t.is_symlink() {
+            return Some(format!(
+                "{} is {}, not a file or folder; inputs hold files only",
+                p.display(),
+                crate::files::not_regular(&p).unwrap_or("not a regular file")
+            ));
+        }
+    }
+    None
 }
 
 /// Lowercase hex of bytes.

@@ -414,11 +414,9 @@ out.append("cells=" + ("as-written" if ok else "rewritten:" + cells[0]))
 sys.exit("probe: " + " ".join(out))
 "#;
 
-/// The probe's findings from a run of `spec` in `d`.
-fn probe(d: &Dir, spec: &str) -> (String, Vec<String>) {
-    d.write("probe.toml", spec);
-    let j = d.probity(&["run", "probe.toml", "--json"]).expect(0).json();
-    let failure = j["candidates"]
+/// Why a run's (first) command candidate failed, from `run --json` or `show --json`.
+fn command_failure(j: &serde_json::Value) -> String {
+    j["candidates"]
         .as_array()
         .unwrap()
         .iter()
@@ -426,7 +424,14 @@ fn probe(d: &Dir, spec: &str) -> (String, Vec<String>) {
         .unwrap()["failure"]
         .as_str()
         .unwrap()
-        .to_string();
+        .to_string()
+}
+
+/// The probe's findings from a run of `spec` in `d`.
+fn probe(d: &Dir, spec: &str) -> (String, Vec<String>) {
+    d.write("probe.toml", spec);
+    let j = d.probity(&["run", "probe.toml", "--json"]).expect(0).json();
+    let failure = command_failure(&j);
     let warnings = j["warnings"]
         .as_array()
         .unwrap()
@@ -501,6 +506,32 @@ fn a_boxed_command_cannot_reach_the_data_file_or_the_ledger() {
         hash("3"),
         "sandbox = false changes the spec hash"
     );
+    // Merged elsewhere, the unboxed run's command is boxed all the same when replayed there.
+    d.public_key("alice");
+    d.probity(&["pack", "3", "--out", "u.json"]).expect(0);
+    let bob = Dir::new("cmd-box-bob");
+    bob.trusts(&d, "alice");
+    bob.copy(&d.path.join("u.json"), "u.json");
+    bob.probity(&["merge", "u.json"]).expect(0);
+    let data = here.join("small.csv");
+    let r = bob.probity(&[
+        "replay",
+        "1",
+        "--allow-commands",
+        "--data",
+        data.to_str().unwrap(),
+    ]);
+    assert!(
+        r.stderr().contains("replay will run") && !r.stderr().contains("outside the box"),
+        "{}",
+        r.stderr()
+    );
+    let replayed = bob.probity(&["show", "2", "--json"]).expect(0).json();
+    let failure = command_failure(&replayed);
+    assert!(
+        failure.contains("abs=denied") && failure.contains("write=denied"),
+        "{failure}"
+    );
 }
 
 /// Inputs are checked against the box: one that is (or holds) the data file is refused, and a
@@ -525,4 +556,131 @@ fn inputs_cannot_open_the_box_to_the_data() {
             r.stderr()
         );
     }
+    // The data file under another name (a hard link) in a folder input; a pipe in one (its
+    // hash would wait for ever); a folder of the kernel's.
+    std::fs::create_dir_all(d.path.join("helper")).unwrap();
+    std::fs::hard_link(d.path.join("small.csv"), d.path.join("helper/copy.csv")).unwrap();
+    std::fs::create_dir_all(d.path.join("piped")).unwrap();
+    assert!(
+        std::process::Command::new("mkfifo")
+            .arg(d.path.join("piped/p"))
+            .status()
+            .unwrap()
+            .success()
+    );
+    for (input, word) in [
+        ("helper", "the data file under another name (a hard link)"),
+        ("helper/copy.csv", "a hard link"),
+        ("piped", "a named pipe"),
+        ("/proc", "a folder of the kernel's"),
+    ] {
+        d.write(
+            "i.toml",
+            &format!(
+                "{SMALL_SPEC}\n[[model]]\nkind = \"command\"\nrun = [\"python3\", \"-c\", \"pass\"]\ninputs = [\"{input}\"]\n"
+            ),
+        );
+        let r = d.probity_within(&["check", "i.toml"], 60).expect(2);
+        assert!(
+            r.stderr().contains("i.toml:") && r.stderr().contains(word),
+            "{input}: {}",
+            r.stderr()
+        );
+    }
+    // Another name of the data file anywhere is worth a warning in a run with a boxed command.
+    std::fs::remove_dir_all(d.path.join("piped")).unwrap();
+    d.write("m.py", MEAN_MODEL);
+    d.write("m.toml", &command_spec("m.py", ""));
+    let j = d.probity(&["run", "m.toml", "--json"]).expect(0).json();
+    assert!(
+        j["warnings"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .any(|w| w.as_str().unwrap().contains("has 2 names (hard links)")),
+        "{}",
+        j["warnings"]
+    );
+}
+
+/// What a command leaves in its scratch folder is read back safely: a stderr file replaced by
+/// a link to the data file (its stderr is kept elsewhere), a predictions file that is a link;
+/// a program named by path in a folder of its own gets that folder no wider than itself; and
+/// what it starts in the background ends with it.
+#[test]
+fn a_command_cannot_make_probity_read_for_it() {
+    let d = small_dir("cmd-box-readback");
+    let here = std::fs::canonicalize(&d.path).unwrap();
+    std::fs::create_dir_all(d.path.join("tools")).unwrap();
+    d.write("tools/notes.txt", "undeclared secret\n");
+    d.write(
+        "tools/fit.sh",
+        &format!(
+            r#"#!/bin/sh
+case "$PROBITY_PARAMS" in
+*probe*)
+  sleep 300 &
+  if cat "$(dirname "$0")/notes.txt" >/dev/null 2>&1; then n=read; else n=denied; fi
+  echo "probe: pid=$! notes=$n" >&2
+  exit 1;;
+esac
+ln -sf {data} stderr.txt
+ln -sf {data} "$PROBITY_OUT"
+exit 0
+"#,
+            data = here.join("small.csv").display()
+        ),
+    );
+    #[cfg(unix)]
+    {
+        use std::os::unix::fs::PermissionsExt;
+        std::fs::set_permissions(
+            d.path.join("tools/fit.sh"),
+            std::fs::Permissions::from_mode(0o755),
+        )
+        .unwrap();
+    }
+    d.write(
+        "t.toml",
+        &format!(
+            "{SMALL_SPEC}\n[[model]]\nkind = \"command\"\nrun = [\"tools/fit.sh\"]\ninputs = [\"tools/fit.sh\"]\nparams = {{ mode = [\"link\", \"probe\"] }}\n"
+        ),
+    );
+    let j = d.probity(&["run", "t.toml", "--json"]).expect(0).json();
+    let failure = |mode: &str| {
+        j["candidates"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .find(|c| c["model"] == "command" && c["params"]["mode"] == mode)
+            .unwrap()["failure"]
+            .as_str()
+            .unwrap()
+            .to_string()
+    };
+    let link = failure("link");
+    assert!(
+        link.contains("not a plain file") && !link.contains("r1,") && !link.contains("x1"),
+        "{link}"
+    );
+    let probe = failure("probe");
+    assert!(probe.contains("notes=denied"), "{probe}");
+    let pid: u32 = probe
+        .split("pid=")
+        .nth(1)
+        .unwrap()
+        .split_whitespace()
+        .next()
+        .unwrap()
+        .parse()
+        .unwrap();
+    assert!(
+        !std::path::Path::new(&format!("/proc/{pid}")).exists()
+            || std::fs::read_to_string(format!("/proc/{pid}/stat"))
+                .is_ok_and(|s| s.contains(") Z")),
+        "the background sleep {pid} outlived its command"
+    );
+    // The stored warnings and failures hold nothing of the data file.
+    let shown = d.probity(&["show", "1", "--json"]).expect(0).stdout();
+    assert!(!shown.contains("shade,bay"), "{shown}");
 }
