@@ -104,7 +104,16 @@ impl crate::runner::Recorder for Store<'_> {
 
     fn partition(&mut self, prep: &Prepared, ids: &Identities) -> Result<()> {
         let (spec, table) = (self.spec, self.table);
-        if self.ledger()?.record_partition(spec, table, prep, ids)? {
+        let info = self.info.clone();
+        let mark = crate::ledger::SealMark {
+            at: &info.started_at,
+            user: &info.user,
+            host: &info.host,
+        };
+        if self
+            .ledger()?
+            .record_partition(spec, table, prep, ids, &mark)?
+        {
             self.fresh = Some(prep.partition_id.clone());
         }
         Ok(())

@@ -18,13 +18,16 @@ use crate::metrics::Metric;
 use crate::spec::{GuardMode, GuardSpec, Overlap};
 use serde_json::json;
 
-/// The rules a partition was sealed with: the `[guard]` of the run that first stored it. A
-/// later spec on the same partition cannot loosen them (a copied spec with a larger budget
-/// gets a warning, not a larger budget).
+/// The rules a partition was sealed with: the `[guard]` of the run that first stored it, fixed
+/// from that run's start. A later spec on the same partition cannot loosen them (a copied spec
+/// with a larger budget gets a warning, not a larger budget).
 #[derive(Debug, Clone, PartialEq)]
 pub struct Seal {
     pub rules: GuardSpec,
-    /// The run that sealed it, when known (the first stored run on the partition).
+    /// Whether rules were fixed for it (false: nothing is stored about it yet, and the
+    /// defaults apply).
+    pub fixed: bool,
+    /// The first run stored on the partition, when there is one.
     pub by: Option<i64>,
     /// The target column of that run's spec: a run that reads neither it as its target nor
     /// as a feature uses no sealed target, and consults nothing.
@@ -56,7 +59,7 @@ pub fn run_warnings(
     test_rows: usize,
 ) -> Vec<String> {
     let mut w = Vec::new();
-    if seal.by.is_some()
+    if seal.fixed
         && let Some(d) = rules_differ(seal, spec, partition)
     {
         w.push(d);
@@ -753,6 +756,7 @@ mod tests {
                 overlap: Overlap::Refuse,
                 ..rules(GuardMode::Count, 1)
             },
+            fixed: true,
             by: Some(4),
             target: None,
         };
@@ -776,6 +780,7 @@ mod tests {
             partition: "abc".into(),
             seal: Seal {
                 rules: rules(GuardMode::Count, 1),
+                fixed: true,
                 by: Some(1),
                 target: None,
             },
@@ -799,6 +804,7 @@ mod tests {
     fn predictions_of_rows_under_a_mechanism_are_refused() {
         let seal = Seal {
             rules: rules(GuardMode::Ladder { step: 1.0 }, 5),
+            fixed: false,
             by: None,
             target: None,
         };
@@ -827,6 +833,7 @@ mod tests {
         assert!(e.contains("sealed in ladder mode"), "{e}");
         let count = Seal {
             rules: rules(GuardMode::Count, 1),
+            fixed: false,
             by: None,
             target: None,
         };

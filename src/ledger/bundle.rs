@@ -140,6 +140,8 @@ impl Ledger {
                    (kind = 'run' AND ref_id IN (SELECT value FROM json_each(?1)))
                    OR (kind = 'reveal' AND ref_id IN (SELECT id FROM reveals WHERE run_id IN (SELECT value FROM json_each(?1))))
                    OR (kind = 'note' AND ref_id IN (SELECT id FROM notes WHERE run_id IN (SELECT value FROM json_each(?1))))
+                   OR (kind = 'seal' AND ref_id IN (SELECT id FROM seals WHERE partition_id IN
+                        (SELECT partition_id FROM runs WHERE id IN (SELECT value FROM json_each(?1)))))
                  ORDER BY seq",
             )
             .map_err(sql_err("pack"))?;
@@ -165,7 +167,7 @@ impl Ledger {
             }
             // Reveals and notes name their run by its entry hash: ids differ between ledgers.
             let run_entry: Option<String> = match kind.as_str() {
-                "run" => None,
+                "run" | "seal" => None,
                 other => {
                     let table = if other == "reveal" {
                         "reveals"
@@ -374,6 +376,24 @@ impl Ledger {
         )
         .map_err(fail)?;
         let merge_id = tx.last_insert_rowid();
+        // A partition this ledger sealed at a run's start, with nothing about it chained yet,
+        // keeps the rules it has followed since: its seal is chained before anything merged.
+        let mut named = std::collections::BTreeSet::new();
+        for (_, _, _, _, sections, columns) in &parsed {
+            for ((name, rows), cols) in sections.iter().zip(columns) {
+                for (c, col) in cols.iter().enumerate() {
+                    if col == "partition_id" || (name == "partitions" && col == "id") {
+                        named.extend(rows.iter().filter_map(|r| match r.get(c) {
+                            Some(Sql::Text(t)) => Some(t.clone()),
+                            _ => None,
+                        }));
+                    }
+                }
+            }
+        }
+        for p in &named {
+            super::settle_seal(&tx, p, None)?;
+        }
         let (mut merged, mut skipped) = (0, 0);
         for (kind, prev, hash, run_entry, sections, columns) in parsed {
             let present: bool = tx
@@ -723,7 +743,12 @@ fn unreadable(section: &str, column: &str, v: &Sql) -> Option<String> {
     );
     let text = match v {
         Sql::Text(t) => t,
-        _ if json || matches!((section, column), ("runs", "model_json" | "spec_text")) => {
+        _ if json
+            || matches!(
+                (section, column),
+                ("runs", "model_json" | "spec_text") | ("seals", "rules")
+            ) =>
+        {
             return Some("is not text".into());
         }
         _ => return None,
@@ -740,6 +765,11 @@ fn unreadable(section: &str, column: &str, v: &Sql) -> Option<String> {
         ("runs", "spec_text") => toml::from_str::<toml::Table>(text)
             .err()
             .map(|e| format!("is not TOML ({})", e.message().trim())),
+        ("seals", "rules") => serde_json::from_str::<Value>(text)
+            .ok()
+            .and_then(|v| crate::spec::GuardSpec::from_json(&v))
+            .is_none()
+            .then(|| "is not a partition's [guard] rules".into()),
         _ => None,
     }
 }
@@ -770,7 +800,9 @@ fn local_row(
         cols.iter()
             .zip(row)
             .map(|(c, v)| match (section, c.as_str()) {
-                ("runs", "id") | ("reveals", "id") | ("notes", "id") => Sql::Integer(new_id),
+                ("runs", "id") | ("reveals", "id") | ("notes", "id") | ("seals", "id") => {
+                    Sql::Integer(new_id)
+                }
                 (_, "run_id") if kind == "run" => Sql::Integer(new_id),
                 (_, "run_id") => Sql::Integer(local_run.unwrap_or(0)),
                 (_, "reveal_id") => Sql::Integer(new_id),
@@ -798,7 +830,7 @@ fn insert_entry(
     order.sort_by_key(|&i| match sections[i].0.as_str() {
         "partitions" => 0,
         "partition_rows" => 1,
-        "runs" | "reveals" | "notes" => 2,
+        "runs" | "reveals" | "notes" | "seals" => 2,
         _ => 3,
     });
     let mut known_partition = false;
@@ -822,7 +854,7 @@ fn insert_entry(
             };
             let main = matches!(
                 (kind, name.as_str()),
-                ("run", "runs") | ("reveal", "reveals") | ("note", "notes")
+                ("run", "runs") | ("reveal", "reveals") | ("note", "notes") | ("seal", "seals")
             );
             // The main row takes a fresh id; the rest keep every column.
             let (names, vals): (Vec<&String>, Vec<Sql>) = cols

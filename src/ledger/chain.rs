@@ -1,5 +1,5 @@
 //! The tamper-evident chain. Every entry (a run with everything stored under it, a reveal with
-//! its scores, a note) gets entry_hash = SHA-256(prev_hash || canonical bytes), prev_hash being
+//! its scores, a note, a partition's seal) gets entry_hash = SHA-256(prev_hash || canonical bytes), prev_hash being
 //! the previous entry's hash as 64 hex characters (64 zeros for the first).
 //!
 //! Canonical bytes: for each section of the entry, in a fixed order, the section name, then each
@@ -19,7 +19,7 @@ pub const GENESIS: &str = "00000000000000000000000000000000000000000000000000000
 pub type Sections = Vec<(String, Vec<Vec<Sql>>)>;
 
 /// The kinds of chained entries.
-pub const KINDS: [&str; 3] = ["run", "reveal", "note"];
+pub const KINDS: [&str; 4] = ["run", "reveal", "note", "seal"];
 
 /// The queries that make up each kind of entry, in order; `?1` is the entry's id.
 pub fn section_queries(kind: &str) -> &'static [(&'static str, &'static str)] {
@@ -81,6 +81,7 @@ pub fn section_queries(kind: &str) -> &'static [(&'static str, &'static str)] {
             ),
         ],
         "note" => &[("notes", "SELECT * FROM notes WHERE id = ?1")],
+        "seal" => &[("seals", "SELECT * FROM seals WHERE id = ?1")],
         _ => &[],
     }
 }
@@ -426,7 +427,12 @@ pub fn verify(conn: &Connection) -> Result<(usize, Vec<Break>)> {
         }
         expected_prev = stored.clone();
     }
-    for (kind, table) in [("run", "runs"), ("reveal", "reveals"), ("note", "notes")] {
+    for (kind, table) in [
+        ("run", "runs"),
+        ("reveal", "reveals"),
+        ("note", "notes"),
+        ("seal", "seals"),
+    ] {
         let mut st = conn
             .prepare(&format!("SELECT id FROM {table} WHERE id NOT IN (SELECT ref_id FROM chain WHERE kind = ?1) ORDER BY id"))
             .map_err(sql_err("check unchained entries"))?;

@@ -47,6 +47,10 @@ pub const MIGRATIONS: &[(&str, &str)] = &[
         "0010_signed_bundles.sql",
         include_str!("../../migrations/0010_signed_bundles.sql"),
     ),
+    (
+        "0011_seals.sql",
+        include_str!("../../migrations/0011_seals.sql"),
+    ),
 ];
 
 /// The schema version this binary writes.

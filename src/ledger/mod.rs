@@ -397,6 +397,12 @@ impl Ledger {
         let prep = &out.prepared;
         let s = &prep.sealed;
         let inserted = insert_partition(&tx, spec, table, prep, &prep.ids).map_err(fail)?;
+        let mark = SealMark {
+            at: &meta.started_at,
+            user: &meta.user,
+            host: &meta.host,
+        };
+        settle_seal(&tx, &prep.partition_id, Some((spec, &mark)))?;
         // Other partitions' test rows among this run's development rows, decided here, inside
         // the run's transaction, so a partition stored meanwhile is seen. A replay adds no
         // look: its scores are the original's.
@@ -585,6 +591,7 @@ impl Ledger {
                 .prepare("INSERT INTO uses (run_id, partition_id, n_rows) VALUES (?1, ?2, ?3)")
                 .map_err(fail)?;
             for (partition, rows) in &uses {
+                settle_seal(&tx, partition, None)?;
                 used.execute(params![run, partition, rows]).map_err(fail)?;
             }
             // A run whose features differ from its partition's recipe keeps the test rows'
@@ -681,8 +688,9 @@ impl Ledger {
         table: &crate::data::Table,
         prep: &crate::runner::Prepared,
         ids: &crate::runner::Identities,
+        mark: &SealMark,
     ) -> Result<bool> {
-        self.bulk(|l| l.record_partition_rows(spec, table, prep, ids))
+        self.bulk(|l| l.record_partition_rows(spec, table, prep, ids, mark))
     }
 
     fn record_partition_rows(
@@ -691,6 +699,7 @@ impl Ledger {
         table: &crate::data::Table,
         prep: &crate::runner::Prepared,
         ids: &crate::runner::Identities,
+        mark: &SealMark,
     ) -> Result<bool> {
         let path = self.path.clone();
         let fail = |e: rusqlite::Error| migrate::refuse_or_fail(&path, e, "record partition");
@@ -704,6 +713,16 @@ impl Ledger {
             .transaction_with_behavior(rusqlite::TransactionBehavior::Immediate)
             .map_err(fail)?;
         let fresh = insert_partition(&tx, spec, table, prep, ids).map_err(fail)?;
+        if fresh {
+            // Its rules hold from now, not from its run's storing: a look at its rows through
+            // another partition meanwhile follows them.
+            let (rules, target, spec_hash) = seal_from(spec);
+            tx.execute(
+                "INSERT INTO pending_seals (partition_id, rules, target, spec_hash, sealed_at, user, host) VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7)",
+                params![prep.partition_id, rules, target, spec_hash, mark.at, mark.user, mark.host],
+            )
+            .map_err(fail)?;
+        }
         // Every row just written names this partition (one bound parameter), which exists.
         check_partition(&tx, &prep.partition_id)?;
         tx.commit().map_err(fail)?;
@@ -733,7 +752,7 @@ impl Ledger {
             )
             .map_err(fail)?;
         if !used {
-            for table in ["partition_rows", "partition_identities"] {
+            for table in ["partition_rows", "partition_identities", "pending_seals"] {
                 tx.execute(
                     &format!("DELETE FROM {table} WHERE partition_id = ?1"),
                     [id],
@@ -1068,6 +1087,9 @@ impl Ledger {
         }
         let (records, out) = decide(&states)?;
         let mut ids = Vec::with_capacity(records.len());
+        for r in &records {
+            settle_seal(&tx, &r.partition_id, None)?;
+        }
         for r in &records {
             ids.push(insert_reveal(&tx, r).map_err(fail)?);
         }
@@ -2338,11 +2360,16 @@ pub fn check_note(text: &str) -> Result<()> {
     Ok(())
 }
 
-/// The rules a partition was sealed with: the `[guard]` of the first run stored on it, in the
-/// chain's order, so nothing stored later (a run that started earlier and finished later, a
-/// merged run) can change rules a consultation already followed. Count mode with a budget
-/// of 1 (the defaults) while no run is stored on it yet, or when that spec's `[guard]` cannot
-/// be read.
+/// The rules a partition was sealed with, so nothing stored later (a run that started earlier
+/// and finished later, a merged run) can change rules a consultation already followed:
+/// - its first seal entry in chain order (schema 11 on);
+/// - else the `[guard]` of the first run stored on it in chain order (partitions stored
+///   before seals were: that run sealed them);
+/// - else its pending seal (its first run's rules, from that run's start);
+/// - else count mode with a budget of 1, the defaults (nothing stored yet), with `fixed`
+///   false.
+///
+/// `by` is the run that sealed it, once stored: the first run on it with the sealing spec.
 fn seal_of(conn: &Connection, partition: &str) -> Result<crate::guard::consult::Seal> {
     let first: Option<(i64, String)> = conn
         .query_row(
@@ -2353,22 +2380,137 @@ fn seal_of(conn: &Connection, partition: &str) -> Result<crate::guard::consult::
         )
         .optional()
         .map_err(sql_err("read seal"))?;
-    let rules = first
-        .as_ref()
-        .and_then(|(_, text)| crate::spec::stored_guard(text));
-    let target = first
-        .as_ref()
-        .and_then(|(_, text)| crate::spec::stored_target(text));
+    type Stored = (String, Option<String>, String);
+    let stored = |sql: &str| -> Result<Option<Stored>> {
+        conn.query_row(sql, [partition], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)))
+            .optional()
+            .map_err(sql_err("read seal"))
+    };
+    let sealed = match stored(
+        "SELECT s.rules, s.target, s.spec_hash FROM seals s JOIN chain c ON c.kind = 'seal' AND c.ref_id = s.id
+         WHERE s.partition_id = ?1 ORDER BY c.seq LIMIT 1",
+    )? {
+        Some(s) => Some(s),
+        None if first.is_none() => stored(
+            "SELECT rules, target, spec_hash FROM pending_seals WHERE partition_id = ?1",
+        )?,
+        None => None,
+    };
+    let (rules, target, by) = match (sealed, &first) {
+        (Some((rules, target, spec_hash)), _) => {
+            let by = conn
+                .query_row(
+                    "SELECT r.id FROM runs r JOIN chain c ON c.kind = 'run' AND c.ref_id = r.id
+                     WHERE r.partition_id = ?1 AND r.spec_hash = ?2 ORDER BY c.seq LIMIT 1",
+                    [partition, &spec_hash],
+                    |r| r.get(0),
+                )
+                .optional()
+                .map_err(sql_err("read seal"))?;
+            (
+                serde_json::from_str(&rules)
+                    .ok()
+                    .and_then(|v| crate::spec::GuardSpec::from_json(&v)),
+                target,
+                by,
+            )
+        }
+        (None, Some((id, text))) => (
+            crate::spec::stored_guard(text),
+            crate::spec::stored_target(text),
+            Some(*id),
+        ),
+        (None, None) => (None, None, None),
+    };
     Ok(crate::guard::consult::Seal {
+        fixed: rules.is_some(),
         rules: rules.unwrap_or(crate::spec::GuardSpec {
             reveals: 1,
             confidence: 0.95,
             mode: crate::spec::GuardMode::Count,
             overlap: crate::spec::Overlap::Count,
         }),
-        by: first.map(|f| f.0),
+        by,
         target,
     })
+}
+
+/// Who fixed a partition's rules, and when.
+pub struct SealMark<'a> {
+    pub at: &'a str,
+    pub user: &'a str,
+    pub host: &'a str,
+}
+
+/// The seal a spec gives a new partition: (rules as JSON, target, spec hash).
+fn seal_from(spec: &crate::spec::Spec) -> (String, String, String) {
+    (
+        spec.guard.to_json().to_string(),
+        spec.data.target.name.clone(),
+        spec.canonical_hash(),
+    )
+}
+
+/// Chain `partition`'s seal if nothing about it is chained yet (no seal entry, no run): from
+/// its pending seal, or else from `fallback` (the storing run's spec). Called in the
+/// transaction that first chains anything about the partition, before that entry, so the
+/// rules it followed meanwhile are the rules the chain shows.
+fn settle_seal(
+    tx: &Connection,
+    partition: &str,
+    fallback: Option<(&crate::spec::Spec, &SealMark)>,
+) -> Result<()> {
+    let err = || sql_err("store seal");
+    let chained: bool = tx
+        .query_row(
+            "SELECT EXISTS (SELECT 1 FROM seals s JOIN chain c ON c.kind = 'seal' AND c.ref_id = s.id WHERE s.partition_id = ?1)
+                 OR EXISTS (SELECT 1 FROM runs r JOIN chain c ON c.kind = 'run' AND c.ref_id = r.id WHERE r.partition_id = ?1)",
+            [partition],
+            |r| r.get(0),
+        )
+        .map_err(err())?;
+    if chained {
+        return Ok(());
+    }
+    type Row = (String, Option<String>, String, String, String, String);
+    let pending: Option<Row> = tx
+        .query_row(
+            "SELECT rules, target, spec_hash, sealed_at, user, host FROM pending_seals WHERE partition_id = ?1",
+            [partition],
+            |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?, r.get(4)?, r.get(5)?)),
+        )
+        .optional()
+        .map_err(err())?;
+    let row = match (pending, fallback) {
+        (Some(p), _) => p,
+        (None, Some((spec, mark))) => {
+            let (rules, target, spec_hash) = seal_from(spec);
+            (
+                rules,
+                Some(target),
+                spec_hash,
+                mark.at.to_string(),
+                mark.user.to_string(),
+                mark.host.to_string(),
+            )
+        }
+        // A partition seen through another one's consultation, with no run and no pending
+        // seal (its run failed, or an older probity stored it): the defaults apply, unsealed.
+        (None, None) => return Ok(()),
+    };
+    tx.execute(
+        "INSERT INTO seals (partition_id, rules, target, spec_hash, sealed_at, user, host) VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7)",
+        params![partition, row.0, row.1, row.2, row.3, row.4, row.5],
+    )
+    .map_err(err())?;
+    let id = tx.last_insert_rowid();
+    tx.execute(
+        "DELETE FROM pending_seals WHERE partition_id = ?1",
+        [partition],
+    )
+    .map_err(err())?;
+    chain::append(tx, "seal", id, None)?;
+    Ok(())
 }
 
 /// One reveal and its scores, in the caller's transaction; returns its id.
@@ -2628,7 +2770,17 @@ mod tests {
             let prep = &out.prepared;
             assert!(
                 ledger
-                    .record_partition(&spec, &table, prep, &prep.ids)
+                    .record_partition(
+                        &spec,
+                        &table,
+                        prep,
+                        &prep.ids,
+                        &SealMark {
+                            at: "2026-01-01T00:00:00Z",
+                            user: "u",
+                            host: "h"
+                        }
+                    )
                     .unwrap()
             );
         }
@@ -2810,7 +2962,8 @@ mod tests {
         };
         let (ledger, dir) = stored_edited("odd-scores", 1, false, false, edit);
         let (entries, breaks) = ledger.verify().unwrap();
-        assert_eq!(entries, 1);
+        // The partition's seal, then the run.
+        assert_eq!(entries, 2);
         assert!(breaks.is_empty(), "{breaks:?}");
         let stored: i64 = ledger
             .conn
@@ -2857,7 +3010,8 @@ mod tests {
             }
             assert!(ledger.fresh.is_none());
             let (entries, breaks) = ledger.verify().unwrap();
-            assert_eq!((entries, breaks.len()), (2, 0), "{breaks:?}");
+            // The seal and both runs.
+            assert_eq!((entries, breaks.len()), (3, 0), "{breaks:?}");
             // Remove one stored identity: both runs' entries no longer match.
             ledger
                 .conn
@@ -2933,7 +3087,8 @@ mod tests {
         assert_eq!(dev.len(), 240 * 8);
         for l in [&old, &new] {
             let (entries, breaks) = l.verify().unwrap();
-            assert_eq!((entries, breaks.len()), (1, 0), "{breaks:?}");
+            // The seal and the run.
+            assert_eq!((entries, breaks.len()), (2, 0), "{breaks:?}");
         }
         // Bundles: not into a ledger that stores the partition in another version; into an
         // empty one, which keeps the bundle's version for it.
@@ -2946,10 +3101,11 @@ mod tests {
         let bundle = old.pack(&[1], "2026-12-03T00:00:02Z").unwrap().0;
         let e = new.merge(&bundle, true, &who).unwrap_err().to_string();
         assert!(e.contains("version 3 here, version 1 in the bundle"), "{e}");
-        assert_eq!(new.verify().unwrap().0, 1);
+        assert_eq!(new.verify().unwrap().0, 2);
         let mut empty = Ledger::open(&old_dir.join("empty.sqlite"), true).unwrap();
         let m = empty.merge(&bundle, true, &who).unwrap();
-        assert_eq!((m.merged, m.skipped), (1, 0));
+        // The partition's seal and the run.
+        assert_eq!((m.merged, m.skipped), (2, 0));
         assert_eq!(
             empty.partition_identity(&old_id).unwrap(),
             Some(Identity::V1)

@@ -151,29 +151,55 @@ impl GuardSpec {
         v
     }
 
-    /// The rules `to_json` wrote; `None` for anything else.
+    /// The rules `to_json` wrote, checked as a spec's `[guard]` is (a stored seal, perhaps
+    /// merged from another ledger); `None` when they do not read.
     pub fn from_json(v: &Value) -> Option<GuardSpec> {
-        let num = |k: &str| v[k].as_f64();
-        let mode = match v["mode"].as_str()? {
+        let o = v.as_object()?;
+        let known = [
+            "reveals",
+            "confidence",
+            "mode",
+            "threshold",
+            "noise",
+            "step",
+            "overlap",
+        ];
+        if o.keys().any(|k| !known.contains(&k.as_str())) {
+            return None;
+        }
+        let reveals = o
+            .get("reveals")?
+            .as_u64()
+            .filter(|r| (1..=1_000_000).contains(r))? as u32;
+        let confidence = o
+            .get("confidence")?
+            .as_f64()
+            .filter(|c| *c > 0.0 && *c < 1.0)?;
+        let positive = |k: &str| o.get(k)?.as_f64().filter(|x| *x > 0.0 && x.is_finite());
+        let mode = match o.get("mode")?.as_str()? {
             "count" => GuardMode::Count,
             "reusable" => GuardMode::Reusable {
-                threshold: num("threshold")?,
-                noise: num("noise")?,
+                threshold: positive("threshold")?,
+                noise: positive("noise")?,
             },
-            "ladder" => GuardMode::Ladder { step: num("step")? },
+            "ladder" => GuardMode::Ladder {
+                step: positive("step")?,
+            },
             _ => return None,
         };
-        let overlap = match v["overlap"].as_str() {
-            None | Some("count") => Overlap::Count,
-            Some("refuse") => Overlap::Refuse,
+        let overlap = match o.get("overlap").map(Value::as_str) {
+            None => Overlap::Count,
+            Some(Some("refuse")) => Overlap::Refuse,
             Some(_) => return None,
         };
-        Some(GuardSpec {
-            reveals: u32::try_from(v["reveals"].as_u64()?).ok()?,
-            confidence: num("confidence")?,
+        let g = GuardSpec {
+            reveals,
+            confidence,
             mode,
             overlap,
-        })
+        };
+        // Exactly what `to_json` writes: nothing extra for the mode, nothing rewritten.
+        (g.to_json() == *v).then_some(g)
     }
 }
 

@@ -1382,9 +1382,56 @@ fn unrelated_files_that_share_key_numbers_are_not_confused() {
     }
 }
 
-/// The rules of a partition are those of its first run in the ledger's order: a run that
-/// started earlier (its grid paused) and is stored later does not change them after a reveal
-/// followed them.
+/// `probity run SPEC` paused at `run:grid` (until killed, or until `go` exists), returned once
+/// its partition, which is stored beside the grid, holds its pending seal; with its stderr.
+// The caller waits for the child, or kills it; a failed assertion here ends the test.
+#[allow(clippy::zombie_processes)]
+fn paused_run(
+    d: &Dir,
+    spec: &str,
+    go: Option<&std::path::Path>,
+) -> (std::process::Child, BufReader<std::process::ChildStderr>) {
+    let mut c = Command::new(assert_cmd::cargo::cargo_bin("probity"));
+    c.current_dir(&d.path)
+        .args(["run", spec])
+        .env_remove("PROBITY_LEDGER")
+        .env("PROBITY_PAUSE_AT", "run:grid")
+        .stdout(Stdio::piped())
+        .stderr(Stdio::piped());
+    if let Some(go) = go {
+        c.env("PROBITY_RESUME_ON", go);
+    }
+    let mut c = c.spawn().unwrap();
+    let mut err = BufReader::new(c.stderr.take().unwrap());
+    let mut line = String::new();
+    while line.trim_end() != "probity: paused at run:grid" {
+        line.clear();
+        assert!(
+            err.read_line(&mut line).unwrap() > 0,
+            "ended before pausing"
+        );
+    }
+    let t = std::time::Instant::now();
+    loop {
+        let pending = rusqlite::Connection::open(d.ledger())
+            .and_then(|c| {
+                c.query_row("SELECT count(*) FROM pending_seals", [], |r| {
+                    r.get::<_, i64>(0)
+                })
+            })
+            .unwrap_or(0);
+        if pending == 1 {
+            // The reader is kept: a closed pipe would end the run at its next message.
+            return (c, err);
+        }
+        assert!(t.elapsed().as_secs() < 60, "the partition was never stored");
+        std::thread::sleep(std::time::Duration::from_millis(20));
+    }
+}
+
+/// The rules of a partition are fixed when its first run starts (before its grid): a run
+/// on it stored earlier with other rules, and a reveal meanwhile, follow them, and the first
+/// run's storing changes nothing.
 #[test]
 fn rules_cannot_change_after_a_reveal_followed_them() {
     if !crate::util::pauses_compiled("rules_cannot_change_after_a_reveal_followed_them") {
@@ -1403,40 +1450,101 @@ fn rules_cannot_change_after_a_reveal_followed_them() {
         ],
     );
     let go = d.path.join("go");
-    let mut slow = Command::new(assert_cmd::cargo::cargo_bin("probity"))
-        .current_dir(&d.path)
-        .args(["run", "ladder.toml"])
-        .env_remove("PROBITY_LEDGER")
-        .env("PROBITY_PAUSE_AT", "run:grid")
-        .env("PROBITY_RESUME_ON", &go)
-        .stdout(Stdio::piped())
-        .stderr(Stdio::piped())
-        .spawn()
-        .unwrap();
-    let mut err = BufReader::new(slow.stderr.take().unwrap());
-    let mut line = String::new();
-    loop {
-        line.clear();
-        assert!(
-            err.read_line(&mut line).unwrap() > 0,
-            "ended before pausing"
-        );
-        if line.trim_end() == "probity: paused at run:grid" {
-            break;
-        }
-    }
-    d.probity(&["run", "count.toml"]).expect(0);
+    let (mut slow, _err) = paused_run(&d, "ladder.toml", Some(&go));
+    let copied = d.probity(&["run", "count.toml"]).expect(0);
+    assert!(
+        copied.stderr().contains("was sealed with [guard]")
+            && copied.stderr().contains("\"ladder\""),
+        "{}",
+        copied.stderr()
+    );
     let j = d
         .probity(&["reveal", "1", "--yes", "--json"])
         .expect(0)
         .json();
-    assert_eq!(j["mode"], "count");
+    assert_eq!(j["mode"], "ladder");
     std::fs::write(&go, "").unwrap();
     assert!(slow.wait().unwrap().success());
     let a = d.probity(&["audit", "--json"]).expect(0).json();
-    assert_eq!(a["partitions"][0]["mode"], "count");
-    assert_eq!(a["partitions"][0]["budget"], 10);
-    assert_eq!(a["partitions"][0]["sealed_by_run"], 1);
+    assert_eq!(a["partitions"][0]["mode"], "ladder");
+    assert_eq!(a["partitions"][0]["budget"], 1);
+    // The ladder run sealed it; it was stored second.
+    assert_eq!(a["partitions"][0]["sealed_by_run"], 2);
+    let v = d.probity(&["audit", "--verify"]).expect(0);
+    assert!(v.stdout().contains("intact"), "{}", v.stdout());
+}
+
+/// A partition's rules hold from its first run's start, before its grid, and stay when that
+/// run is killed: `overlap = "refuse"` turns an overlapping run away meanwhile and afterwards,
+/// and a budget of 3 counts a development use as 1 of 3, not 1 of the default 1. The first
+/// thing chained about the partition (here the overlapping run's use) chains its seal first.
+#[test]
+fn rules_hold_from_the_first_runs_start_even_when_it_is_killed() {
+    if !crate::util::pauses_compiled("rules_hold_from_the_first_runs_start_even_when_it_is_killed")
+    {
+        return;
+    }
+    let split = |seed: u32, part: &str| {
+        format!("method = \"random\"\nseed = {seed}\n{part} = 0.2\nfolds = 5")
+    };
+
+    let d = diabetes(
+        "seal-start-refuse",
+        &[
+            (
+                "refuse.toml",
+                &split(7, "test"),
+                "[guard]\noverlap = \"refuse\"",
+            ),
+            ("copy7.toml", &split(7, "validation"), ""),
+        ],
+    );
+    let (mut first, _err) = paused_run(&d, "refuse.toml", None);
+    let r = d.probity(&["run", "copy7.toml"]).expect(2);
+    assert!(
+        r.stderr().contains("overlap = \"refuse\""),
+        "{}",
+        r.stderr()
+    );
+    first.kill().unwrap();
+    first.wait().unwrap();
+    let r = d.probity(&["run", "copy7.toml"]).expect(2);
+    assert!(
+        r.stderr().contains("overlap = \"refuse\""),
+        "{}",
+        r.stderr()
+    );
+
+    let d = diabetes(
+        "seal-start-budget",
+        &[
+            ("three.toml", &split(9, "test"), "[guard]\nreveals = 3"),
+            ("copy9.toml", &split(9, "validation"), ""),
+        ],
+    );
+    let (mut first, _err) = paused_run(&d, "three.toml", None);
+    first.kill().unwrap();
+    first.wait().unwrap();
+    let r = d.probity(&["run", "copy9.toml"]).expect(0);
+    assert!(
+        r.stderr().contains("(1 of its budget of 3)"),
+        "{}",
+        r.stderr()
+    );
+    let a = d.probity(&["audit", "--json"]).expect(0).json();
+    let p = a["partitions"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|p| p["consultations"] == 1)
+        .unwrap();
+    assert_eq!(p["budget"], 3, "{p}");
+    assert_eq!(p["sealed_by_run"], Value::Null, "{p}");
+    // The seal of three.toml's partition, then the overlapping run (its own partition sealed
+    // before it).
+    assert_eq!(a["chain"]["entries"], 3, "{a}");
+    assert_eq!(a["chain"]["intact"], true);
+    assert_eq!(a["unfinished"].as_array().unwrap().len(), 1, "{a}");
 }
 
 /// `audit`'s table and JSON after a development use, pinned (the chain's head, which depends on

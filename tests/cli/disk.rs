@@ -132,7 +132,7 @@ fn a_read_only_ledger_from_an_older_probity_is_refused_with_the_way_out() {
     // second index.
     let c = rusqlite::Connection::open(d.ledger()).unwrap();
     c.execute_batch(
-        "DROP TABLE run_starts; DROP TABLE uses; DROP TABLE partition_identities; DROP TABLE run_identities; DROP TABLE trusted_keys; DROP TABLE merges; ALTER TABLE chain DROP COLUMN merge_id; CREATE INDEX partition_rows_by_key ON partition_rows (row_key); PRAGMA user_version = 5;",
+        "DROP TABLE pending_seals; DROP TABLE seals; DROP TABLE run_starts; DROP TABLE uses; DROP TABLE partition_identities; DROP TABLE run_identities; DROP TABLE trusted_keys; DROP TABLE merges; ALTER TABLE chain DROP COLUMN merge_id; CREATE INDEX partition_rows_by_key ON partition_rows (row_key); PRAGMA user_version = 5;",
     )
     .unwrap();
     drop(c);

@@ -89,5 +89,12 @@ pub fn library_run(
         start: None,
     };
     l.write_run(&spec, &table, &out, &meta).unwrap();
+    drop(l);
+    // Before schema 11 a partition's seal was no entry of its own: the chain is linked again
+    // without it, as that release linked it.
+    let c = rusqlite::Connection::open(ledger).unwrap();
+    c.execute_batch("DELETE FROM chain; DELETE FROM seals;")
+        .unwrap();
+    probity::ledger::chain::adopt(&c).unwrap();
     out.prepared.partition_id
 }

@@ -117,7 +117,8 @@ fn tampering_is_detected_and_located() {
         d.probity(&["note", "1", "looked fine"]).expect(0);
         d.probity(&["run", "small.toml"]).expect(0);
         let j = d.probity(&["audit", "--verify", "--json"]).expect(0).json();
-        assert_eq!(j["chain"]["entries"], 4);
+        // The partition's seal, run 1, the reveal, the note, run 2.
+        assert_eq!(j["chain"]["entries"], 5);
         assert_eq!(j["chain"]["intact"], true);
         d
     };
@@ -140,7 +141,7 @@ fn tampering_is_detected_and_located() {
             b[0]["kind"].as_str(),
             b[0]["id"].as_i64()
         ),
-        (Some(1), Some("run"), Some(1))
+        (Some(2), Some("run"), Some(1))
     );
     assert!(
         b[0]["what"].as_str().unwrap().contains("content changed"),
@@ -149,7 +150,7 @@ fn tampering_is_detected_and_located() {
     // The plain audit also fails on a broken chain.
     let r = d.probity(&["audit"]).expect(4);
     assert!(
-        r.stdout().contains("BROKEN") && r.stdout().contains("broken at entry 1 (run 1)"),
+        r.stdout().contains("BROKEN") && r.stdout().contains("broken at entry 2 (run 1)"),
         "{}",
         r.stdout()
     );
@@ -161,7 +162,7 @@ fn tampering_is_detected_and_located() {
     );
     let b = broken(&d);
     assert!(
-        b.iter().any(|x| x["seq"] == 2
+        b.iter().any(|x| x["seq"] == 3
             && x["kind"] == "reveal"
             && x["what"].as_str().unwrap().contains("missing")),
         "{b:?}"
@@ -170,24 +171,24 @@ fn tampering_is_detected_and_located() {
     let d = setup("tamper-delete-link");
     sql(
         &d,
-        "DELETE FROM reveal_scores WHERE reveal_id = 1; DELETE FROM reveals WHERE id = 1; DELETE FROM chain WHERE seq = 2;",
+        "DELETE FROM reveal_scores WHERE reveal_id = 1; DELETE FROM reveals WHERE id = 1; DELETE FROM chain WHERE seq = 3;",
     );
     let b = broken(&d);
     assert!(
         b.iter()
-            .any(|x| x["seq"] == 3 && x["what"].as_str().unwrap().contains("removed or reordered")),
+            .any(|x| x["seq"] == 4 && x["what"].as_str().unwrap().contains("removed or reordered")),
         "{b:?}"
     );
 
     let d = setup("tamper-reorder");
     sql(
         &d,
-        "UPDATE chain SET seq = 100 WHERE seq = 2; UPDATE chain SET seq = 2 WHERE seq = 3; UPDATE chain SET seq = 3 WHERE seq = 100;",
+        "UPDATE chain SET seq = 100 WHERE seq = 3; UPDATE chain SET seq = 3 WHERE seq = 4; UPDATE chain SET seq = 4 WHERE seq = 100;",
     );
     let b = broken(&d);
     assert!(
         b.iter()
-            .any(|x| x["seq"] == 2 && x["what"].as_str().unwrap().contains("removed or reordered")),
+            .any(|x| x["seq"] == 3 && x["what"].as_str().unwrap().contains("removed or reordered")),
         "{b:?}"
     );
 
@@ -214,7 +215,7 @@ fn tampering_is_detected_and_located() {
     let b = broken(&d);
     assert!(
         b.iter()
-            .any(|x| x["seq"] == 4 && x["kind"] == "run" && x["id"] == 2),
+            .any(|x| x["seq"] == 5 && x["kind"] == "run" && x["id"] == 2),
         "{b:?}"
     );
     let c = rusqlite::Connection::open(d.ledger()).unwrap();
@@ -273,10 +274,12 @@ fn bundles_merge_verified_and_never_mix_histories() {
     bob.trusts(&alice, "alice");
     std::fs::copy(alice.path.join("a.json"), bob.path.join("a.json")).unwrap();
     let r = bob.probity(&["merge", "a.json"]).expect(0);
-    assert!(r.stderr().contains("merged 2 entries"), "{}", r.stderr());
+    // Alice's seal of the partition (Bob's own, chained first, governs it here), her run
+    // and her reveal.
+    assert!(r.stderr().contains("merged 3 entries"), "{}", r.stderr());
     let r = bob.probity(&["merge", "a.json"]).expect(0);
     assert!(
-        r.stderr().contains("merged 0 entries") && r.stderr().contains("2 already present"),
+        r.stderr().contains("merged 0 entries") && r.stderr().contains("3 already present"),
         "{}",
         r.stderr()
     );
@@ -298,7 +301,13 @@ fn bundles_merge_verified_and_never_mix_histories() {
     // An altered bundle: one score changed by hand.
     let text = std::fs::read_to_string(alice.path.join("a.json")).unwrap();
     let mut j: serde_json::Value = serde_json::from_str(&text).unwrap();
-    let sections = j["entries"][0]["sections"].as_array_mut().unwrap();
+    let run = j["entries"]
+        .as_array_mut()
+        .unwrap()
+        .iter_mut()
+        .find(|e| e["kind"] == "run")
+        .unwrap();
+    let sections = run["sections"].as_array_mut().unwrap();
     let fold_scores = sections
         .iter_mut()
         .find(|s| s["name"] == "fold_scores")
