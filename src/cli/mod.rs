@@ -460,11 +460,27 @@ pub(crate) fn command_consent(
         // Another ledger's spec does not decide to run outside the box here.
         crate::external::sandbox::force();
     }
+    // A command meant for the box, where the box would not hold: the run's stored warnings
+    // may say it held when it ran, so this look needs its own consent.
+    let gap = cmds
+        .iter()
+        .any(|c| crate::external::sandbox::boxed(c))
+        .then(crate::external::sandbox::gap)
+        .flatten();
     let why = if merged {
-        "came from another ledger"
+        "came from another ledger".to_string()
     } else if unreadable || now != stored {
-        "has command inputs that changed since it ran"
+        "has command inputs that changed since it ran".to_string()
+    } else if let Some(g) = &gap {
+        format!("has a command meant for the box, which would not hold here ({g})")
     } else {
+        for c in cmds.iter().filter(|c| !crate::external::sandbox::boxed(c)) {
+            warn(&format!(
+                "running the command of run {} outside the box, as its spec says: {}",
+                d.summary.id,
+                command_line(c)
+            ));
+        }
         return Ok(());
     };
     let argv: Vec<String> = cmds.iter().map(|c| command_line(c)).collect();
@@ -474,6 +490,9 @@ pub(crate) fn command_consent(
             d.summary.id,
             argv.join("; ")
         )));
+    }
+    if let (Some(g), false) = (&gap, why.starts_with("has a command meant")) {
+        warn(&format!("the command's box would not hold here: {g}"));
     }
     for a in &argv {
         warn(&format!(

@@ -215,10 +215,9 @@ pub fn fit_predict(
         .iter()
         .map(|(t, p)| (t.clone(), p.to_string_lossy().into_owned().into()))
         .collect();
+    // In a session of its own (`sandbox::apply`), so that what it leaves behind can be ended
+    // with it.
     let mut command = Command::new(absolute(&job.cmd.run[0]));
-    // Its own process group, so that what it leaves behind can be ended with it.
-    #[cfg(unix)]
-    std::os::unix::process::CommandExt::process_group(&mut command, 0);
     let boxed = sandbox::boxed(job.cmd);
     let grants = boxed.then(|| {
         let mut protected = vec![
@@ -230,7 +229,7 @@ pub fn fit_predict(
         sandbox::grants(job.cmd, dir.path(), &protected)
     });
     sandbox::apply(&mut command, grants.as_ref())?;
-    let mut child = command
+    command
         .args(job.cmd.run[1..].iter().map(absolute))
         .current_dir(dir.path())
         .env("TMPDIR", dir.path())
@@ -261,8 +260,8 @@ pub fn fit_predict(
         )
         .stdin(Stdio::null())
         .stdout(Stdio::null())
-        .stderr(stderr)
-        .spawn()
+        .stderr(stderr);
+    let mut child = sandbox::spawn(&mut command)
         .map_err(|e| format!("cannot start {:?}: {e}", job.cmd.run[0]))?;
     let start = Instant::now();
     let limit = Duration::from_secs(job.cmd.timeout);
@@ -273,16 +272,24 @@ pub fn fit_predict(
                 sandbox::end_group(child.id());
                 let _ = child.kill();
                 let _ = child.wait();
+                sandbox::ended(child.id());
                 return Err(format!(
                     "timed out after {} s and was stopped",
                     job.cmd.timeout
                 ));
             }
             Ok(None) => std::thread::sleep(Duration::from_millis(5)),
-            Err(e) => return Err(format!("cannot wait for the command: {e}")),
+            Err(e) => {
+                sandbox::end_group(child.id());
+                let _ = child.kill();
+                let _ = child.wait();
+                sandbox::ended(child.id());
+                return Err(format!("cannot wait for the command: {e}"));
+            }
         }
     };
     // Whatever the command left running in the background ends with it.
+    sandbox::ended(child.id());
     sandbox::end_group(child.id());
     let err_text = last_bytes(&err_path, 64 << 10);
     if !status.success() {

@@ -8,6 +8,10 @@
 //! - its declared inputs, files or folders, read-only;
 //! - its scratch folder, read and write.
 //!
+//! A seccomp filter adds what Landlock does not cover (modes, owners, times, attributes,
+//! device nodes, sockets, io_uring); the command runs in a session of its own, and probity,
+//! a subreaper, ends whatever it leaves behind.
+//!
 //! A folder that holds the data file, the spec's folder, the current folder or the ledger's
 //! folder is never granted: those hold the sealed rows and the record of their use; nor is
 //! anything inside those folders but the declared inputs. A data file is kept out
@@ -32,19 +36,34 @@ pub fn boxing() -> Boxing {
     imp::boxing()
 }
 
-/// The warning a run stores for a command family that runs outside the box, if it does.
+/// The oldest Landlock ABI whose box holds: version 3 (Linux 6.2) is the first that stops a
+/// command from truncating, by path, a file it may not open (the data file, the ledger).
+pub const ABI_NEEDED: i32 = 3;
+
+/// Why a command would not run in a box that holds on this system, if it would not: no
+/// Landlock, or a Landlock too old to hold.
+pub fn gap() -> Option<String> {
+    match boxing() {
+        Boxing::Enforced(v) if v >= ABI_NEEDED => None,
+        Boxing::Enforced(v) => Some(format!(
+            "this kernel's Landlock (ABI {v}, before Linux 6.2) cannot stop a command from truncating files it may not open, the data file and the ledger among them"
+        )),
+        Boxing::Unavailable(why) => Some(format!(
+            "{why}; the command could read the data file, sealed test rows included (Landlock needs Linux 5.13 or newer, with landlock among the kernel's security modules)"
+        )),
+    }
+}
+
+/// The warning a run stores for a command family that runs outside the box, or in a box that
+/// does not hold, if it does.
 pub fn warning(cmd: &CommandSpec, line: usize) -> Option<String> {
     if !boxed(cmd) {
         return Some(format!(
             "the command family at line {line} ran outside the box (sandbox = false): it could read the data file, sealed test rows included, and its scores cannot show whether it did"
         ));
     }
-    match boxing() {
-        Boxing::Enforced(_) => None,
-        Boxing::Unavailable(why) => Some(format!(
-            "the command family at line {line} ran outside the box: {why}; it could read the data file, sealed test rows included (Landlock needs Linux 5.13 or newer, with landlock among the kernel's security modules)"
-        )),
-    }
+    gap()
+        .map(|why| format!("the command family at line {line} ran outside a box that holds: {why}"))
 }
 
 /// Paths no box may reach beyond those of each job (the ledger's folder, which the CLI knows).
@@ -103,14 +122,15 @@ const SYSTEM: [&str; 12] = [
     "/sys",
 ];
 
-/// The device files a command may use, read and write: no disk, no shared memory.
-const DEVICES: [&str; 6] = [
+/// The device files a command may use, read and write: no disk, no shared memory, no
+/// terminal (a terminal's ioctls could type into the user's shell; the command runs in a
+/// session of its own, without one).
+const DEVICES: [&str; 5] = [
     "/dev/null",
     "/dev/zero",
     "/dev/full",
     "/dev/random",
     "/dev/urandom",
-    "/dev/tty",
 ];
 
 /// Set by the CLI for a command from another ledger: boxed whatever its spec says.
@@ -226,9 +246,22 @@ pub fn grants(cmd: &CommandSpec, scratch: &Path, protected: &[PathBuf]) -> Grant
     }
 }
 
-/// End every process of the group `pid` leads (the command and what it started).
+/// End every process of the group `pid` leads (the command and what it started), and every
+/// process that left its group and was orphaned (`spawn`).
 pub fn end_group(pid: u32) {
     imp::end_group(pid)
+}
+
+/// Spawn a prepared command (`apply`), noted as live so that `end_group` tells it from what
+/// commands left behind: probity adopts every orphan of theirs (a subreaper), and any child
+/// of its own that is not a live command is one, ended when a command ends.
+pub fn spawn(command: &mut std::process::Command) -> std::io::Result<std::process::Child> {
+    imp::spawn(command)
+}
+
+/// A command spawned with `spawn` has been waited for.
+pub fn ended(pid: u32) {
+    imp::ended(pid)
 }
 
 /// Prepare `command`'s child: it keeps no descriptor beyond 0-2 that probity's own parent left
@@ -275,11 +308,141 @@ mod imp {
         }
     }
 
+    /// The commands spawned and not yet waited for. Held while spawning, so a command is
+    /// never taken for an orphan between its fork and its noting.
+    static LIVE: std::sync::Mutex<Vec<u32>> = std::sync::Mutex::new(Vec::new());
+
+    pub fn spawn(command: &mut std::process::Command) -> std::io::Result<std::process::Child> {
+        let mut live = LIVE.lock().unwrap_or_else(|e| e.into_inner());
+        // Orphans of the commands come to probity, not to init, so they can be ended.
+        // SAFETY: prctl on this process with integer arguments.
+        unsafe {
+            libc::prctl(libc::PR_SET_CHILD_SUBREAPER, 1, 0, 0, 0);
+        }
+        let child = command.spawn()?;
+        live.push(child.id());
+        Ok(child)
+    }
+
+    pub fn ended(pid: u32) {
+        let mut live = LIVE.lock().unwrap_or_else(|e| e.into_inner());
+        live.retain(|p| *p != pid);
+    }
+
     pub fn end_group(pid: u32) {
-        // SAFETY: a signal to a process group probity made (`process_group(0)` at spawn).
+        // SAFETY: a signal to the process group of a session probity made (`setsid` at
+        // spawn; the command leads both).
         unsafe {
             libc::kill(-(pid as libc::pid_t), libc::SIGKILL);
         }
+        end_orphans();
+    }
+
+    /// End every child of probity that is no live command: what a command left running after
+    /// leaving its group (a new session), adopted here. Their own children come here next, so
+    /// this goes round until none is left (a bounded number of times).
+    fn end_orphans() {
+        let live = LIVE.lock().unwrap_or_else(|e| e.into_inner());
+        for _ in 0..64 {
+            let orphans: Vec<i32> = children()
+                .into_iter()
+                .filter(|p| !live.contains(&(*p as u32)))
+                .collect();
+            if orphans.is_empty() {
+                return;
+            }
+            for p in orphans {
+                // SAFETY: a signal to, and a wait for, a child of this process.
+                unsafe {
+                    libc::kill(p, libc::SIGKILL);
+                    libc::waitpid(p, std::ptr::null_mut(), 0);
+                }
+            }
+        }
+    }
+
+    /// This process's children, from every thread's list in /proc.
+    fn children() -> Vec<i32> {
+        let mut out = Vec::new();
+        let Ok(tasks) = std::fs::read_dir("/proc/self/task") else {
+            return out;
+        };
+        for t in tasks.flatten() {
+            if let Ok(text) = std::fs::read_to_string(t.path().join("children")) {
+                out.extend(
+                    text.split_whitespace()
+                        .filter_map(|p| p.parse::<i32>().ok()),
+                );
+            }
+        }
+        out.sort_unstable();
+        out.dedup();
+        out
+    }
+
+    /// A seccomp filter for what Landlock does not cover: the command may not change any
+    /// file's permissions, owner, times or extended attributes, make device or other special
+    /// files, open sockets (no network, no service on a socket file such as a container
+    /// daemon's; `socketpair` still works), or use io_uring (whose requests seccomp does not
+    /// see). A call from another architecture's system-call table (32-bit, x32) is refused
+    /// whole. Built in the parent; the child only loads it.
+    fn filter() -> Vec<libc::sock_filter> {
+        const LD_W_ABS: u16 = 0x20;
+        const JEQ_K: u16 = 0x15;
+        const JGE_K: u16 = 0x35;
+        const RET_K: u16 = 0x06;
+        #[cfg(target_arch = "x86_64")]
+        const ARCH: u32 = 0xC000_003E;
+        #[cfg(target_arch = "aarch64")]
+        const ARCH: u32 = 0xC000_00B7;
+        let deny = libc::SECCOMP_RET_ERRNO | libc::EPERM as u32;
+        let allow = libc::SECCOMP_RET_ALLOW;
+        let mut nrs: Vec<libc::c_long> = vec![
+            libc::SYS_fchmod,
+            libc::SYS_fchmodat,
+            452, // fchmodat2
+            libc::SYS_fchown,
+            libc::SYS_fchownat,
+            libc::SYS_utimensat,
+            libc::SYS_setxattr,
+            libc::SYS_lsetxattr,
+            libc::SYS_fsetxattr,
+            463, // setxattrat
+            libc::SYS_removexattr,
+            libc::SYS_lremovexattr,
+            libc::SYS_fremovexattr,
+            466, // removexattrat
+            libc::SYS_mknodat,
+            libc::SYS_socket,
+            libc::SYS_io_uring_setup,
+            libc::SYS_io_uring_enter,
+            libc::SYS_io_uring_register,
+        ];
+        #[cfg(target_arch = "x86_64")]
+        nrs.extend([
+            libc::SYS_chmod,
+            libc::SYS_chown,
+            libc::SYS_lchown,
+            libc::SYS_utime,
+            libc::SYS_utimes,
+            libc::SYS_futimesat,
+            libc::SYS_mknod,
+        ]);
+        let op = |code: u16, jt: u8, jf: u8, k: u32| libc::sock_filter { code, jt, jf, k };
+        let n = nrs.len();
+        // 0: arch; 1: not ours -> deny; 2: nr; 3: x32 -> deny; then one test per call,
+        // each jumping to the deny at the end; allow before it.
+        let mut prog = vec![op(LD_W_ABS, 0, 0, 4)];
+        // Jump offsets count from the next instruction: deny is at 4 + n + 1.
+        prog.push(op(JEQ_K, 0, (n + 3) as u8, ARCH));
+        prog.push(op(LD_W_ABS, 0, 0, 0));
+        prog.push(op(JGE_K, (n + 1) as u8, 0, 0x4000_0000));
+        for (i, nr) in nrs.iter().enumerate() {
+            prog.push(op(JEQ_K, (n - i) as u8, 0, *nr as u32));
+        }
+        prog.push(op(RET_K, 0, 0, allow));
+        prog.push(op(RET_K, 0, 0, deny));
+        prog
     }
 
     /// close_range(3, ~0, CLOSE_RANGE_CLOEXEC): every descriptor from 3 up closes at exec
@@ -300,10 +463,12 @@ mod imp {
     pub fn apply(command: &mut std::process::Command, g: Option<&Grants>) -> Result<(), String> {
         use std::os::unix::process::CommandExt;
         let Some(g) = g else {
-            // SAFETY: runs in the child between fork and exec; one system call, no allocation.
+            // SAFETY: runs in the child between fork and exec; two system calls, no
+            // allocation. A session of its own: its own process group, no terminal.
             unsafe {
                 command.pre_exec(|| {
                     close_inherited();
+                    libc::setsid();
                     Ok(())
                 });
             }
@@ -313,6 +478,7 @@ mod imp {
             // No Landlock here: the command runs as the user, and the run says so (`warning`).
             return apply(command, None);
         }
+        let prog = filter();
         let fail = |e: landlock::RulesetError| format!("cannot build the command's box: {e}");
         let rule = |path: &std::path::Path, access| -> Result<PathBeneath<PathFd>, String> {
             let fd = PathFd::new(path)
@@ -337,26 +503,43 @@ mod imp {
                 .add_rule(rule(p, read | AccessFs::WriteFile)?)
                 .map_err(fail)?;
         }
+        // The scratch folder: everything but device files (a root command could make a node
+        // for a disk or the console there, past the device list).
+        let scratch = AccessFs::from_all(ABI_USED)
+            & !(AccessFs::MakeChar | AccessFs::MakeBlock | AccessFs::IoctlDev);
         for p in &g.write {
-            ruleset = ruleset
-                .add_rule(rule(p, AccessFs::from_all(ABI_USED))?)
-                .map_err(fail)?;
+            ruleset = ruleset.add_rule(rule(p, scratch)?).map_err(fail)?;
         }
         let mut ruleset = Some(ruleset);
-        // SAFETY: the closure runs in the child between fork and exec. It makes two system
-        // calls (prctl(PR_SET_NO_NEW_PRIVS), landlock_restrict_self) on a ruleset built in the
-        // parent, closes its descriptor, and allocates nothing on the way to success; an error
-        // is returned as a bare errno.
+        // SAFETY: the closure runs in the child between fork and exec. It makes a few system
+        // calls (setsid, prctl(PR_SET_NO_NEW_PRIVS), landlock_restrict_self on a ruleset
+        // built in the parent, prctl(PR_SET_SECCOMP) with a filter built in the parent),
+        // closes the ruleset's descriptor, and allocates nothing on the way to success; an
+        // error is returned as a bare errno.
         unsafe {
             command.pre_exec(move || {
                 close_inherited();
-                match ruleset.take() {
-                    Some(r) => match r.restrict_self() {
-                        Ok(s) if s.ruleset != RulesetStatus::NotEnforced => Ok(()),
-                        _ => Err(std::io::Error::from_raw_os_error(libc::EPERM)),
-                    },
-                    None => Ok(()),
+                libc::setsid();
+                if let Some(r) = ruleset.take() {
+                    match r.restrict_self() {
+                        Ok(s) if s.ruleset != RulesetStatus::NotEnforced => {}
+                        _ => return Err(std::io::Error::from_raw_os_error(libc::EPERM)),
+                    }
                 }
+                let fprog = libc::sock_fprog {
+                    len: prog.len() as u16,
+                    filter: prog.as_ptr() as *mut libc::sock_filter,
+                };
+                if libc::prctl(libc::PR_SET_NO_NEW_PRIVS, 1, 0, 0, 0) != 0
+                    || libc::prctl(
+                        libc::PR_SET_SECCOMP,
+                        libc::SECCOMP_MODE_FILTER as libc::c_ulong,
+                        &fprog as *const libc::sock_fprog,
+                    ) != 0
+                {
+                    return Err(std::io::Error::last_os_error());
+                }
+                Ok(())
             });
         }
         Ok(())
@@ -372,6 +555,12 @@ mod imp {
     }
 
     pub fn end_group(_: u32) {}
+
+    pub fn spawn(command: &mut std::process::Command) -> std::io::Result<std::process::Child> {
+        command.spawn()
+    }
+
+    pub fn ended(_: u32) {}
 
     pub fn apply(_: &mut std::process::Command, _: Option<&Grants>) -> Result<(), String> {
         Ok(())

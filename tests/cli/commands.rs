@@ -402,6 +402,24 @@ try:
     out.append("write=done")
 except OSError:
     out.append("write=denied")
+def trycall(label, call):
+    try:
+        call()
+        out.append(label + "=done")
+    except OSError:
+        out.append(label + "=denied")
+data = here + "/small.csv"
+st = os.stat(data)
+trycall("chmod", lambda: os.chmod(data, st.st_mode & 0o7777))
+trycall("utime", lambda: os.utime(data, ns=(st.st_atime_ns, st.st_mtime_ns)))
+trycall("mknod", lambda: os.mknod("node", 0o20600, os.makedev(1, 3)))
+import socket
+trycall("net", lambda: socket.socket(socket.AF_INET, socket.SOCK_STREAM).close())
+trycall("unix", lambda: socket.socket(socket.AF_UNIX, socket.SOCK_STREAM).close())
+trycall("tty", lambda: open("/dev/tty", "rb").close())
+import subprocess
+left = subprocess.Popen([sys.executable, "-c", "import time; time.sleep(60)"], start_new_session=True)
+out.append("left=%d" % left.pid)
 fds = sorted(int(x) for x in os.listdir("/proc/self/fd"))
 out.append("fds=" + ",".join(str(x) for x in fds))
 cells = []
@@ -443,8 +461,9 @@ fn probe(d: &Dir, spec: &str) -> (String, Vec<String>) {
 
 /// A boxed command reads its inputs and scratch files and nothing else of the user's: the data
 /// file (absolute, relative, or through /proc), the ledger and the spec's folder are closed to
-/// it, it writes nowhere else, it holds no descriptor beyond 0-2 (and the one listing them),
-/// and its files keep the data file's cells byte for byte. The same probe with
+/// it, it writes nowhere else, it changes no file's mode or times, makes no device file, opens
+/// no socket and no terminal, holds no descriptor beyond 0-2 (and the one listing them), its
+/// files keep the data file's cells byte for byte, and what it leaves running ends with it. The same probe with
 /// `sandbox = false` reads the data file and writes beside the spec, so the probe can see a
 /// leak when there is one; that run carries a warning, and the spec hash records the choice.
 #[test]
@@ -472,13 +491,27 @@ fn a_boxed_command_cannot_reach_the_data_file_or_the_ledger() {
             here.display()
         )
     };
+    // What a command leaves running after leaving its group (a session of its own) ends
+    // with it: boxed or not.
+    let gone = |found: &str| {
+        let pid = found
+            .split_whitespace()
+            .find_map(|w| w.strip_prefix("left="))
+            .unwrap();
+        let stat = std::fs::read_to_string(format!("/proc/{pid}/stat")).unwrap_or_default();
+        assert!(
+            stat.is_empty() || stat.contains(") Z "),
+            "process {pid} outlived its command: {stat}"
+        );
+    };
     let (boxed, warnings) = probe(&d, &spec(""));
     assert!(
         boxed.contains(
-            "probe: abs=denied rel=denied proc=denied ledger=denied input=read write=denied fds=0,1,2,3 cells=as-written"
-        ),
+            "probe: abs=denied rel=denied proc=denied ledger=denied input=read write=denied chmod=denied utime=denied mknod=denied net=denied unix=denied tty=denied left="
+        ) && boxed.contains(" fds=0,1,2,3 cells=as-written"),
         "{boxed}"
     );
+    gone(&boxed);
     assert!(!here.join("side.txt").exists());
     assert!(
         !warnings.iter().any(|w| w.contains("outside the box")),
@@ -486,9 +519,14 @@ fn a_boxed_command_cannot_reach_the_data_file_or_the_ledger() {
     );
     let (open, warnings) = probe(&d, &spec("sandbox = false\n"));
     assert!(
-        open.contains("abs=read") && open.contains("ledger=read") && open.contains("write=done"),
+        open.contains("abs=read")
+            && open.contains("ledger=read")
+            && open.contains("write=done")
+            && open.contains("chmod=done")
+            && open.contains("net=done"),
         "{open}"
     );
+    gone(&open);
     assert!(
         warnings
             .iter()
@@ -683,4 +721,125 @@ exit 0
     // The stored warnings and failures hold nothing of the data file.
     let shown = d.probity(&["show", "1", "--json"]).expect(0).stdout();
     assert!(!shown.contains("shade,bay"), "{shown}");
+}
+
+/// A stand-in for an older kernel, loaded with LD_PRELOAD: Landlock's version query answers
+/// `ABI` (0: no Landlock, as ENOSYS); every other system call goes through.
+const OLD_KERNEL: &str = r#"
+#define _GNU_SOURCE
+#include <dlfcn.h>
+#include <errno.h>
+#include <stdarg.h>
+#include <sys/syscall.h>
+long syscall(long n, ...) {
+    va_list ap;
+    va_start(ap, n);
+    long a[6];
+    for (int i = 0; i < 6; i++) a[i] = va_arg(ap, long);
+    va_end(ap);
+    if (n == SYS_landlock_create_ruleset && a[2] == 1) {
+        if (ABI == 0) { errno = ENOSYS; return -1; }
+        return ABI;
+    }
+    if (n == SYS_landlock_create_ruleset && ABI == 0) { errno = ENOSYS; return -1; }
+    long (*real)(long, ...) = (long (*)(long, ...))dlsym(RTLD_NEXT, "syscall");
+    return real(n, a[0], a[1], a[2], a[3], a[4], a[5]);
+}
+"#;
+
+/// The shim for `abi`, built with the C compiler in `d` (gcc is on every machine this runs on).
+fn old_kernel(d: &Dir, abi: u32) -> String {
+    let src = d.write(&format!("abi{abi}.c"), OLD_KERNEL);
+    let lib = d.path.join(format!("abi{abi}.so"));
+    let ok = std::process::Command::new("cc")
+        .args(["-shared", "-fPIC", "-O2", &format!("-DABI={abi}"), "-o"])
+        .arg(&lib)
+        .arg(&src)
+        .arg("-ldl")
+        .status()
+        .unwrap()
+        .success();
+    assert!(ok, "cannot build the shim");
+    lib.display().to_string()
+}
+
+/// Where the box would not hold (no Landlock, or one too old to stop truncation), a run
+/// stores a warning saying so, and a reveal or prediction that would run a command meant for
+/// the box refuses without --allow-commands, then warns.
+#[test]
+fn a_box_that_would_not_hold_is_warned_and_needs_consent() {
+    let d = setup("cmd-gap", MEAN_MODEL, "");
+    let j = d.probity(&["run", "c.toml", "--json"]).expect(0).json();
+    let id = j["candidates"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|c| c["model"] == "command" && c["params"]["shift"] == 0.0)
+        .unwrap()["id"]
+        .as_i64()
+        .unwrap()
+        .to_string();
+    assert!(
+        !j["warnings"].to_string().contains("box"),
+        "{}",
+        j["warnings"]
+    );
+    for (abi, why) in [
+        (0, "has no Landlock"),
+        (2, "cannot stop a command from truncating"),
+    ] {
+        let shim = old_kernel(&d, abi);
+        let env = [("LD_PRELOAD", shim.as_str())];
+        let j = d
+            .probity_env(&["run", "c.toml", "--json"], &env)
+            .expect(0)
+            .json();
+        let w = j["warnings"].to_string();
+        assert!(
+            w.contains("ran outside a box that holds") && w.contains(why),
+            "ABI {abi}: {w}"
+        );
+        let before = d.counts();
+        for args in [
+            vec!["reveal", "1", "--candidate", &id, "--yes"],
+            vec![
+                "predict",
+                "1",
+                "--candidate",
+                &id,
+                "--input",
+                "small.csv",
+                "--output",
+                "p.csv",
+            ],
+        ] {
+            let r = d.probity_env(&args, &env).expect(2);
+            assert!(
+                r.stderr().contains("which would not hold here") && r.stderr().contains(why),
+                "{}",
+                r.stderr()
+            );
+        }
+        assert_eq!(d.counts(), before, "a refused reveal records nothing");
+    }
+    let shim = old_kernel(&d, 0);
+    let r = d
+        .probity_env(
+            &[
+                "reveal",
+                "1",
+                "--candidate",
+                &id,
+                "--yes",
+                "--allow-commands",
+            ],
+            &[("LD_PRELOAD", shim.as_str())],
+        )
+        .expect(0);
+    assert!(
+        r.stderr().contains("running the command of run 1")
+            && r.stderr().contains("has no Landlock"),
+        "{}",
+        r.stderr()
+    );
 }

@@ -75,7 +75,17 @@ impl Dir {
     /// `probity`, killed after `seconds` (its exit code is then -1): for cases that must not
     /// wait on anything.
     pub fn probity_within(&self, args: &[&str], seconds: u64) -> Run {
+        self.probity_with(args, &[], seconds)
+    }
+
+    /// `probity` with more environment variables.
+    pub fn probity_env(&self, args: &[&str], env: &[(&str, &str)]) -> Run {
+        self.probity_with(args, env, 600)
+    }
+
+    fn probity_with(&self, args: &[&str], env: &[(&str, &str)], seconds: u64) -> Run {
         let mut cmd = assert_cmd::Command::cargo_bin("probity").unwrap();
+        cmd.envs(env.iter().copied());
         cmd.current_dir(&self.path)
             .args(args)
             .env_remove("PROBITY_LEDGER")
