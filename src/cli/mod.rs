@@ -405,6 +405,18 @@ pub(crate) fn host() -> String {
 }
 
 pub(crate) fn user() -> String {
+    // The person, as the user chooses to be named (a shared service account, say).
+    if let Ok(u) = std::env::var("PROBITY_USER")
+        && !u.trim().is_empty()
+        && !u.chars().any(char::is_control)
+    {
+        return u;
+    }
+    // The operating system's name for this process's user: what login variables say can be
+    // anything, and a uid number names nobody to a reader.
+    if let Some(u) = os_user_name() {
+        return u;
+    }
     for var in ["USER", "LOGNAME", "USERNAME"] {
         if let Ok(u) = std::env::var(var)
             && !u.is_empty()
@@ -412,7 +424,6 @@ pub(crate) fn user() -> String {
             return u;
         }
     }
-    // No login variable (a service or CI job): fall back to the numeric uid.
     std::fs::read_to_string("/proc/self/status")
         .ok()
         .and_then(|s| {
@@ -422,6 +433,35 @@ pub(crate) fn user() -> String {
                 .map(|u| format!("uid {u}"))
         })
         .unwrap_or_else(|| "unknown".into())
+}
+
+/// The user database's name for the effective user, if it has one.
+#[cfg(target_os = "linux")]
+fn os_user_name() -> Option<String> {
+    let mut buf = vec![0 as libc::c_char; 16 << 10];
+    // SAFETY: a zeroed passwd is a valid out-parameter; getpwuid_r writes into `pwd` and
+    // `buf` (whose length it is given) and sets `found` to `&pwd` or null.
+    unsafe {
+        let mut pwd: libc::passwd = std::mem::zeroed();
+        let mut found: *mut libc::passwd = std::ptr::null_mut();
+        let rc = libc::getpwuid_r(
+            libc::geteuid(),
+            &mut pwd,
+            buf.as_mut_ptr(),
+            buf.len(),
+            &mut found,
+        );
+        if rc != 0 || found.is_null() || pwd.pw_name.is_null() {
+            return None;
+        }
+        let name = std::ffi::CStr::from_ptr(pwd.pw_name).to_str().ok()?;
+        (!name.is_empty()).then(|| name.to_string())
+    }
+}
+
+#[cfg(not(target_os = "linux"))]
+fn os_user_name() -> Option<String> {
+    None
 }
 
 /// Consent before a stored run's external command runs again (`reveal`, `predict`): a run

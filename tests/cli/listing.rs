@@ -432,3 +432,37 @@ fn trusted_keys_list_matches_golden() {
     );
     assert!(rows[1].contains("ada") && rows[1].contains("d75a9801") && rows[2].contains("bram"));
 }
+
+/// A run, a reveal and a note record the operating system's name for the user (what `id -un`
+/// prints), not what a login variable claims; `PROBITY_USER` names the person on purpose.
+#[test]
+fn the_person_is_the_systems_user_unless_named() {
+    let d = crate::fixtures::small_dir("who");
+    let os = std::process::Command::new("id")
+        .arg("-un")
+        .output()
+        .unwrap();
+    let os = String::from_utf8(os.stdout).unwrap().trim().to_string();
+    let lie = [("USER", "mallory"), ("LOGNAME", "mallory")];
+    d.probity_env(&["run", "small.toml"], &lie).expect(0);
+    d.probity_env(&["reveal", "1", "--yes"], &lie).expect(0);
+    let named = [("PROBITY_USER", "Ana Ferreira"), ("USER", "mallory")];
+    d.probity_env(&["note", "1", "checked"], &named).expect(0);
+    d.probity_env(&["run", "small.toml"], &named).expect(0);
+    let user = |run: &str| {
+        d.probity(&["show", run, "--json"]).expect(0).json()["user"]
+            .as_str()
+            .unwrap()
+            .to_string()
+    };
+    assert_eq!(user("1"), os);
+    assert_eq!(user("2"), "Ana Ferreira");
+    let s = d.probity(&["show", "1", "--json"]).expect(0).json();
+    assert_eq!(s["notes"][0]["user"], "Ana Ferreira", "{s}");
+    let a = d.probity(&["audit", "--json"]).expect(0).json();
+    let people = a["partitions"][0]["people"].to_string();
+    assert!(
+        people.contains(&os) && !people.contains("mallory"),
+        "{people}"
+    );
+}
