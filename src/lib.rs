@@ -24,6 +24,7 @@ pub mod ledger;
 pub mod metrics;
 pub mod models;
 pub mod par;
+pub mod replay;
 pub mod report;
 pub mod runner;
 pub mod signing;

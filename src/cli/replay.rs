@@ -121,7 +121,7 @@ fn replay_and_store(
             progress.tasks(d, t)
         })?
     };
-    let cmp = ledger.compare(a.run, &spec.canonical_hash(), &outcome)?;
+    let cmp = crate::replay::compare(ledger, a.run, &spec.canonical_hash(), &outcome)?;
     let identical = cmp.differences.is_empty();
     let shown: Vec<_> = cmp.differences.iter().take(100).collect();
     let (stored_version, stored_commit, stored_target, stored_threads, _) =
