@@ -72,7 +72,7 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
         .collect();
     if !extra.is_empty() {
         eprintln!(
-            "also packed runs {extra:?}: they revealed or developed on a partition the bundle ships, and a bundle carries every consultation of its partitions"
+            "also packed runs {extra:?}: they revealed or developed on a partition the bundle ships, or bring one that its reveals or development uses count against, and a bundle carries every consultation of its partitions"
         );
     }
     let n = bundle["entries"].as_array().map_or(0, Vec::len);

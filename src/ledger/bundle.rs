@@ -79,17 +79,31 @@ pub struct Merged {
     pub signer: Signer,
 }
 
-/// The runs a bundle of `runs` must carry: those, and every run with a reveal or a development
-/// use of a partition the bundle ships (each run ships its own partition), until no more are
-/// needed; in id order. So a bundle carries every consultation of each partition it ships.
+/// The partitions a bundle of the runs `?1` (a JSON array of ids) ships, as the SQL table
+/// `shipped(id)`: each run's own partition, and every partition one of their reveals or
+/// development uses consults (a reveal of another partition's test rows counts against that
+/// partition, and a run's development rows may be another partition's test rows).
+const SHIPPED: &str = "chosen(id) AS (SELECT value FROM json_each(?1)),
+     shipped(id) AS (SELECT partition_id FROM runs WHERE id IN chosen
+         UNION SELECT partition_id FROM reveals WHERE run_id IN chosen
+         UNION SELECT partition_id FROM uses WHERE run_id IN chosen)";
+
+/// The runs a bundle of `runs` must carry: those, every run with a reveal or a development use
+/// of a partition the bundle ships (`SHIPPED`), and for a shipped partition that none of them
+/// runs over, the first run over it (which brings the partition itself, so that the reveals
+/// counted against it can be stored), until no more are needed; in id order. So a bundle
+/// carries every consultation of each partition it ships.
 fn closure(conn: &rusqlite::Connection, runs: &[i64]) -> Result<Vec<i64>> {
     let mut all: std::collections::BTreeSet<i64> = runs.iter().copied().collect();
     let mut st = conn
-        .prepare(
-            "WITH shipped AS (SELECT DISTINCT partition_id FROM runs WHERE id IN (SELECT value FROM json_each(?1)))
+        .prepare(&format!(
+            "WITH {SHIPPED}
              SELECT run_id FROM reveals WHERE partition_id IN shipped
-             UNION SELECT run_id FROM uses WHERE partition_id IN shipped",
-        )
+             UNION SELECT run_id FROM uses WHERE partition_id IN shipped
+             UNION SELECT min(id) FROM runs WHERE partition_id IN shipped
+                 AND partition_id NOT IN (SELECT partition_id FROM runs WHERE id IN chosen)
+                 GROUP BY partition_id"
+        ))
         .map_err(sql_err("pack"))?;
     loop {
         let ids = json!(all.iter().collect::<Vec<_>>()).to_string();
@@ -105,17 +119,18 @@ fn closure(conn: &rusqlite::Connection, runs: &[i64]) -> Result<Vec<i64>> {
     }
 }
 
-/// For each partition the runs ship, in id order: its reveals and development uses in this
-/// ledger, as `{"id", "reveals", "uses"}`.
+/// For each partition the runs ship (`SHIPPED`), in id order: its reveals and development
+/// uses in this ledger, as `{"id", "reveals", "uses"}`.
 fn consultation_counts(conn: &rusqlite::Connection, runs: &[i64]) -> Result<Vec<Value>> {
     let mut st = conn
-        .prepare(
-            "SELECT p.partition_id,
-                    (SELECT count(*) FROM reveals r WHERE r.partition_id = p.partition_id),
-                    (SELECT count(*) FROM uses u WHERE u.partition_id = p.partition_id)
-             FROM (SELECT DISTINCT partition_id FROM runs WHERE id IN (SELECT value FROM json_each(?1))) p
-             ORDER BY p.partition_id",
-        )
+        .prepare(&format!(
+            "WITH {SHIPPED}
+             SELECT p.id,
+                    (SELECT count(*) FROM reveals r WHERE r.partition_id = p.id),
+                    (SELECT count(*) FROM uses u WHERE u.partition_id = p.id)
+             FROM shipped p
+             ORDER BY p.id"
+        ))
         .map_err(sql_err("pack"))?;
     st.query_map([json!(runs).to_string()], |r| {
         Ok(json!({"id": r.get::<_, String>(0)?, "reveals": r.get::<_, i64>(1)?, "uses": r.get::<_, i64>(2)?}))
@@ -127,23 +142,24 @@ fn consultation_counts(conn: &rusqlite::Connection, runs: &[i64]) -> Result<Vec<
 impl Ledger {
     /// The chained entries of `runs`, with their reveals and notes, in chain order, as a bundle
     /// (unsigned: `signing` signs it). Every run with a reveal or a development use of a
-    /// partition the bundle ships comes too (`closure`), and `partitions` counts those
-    /// consultations. A merged entry keeps the hashes it came with, so it is known again
+    /// partition the bundle ships comes too, with a run over each partition consulted
+    /// (`closure`); `partitions` counts those consultations, and the seals of those
+    /// partitions come along. A merged entry keeps the hashes it came with, so it is known again
     /// wherever it has been merged before. Returns the bundle and the runs it carries.
     pub fn pack(&self, runs: &[i64], created_at: &str) -> Result<(Value, Vec<i64>)> {
         let runs = closure(&self.conn, runs)?;
         let counts = consultation_counts(&self.conn, &runs)?;
         let mut st = self
             .conn
-            .prepare(
-                "SELECT seq, kind, ref_id, coalesce(origin_prev, prev_hash), coalesce(origin, entry_hash) FROM chain WHERE
-                   (kind = 'run' AND ref_id IN (SELECT value FROM json_each(?1)))
-                   OR (kind = 'reveal' AND ref_id IN (SELECT id FROM reveals WHERE run_id IN (SELECT value FROM json_each(?1))))
-                   OR (kind = 'note' AND ref_id IN (SELECT id FROM notes WHERE run_id IN (SELECT value FROM json_each(?1))))
-                   OR (kind = 'seal' AND ref_id IN (SELECT id FROM seals WHERE partition_id IN
-                        (SELECT partition_id FROM runs WHERE id IN (SELECT value FROM json_each(?1)))))
-                 ORDER BY seq",
-            )
+            .prepare(&format!(
+                "WITH {SHIPPED}
+                 SELECT seq, kind, ref_id, coalesce(origin_prev, prev_hash), coalesce(origin, entry_hash) FROM chain WHERE
+                   (kind = 'run' AND ref_id IN chosen)
+                   OR (kind = 'reveal' AND ref_id IN (SELECT id FROM reveals WHERE run_id IN chosen))
+                   OR (kind = 'note' AND ref_id IN (SELECT id FROM notes WHERE run_id IN chosen))
+                   OR (kind = 'seal' AND ref_id IN (SELECT id FROM seals WHERE partition_id IN shipped))
+                 ORDER BY seq"
+            ))
             .map_err(sql_err("pack"))?;
         let ids = json!(&runs).to_string();
         let links: Vec<(i64, String, i64, String, String)> = st
@@ -355,11 +371,51 @@ impl Ledger {
                 }
             }
         }
+        // 3. A reveal is stored under the partition it counts against: this ledger must hold
+        // it, or a run in the bundle bring it (in any order: references are checked at the
+        // commit, since a reveal through a partition can precede the first run over it).
+        let mut brought = std::collections::BTreeSet::new();
+        for (_, _, _, _, sections, columns) in &parsed {
+            for ((name, rows), cols) in sections.iter().zip(columns) {
+                if let Some(at) = cols.iter().position(|c| c == "id")
+                    && name == "partitions"
+                {
+                    brought.extend(rows.iter().filter_map(|r| match r.get(at) {
+                        Some(Sql::Text(t)) => Some(t.clone()),
+                        _ => None,
+                    }));
+                }
+            }
+        }
+        for (i, (kind, _, hash, _, sections, columns)) in parsed.iter().enumerate() {
+            for ((name, rows), cols) in sections.iter().zip(columns) {
+                let Some(at) = cols.iter().position(|c| c == "partition_id") else {
+                    continue;
+                };
+                if name != "reveals" {
+                    continue;
+                }
+                for row in rows {
+                    let Some(Sql::Text(p)) = row.get(at) else {
+                        continue;
+                    };
+                    if !brought.contains(p) && !self.holds_partition(p)? {
+                        return Err(Error::Input(format!(
+                            "bundle entry {} ({kind} {hash}) counts against partition {p}, which neither the bundle nor this ledger holds (no run over it came with the bundle); nothing was merged. Merge a bundle with a run over partition {p} first (its sender's `probity history` lists the runs), then this one",
+                            i + 1
+                        )));
+                    }
+                }
+            }
+        }
         let path = self.path.clone();
         let fail = |e: rusqlite::Error| migrate::refuse_or_fail(&path, e, "merge");
         let tx = self
             .conn
             .transaction_with_behavior(rusqlite::TransactionBehavior::Immediate)
+            .map_err(fail)?;
+        // References are checked when the merge commits (SQLite resets this at its end).
+        tx.pragma_update(None, "defer_foreign_keys", "ON")
             .map_err(fail)?;
         let (key, name, trusted_as) = match &signer {
             Signer::Trusted {
@@ -457,7 +513,14 @@ impl Ledger {
             rusqlite::params![merged as i64, skipped as i64, merge_id],
         )
         .map_err(fail)?;
-        tx.commit().map_err(fail)?;
+        tx.commit().map_err(|e| match e.sqlite_error() {
+            Some(f) if f.extended_code == rusqlite::ffi::SQLITE_CONSTRAINT_FOREIGNKEY => {
+                Error::Integrity(
+                    "the bundle's rows refer to rows that neither the bundle nor this ledger holds: it was not packed by probity, or it was edited; nothing was merged".into(),
+                )
+            }
+            _ => fail(e),
+        })?;
         Ok(Merged {
             merged,
             skipped,
@@ -499,6 +562,17 @@ impl Ledger {
                 key,
             },
         })
+    }
+
+    /// Whether this ledger stores partition `id`.
+    fn holds_partition(&self, id: &str) -> Result<bool> {
+        self.conn
+            .query_row(
+                "SELECT EXISTS (SELECT 1 FROM partitions WHERE id = ?1)",
+                [id],
+                |r| r.get(0),
+            )
+            .map_err(sql_err("merge"))
     }
 
     /// The name this ledger trusts `key` under, if it does.
@@ -663,8 +737,8 @@ type Parsed = (
 );
 
 /// Compare the consultations a bundle carries with the counts it states for each partition
-/// it ships (required when `signed`): a reveal or development use left out, or added, is an
-/// integrity failure (exit 4).
+/// it ships or consults (required when `signed`): a reveal or development use left out, or
+/// added, or carried for a partition with no stated count, is an integrity failure (exit 4).
 fn check_counts(bundle: &Value, parsed: &[Parsed], signed: bool) -> Result<()> {
     let Some(stated) = bundle["partitions"].as_array() else {
         if signed {
@@ -723,6 +797,14 @@ fn check_counts(bundle: &Value, parsed: &[Parsed], signed: bool) -> Result<()> {
     if let Some(p) = shipped.iter().find(|p| !counted.contains(*p)) {
         return Err(Error::Integrity(format!(
             "the bundle ships partition {p} but states no count of its reveals; nothing was merged"
+        )));
+    }
+    // A reveal or use counted against a partition the bundle states nothing about (a reveal of
+    // another partition's test rows, a run developing on them): the sender's other
+    // consultations of that partition could be left out unseen.
+    if let Some((p, (r, u))) = carried.iter().find(|(p, _)| !counted.contains(*p)) {
+        return Err(Error::Integrity(format!(
+            "the bundle carries {r} reveal(s) and {u} development use(s) of partition {p} but states no count of that partition's consultations, so others could have been left out; nothing was merged (it was packed by an older probity, or edited: ask its sender to pack it again)"
         )));
     }
     Ok(())

@@ -470,3 +470,241 @@ fn a_bundle_carries_and_counts_every_reveal_of_its_partitions() {
     let a = bob.probity(&["audit", "--json"]).expect(0).json();
     assert_eq!(a["partitions"][0]["reveals"], 1);
 }
+
+/// Each partition's (reveals, development uses) as `audit --json` lists them, by id (audit
+/// exits 3 when one is over budget, which these cases are).
+fn consultations(d: &Dir) -> Vec<(String, Value, usize)> {
+    let r = d.probity(&["audit", "--json"]);
+    assert!([0, 3].contains(&r.code()), "{}", r.stderr());
+    let mut out: Vec<(String, Value, usize)> = r.json()["partitions"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|p| {
+            (
+                p["id"].as_str().unwrap().to_string(),
+                p["reveals"].clone(),
+                p["development_uses"].as_array().unwrap().len(),
+            )
+        })
+        .collect();
+    out.sort_by(|a, b| a.0.cmp(&b.0));
+    out
+}
+
+fn read_bundle(d: &Dir, file: &str) -> Value {
+    serde_json::from_str(&std::fs::read_to_string(d.path.join(file)).unwrap()).unwrap()
+}
+
+/// The rows of section `name` of an entry.
+fn rows_of<'a>(e: &'a Value, name: &str) -> &'a Vec<Value> {
+    e["sections"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|s| s["name"] == name)
+        .unwrap()["rows"]
+        .as_array()
+        .unwrap()
+}
+
+/// Carol's run 1 (seed 5) and its reveal, merged by Dave; then two more reveals of run 1, and
+/// run 2 (seed 6: its test rows overlap run 1's, and some of its development rows are run 1's
+/// test rows) with a reveal, which counts against both partitions. Returns Carol, Dave and the
+/// partition of run 1.
+fn carol_and_dave(name: &str) -> (Dir, Dir, String) {
+    let carol = small_dir(&format!("{name}-carol"));
+    carol.write(
+        "s6.toml",
+        &crate::fixtures::SMALL_SPEC.replace("seed = 5", "seed = 6"),
+    );
+    carol.probity(&["run", "small.toml"]).expect(0);
+    carol.probity(&["reveal", "1", "--yes"]).expect(0);
+    carol.public_key("carol");
+    carol.probity(&["pack", "1", "--out", "b1.json"]).expect(0);
+    let dave = Dir::new(&format!("{name}-dave"));
+    dave.trusts(&carol, "carol");
+    dave.write("b1.json", &read_bundle(&carol, "b1.json").to_string());
+    dave.probity(&["merge", "b1.json"]).expect(0);
+    carol.probity(&["reveal", "1", "--yes"]).expect(0);
+    carol.probity(&["reveal", "1", "--yes"]).expect(0);
+    carol.probity(&["run", "s6.toml"]).expect(0);
+    carol.probity(&["reveal", "2", "--yes"]).expect(0);
+    let p1 = carol.probity(&["show", "1", "--json"]).expect(0).json()["partition"]["id"]
+        .as_str()
+        .unwrap()
+        .to_string();
+    (carol, dave, p1)
+}
+
+/// A bundle ships every partition its reveals and development uses count against, not only its
+/// runs' own: packing run 2 brings run 1 (over the partition run 2's reveal and development
+/// rows consult) with all its reveals, and states that partition's count. Dave then sees what
+/// Carol sees (he saw 2 of run 1's partition's 4 reveals before), and a ledger that never held
+/// that partition merges the bundle whole (it failed with a foreign-key error).
+#[test]
+fn a_bundle_ships_every_partition_its_consultations_count_against() {
+    let (carol, dave, p1) = carol_and_dave("consulted");
+    let theirs = consultations(&carol);
+    assert!(
+        theirs
+            .iter()
+            .any(|(p, r, u)| *p == p1 && *r == 4 && *u == 1),
+        "run 2's reveal and development rows count against run 1's partition: {theirs:?}"
+    );
+    let r = carol.probity(&["pack", "2", "--out", "b2.json"]).expect(0);
+    assert!(
+        r.stderr().contains("also packed runs [1]"),
+        "{}",
+        r.stderr()
+    );
+    let bundle = read_bundle(&carol, "b2.json");
+    assert!(
+        bundle["partitions"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .any(|p| p["id"] == p1.as_str() && p["reveals"] == 4 && p["uses"] == 1),
+        "{}",
+        bundle["partitions"]
+    );
+    dave.write("b2.json", &bundle.to_string());
+    dave.probity(&["merge", "b2.json"]).expect(0);
+    assert_eq!(consultations(&dave), theirs);
+    dave.probity(&["audit", "--verify"]).expect(0);
+    let erin = Dir::new("consulted-erin");
+    erin.trusts(&carol, "carol");
+    erin.write("b2.json", &bundle.to_string());
+    erin.probity(&["merge", "b2.json"]).expect(0);
+    assert_eq!(consultations(&erin), theirs);
+    erin.probity(&["audit", "--verify"]).expect(0);
+}
+
+/// Run 2's bundle as a packer that ships only its runs' own partitions wrote it: no run 1, no
+/// reveals of run 1, no seal or count of run 1's partition; run 2's reveal and development use
+/// of that partition still in it.
+fn without_partition(honest: &Value, p1: &str) -> Value {
+    let mut b = honest.clone();
+    // (A bundle packed before the fix holds no run over that partition: nothing to take out.)
+    let run1: Option<Value> = b["entries"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|e| e["kind"] == "run" && rows_of(e, "partitions").first().unwrap()[0] == json!(p1))
+        .map(|e| e["entry_hash"].clone());
+    b["entries"].as_array_mut().unwrap().retain(|e| {
+        run1.as_ref()
+            .is_none_or(|h| e["entry_hash"] != *h && e["run_entry"] != *h)
+            && !(e["kind"] == "seal" && rows_of(e, "seals")[0][1] == json!(p1))
+    });
+    b["partitions"]
+        .as_array_mut()
+        .unwrap()
+        .retain(|p| p["id"] != p1);
+    b
+}
+
+/// A signed bundle that carries a reveal or development use of a partition whose count it does
+/// not state is refused (exit 4), nothing written; without a signature or counts, a reveal of
+/// a partition that neither the bundle nor the ledger holds is refused with a message saying
+/// so (exit 2), never SQLite's foreign-key error.
+#[test]
+fn consultations_of_a_partition_with_no_stated_count_are_refused() {
+    let (carol, dave, p1) = carol_and_dave("uncounted");
+    carol.probity(&["pack", "2", "--out", "b2.json"]).expect(0);
+    let honest = read_bundle(&carol, "b2.json");
+    let mut short = without_partition(&honest, &p1);
+    assert!(
+        short["entries"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .any(|e| e["kind"] == "reveal" && rows_of(e, "reveals")[0][3] == json!(p1.as_str())),
+        "run 2's reveal through run 1's partition stays"
+    );
+    sign_as(&carol, &mut short);
+    let before = dave.counts();
+    dave.write("s.json", &short.to_string());
+    let r = dave.probity(&["merge", "s.json"]).expect(4);
+    assert!(
+        r.stderr()
+            .contains(&format!("of partition {p1} but states no count"))
+            && r.stderr().contains("nothing was merged"),
+        "{}",
+        r.stderr()
+    );
+    assert_eq!(dave.counts(), before);
+
+    let erin = Dir::new("uncounted-erin");
+    erin.trusts(&carol, "carol");
+    let mut bare = without_partition(&honest, &p1);
+    bare.as_object_mut().unwrap().remove("signature");
+    bare.as_object_mut().unwrap().remove("partitions");
+    erin.write("u.json", &bare.to_string());
+    let before = erin.counts();
+    let r = erin
+        .probity(&["merge", "u.json", "--allow-unverified"])
+        .expect(2);
+    assert!(
+        r.stderr().contains(&format!(
+            "counts against partition {p1}, which neither the bundle nor this ledger holds"
+        )) && !r.stderr().contains("FOREIGN KEY"),
+        "{}",
+        r.stderr()
+    );
+    assert_eq!(erin.counts(), before);
+}
+
+/// A reveal can count against a partition whose first run finishes after it (the partition is
+/// stored at that run's start): in chain order the reveal comes before the run that brings the
+/// partition. Such an honest bundle merges into a ledger without the partition (references are
+/// checked when the merge commits, not entry by entry).
+#[test]
+fn a_reveal_may_precede_the_run_that_brings_its_partition() {
+    if !crate::util::pauses_compiled("a_reveal_may_precede_the_run_that_brings_its_partition") {
+        return;
+    }
+    let carol = small_dir("order-carol");
+    carol.write(
+        "s6.toml",
+        &crate::fixtures::SMALL_SPEC.replace("seed = 5", "seed = 6"),
+    );
+    let go = carol.path.join("go");
+    let (mut first, _err) = crate::consult::paused_run(&carol, "small.toml", Some(&go));
+    carol.probity(&["run", "s6.toml"]).expect(0);
+    carol.probity(&["reveal", "1", "--yes"]).expect(0);
+    std::fs::write(&go, "").unwrap();
+    assert!(first.wait().unwrap().success());
+    let p1 = carol.probity(&["show", "2", "--json"]).expect(0).json()["partition"]["id"]
+        .as_str()
+        .unwrap()
+        .to_string();
+    carol.public_key("carol");
+    carol.probity(&["pack", "1", "--out", "b.json"]).expect(0);
+    let bundle = read_bundle(&carol, "b.json");
+    let kinds: Vec<(&str, bool)> = bundle["entries"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|e| {
+            let p = match e["kind"].as_str().unwrap() {
+                "reveal" => rows_of(e, "reveals").iter().any(|r| r[3] == json!(p1)),
+                "run" => rows_of(e, "partitions")[0][0] == json!(p1),
+                _ => false,
+            };
+            (e["kind"].as_str().unwrap(), p)
+        })
+        .collect();
+    let reveal = kinds.iter().position(|k| *k == ("reveal", true));
+    let run = kinds.iter().position(|k| *k == ("run", true));
+    assert!(
+        reveal.is_some() && run.is_some() && reveal < run,
+        "the reveal through the partition comes first: {kinds:?}"
+    );
+    let erin = Dir::new("order-erin");
+    erin.trusts(&carol, "carol");
+    erin.write("b.json", &bundle.to_string());
+    erin.probity(&["merge", "b.json"]).expect(0);
+    assert_eq!(consultations(&erin), consultations(&carol));
+    erin.probity(&["audit", "--verify"]).expect(0);
+}

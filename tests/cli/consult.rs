@@ -1386,7 +1386,7 @@ fn unrelated_files_that_share_key_numbers_are_not_confused() {
 /// its partition, which is stored beside the grid, holds its pending seal; with its stderr.
 // The caller waits for the child, or kills it; a failed assertion here ends the test.
 #[allow(clippy::zombie_processes)]
-fn paused_run(
+pub(crate) fn paused_run(
     d: &Dir,
     spec: &str,
     go: Option<&std::path::Path>,
