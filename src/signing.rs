@@ -113,6 +113,9 @@ impl Key {
         let name = v["name"]
             .as_str()
             .ok_or_else(|| bad("the key has no name"))?;
+        if let Some(why) = name_problem(name) {
+            return Err(bad(&format!("the key's name {name:?} {why}")));
+        }
         let seed: [u8; 32] = v["secret"]
             .as_str()
             .and_then(unhex)
@@ -123,6 +126,25 @@ impl Key {
             secret: SigningKey::from_bytes(&seed),
         })
     }
+}
+
+/// Why `name` cannot name a key, or `None`: a name is printed on terminals (by `merge`,
+/// `audit`, `key list`), so it must be printable: not empty, and without control characters
+/// (which can carry terminal escape codes) or the invisible controls of bidirectional text
+/// (which can make a name read as another).
+pub fn name_problem(name: &str) -> Option<&'static str> {
+    if name.trim().is_empty() {
+        return Some("is empty");
+    }
+    name.chars()
+        .any(unprintable)
+        .then_some("holds control characters")
+}
+
+/// A control character, or an invisible control of bidirectional text.
+pub fn unprintable(c: char) -> bool {
+    c.is_control()
+        || matches!(c, '\u{200e}' | '\u{200f}' | '\u{061c}' | '\u{202a}'..='\u{202e}' | '\u{2066}'..='\u{2069}')
 }
 
 /// Bytes from hex digits (either case); `None` for anything else.
@@ -266,6 +288,24 @@ mod tests {
                 Key::load(&path).is_err(),
                 "a key others can read is refused"
             );
+        }
+    }
+
+    #[test]
+    fn names_must_be_printable() {
+        for good in ["ada", "Ada Lovelace", "José", "李"] {
+            assert_eq!(name_problem(good), None, "{good:?}");
+        }
+        for bad in [
+            "",
+            "  ",
+            "a\u{1b}[2Jb",
+            "a\nb",
+            "a\u{7f}",
+            "a\u{9b}b",
+            "a\u{202e}b",
+        ] {
+            assert!(name_problem(bad).is_some(), "{bad:?}");
         }
     }
 

@@ -77,10 +77,10 @@ impl KeyPath {
 pub fn run(g: &Global, a: Args) -> Result<i32> {
     match a.what {
         What::New { name, key } => {
-            if name.trim().is_empty() || name.chars().any(char::is_control) {
-                return Err(Error::Input(
-                    "--name must not be empty or hold control characters".into(),
-                ));
+            if let Some(why) = crate::signing::name_problem(&name) {
+                return Err(Error::Input(format!(
+                    "--name {name:?} {why}; choose a name of printable characters"
+                )));
             }
             let path = key.resolve()?;
             let k = Key::generate(&name)?;

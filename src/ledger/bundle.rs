@@ -551,6 +551,13 @@ impl Ledger {
             .ok_or_else(|| bad("covers a bundle that lacks its entries or counts"))?;
         crate::signing::verify(&key, &message, hex)
             .map_err(|e| bad(&format!("by {name:?} (key {key}) fails: {e}")))?;
+        // A name is printed on this terminal: one that could carry escape codes is refused,
+        // whether or not the signature holds.
+        if let Some(why) = crate::signing::name_problem(name) {
+            return Err(Error::Integrity(format!(
+                "the bundle's signer name {name:?} {why}: the signature may be valid, but no key names its owner that way (`probity key new` refuses such names); nothing was merged"
+            )));
+        }
         Ok(match self.trusted_name(&key)? {
             Some(trusted_as) => Signer::Trusted {
                 name: name.to_string(),
@@ -590,10 +597,10 @@ impl Ledger {
     /// Trust `key` to sign bundles as `name`; refused (exit 2) when it is trusted already.
     pub fn trust(&mut self, key: &str, name: &str, at: &str, by: &str) -> Result<()> {
         let key = crate::signing::public_key(key).map_err(Error::Input)?;
-        if name.trim().is_empty() || name.chars().any(char::is_control) {
-            return Err(Error::Input(
-                "a key's name must not be empty or hold control characters".into(),
-            ));
+        if let Some(why) = crate::signing::name_problem(name) {
+            return Err(Error::Input(format!(
+                "the name {name:?} {why}; choose a name of printable characters"
+            )));
         }
         if let Some(n) = self.trusted_name(&key)? {
             return Err(Error::Input(format!(
@@ -714,7 +721,9 @@ impl Ledger {
     }
 }
 
-/// A name as one shell word, for a command line the user may copy.
+/// A name as one shell word, for a command line the user may copy. A name that is not
+/// printable (merge refuses those before this) is written with escapes (`$'...'`), so no
+/// control character reaches the terminal.
 fn shell_word(name: &str) -> String {
     if !name.is_empty()
         && name
@@ -722,6 +731,25 @@ fn shell_word(name: &str) -> String {
             .all(|c| c.is_ascii_alphanumeric() || "-_.@".contains(c))
     {
         name.to_string()
+    } else if name.chars().any(crate::signing::unprintable) {
+        let mut out = String::from("$'");
+        for c in name.chars() {
+            match c {
+                '\\' | '\'' => {
+                    out.push('\\');
+                    out.push(c);
+                }
+                c if crate::signing::unprintable(c) => {
+                    out += &match u32::from(c) {
+                        n @ 0..=0x7f => format!("\\x{n:02x}"),
+                        n @ 0x80..=0xffff => format!("\\u{n:04x}"),
+                        n => format!("\\U{n:08x}"),
+                    }
+                }
+                c => out.push(c),
+            }
+        }
+        out + "'"
     } else {
         format!("'{}'", name.replace('\'', "'\\''"))
     }
@@ -1007,4 +1035,19 @@ fn read_back(
         }
     }
     Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::shell_word;
+
+    #[test]
+    fn shell_words_quote_and_escape() {
+        assert_eq!(shell_word("ada"), "ada");
+        assert_eq!(shell_word("Ada L"), "'Ada L'");
+        assert_eq!(shell_word("o'hara"), "'o'\\''hara'");
+        assert_eq!(shell_word("a\u{1b}[2J'"), "$'a\\x1b[2J\\''");
+        assert_eq!(shell_word("a\u{202e}b"), "$'a\\u202eb'");
+        assert!(!shell_word("x\u{9b}\n").chars().any(char::is_control));
+    }
 }

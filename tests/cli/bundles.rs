@@ -708,3 +708,67 @@ fn a_reveal_may_precede_the_run_that_brings_its_partition() {
     assert_eq!(consultations(&erin), consultations(&carol));
     erin.probity(&["audit", "--verify"]).expect(0);
 }
+
+/// A signer name with control characters: a key file holding one is refused (exit 2) with the
+/// name escaped, and a bundle signed under one is refused at merge (exit 4), trusted key or
+/// not, --allow-unverified or not; no escape code reaches the terminal.
+#[test]
+fn signer_names_cannot_carry_control_characters() {
+    let name = "al\u{1b}[2J\u{1b}]0;pwned\u{7}ice";
+    let mallory = small_dir("escape-mallory");
+    mallory.probity(&["run", "small.toml"]).expect(0);
+    mallory.public_key("mallory");
+    let file = mallory
+        .path
+        .join(".config")
+        .join("probity")
+        .join("signing-key.json");
+    let mut key: Value = serde_json::from_str(&std::fs::read_to_string(&file).unwrap()).unwrap();
+    key["name"] = json!(name);
+    std::fs::write(&file, key.to_string()).unwrap();
+    for args in [&["key", "show"][..], &["pack", "1", "--out", "m.json"]] {
+        let r = mallory.probity(args).expect(2);
+        assert!(
+            r.stderr().contains("control characters")
+                && r.stderr().contains("\\u{1b}")
+                && !r.stderr().contains('\u{1b}')
+                && !r.stdout().contains('\u{1b}'),
+            "{}",
+            r.stderr()
+        );
+    }
+
+    // A bundle signed under that name by a modified probity (the library's own signature).
+    mallory
+        .probity(&["pack", "1", "--out", "m.json", "--unsigned"])
+        .expect(0);
+    let mut bundle = read_bundle(&mallory, "m.json");
+    let k = probity::signing::Key::generate(name).unwrap();
+    let message = probity::signing::signed_message(&bundle, name, &k.public_hex()).unwrap();
+    bundle["signature"] =
+        json!({"signer": name, "public_key": k.public_hex(), "signature": k.sign(&message)});
+    let bob = small_dir("escape-bob");
+    bob.probity(&["run", "small.toml"]).expect(0);
+    bob.write("m.json", &bundle.to_string());
+    let before = bob.counts();
+    let check = |args: &[&str]| {
+        let r = bob.probity(args).expect(4);
+        assert!(
+            r.stderr().contains("signer name")
+                && r.stderr().contains("control characters")
+                && !r.stderr().contains('\u{1b}')
+                && !r.stderr().contains('\u{7}'),
+            "{}",
+            r.stderr()
+        );
+        assert_eq!(bob.counts(), before);
+    };
+    check(&["merge", "m.json"]);
+    check(&["merge", "m.json", "--allow-unverified"]);
+    bob.probity(&["key", "trust", "mallory", &k.public_hex()])
+        .expect(0);
+    let before = bob.counts();
+    let r = bob.probity(&["merge", "m.json"]).expect(4);
+    assert!(!r.stderr().contains('\u{1b}'), "{}", r.stderr());
+    assert_eq!(bob.counts(), before);
+}
