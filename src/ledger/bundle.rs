@@ -230,6 +230,11 @@ impl Ledger {
         match (&signer, allow_unverified) {
             (Signer::Trusted { .. }, _) | (_, true) => {}
             (Signer::Untrusted { name, key }, false) => {
+                if let Some(other) = self.trusted_key_of(name)? {
+                    return Err(Error::Integrity(format!(
+                        "the bundle is signed in the name of {name:?}, but with key {key}, and this ledger trusts {name:?} with another key ({other}): someone else may be using their name; nothing was merged. Ask {name:?}, by another channel than the bundle, which key is theirs (`probity key show`); merge with --allow-unverified only if you know who made it, which is recorded"
+                    )));
+                }
                 return Err(Error::Integrity(format!(
                     "the bundle is signed by {name:?} with key {key}, which this ledger does not trust; nothing was merged. If that key is theirs (ask them for `probity key show`), trust it with `probity key trust {} {key}`; or merge with --allow-unverified, which is recorded",
                     shell_word(name)
@@ -594,7 +599,21 @@ impl Ledger {
             .map_err(sql_err("read trusted keys"))
     }
 
-    /// Trust `key` to sign bundles as `name`; refused (exit 2) when it is trusted already.
+    /// A key this ledger trusts under `name`, if any (the first by key, should an older
+    /// ledger hold two).
+    pub fn trusted_key_of(&self, name: &str) -> Result<Option<String>> {
+        self.conn
+            .query_row(
+                "SELECT public_key FROM trusted_keys WHERE name = ?1 ORDER BY public_key LIMIT 1",
+                [name],
+                |r| r.get(0),
+            )
+            .optional()
+            .map_err(sql_err("read trusted keys"))
+    }
+
+    /// Trust `key` to sign bundles as `name`; refused (exit 2) when the key is trusted already,
+    /// or the name is trusted with another key.
     pub fn trust(&mut self, key: &str, name: &str, at: &str, by: &str) -> Result<()> {
         let key = crate::signing::public_key(key).map_err(Error::Input)?;
         if let Some(why) = crate::signing::name_problem(name) {
@@ -605,6 +624,14 @@ impl Ledger {
         if let Some(n) = self.trusted_name(&key)? {
             return Err(Error::Input(format!(
                 "key {key} is trusted already, as {n:?}"
+            )));
+        }
+        // One name, one key: a second key under a trusted name would let its holder sign as
+        // that person.
+        if let Some(other) = self.trusted_key_of(name)? {
+            return Err(Error::Input(format!(
+                "{name:?} is trusted already, with key {other}: a name is trusted with one key only, so that a bundle's name says whose key signed it; trust this key under another name (for example {:?})",
+                format!("{name}-2")
             )));
         }
         let path = self.path.clone();

@@ -772,3 +772,39 @@ fn signer_names_cannot_carry_control_characters() {
     assert!(!r.stderr().contains('\u{1b}'), "{}", r.stderr());
     assert_eq!(bob.counts(), before);
 }
+
+/// One name, one key: a second key under a trusted name is refused (exit 2), and a bundle
+/// signed in a trusted name with another key is refused as a likely impersonation, without
+/// suggesting to trust that key under the name.
+#[test]
+fn a_trusted_name_cannot_take_a_second_key() {
+    let alice = small_dir("name-alice");
+    let mallory = small_dir("name-mallory");
+    mallory.probity(&["run", "small.toml"]).expect(0);
+    let fake = mallory.public_key("alice");
+    mallory.probity(&["pack", "1", "--out", "m.json"]).expect(0);
+    let bob = Dir::new("name-bob");
+    bob.trusts(&alice, "alice");
+    let real = alice.public_key("alice");
+    let before = bob.counts();
+    let r = bob.probity(&["key", "trust", "alice", &fake]).expect(2);
+    assert!(
+        r.stderr().contains("\"alice\" is trusted already") && r.stderr().contains(&real),
+        "{}",
+        r.stderr()
+    );
+    assert_eq!(bob.counts(), before);
+    let listed = bob.probity(&["key", "list", "--json"]).expect(0).json();
+    assert_eq!(listed["trusted_keys"].as_array().unwrap().len(), 1);
+
+    bob.write("m.json", &read_bundle(&mallory, "m.json").to_string());
+    let r = bob.probity(&["merge", "m.json"]).expect(4);
+    let e = r.stderr();
+    assert!(
+        e.contains(&format!("trusts \"alice\" with another key ({real})"))
+            && e.contains("someone else may be using their name")
+            && !e.contains("key trust alice"),
+        "{e}"
+    );
+    assert_eq!(bob.counts(), before);
+}
