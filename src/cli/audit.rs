@@ -83,10 +83,15 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
             "status": status,
         }));
     }
-    let mut warnings = ledger.overlap_findings()?;
+    // Each warning with what it is about (the text labels it; JSON keeps the sentences).
+    let mut warnings: Vec<(&str, String)> = ledger
+        .overlap_findings()?
+        .into_iter()
+        .map(|w| ("overlap", w))
+        .collect();
     let merges = ledger.merges()?;
     for m in merges.iter().filter(|m| m["verdict"] != "trusted") {
-        warnings.push(format!(
+        warnings.push(("unverified merge", format!(
             "merge {} ({} by {}@{}) brought {} entries from a bundle {}, merged with --allow-unverified: nothing shows who made them",
             m["merge"],
             m["merged_at"].as_str().unwrap_or(""),
@@ -97,9 +102,10 @@ pub fn run(g: &Global, a: Args) -> Result<i32> {
                 (Some(n), Some(k)) => format!("signed by {n:?} with key {k}, which this ledger does not trust"),
                 _ => "that was not signed".to_string(),
             }
-        ));
+        )));
     }
     if a.json {
+        let warnings: Vec<&String> = warnings.iter().map(|(_, w)| w).collect();
         out_json(
             &json!({"partitions": rows, "warnings": warnings, "merges": merges, "chain": chain, "unfinished": crate::report::json::unfinished(&starts)}),
         )?;

@@ -357,8 +357,9 @@ pub fn selection_optimism(d: &RunDetail) -> Option<(f64, Option<f64>)> {
     Some((m, Some(se * m)))
 }
 
-/// The `audit` table, from its JSON rows.
-pub fn audit(rows: &[serde_json::Value], warnings: &[String]) -> String {
+/// The `audit` table, from its JSON rows, and its warnings, each after a label saying what it
+/// is about (`overlap`, `unverified merge`).
+pub fn audit(rows: &[serde_json::Value], warnings: &[(&str, String)]) -> String {
     let mut t = new_table(vec![
         "partition",
         "experiment",
@@ -443,8 +444,8 @@ pub fn audit(rows: &[serde_json::Value], warnings: &[String]) -> String {
             ));
         }
     }
-    for w in warnings {
-        out.push_str(&format!("overlap: {w}\n"));
+    for (what, w) in warnings {
+        out.push_str(&format!("{what}: {w}\n"));
     }
     out
 }

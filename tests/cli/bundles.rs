@@ -808,3 +808,44 @@ fn a_trusted_name_cannot_take_a_second_key() {
     );
     assert_eq!(bob.counts(), before);
 }
+
+/// `audit`'s text labels each warning by what it is: an overlap of test rows as `overlap:`, a
+/// merge of an unsigned bundle as `unverified merge:` (it was `overlap:` too). The JSON keeps
+/// its list of sentences.
+#[test]
+fn audit_labels_each_warning_by_what_it_is() {
+    let (carol, _dave, _) = carol_and_dave("labels");
+    let other = small_dir("labels-other");
+    other.probity(&["run", "small.toml"]).expect(0);
+    other
+        .probity(&["pack", "1", "--out", "u.json", "--unsigned"])
+        .expect(0);
+    carol.write("u.json", &read_bundle(&other, "u.json").to_string());
+    carol
+        .probity(&["merge", "u.json", "--allow-unverified"])
+        .expect(0);
+    let text = carol.probity(&["audit"]).expect(3).stdout();
+    let lines: Vec<&str> = text.lines().collect();
+    assert!(
+        lines
+            .iter()
+            .any(|l| l.starts_with("unverified merge: merge 1 ") && l.contains("not signed")),
+        "{text}"
+    );
+    assert!(
+        lines
+            .iter()
+            .any(|l| l.starts_with("overlap: ") && !l.contains("merge")),
+        "{text}"
+    );
+    assert!(!text.contains("overlap: merge"), "{text}");
+    let j = carol.probity(&["audit", "--json"]).expect(3).json();
+    assert!(
+        j["warnings"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .any(|w| w.as_str().unwrap().starts_with("merge 1 ")),
+        "{j}"
+    );
+}
