@@ -308,25 +308,39 @@ mod imp {
         }
     }
 
-    /// The commands spawned and not yet waited for. Held while spawning, so a command is
-    /// never taken for an orphan between its fork and its noting.
-    static LIVE: std::sync::Mutex<Vec<u32>> = std::sync::Mutex::new(Vec::new());
+    /// The commands spawned and not yet waited for, and the children probity had before its
+    /// first command (a shell's jobs when it was started with `exec`: never ended here). Held
+    /// while spawning, so a command is never taken for an orphan between its fork and its
+    /// noting.
+    struct Live {
+        commands: Vec<u32>,
+        before: Option<Vec<i32>>,
+    }
+    static LIVE: std::sync::Mutex<Live> = std::sync::Mutex::new(Live {
+        commands: Vec::new(),
+        before: None,
+    });
 
     pub fn spawn(command: &mut std::process::Command) -> std::io::Result<std::process::Child> {
         let mut live = LIVE.lock().unwrap_or_else(|e| e.into_inner());
-        // Orphans of the commands come to probity, not to init, so they can be ended.
-        // SAFETY: prctl on this process with integer arguments.
-        unsafe {
-            libc::prctl(libc::PR_SET_CHILD_SUBREAPER, 1, 0, 0, 0);
+        if live.before.is_none() {
+            live.before = Some(children());
+            // Orphans of the commands come to probity, not to init, so they can be ended.
+            // SAFETY: prctl on this process with integer arguments.
+            unsafe {
+                libc::prctl(libc::PR_SET_CHILD_SUBREAPER, 1, 0, 0, 0);
+            }
         }
         let child = command.spawn()?;
-        live.push(child.id());
+        live.commands.push(child.id());
         Ok(child)
     }
 
     pub fn ended(pid: u32) {
         let mut live = LIVE.lock().unwrap_or_else(|e| e.into_inner());
-        live.retain(|p| *p != pid);
+        if let Some(i) = live.commands.iter().position(|p| *p == pid) {
+            live.commands.swap_remove(i);
+        }
     }
 
     pub fn end_group(pid: u32) {
@@ -338,24 +352,39 @@ mod imp {
         end_orphans();
     }
 
-    /// End every child of probity that is no live command: what a command left running after
-    /// leaving its group (a new session), adopted here. Their own children come here next, so
-    /// this goes round until none is left (a bounded number of times).
+    /// End what commands left running after leaving their group (a session of their own),
+    /// adopted here: every child of probity that is neither a live command nor one it had
+    /// before. Only when no command is live, so a command's helper is never ended while it
+    /// may still be waited for (a grid on 1 thread and on 8 ends the same helpers). Every
+    /// orphan is signalled first, then reaped without blocking (a traced one may never be
+    /// reapable here); their own children come here next, so this goes round a bounded
+    /// number of times.
     fn end_orphans() {
         let live = LIVE.lock().unwrap_or_else(|e| e.into_inner());
+        if !live.commands.is_empty() {
+            return;
+        }
+        let before = live.before.clone().unwrap_or_default();
+        let deadline = std::time::Instant::now() + std::time::Duration::from_secs(2);
         for _ in 0..64 {
             let orphans: Vec<i32> = children()
                 .into_iter()
-                .filter(|p| !live.contains(&(*p as u32)))
+                .filter(|p| before.binary_search(p).is_err())
                 .collect();
-            if orphans.is_empty() {
+            if orphans.is_empty() || std::time::Instant::now() > deadline {
                 return;
             }
-            for p in orphans {
-                // SAFETY: a signal to, and a wait for, a child of this process.
+            for &p in &orphans {
+                // SAFETY: a signal to a child of this process.
                 unsafe {
                     libc::kill(p, libc::SIGKILL);
-                    libc::waitpid(p, std::ptr::null_mut(), 0);
+                }
+            }
+            std::thread::sleep(std::time::Duration::from_millis(2));
+            for &p in &orphans {
+                // SAFETY: a non-blocking wait for a child of this process.
+                unsafe {
+                    libc::waitpid(p, std::ptr::null_mut(), libc::WNOHANG);
                 }
             }
         }
@@ -380,24 +409,48 @@ mod imp {
         out
     }
 
+    /// close_range(3, ~0, CLOSE_RANGE_CLOEXEC): every descriptor from 3 up closes at exec
+    /// (Linux 5.11; on an older kernel the call fails and they stay as they were). Rust's own
+    /// descriptors are close-on-exec already; this reaches those inherited from outside.
+    fn close_inherited() {
+        // SAFETY: a system call on descriptor numbers only.
+        unsafe {
+            libc::syscall(
+                libc::SYS_close_range,
+                3u32,
+                u32::MAX,
+                libc::CLOSE_RANGE_CLOEXEC,
+            );
+        }
+    }
+
     /// A seccomp filter for what Landlock does not cover: the command may not change any
-    /// file's permissions, owner, times or extended attributes, make device or other special
-    /// files, open sockets (no network, no service on a socket file such as a container
-    /// daemon's; `socketpair` still works), or use io_uring (whose requests seccomp does not
-    /// see). A call from another architecture's system-call table (32-bit, x32) is refused
-    /// whole. Built in the parent; the child only loads it.
+    /// file's permissions, owner, times, flags or extended attributes, make device or other
+    /// special files, open sockets (no network, no service on a socket file such as a
+    /// container daemon's; `socketpair` still works), use io_uring (whose requests seccomp does
+    /// not see), load kernel code or watch other processes (bpf, perf events, modules, kexec,
+    /// fanotify, userfaultfd, ptrace, port I/O, keyrings), or make namespaces (unshare, setns,
+    /// clone with a namespace flag; clone3, whose flags seccomp cannot read, answers ENOSYS so
+    /// that the C library falls back to clone). A call from another architecture's table
+    /// (32-bit, x32) is refused whole. Built in the parent; the child only loads it.
     fn filter() -> Vec<libc::sock_filter> {
         const LD_W_ABS: u16 = 0x20;
         const JEQ_K: u16 = 0x15;
         const JGE_K: u16 = 0x35;
+        const JSET_K: u16 = 0x45;
         const RET_K: u16 = 0x06;
         #[cfg(target_arch = "x86_64")]
         const ARCH: u32 = 0xC000_003E;
         #[cfg(target_arch = "aarch64")]
         const ARCH: u32 = 0xC000_00B7;
+        // Offsets in struct seccomp_data: nr, arch, then args (8 bytes each, low half first).
+        const NR: u32 = 0;
+        const ARCH_AT: u32 = 4;
+        let arg_low = |i: u32| 16 + 8 * i;
         let deny = libc::SECCOMP_RET_ERRNO | libc::EPERM as u32;
+        let nosys = libc::SECCOMP_RET_ERRNO | libc::ENOSYS as u32;
         let allow = libc::SECCOMP_RET_ALLOW;
-        let mut nrs: Vec<libc::c_long> = vec![
+        let mut denied: Vec<libc::c_long> = vec![
             libc::SYS_fchmod,
             libc::SYS_fchmodat,
             452, // fchmodat2
@@ -417,9 +470,37 @@ mod imp {
             libc::SYS_io_uring_setup,
             libc::SYS_io_uring_enter,
             libc::SYS_io_uring_register,
+            libc::SYS_bpf,
+            libc::SYS_perf_event_open,
+            libc::SYS_init_module,
+            libc::SYS_finit_module,
+            libc::SYS_delete_module,
+            libc::SYS_kexec_load,
+            libc::SYS_kexec_file_load,
+            libc::SYS_fanotify_init,
+            libc::SYS_userfaultfd,
+            libc::SYS_ptrace,
+            libc::SYS_process_vm_readv,
+            libc::SYS_process_vm_writev,
+            libc::SYS_keyctl,
+            libc::SYS_add_key,
+            libc::SYS_request_key,
+            libc::SYS_unshare,
+            libc::SYS_setns,
+            libc::SYS_mount,
+            libc::SYS_umount2,
+            libc::SYS_pivot_root,
+            libc::SYS_chroot,
+            libc::SYS_open_tree,
+            libc::SYS_move_mount,
+            libc::SYS_fsopen,
+            libc::SYS_fsmount,
+            libc::SYS_fspick,
+            libc::SYS_name_to_handle_at,
+            libc::SYS_open_by_handle_at,
         ];
         #[cfg(target_arch = "x86_64")]
-        nrs.extend([
+        denied.extend([
             libc::SYS_chmod,
             libc::SYS_chown,
             libc::SYS_lchown,
@@ -427,37 +508,133 @@ mod imp {
             libc::SYS_utimes,
             libc::SYS_futimesat,
             libc::SYS_mknod,
+            libc::SYS_iopl,
+            libc::SYS_ioperm,
         ]);
+        // ioctl requests that change a file's flags (immutable, append-only, no-atime...).
+        // FS_IOC_SETFLAGS, FS_IOC32_SETFLAGS, FS_IOC_FSSETXATTR.
+        let ioctls: [u32; 3] = [0x4008_6602, 0x4004_6602, 0x401c_5820];
+        // CLONE_NEWNS | NEWCGROUP | NEWUTS | NEWIPC | NEWUSER | NEWPID | NEWNET | NEWTIME.
+        let new_namespaces: u32 = 0x0002_0000
+            | 0x0200_0000
+            | 0x0400_0000
+            | 0x0800_0000
+            | 0x1000_0000
+            | 0x2000_0000
+            | 0x4000_0000
+            | 0x0000_0080;
         let op = |code: u16, jt: u8, jf: u8, k: u32| libc::sock_filter { code, jt, jf, k };
-        let n = nrs.len();
-        // 0: arch; 1: not ours -> deny; 2: nr; 3: x32 -> deny; then one test per call,
-        // each jumping to the deny at the end; allow before it.
-        let mut prog = vec![op(LD_W_ABS, 0, 0, 4)];
-        // Jump offsets count from the next instruction: deny is at 4 + n + 1.
-        prog.push(op(JEQ_K, 0, (n + 3) as u8, ARCH));
-        prog.push(op(LD_W_ABS, 0, 0, 0));
-        prog.push(op(JGE_K, (n + 1) as u8, 0, 0x4000_0000));
-        for (i, nr) in nrs.iter().enumerate() {
-            prog.push(op(JEQ_K, (n - i) as u8, 0, *nr as u32));
+        // Each test jumps to one of the three returns at the end: allow, deny, nosys. The
+        // program is built forwards with placeholders and patched: `to` records (instruction,
+        // target) and true/false side.
+        enum To {
+            Deny,
+            NoSys,
         }
+        let mut prog: Vec<libc::sock_filter> = Vec::new();
+        let mut jumps: Vec<(usize, To, bool)> = Vec::new();
+        prog.push(op(LD_W_ABS, 0, 0, ARCH_AT));
+        jumps.push((prog.len(), To::Deny, false));
+        prog.push(op(JEQ_K, 0, 0, ARCH));
+        prog.push(op(LD_W_ABS, 0, 0, NR));
+        jumps.push((prog.len(), To::Deny, true));
+        prog.push(op(JGE_K, 0, 0, 0x4000_0000));
+        for nr in &denied {
+            jumps.push((prog.len(), To::Deny, true));
+            prog.push(op(JEQ_K, 0, 0, *nr as u32));
+        }
+        jumps.push((prog.len(), To::NoSys, true));
+        prog.push(op(JEQ_K, 0, 0, libc::SYS_clone3 as u32));
+        // clone: its flags (the first argument on both architectures here).
+        prog.push(op(JEQ_K, 0, 2, libc::SYS_clone as u32));
+        prog.push(op(LD_W_ABS, 0, 0, arg_low(0)));
+        jumps.push((prog.len(), To::Deny, true));
+        prog.push(op(JSET_K, 0, 0, new_namespaces));
+        // ioctl: its request.
+        prog.push(op(LD_W_ABS, 0, 0, NR));
+        prog.push(op(JEQ_K, 0, ioctls.len() as u8 + 1, libc::SYS_ioctl as u32));
+        prog.push(op(LD_W_ABS, 0, 0, arg_low(1)));
+        for req in ioctls {
+            jumps.push((prog.len(), To::Deny, true));
+            prog.push(op(JEQ_K, 0, 0, req));
+        }
+        let allow_at = prog.len();
         prog.push(op(RET_K, 0, 0, allow));
+        let deny_at = prog.len();
         prog.push(op(RET_K, 0, 0, deny));
+        let nosys_at = prog.len();
+        prog.push(op(RET_K, 0, 0, nosys));
+        let _ = allow_at;
+        for (at, to, when) in jumps {
+            let target = match to {
+                To::Deny => deny_at,
+                To::NoSys => nosys_at,
+            };
+            // Offsets count from the next instruction.
+            let off = (target - at - 1) as u8;
+            if when {
+                prog[at].jt = off;
+            } else {
+                prog[at].jf = off;
+            }
+        }
         prog
     }
 
-    /// close_range(3, ~0, CLOSE_RANGE_CLOEXEC): every descriptor from 3 up closes at exec
-    /// (Linux 5.11; on an older kernel the call fails and they stay as they were). Rust's own
-    /// descriptors are close-on-exec already; this reaches those inherited from outside.
-    fn close_inherited() {
-        // SAFETY: a system call on descriptor numbers only.
-        unsafe {
-            libc::syscall(
-                libc::SYS_close_range,
-                3u32,
-                u32::MAX,
-                libc::CLOSE_RANGE_CLOEXEC,
-            );
+    /// Drop every capability for good (a command run by root keeps root's file ownership, not
+    /// its powers): securebits locked so exec gives none back, the bounding and ambient sets
+    /// emptied, then the process's own sets. Only system calls with integer arguments or
+    /// memory on this frame; an error a user without capabilities meets (EPERM) is expected.
+    ///
+    /// # Safety
+    /// Between fork and exec only.
+    unsafe fn drop_capabilities() -> std::io::Result<()> {
+        const PR_CAPBSET_DROP: libc::c_int = 24;
+        const PR_SET_SECUREBITS: libc::c_int = 28;
+        const PR_CAP_AMBIENT: libc::c_int = 47;
+        const PR_CAP_AMBIENT_CLEAR_ALL: libc::c_ulong = 4;
+        #[repr(C)]
+        struct Header {
+            version: u32,
+            pid: i32,
         }
+        #[repr(C)]
+        struct Data {
+            effective: u32,
+            permitted: u32,
+            inheritable: u32,
+        }
+        // SAFETY: prctl and capset with integers and pointers to this frame's memory.
+        unsafe {
+            libc::prctl(
+                PR_SET_SECUREBITS,
+                (libc::SECURE_ALL_BITS | libc::SECURE_ALL_LOCKS) as libc::c_ulong,
+            );
+            for cap in 0..64 {
+                libc::prctl(PR_CAPBSET_DROP, cap as libc::c_ulong);
+            }
+            libc::prctl(PR_CAP_AMBIENT, PR_CAP_AMBIENT_CLEAR_ALL, 0, 0, 0);
+            let header = Header {
+                version: 0x2008_0522,
+                pid: 0,
+            };
+            let data = [
+                Data {
+                    effective: 0,
+                    permitted: 0,
+                    inheritable: 0,
+                },
+                Data {
+                    effective: 0,
+                    permitted: 0,
+                    inheritable: 0,
+                },
+            ];
+            if libc::syscall(libc::SYS_capset, &header as *const Header, data.as_ptr()) != 0 {
+                return Err(std::io::Error::last_os_error());
+            }
+        }
+        Ok(())
     }
 
     pub fn apply(command: &mut std::process::Command, g: Option<&Grants>) -> Result<(), String> {
@@ -469,6 +646,7 @@ mod imp {
                 command.pre_exec(|| {
                     close_inherited();
                     libc::setsid();
+                    libc::prctl(libc::PR_SET_PDEATHSIG, libc::SIGKILL as libc::c_ulong);
                     Ok(())
                 });
             }
@@ -520,6 +698,9 @@ mod imp {
             command.pre_exec(move || {
                 close_inherited();
                 libc::setsid();
+                // Ends with probity, even killed (its own session no longer gets Ctrl-C).
+                libc::prctl(libc::PR_SET_PDEATHSIG, libc::SIGKILL as libc::c_ulong);
+                drop_capabilities()?;
                 if let Some(r) = ruleset.take() {
                     match r.restrict_self() {
                         Ok(s) if s.ruleset != RulesetStatus::NotEnforced => {}

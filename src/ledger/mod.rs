@@ -2140,42 +2140,47 @@ pub fn check_note(text: &str) -> Result<()> {
 
 /// The rules a partition was sealed with, so nothing stored later (a run that started earlier
 /// and finished later, a merged run) can change rules a consultation already followed:
-/// - its first seal entry in chain order (schema 11 on);
+/// - its first seal entry, if it comes before its first run in chain order (schema 11 on);
 /// - else the `[guard]` of the first run stored on it in chain order (partitions stored
-///   before seals were: that run sealed them);
+///   before seals were: that run sealed them, and a seal merged later changes nothing);
 /// - else its pending seal (its first run's rules, from that run's start);
 /// - else count mode with a budget of 1, the defaults (nothing stored yet), with `fixed`
 ///   false.
 ///
 /// `by` is the run that sealed it, once stored: the first run on it with the sealing spec.
 fn seal_of(conn: &Connection, partition: &str) -> Result<crate::guard::consult::Seal> {
-    let first: Option<(i64, String)> = conn
+    let first: Option<(i64, String, i64)> = conn
         .query_row(
-            "SELECT r.id, r.spec_text FROM runs r JOIN chain c ON c.kind = 'run' AND c.ref_id = r.id
+            "SELECT r.id, r.spec_text, c.seq FROM runs r JOIN chain c ON c.kind = 'run' AND c.ref_id = r.id
              WHERE r.partition_id = ?1 ORDER BY c.seq LIMIT 1",
             [partition],
-            |r| Ok((r.get(0)?, r.get(1)?)),
+            |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)),
         )
         .optional()
         .map_err(sql_err("read seal"))?;
-    type Stored = (String, Option<String>, String);
+    type Stored = (String, Option<String>, String, i64);
     let stored = |sql: &str| -> Result<Option<Stored>> {
-        conn.query_row(sql, [partition], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)))
-            .optional()
-            .map_err(sql_err("read seal"))
+        conn.query_row(sql, [partition], |r| {
+            Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?))
+        })
+        .optional()
+        .map_err(sql_err("read seal"))
     };
+    // Whichever is first in chain order: a seal entry that came after the partition's first
+    // run (merged into a ledger from before seals, say) changes nothing.
     let sealed = match stored(
-        "SELECT s.rules, s.target, s.spec_hash FROM seals s JOIN chain c ON c.kind = 'seal' AND c.ref_id = s.id
+        "SELECT s.rules, s.target, s.spec_hash, c.seq FROM seals s JOIN chain c ON c.kind = 'seal' AND c.ref_id = s.id
          WHERE s.partition_id = ?1 ORDER BY c.seq LIMIT 1",
     )? {
-        Some(s) => Some(s),
+        Some(s) if first.as_ref().is_none_or(|f| s.3 < f.2) => Some(s),
+        Some(_) => None,
         None if first.is_none() => stored(
-            "SELECT rules, target, spec_hash FROM pending_seals WHERE partition_id = ?1",
+            "SELECT rules, target, spec_hash, 0 FROM pending_seals WHERE partition_id = ?1",
         )?,
         None => None,
     };
     let (rules, target, by) = match (sealed, &first) {
-        (Some((rules, target, spec_hash)), _) => {
+        (Some((rules, target, spec_hash, _)), _) => {
             let by = conn
                 .query_row(
                     "SELECT r.id FROM runs r JOIN chain c ON c.kind = 'run' AND c.ref_id = r.id
@@ -2193,7 +2198,7 @@ fn seal_of(conn: &Connection, partition: &str) -> Result<crate::guard::consult::
                 by,
             )
         }
-        (None, Some((id, text))) => (
+        (None, Some((id, text, _))) => (
             crate::spec::stored_guard(text),
             crate::spec::stored_target(text),
             Some(*id),

@@ -849,3 +849,40 @@ fn audit_labels_each_warning_by_what_it_is() {
         "{j}"
     );
 }
+
+/// A partition stored before seals were entries follows its first run's `[guard]`: a bundle
+/// that brings a seal entry for it afterwards (a colleague's run of a looser copy of the
+/// spec) changes nothing, since the ledger's own first run comes first in chain order.
+#[test]
+fn a_merged_seal_cannot_loosen_a_partition_sealed_by_an_older_run() {
+    let strict = format!("{}\n[guard]\nreveals = 1\n", crate::fixtures::SMALL_SPEC);
+    let loose = format!("{}\n[guard]\nreveals = 1000\n", crate::fixtures::SMALL_SPEC);
+    let old = crate::fixtures::small_dir("seal-order-old");
+    old.write("strict.toml", &strict);
+    // As a probity before schema 11 stored it: no seal entry.
+    crate::fixtures::library_run(
+        &old,
+        "strict.toml",
+        &old.ledger(),
+        probity::data::Identity::CURRENT,
+    );
+    let other = crate::fixtures::small_dir("seal-order-other");
+    other.write("loose.toml", &loose);
+    other.probity(&["run", "loose.toml"]).expect(0);
+    other
+        .probity(&["pack", "1", "--unsigned", "--out", "loose.json"])
+        .expect(0);
+    old.copy(&other.path.join("loose.json"), "loose.json");
+    old.probity(&["merge", "loose.json", "--allow-unverified"])
+        .expect(0);
+    old.probity(&["reveal", "1", "--yes"]).expect(0);
+    let r = old.probity(&["reveal", "1", "--yes"]).expect(0);
+    assert!(
+        r.stderr().contains("over its budget of 1"),
+        "{}",
+        r.stderr()
+    );
+    let a = old.probity(&["audit", "--json"]).expect(3).json();
+    assert_eq!(a["partitions"][0]["budget"], 1, "{a}");
+    assert_eq!(a["chain"]["intact"], true);
+}

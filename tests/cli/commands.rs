@@ -417,6 +417,8 @@ import socket
 trycall("net", lambda: socket.socket(socket.AF_INET, socket.SOCK_STREAM).close())
 trycall("unix", lambda: socket.socket(socket.AF_UNIX, socket.SOCK_STREAM).close())
 trycall("tty", lambda: open("/dev/tty", "rb").close())
+caps = [l.split()[1] for l in open("/proc/self/status") if l.startswith("CapEff:")][0]
+out.append("caps=" + caps)
 import subprocess
 left = subprocess.Popen([sys.executable, "-c", "import time; time.sleep(60)"], start_new_session=True)
 out.append("left=%d" % left.pid)
@@ -507,7 +509,7 @@ fn a_boxed_command_cannot_reach_the_data_file_or_the_ledger() {
     let (boxed, warnings) = probe(&d, &spec(""));
     assert!(
         boxed.contains(
-            "probe: abs=denied rel=denied proc=denied ledger=denied input=read write=denied chmod=denied utime=denied mknod=denied net=denied unix=denied tty=denied left="
+            "probe: abs=denied rel=denied proc=denied ledger=denied input=read write=denied chmod=denied utime=denied mknod=denied net=denied unix=denied tty=denied caps=0000000000000000 left="
         ) && boxed.contains(" fds=0,1,2,3 cells=as-written"),
         "{boxed}"
     );
