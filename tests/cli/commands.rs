@@ -845,3 +845,51 @@ fn a_box_that_would_not_hold_is_warned_and_needs_consent() {
         r.stderr()
     );
 }
+
+/// A command whose helper leaves its group (a session of its own) and which waits for that
+/// helper works alike on 1 thread and on 4: a helper is ended only once no command of the run
+/// is running, never while another command finishes.
+#[test]
+fn a_commands_own_helper_survives_other_commands_ending() {
+    let helper = r#"
+import os, sys, time, json
+k = json.loads(os.environ["PROBITY_PARAMS"])["shift"]
+flag = os.path.join(os.environ["TMPDIR"], "flag")
+pid = os.fork()
+if pid == 0:
+    if os.fork() == 0:
+        os.setsid()
+        time.sleep(0.05 + 0.1 * k)
+        open(flag, "w").write("x")
+    os._exit(0)
+os.waitpid(pid, 0)
+for _ in range(1000):
+    if os.path.exists(flag):
+        break
+    time.sleep(0.01)
+else:
+    sys.exit("helper vanished")
+"#;
+    let d = small_dir("cmd-helper");
+    d.write("model.py", &format!("{helper}\n{MEAN_MODEL}"));
+    d.write(
+        "c.toml",
+        &format!(
+            "{SMALL_SPEC}\n[[model]]\nkind = \"command\"\nrun = [\"python3\", \"model.py\"]\nparams = {{ shift = [0.0, 0.5, 1.0, 1.5, 2.0, 2.5] }}\ninputs = [\"model.py\"]\n"
+        ),
+    );
+    for threads in ["1", "4"] {
+        let j = d
+            .probity(&["run", "c.toml", "--threads", threads, "--json"])
+            .expect(0)
+            .json();
+        let failed: Vec<String> = j["candidates"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .filter(|c| !c["failure"].is_null())
+            .map(|c| c["failure"].to_string())
+            .collect();
+        assert!(failed.is_empty(), "{threads} thread(s): {failed:?}");
+    }
+}
