@@ -269,10 +269,10 @@ pub fn fit_predict(
         match child.try_wait() {
             Ok(Some(s)) => break s,
             Ok(None) if start.elapsed() > limit => {
-                sandbox::end_group(child.id());
                 let _ = child.kill();
                 let _ = child.wait();
                 sandbox::ended(child.id());
+                sandbox::end_group(child.id());
                 return Err(format!(
                     "timed out after {} s and was stopped",
                     job.cmd.timeout
@@ -280,10 +280,10 @@ pub fn fit_predict(
             }
             Ok(None) => std::thread::sleep(Duration::from_millis(5)),
             Err(e) => {
-                sandbox::end_group(child.id());
                 let _ = child.kill();
                 let _ = child.wait();
                 sandbox::ended(child.id());
+                sandbox::end_group(child.id());
                 return Err(format!("cannot wait for the command: {e}"));
             }
         }

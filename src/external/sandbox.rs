@@ -357,16 +357,16 @@ mod imp {
     /// before. Only when no command is live, so a command's helper is never ended while it
     /// may still be waited for (a grid on 1 thread and on 8 ends the same helpers). Every
     /// orphan is signalled first, then reaped without blocking (a traced one may never be
-    /// reapable here); their own children come here next, so this goes round a bounded
-    /// number of times.
+    /// reapable here); their own children come here next, so this goes round until none is
+    /// left, for at most a few seconds.
     fn end_orphans() {
         let live = LIVE.lock().unwrap_or_else(|e| e.into_inner());
         if !live.commands.is_empty() {
             return;
         }
         let before = live.before.clone().unwrap_or_default();
-        let deadline = std::time::Instant::now() + std::time::Duration::from_secs(2);
-        for _ in 0..64 {
+        let deadline = std::time::Instant::now() + std::time::Duration::from_secs(5);
+        loop {
             let orphans: Vec<i32> = children()
                 .into_iter()
                 .filter(|p| before.binary_search(p).is_err())
@@ -606,10 +606,10 @@ mod imp {
         }
         // SAFETY: prctl and capset with integers and pointers to this frame's memory.
         unsafe {
-            libc::prctl(
-                PR_SET_SECUREBITS,
-                (libc::SECURE_ALL_BITS | libc::SECURE_ALL_LOCKS) as libc::c_ulong,
-            );
+            // No root privileges at exec, none kept or regained across a uid change, no
+            // ambient raise; each locked. (Not the newer bits on executing scripts.)
+            const SECUREBITS: libc::c_ulong = 0b1110_1111;
+            libc::prctl(PR_SET_SECUREBITS, SECUREBITS);
             for cap in 0..64 {
                 libc::prctl(PR_CAPBSET_DROP, cap as libc::c_ulong);
             }

@@ -453,7 +453,12 @@ impl Ledger {
             }
         }
         for p in &named {
-            super::settle_seal(&tx, p, None)?;
+            let mark = super::SealMark {
+                at: &who.at,
+                user: &who.user,
+                host: &who.host,
+            };
+            super::settle_seal(&tx, p, None, &mark)?;
         }
         let (mut merged, mut skipped) = (0, 0);
         for (kind, prev, hash, run_entry, sections, columns) in parsed {

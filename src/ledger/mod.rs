@@ -402,7 +402,7 @@ impl Ledger {
             user: &meta.user,
             host: &meta.host,
         };
-        settle_seal(&tx, &prep.partition_id, Some((spec, &mark)))?;
+        settle_seal(&tx, &prep.partition_id, Some(spec), &mark)?;
         // Other partitions' test rows among this run's development rows, decided here, inside
         // the run's transaction, so a partition stored meanwhile is seen. A replay adds no
         // look: its scores are the original's.
@@ -591,7 +591,7 @@ impl Ledger {
                 .prepare("INSERT INTO uses (run_id, partition_id, n_rows) VALUES (?1, ?2, ?3)")
                 .map_err(fail)?;
             for (partition, rows) in &uses {
-                settle_seal(&tx, partition, None)?;
+                settle_seal(&tx, partition, None, &mark)?;
                 used.execute(params![run, partition, rows]).map_err(fail)?;
             }
             // A run whose features differ from its partition's recipe keeps the test rows'
@@ -1088,7 +1088,12 @@ impl Ledger {
         let (records, out) = decide(&states)?;
         let mut ids = Vec::with_capacity(records.len());
         for r in &records {
-            settle_seal(&tx, &r.partition_id, None)?;
+            let mark = SealMark {
+                at: &r.revealed_at,
+                user: &r.user,
+                host: &r.host,
+            };
+            settle_seal(&tx, &r.partition_id, None, &mark)?;
         }
         for r in &records {
             ids.push(insert_reveal(&tx, r).map_err(fail)?);
@@ -2207,12 +2212,7 @@ fn seal_of(conn: &Connection, partition: &str) -> Result<crate::guard::consult::
     };
     Ok(crate::guard::consult::Seal {
         fixed: rules.is_some(),
-        rules: rules.unwrap_or(crate::spec::GuardSpec {
-            reveals: 1,
-            confidence: 0.95,
-            mode: crate::spec::GuardMode::Count,
-            overlap: crate::spec::Overlap::Count,
-        }),
+        rules: rules.unwrap_or(crate::spec::GuardSpec::DEFAULT),
         by,
         target,
     })
@@ -2235,13 +2235,15 @@ fn seal_from(spec: &crate::spec::Spec) -> (String, String, String) {
 }
 
 /// Chain `partition`'s seal if nothing about it is chained yet (no seal entry, no run): from
-/// its pending seal, or else from `fallback` (the storing run's spec). Called in the
+/// its pending seal; else the defaults, when it was consulted already (through another
+/// partition, under them); else from `spec` (the storing run's). Called in the
 /// transaction that first chains anything about the partition, before that entry, so the
 /// rules it followed meanwhile are the rules the chain shows.
 fn settle_seal(
     tx: &Connection,
     partition: &str,
-    fallback: Option<(&crate::spec::Spec, &SealMark)>,
+    spec: Option<&crate::spec::Spec>,
+    mark: &SealMark,
 ) -> Result<()> {
     let err = || sql_err("store seal");
     let chained: bool = tx
@@ -2264,9 +2266,26 @@ fn settle_seal(
         )
         .optional()
         .map_err(err())?;
-    let row = match (pending, fallback) {
+    // Consulted already (through another partition) with nothing fixed: the defaults it
+    // followed become its seal, so no later run or merged seal changes them.
+    let consulted: bool = tx
+        .query_row(
+            "SELECT EXISTS (SELECT 1 FROM reveals WHERE partition_id = ?1) OR EXISTS (SELECT 1 FROM uses WHERE partition_id = ?1)",
+            [partition],
+            |r| r.get(0),
+        )
+        .map_err(err())?;
+    let row = match (pending, spec) {
         (Some(p), _) => p,
-        (None, Some((spec, mark))) => {
+        (None, _) if consulted => (
+            crate::spec::GuardSpec::DEFAULT.to_json().to_string(),
+            None,
+            "defaults".to_string(),
+            mark.at.to_string(),
+            mark.user.to_string(),
+            mark.host.to_string(),
+        ),
+        (None, Some(spec)) => {
             let (rules, target, spec_hash) = seal_from(spec);
             (
                 rules,
@@ -2277,8 +2296,7 @@ fn settle_seal(
                 mark.host.to_string(),
             )
         }
-        // A partition seen through another one's consultation, with no run and no pending
-        // seal (its run failed, or an older probity stored it): the defaults apply, unsealed.
+        // Neither consulted nor run: nothing to fix yet.
         (None, None) => return Ok(()),
     };
     tx.execute(

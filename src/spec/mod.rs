@@ -133,6 +133,14 @@ pub enum GuardMode {
 }
 
 impl GuardSpec {
+    /// The rules without a `[guard]`: count mode, one consultation.
+    pub const DEFAULT: GuardSpec = GuardSpec {
+        reveals: 1,
+        confidence: 0.95,
+        mode: GuardMode::Count,
+        overlap: Overlap::Count,
+    };
+
     /// Canonical JSON: part of the spec's canonical form, and what a partition's seal stores.
     pub fn to_json(&self) -> Value {
         let mut v = json!({"reveals": self.reveals, "confidence": self.confidence, "mode": self.mode.name()});

@@ -1547,6 +1547,48 @@ fn rules_hold_from_the_first_runs_start_even_when_it_is_killed() {
     assert_eq!(a["unfinished"].as_array().unwrap().len(), 1, "{a}");
 }
 
+/// A partition known only through consultations under the default rules (its first run
+/// interrupted, with no pending seal, as an older probity left it) keeps those defaults: a
+/// bundle bringing a looser seal for it changes nothing.
+#[test]
+fn a_partition_consulted_under_the_defaults_keeps_them() {
+    if !crate::util::pauses_compiled("a_partition_consulted_under_the_defaults_keeps_them") {
+        return;
+    }
+    let split = |part: &str| format!("method = \"random\"\nseed = 7\n{part} = 0.2\nfolds = 5");
+    let d = diabetes(
+        "defaults-kept",
+        &[
+            ("first.toml", &split("test"), "[guard]\nreveals = 1000"),
+            ("copy.toml", &split("validation"), ""),
+        ],
+    );
+    let (mut first, _err) = paused_run(&d, "first.toml", None);
+    first.kill().unwrap();
+    first.wait().unwrap();
+    rusqlite::Connection::open(d.ledger())
+        .unwrap()
+        .execute("DELETE FROM pending_seals", [])
+        .unwrap();
+    d.probity(&["run", "copy.toml"]).expect(0);
+    // A colleague ran the first spec to the end: its bundle brings a seal with 1000.
+    let other = diabetes(
+        "defaults-other",
+        &[("first.toml", &split("test"), "[guard]\nreveals = 1000")],
+    );
+    other.probity(&["run", "first.toml"]).expect(0);
+    other
+        .probity(&["pack", "1", "--unsigned", "--out", "b.json"])
+        .expect(0);
+    d.copy(&other.path.join("b.json"), "b.json");
+    d.probity(&["merge", "b.json", "--allow-unverified"])
+        .expect(0);
+    let r = d.probity(&["run", "copy.toml"]).expect(0);
+    assert!(r.stderr().contains("budget of 1)"), "{}", r.stderr());
+    let a = d.probity(&["audit", "--json"]).expect(3).json();
+    assert_eq!(a["chain"]["intact"], true, "{a}");
+}
+
 /// `audit`'s table and JSON after a development use, pinned (the chain's head, which depends on
 /// the time of each run, is left out).
 #[test]
