@@ -297,7 +297,7 @@ pub fn fit_predict(
             format!("exit status {c}")
         });
         let boxed = if boxed {
-            " (the command ran in its box: it reads the system's folders, its inputs and its scratch folder only; see the README)"
+            " (the command ran in its box: it reads the system's folders, its inputs and its scratch folder only; see docs/box.md)"
         } else {
             ""
         };

@@ -558,13 +558,11 @@ mod imp {
             jumps.push((prog.len(), To::Deny, true));
             prog.push(op(JEQ_K, 0, 0, req));
         }
-        let allow_at = prog.len();
         prog.push(op(RET_K, 0, 0, allow));
         let deny_at = prog.len();
         prog.push(op(RET_K, 0, 0, deny));
         let nosys_at = prog.len();
         prog.push(op(RET_K, 0, 0, nosys));
-        let _ = allow_at;
         for (at, to, when) in jumps {
             let target = match to {
                 To::Deny => deny_at,

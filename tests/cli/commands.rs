@@ -289,15 +289,7 @@ with open(os.environ["PROBITY_OUT"], "w") as f:
 fn merged_or_changed_commands_run_only_with_consent() {
     let alice = setup("consent-alice", MEAN_MODEL, "");
     let j = alice.probity(&["run", "c.toml", "--json"]).expect(0).json();
-    let id = j["candidates"]
-        .as_array()
-        .unwrap()
-        .iter()
-        .find(|c| c["model"] == "command" && c["params"]["shift"] == 0.0)
-        .unwrap()["id"]
-        .as_i64()
-        .unwrap()
-        .to_string();
+    let id = shift_zero(&j);
     alice.public_key("alice");
     alice.probity(&["pack", "1", "--out", "a.json"]).expect(0);
     alice
@@ -433,6 +425,19 @@ ok = all(len(c.split(".")[1]) == 2 for c in cells)
 out.append("cells=" + ("as-written" if ok else "rewritten:" + cells[0]))
 sys.exit("probe: " + " ".join(out))
 "#;
+
+/// The id of the command candidate with `shift = 0`, from `run --json`.
+fn shift_zero(j: &serde_json::Value) -> String {
+    j["candidates"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|c| c["model"] == "command" && c["params"]["shift"] == 0.0)
+        .unwrap()["id"]
+        .as_i64()
+        .unwrap()
+        .to_string()
+}
 
 /// Why a run's (first) command candidate failed, from `run --json` or `show --json`.
 fn command_failure(j: &serde_json::Value) -> String {
@@ -772,15 +777,7 @@ fn old_kernel(d: &Dir, abi: u32) -> String {
 fn a_box_that_would_not_hold_is_warned_and_needs_consent() {
     let d = setup("cmd-gap", MEAN_MODEL, "");
     let j = d.probity(&["run", "c.toml", "--json"]).expect(0).json();
-    let id = j["candidates"]
-        .as_array()
-        .unwrap()
-        .iter()
-        .find(|c| c["model"] == "command" && c["params"]["shift"] == 0.0)
-        .unwrap()["id"]
-        .as_i64()
-        .unwrap()
-        .to_string();
+    let id = shift_zero(&j);
     assert!(
         !j["warnings"].to_string().contains("box"),
         "{}",
